@@ -1,0 +1,1 @@
+"""Subcommands of the ``cmbtools`` tool, one module each (see :mod:`cmbtools.cli`)."""

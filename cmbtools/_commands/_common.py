@@ -1,0 +1,38 @@
+"""Argument helpers shared by the subcommands."""
+
+from __future__ import annotations
+
+import argparse
+
+__all__ = ["add_overwrite", "add_threads", "positive_float", "positive_int"]
+
+
+def add_overwrite(parser):
+    parser.add_argument("--overwrite", action="store_true", help="replace output files that already exist")
+
+
+def add_threads(parser):
+    parser.add_argument(
+        "--threads", type=positive_int, default=0, metavar="N",
+        help="threads for the transforms (default: all cores)",
+    )
+
+
+def positive_float(text):
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not v > 0 or v == float("inf"):
+        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
+    return v
+
+
+def positive_int(text):
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"expected a non-negative whole number, got {text!r}")
+    return v

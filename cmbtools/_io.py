@@ -1,0 +1,163 @@
+"""File-system helpers shared by every reader and writer.
+
+* :func:`check_input_file` turns "no such file", "is a directory" and
+  "permission denied" into one :class:`~cmbtools.exceptions.InputFileError`.
+* :func:`atomic_output` is the only way cmbtools writes a file: it writes to a
+  temporary file in the destination directory and renames it into place, so a
+  process killed mid-write leaves either the old file or the new one, never a
+  partial one.  Existing files are only replaced when ``overwrite=True``.
+* :func:`sha256_file` and :func:`sha256_arrays` give the content hashes that
+  output headers and caches record.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from .exceptions import InputFileError, OutputExistsError, OutputPathError
+
+__all__ = [
+    "check_input_file",
+    "check_output_path",
+    "atomic_output",
+    "sha256_file",
+    "sha256_arrays",
+    "cache_dir",
+]
+
+
+def check_input_file(path) -> Path:
+    """Return ``path`` as a :class:`~pathlib.Path` after checking it is a readable file.
+
+    Raises
+    ------
+    InputFileError
+        If the path does not exist, is a directory or cannot be read.
+    """
+    p = Path(path)
+    if not p.exists():
+        raise InputFileError(p, "no such file")
+    if p.is_dir():
+        raise InputFileError(p, "is a directory, expected a file")
+    if not os.access(p, os.R_OK):
+        raise InputFileError(p, "permission denied (cannot read)")
+    return p
+
+
+def check_output_path(path, *, overwrite: bool = False) -> Path:
+    """Check that ``path`` can be written, before any work is done.
+
+    Raises
+    ------
+    OutputExistsError
+        If the file exists and ``overwrite`` is false.
+    OutputPathError
+        If the parent directory does not exist or is not writable, or the
+        path is a directory.
+    """
+    p = Path(path)
+    parent = p.parent if str(p.parent) else Path(".")
+    if p.is_dir():
+        raise OutputPathError(p, "is a directory, expected a file name")
+    if not parent.exists():
+        raise OutputPathError(p, f"directory {str(parent)!r} does not exist")
+    if not parent.is_dir():
+        raise OutputPathError(p, f"{str(parent)!r} is not a directory")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise OutputPathError(p, f"directory {str(parent)!r} is not writable")
+    if p.exists() and not overwrite:
+        raise OutputExistsError(p)
+    return p
+
+
+@contextlib.contextmanager
+def atomic_output(path, *, overwrite: bool = False, suffix: str | None = None):
+    """Context manager yielding a temporary path that is renamed to ``path`` on success.
+
+    The temporary file lives in the destination directory (so the final
+    :func:`os.replace` is atomic on POSIX file systems) and keeps the
+    destination's suffix (writers such as matplotlib and astropy choose the
+    format from it).  On any exception the temporary file is removed and the
+    destination is left untouched.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Final destination.
+    overwrite : bool, default=False
+        Allow replacing an existing file.
+    suffix : str, optional
+        Suffix of the temporary file; defaults to the destination's.
+
+    Examples
+    --------
+    >>> with atomic_output("table.csv", overwrite=True) as tmp:  # doctest: +SKIP
+    ...     tmp.write_text("a,b\\n1,2\\n")
+    """
+    final = check_output_path(path, overwrite=overwrite)
+    parent = final.parent if str(final.parent) else Path(".")
+    suffix = final.suffix if suffix is None else suffix
+    fd, tmp_name = tempfile.mkstemp(prefix=f".{final.name}.", suffix=f".tmp{suffix}", dir=parent)
+    os.close(fd)
+    tmp = Path(tmp_name)
+    try:
+        yield tmp
+        # Re-check just before the rename: another process may have created it.
+        if final.exists() and not overwrite:
+            raise OutputExistsError(final)
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, final)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            tmp.unlink()
+        raise
+
+
+def sha256_file(path, *, chunk_bytes: int = 1 << 20) -> str:
+    """Hex SHA-256 of a file's contents."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(chunk_bytes), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def sha256_arrays(*items) -> str:
+    """Hex SHA-256 of arrays and scalars, independent of memory layout.
+
+    Arrays are hashed by dtype, shape and little-endian contiguous bytes;
+    ``None``, strings and numbers by their ``repr``.
+    """
+    h = hashlib.sha256()
+    for item in items:
+        if isinstance(item, np.ndarray):
+            a = np.ascontiguousarray(item)
+            a = a.astype(a.dtype.newbyteorder("<"), copy=False)
+            h.update(f"ndarray:{a.dtype.str}:{a.shape}:".encode())
+            h.update(a.tobytes())
+        else:
+            h.update(f"{type(item).__name__}:{item!r};".encode())
+    return h.hexdigest()
+
+
+def cache_dir() -> Path:
+    """Directory of cmbtools' on-disk caches (created on first use).
+
+    ``$CMBTOOLS_CACHE_DIR`` if set, else ``$XDG_CACHE_HOME/cmbtools``, else
+    ``~/.cache/cmbtools``.
+    """
+    env = os.environ.get("CMBTOOLS_CACHE_DIR")
+    if env:
+        d = Path(env)
+    else:
+        base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+        d = Path(base) / "cmbtools"
+    d.mkdir(parents=True, exist_ok=True)
+    return d

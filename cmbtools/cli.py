@@ -1,0 +1,103 @@
+"""The ``cmbtools`` command-line tool.
+
+Each subcommand lives in its own module under :mod:`cmbtools._commands` and
+provides ``HELP`` (one line), ``add_arguments(parser)`` and ``run(args) -> int``.
+Command modules import the heavy scientific modules inside ``run`` so that
+``cmbtools --help`` is fast.  This module only parses arguments and reports
+errors; it contains no physics.
+
+Error policy: any :class:`~cmbtools.exceptions.CmbtoolsError` (bad input, an
+output that exists, an ill-conditioned matrix, ...) and any operating-system
+error on a file becomes one line on standard error and exit status 2.  With
+``--debug`` the traceback is shown instead.  An unexpected exception is an
+internal error: one line, exit status 1.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+import warnings
+
+from ._version import __version__
+
+__all__ = ["main", "build_parser"]
+
+#: Subcommands, in the order ``--help`` lists them: (name, module under cmbtools._commands).
+COMMANDS = (
+    # ("mask", "mask"),
+)
+
+
+class _Parser(argparse.ArgumentParser):
+    """ArgumentParser whose usage errors are one line and exit status 2."""
+
+    def error(self, message):
+        self.exit(2, f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(
+        prog="cmbtools",
+        description="Angular power spectra of CMB temperature maps on the HEALPix sphere.",
+    )
+    parser.add_argument("--version", action="version", version=f"cmbtools {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show the full traceback on errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for name, module_name in COMMANDS:
+        module = importlib.import_module(f"cmbtools._commands.{module_name}")
+        p = sub.add_parser(name, help=module.HELP, description=getattr(module, "DESCRIPTION", module.HELP))
+        p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show the full traceback on errors")
+        module.add_arguments(p)
+        p.set_defaults(_run=module.run)
+    return parser
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    from .exceptions import CmbtoolsWarning
+
+    kind = "warning" if issubclass(category, CmbtoolsWarning) else category.__name__
+    print(f"cmbtools: {kind}: {message}", file=sys.stderr if file is None else file)
+
+
+def main(argv=None) -> int:
+    """Run the command line; return the exit status."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "command", None):
+        parser.print_help()
+        return 2
+    from .exceptions import CmbtoolsError
+
+    prog = f"cmbtools {args.command}"
+    debug = getattr(args, "debug", False)
+    old_show = warnings.showwarning
+    warnings.showwarning = _show_warning
+    try:
+        return int(args._run(args) or 0)
+    except CmbtoolsError as exc:
+        if debug:
+            raise
+        print(f"{prog}: error: {exc}", file=sys.stderr)
+        return 2
+    except OSError as exc:
+        if debug:
+            raise
+        where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
+        print(f"{prog}: error: {where}{exc.strerror or exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print(f"{prog}: interrupted", file=sys.stderr)
+        return 130
+    except Exception as exc:  # an internal error: say so in one line
+        if debug:
+            raise
+        print(f"{prog}: internal error: {type(exc).__name__}: {exc} (run with --debug for the traceback)", file=sys.stderr)
+        return 1
+    finally:
+        warnings.showwarning = old_show
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
