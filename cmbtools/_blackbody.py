@@ -633,7 +633,7 @@ def read_bandpass(path) -> Bandpass:
     """
     p = check_input_file(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        text = p.read_text(encoding="utf-8-sig")  # -sig: skip a byte-order mark
     except UnicodeDecodeError:
         raise InputFileError(p, "not a text file (cannot decode as UTF-8)") from None
     rows = []

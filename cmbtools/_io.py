@@ -58,8 +58,9 @@ def check_output_path(path, *, overwrite: bool = False) -> Path:
     OutputExistsError
         If the file exists and ``overwrite`` is false.
     OutputPathError
-        If the parent directory does not exist or is not writable, or the
-        path is a directory.
+        If the parent directory does not exist or is not writable (checked
+        by creating and removing a hidden probe file), or the path is a
+        directory.
     """
     p = Path(path)
     parent = p.parent if str(p.parent) else Path(".")
@@ -73,6 +74,15 @@ def check_output_path(path, *, overwrite: bool = False) -> Path:
         raise OutputPathError(p, f"directory {str(parent)!r} is not writable")
     if p.exists() and not overwrite:
         raise OutputExistsError(p)
+    # os.access answers for the permission bits only (and always "yes" for root); creating a
+    # file is the one test that also covers read-only file systems, ACLs and pseudo-file systems
+    try:
+        fd, probe = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".probe", dir=parent)
+    except OSError as exc:
+        raise OutputPathError(p, f"directory {str(parent)!r} is not writable ({exc.strerror or exc})") from None
+    os.close(fd)
+    with contextlib.suppress(OSError):
+        os.unlink(probe)
     return p
 
 

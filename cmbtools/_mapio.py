@@ -20,6 +20,7 @@ error unless the caller states the unit.  FITS access goes through
 
 from __future__ import annotations
 
+import contextlib
 import re
 import warnings
 from dataclasses import dataclass
@@ -162,29 +163,51 @@ class MapInfo:
         return 12 * self.nside**2
 
 
+@contextlib.contextmanager
 def _open_fits(path):
-    """Open a FITS file fully into memory; any failure becomes InputFileError."""
+    """Context manager yielding ``(path, hdul)`` with every HDU read into memory.
+
+    Any failure becomes :class:`InputFileError`.  cmbtools opens the file itself
+    and always closes it: astropy leaves its own handle open when it gives up
+    on a damaged header.
+    """
     from astropy.io import fits
 
     p = check_input_file(path)
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
+    with open(p, "rb") as fh:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            # astropy reports damaged files with many exception types (OSError, ValueError,
+            # VerifyError for unparsable cards, KeyError for missing ones, MemoryError for absurd sizes, ...)
+            try:
+                hdul = fits.open(fh, memmap=False, lazy_load_hdus=False)
+            except Exception as exc:
+                raise InputFileError(p, f"cannot be read as FITS ({_short(exc)})") from None
+            try:
+                try:
+                    for hdu in hdul:
+                        _ = hdu.data  # force reading now so a short file fails here
+                except Exception as exc:
+                    raise InputFileError(
+                        p, f"FITS data cannot be read, the file may be truncated or damaged ({_short(exc)})"
+                    ) from None
+                for w in caught:
+                    text = str(w.message)
+                    if "truncat" in text.lower() or "smaller than the expected" in text.lower():
+                        raise InputFileError(p, f"the FITS file is truncated ({_short(text)})")
+            except BaseException:
+                hdul.close()
+                raise
         try:
-            hdul = fits.open(p, memmap=False, lazy_load_hdus=False)
-        except (OSError, ValueError, TypeError, IndexError, KeyError) as exc:
-            raise InputFileError(p, f"cannot be read as FITS ({exc})") from None
-        try:
-            for hdu in hdul:
-                _ = hdu.data  # force reading now so a short file fails here
-        except (OSError, ValueError, TypeError, IndexError) as exc:
+            yield p, hdul
+        finally:
             hdul.close()
-            raise InputFileError(p, f"FITS data cannot be read, the file may be truncated ({exc})") from None
-    for w in caught:
-        text = str(w.message)
-        if "truncat" in text.lower() or "smaller than the expected" in text.lower():
-            hdul.close()
-            raise InputFileError(p, f"the FITS file is truncated ({text})")
-    return p, hdul
+
+
+def _short(exc, limit=200):
+    """An exception's message on one line, at most ``limit`` characters."""
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
 def _first_table(p, hdul):
@@ -213,102 +236,131 @@ def _column_values(p, column):
     return data.reshape(-1)
 
 
-def _read_table(path, field, ordering):
+def _read_table(path, field, ordering, *, force=False):
     """Shared reader: (values RING float64 with UNSEEN, dict of file facts)."""
+    from astropy.io.fits.verify import VerifyError
+
+    from .exceptions import CmbtoolsError
+
+    with _open_fits(path) as (p, hdul):
+        try:
+            with warnings.catch_warnings():
+                # astropy's notes on non-standard cards are about the file, not for the user of cmbtools
+                warnings.filterwarnings("ignore", module=r"astropy\.io\.fits.*")
+                return _parse_table(p, hdul, field, ordering, force)
+        except CmbtoolsError:
+            raise
+        except (VerifyError, ValueError, TypeError, KeyError, IndexError) as exc:
+            # a header card or column definition that astropy cannot parse
+            raise InputFileError(p, f"has a damaged FITS header or table ({_short(exc)})") from None
+
+
+def _parse_table(p, hdul, field, ordering, force):
+    """The body of :func:`_read_table`, run while the file is open."""
     import healpy as hp
 
-    p, hdul = _open_fits(path)
-    with hdul:
-        table = _first_table(p, hdul)
-        header = table.header
-        names = list(table.columns.names)
-        upper = [n.upper() for n in names]
-        indxschm = (_header_str(header, "INDXSCHM") or "").upper()
-        obj = (_header_str(header, "OBJECT") or "").upper()
-        has_pixel_column = "PIXEL" in upper
-        is_partial = indxschm == "EXPLICIT" or (obj == "PARTIAL" and has_pixel_column)
-        if is_partial and not has_pixel_column:
-            raise InputFileError(p, "is marked as an explicit-index (partial-sky) file but has no PIXEL column")
-        value_columns = [i for i, n in enumerate(upper) if not (is_partial and n == "PIXEL")]
-        if isinstance(field, bool) or not isinstance(field, (int, np.integer)):
-            raise InvalidInputError(f"The 'field' parameter must be an integer column index. Got {field!r} instead.")
-        if not 0 <= int(field) < len(value_columns):
-            raise InputFileError(
-                p, f"has no field {field}: it holds {len(value_columns)} map column(s) "
-                f"({', '.join(names[i] for i in value_columns)}), numbered from 0"
-            )
-        col_index = value_columns[int(field)]
-        col = table.columns[col_index]
-        values = _column_values(p, table.data.field(col_index))
-        dtype_in_file = values.dtype.name
-        unit = (col.unit or "").strip() or _header_str(header, f"TUNIT{col_index + 1}", "BUNIT", "UNIT", "UNITS")
-        temptype = _header_str(header, "TEMPTYPE")
+    table = _first_table(p, hdul)
+    header = table.header
+    names = list(table.columns.names)
+    upper = [n.upper() for n in names]
+    indxschm = (_header_str(header, "INDXSCHM") or "").upper()
+    obj = (_header_str(header, "OBJECT") or "").upper()
+    has_pixel_column = "PIXEL" in upper
+    is_partial = indxschm == "EXPLICIT" or (obj == "PARTIAL" and has_pixel_column)
+    if is_partial and not has_pixel_column:
+        raise InputFileError(p, "is marked as an explicit-index (partial-sky) file but has no PIXEL column")
+    value_columns = [i for i, n in enumerate(upper) if not (is_partial and n == "PIXEL")]
+    if isinstance(field, bool) or not isinstance(field, (int, np.integer)):
+        raise InvalidInputError(f"The 'field' parameter must be an integer column index. Got {field!r} instead.")
+    if not 0 <= int(field) < len(value_columns):
+        raise InputFileError(
+            p, f"has no field {field}: it holds {len(value_columns)} map column(s) "
+            f"({', '.join(names[i] for i in value_columns)}), numbered from 0"
+        )
+    col_index = value_columns[int(field)]
+    col = table.columns[col_index]
+    values = _column_values(p, table.data.field(col_index))
+    dtype_in_file = values.dtype.name
+    unit = (col.unit or "").strip() or _header_str(header, f"TUNIT{col_index + 1}", "BUNIT", "UNIT", "UNITS")
+    temptype = _header_str(header, "TEMPTYPE")
 
-        # ordering
+    # ordering
+    if ordering is not None:
+        ordering_in_file = str(ordering).strip().upper()
+    else:
+        ordering_in_file = (_header_str(header, "ORDERING") or "").upper()
+    if ordering_in_file in ("NEST", "NESTED"):
+        ordering_in_file = "NESTED"
+    elif ordering_in_file != "RING":
         if ordering is not None:
-            ordering_in_file = str(ordering).strip().upper()
-        else:
-            ordering_in_file = (_header_str(header, "ORDERING") or "").upper()
-        if ordering_in_file in ("NEST", "NESTED"):
-            ordering_in_file = "NESTED"
-        elif ordering_in_file != "RING":
-            if ordering is not None:
-                raise InvalidInputError(f"The 'ordering' parameter must be 'RING' or 'NESTED'. Got {ordering!r} instead.")
-            if not ordering_in_file:
-                raise InputFileError(p, "has no ORDERING keyword; pass ordering='RING' or 'NESTED' to say which it is")
-            raise InputFileError(p, f"has ORDERING={ordering_in_file!r}, expected 'RING' or 'NESTED'")
+            raise InvalidInputError(f"The 'ordering' parameter must be 'RING' or 'NESTED'. Got {ordering!r} instead.")
+        if not ordering_in_file:
+            raise InputFileError(p, "has no ORDERING keyword; pass ordering='RING' or 'NESTED' to say which it is")
+        raise InputFileError(p, f"has ORDERING={ordering_in_file!r}, expected 'RING' or 'NESTED'")
 
-        # nside
-        nside_key = header.get("NSIDE")
-        if nside_key is not None:
-            try:
-                nside_hdr = int(nside_key)
-            except (TypeError, ValueError):
-                raise InputFileError(p, f"has a non-integer NSIDE keyword {nside_key!r}") from None
-            if nside_hdr < 1 or nside_hdr & (nside_hdr - 1) or nside_hdr > 2**29:
-                raise InputFileError(p, f"has NSIDE={nside_hdr}, which is not a power of two")
-        else:
-            nside_hdr = None
-
-        if is_partial:
-            if nside_hdr is None:
-                raise InputFileError(p, "is a partial-sky file without an NSIDE keyword")
-            nside = nside_hdr
-            npix = 12 * nside * nside
-            pix = _column_values(p, table.data.field(upper.index("PIXEL")))
-            if pix.dtype.kind not in "iu" and not np.all(pix == np.round(pix)):
-                raise InputFileError(p, "has non-integer pixel numbers in its PIXEL column")
-            pix = pix.astype(np.int64)
-            if pix.size != values.size:
-                raise InputFileError(p, f"has {pix.size} pixel numbers but {values.size} values")
-            if pix.size and (pix.min() < 0 or pix.max() >= npix):
-                raise InputFileError(p, f"has pixel numbers outside [0, {npix - 1}] for NSIDE={nside}")
-            if pix.size > 1 and np.any(np.diff(np.sort(pix)) == 0):
-                raise InputFileError(p, "lists some pixel numbers more than once in its PIXEL column")
-            if ordering_in_file == "NESTED":
-                pix = hp.nest2ring(nside, pix)
-            out = np.full(npix, UNSEEN, dtype=np.float64)
-            out[pix] = values.astype(np.float64)
-        else:
-            npix = values.size
-            nside = int(round(np.sqrt(npix / 12.0)))
-            if nside < 1 or 12 * nside * nside != npix:
-                raise InputFileError(
-                    p, f"column {names[col_index]!r} holds {npix} values, which is not 12*nside**2 "
-                    f"and the file is not an explicit-index partial-sky file"
-                )
-            if nside & (nside - 1):
-                raise InputFileError(p, f"holds {npix} values, i.e. nside {nside}, which is not a power of two")
-            if nside_hdr is not None and nside_hdr != nside:
-                raise InputFileError(p, f"has NSIDE={nside_hdr} but {npix} pixels (nside {nside})")
-            out = values.astype(np.float64)
-            if ordering_in_file == "NESTED":
-                out = hp.reorder(out, n2r=True)
-        coord_raw = _header_str(header, "COORDSYS")
+    # nside
+    nside_key = header.get("NSIDE")
+    if nside_key is not None:
         try:
-            coord = normalize_coord(coord_raw) if coord_raw else None
-        except InvalidInputError:
-            coord = None
+            if isinstance(nside_key, bool):
+                raise ValueError(nside_key)
+            if isinstance(nside_key, (int, np.integer)):
+                nside_hdr = int(nside_key)
+            else:  # a real number (or text) that must be a whole number, e.g. 64.0 but not 64.5
+                as_float = float(nside_key)
+                if not as_float.is_integer():
+                    raise ValueError(nside_key)
+                nside_hdr = int(as_float)
+        except (TypeError, ValueError, OverflowError):
+            raise InputFileError(p, f"has a non-integer NSIDE keyword {nside_key!r}") from None
+        if nside_hdr < 1 or nside_hdr & (nside_hdr - 1) or nside_hdr > 2**29:
+            raise InputFileError(p, f"has NSIDE={nside_hdr}, which is not a power of two")
+    else:
+        nside_hdr = None
+
+    if is_partial:
+        if nside_hdr is None:
+            raise InputFileError(p, "is a partial-sky file without an NSIDE keyword")
+        nside = nside_hdr
+        npix = 12 * nside * nside
+        pix = _column_values(p, table.data.field(upper.index("PIXEL")))
+        if pix.dtype.kind not in "iu" and not np.all(pix == np.round(pix)):
+            raise InputFileError(p, "has non-integer pixel numbers in its PIXEL column")
+        pix = pix.astype(np.int64)
+        if pix.size != values.size:
+            raise InputFileError(p, f"has {pix.size} pixel numbers but {values.size} values")
+        if pix.size and (pix.min() < 0 or pix.max() >= npix):
+            raise InputFileError(p, f"has pixel numbers outside [0, {npix - 1}] for NSIDE={nside}")
+        if pix.size > 1 and np.any(np.diff(np.sort(pix)) == 0):
+            raise InputFileError(p, "lists some pixel numbers more than once in its PIXEL column")
+        # the file lists a few pixels, but the map it describes may be huge
+        from ._resources import check_memory, estimate_map_bytes
+
+        check_memory(estimate_map_bytes(nside, 2), f"The partial-sky file {str(p)!r} at nside {nside}", force=force)
+        if ordering_in_file == "NESTED":
+            pix = hp.nest2ring(nside, pix)
+        out = np.full(npix, UNSEEN, dtype=np.float64)
+        out[pix] = values.astype(np.float64)
+    else:
+        npix = values.size
+        nside = int(round(np.sqrt(npix / 12.0)))
+        if nside < 1 or 12 * nside * nside != npix:
+            raise InputFileError(
+                p, f"column {names[col_index]!r} holds {npix} values, which is not 12*nside**2 "
+                f"and the file is not an explicit-index partial-sky file"
+            )
+        if nside & (nside - 1):
+            raise InputFileError(p, f"holds {npix} values, i.e. nside {nside}, which is not a power of two")
+        if nside_hdr is not None and nside_hdr != nside:
+            raise InputFileError(p, f"has NSIDE={nside_hdr} but {npix} pixels (nside {nside})")
+        out = values.astype(np.float64)
+        if ordering_in_file == "NESTED":
+            out = hp.reorder(out, n2r=True)
+    coord_raw = _header_str(header, "COORDSYS")
+    try:
+        coord = normalize_coord(coord_raw) if coord_raw else None
+    except InvalidInputError:
+        coord = None
     out[missing_pixels(out)] = UNSEEN
     facts = dict(
         path=str(p), nside=nside, ordering_in_file=ordering_in_file, unit_in_file=unit, coord=coord,
@@ -317,7 +369,7 @@ def _read_table(path, field, ordering):
     return out, facts
 
 
-def read_map(path, *, field=0, unit=None, ordering=None):
+def read_map(path, *, field=0, unit=None, ordering=None, force=False):
     """Read a HEALPix map from a FITS file, in K_CMB and RING ordering.
 
     Parameters
@@ -333,6 +385,9 @@ def read_map(path, *, field=0, unit=None, ordering=None):
         thermodynamic CMB temperature.
     ordering : {'RING', 'NESTED'}, optional
         Override for files without (or with a wrong) ``ORDERING`` keyword.
+    force : bool, default=False
+        Read a partial-sky file even if the full-sky map it describes is
+        larger than the memory the machine has available.
 
     Returns
     -------
@@ -350,13 +405,16 @@ def read_map(path, *, field=0, unit=None, ordering=None):
         If the file is missing, not FITS, truncated, has no HEALPix table, an
         impossible pixel count or nside, no such field, or a unit that is not a
         thermodynamic CMB temperature (and ``unit`` is not given).
+    MemoryLimitError
+        If a partial-sky file describes a map too large for the memory
+        available (unless ``force``).
 
     Warns
     -----
     CmbtoolsWarning
         If the file states no unit and ``unit`` is not given (K_CMB is assumed).
     """
-    m, facts = _read_table(path, field, ordering)
+    m, facts = _read_table(path, field, ordering, force=force)
     temptype = facts.pop("temptype")
     if unit is not None:
         scale = unit_scale(unit, source="'unit' parameter")
@@ -387,7 +445,7 @@ def read_map(path, *, field=0, unit=None, ordering=None):
     return m, info
 
 
-def read_mask(path, *, field=0, ordering=None):
+def read_mask(path, *, field=0, ordering=None, force=False):
     """Read a mask (binary or weighted, values in [0, 1]) from a HEALPix FITS file.
 
     Pixels missing from the file (UNSEEN, NaN or inf values, or pixels a
@@ -401,6 +459,8 @@ def read_mask(path, *, field=0, ordering=None):
         Which map column to read.
     ordering : {'RING', 'NESTED'}, optional
         Override for files without an ``ORDERING`` keyword.
+    force : bool, default=False
+        As for :func:`read_map`.
 
     Returns
     -------
@@ -412,8 +472,10 @@ def read_mask(path, *, field=0, ordering=None):
     InputFileError
         For unreadable files (see :func:`read_map`) and for values outside
         [0, 1] or a mask that is zero everywhere.
+    MemoryLimitError
+        As for :func:`read_map`.
     """
-    w, facts = _read_table(path, field, ordering)
+    w, facts = _read_table(path, field, ordering, force=force)
     w[missing_pixels(w)] = 0.0
     try:
         return check_mask(w, "mask")

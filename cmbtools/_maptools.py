@@ -28,6 +28,7 @@ from ._validation import (
     check_positive,
     missing_pixels,
     resolve_nthreads,
+    warn_lmax_above_band_limit,
 )
 from .exceptions import InvalidInputError
 
@@ -72,7 +73,7 @@ def _regrade(values, nside_out, *, min_valid_fraction=None):
     return out
 
 
-def change_resolution(m, nside_out, *, min_valid_fraction=0.5):
+def change_resolution(m, nside_out, *, min_valid_fraction=0.5, force=False):
     """Change a map's nside, handling missing pixels.
 
     Going down, each coarse pixel is the plain mean of its valid sub-pixels;
@@ -89,17 +90,45 @@ def change_resolution(m, nside_out, *, min_valid_fraction=0.5):
         New resolution.
     min_valid_fraction : float, default=0.5
         Fraction in (0, 1] of valid sub-pixels a coarse pixel needs.
+    force : bool, default=False
+        Go ahead even if the memory estimate exceeds what the machine has
+        available (see :func:`cmbtools._resources.check_memory`).
 
     Returns
     -------
     ndarray of shape (12*nside_out**2,)
+
+    Raises
+    ------
+    InvalidInputError
+        If the map has no valid pixel, or for a bad ``nside_out`` or fraction.
+    MemoryLimitError
+        If the new map would not fit in memory (unless ``force``).
     """
     a = as_map(m, "map")
     nside_out = check_nside(nside_out, "nside_out")
     f = check_positive(min_valid_fraction, "min_valid_fraction")
     if f > 1:
         raise InvalidInputError(f"The 'min_valid_fraction' parameter must be in (0, 1]. Got {min_valid_fraction!r} instead.")
+    _check_regrade_memory(_nside_of(a), nside_out, "Changing the resolution of a map", force=force)
+    if missing_pixels(a).all():
+        raise InvalidInputError(f"The 'map' has no valid pixel: all {a.size} pixels are missing (UNSEEN, NaN or inf).")
     return _regrade(a, nside_out, min_valid_fraction=f)
+
+
+def _check_regrade_memory(nside_in, nside_out, what, *, force=False):
+    """Memory check of :func:`_regrade`: index and value arrays at both resolutions."""
+    from ._resources import check_memory, estimate_map_bytes
+
+    need = estimate_map_bytes(nside_in, 3) + estimate_map_bytes(nside_out, 4)
+    check_memory(need, f"{what} from nside {nside_in} to {nside_out}", force=force)
+
+
+def _check_transform_memory(nside, lmax, what, force, extra_alms=0):
+    from ._resources import check_memory, estimate_alm_bytes, estimate_transform_bytes
+
+    need = estimate_transform_bytes(nside, lmax) + estimate_alm_bytes(lmax, extra_alms)
+    check_memory(need, f"{what} at nside {nside} with lmax {lmax}", force=force)
 
 
 def _coord_pair(coord_in, coord_out):
@@ -108,7 +137,7 @@ def _coord_pair(coord_in, coord_out):
     return normalize_coord(coord_in, "coord_in"), normalize_coord(coord_out, "coord_out")
 
 
-def rotate_map(m, coord_in, coord_out, *, lmax=None, n_iter=3, nthreads=None):
+def rotate_map(m, coord_in, coord_out, *, lmax=None, n_iter=3, nthreads=None, force=False):
     """Rotate a complete map from one coordinate system to another, in harmonic space.
 
     Parameters
@@ -124,6 +153,9 @@ def rotate_map(m, coord_in, coord_out, *, lmax=None, n_iter=3, nthreads=None):
         Refinement steps of the analysis (see :func:`cmbtools._sht.map2alm`).
     nthreads : int, optional
         Threads for the transforms.
+    force : bool, default=False
+        Go ahead even if the memory estimate exceeds what the machine has
+        available.
 
     Returns
     -------
@@ -134,6 +166,13 @@ def rotate_map(m, coord_in, coord_out, *, lmax=None, n_iter=3, nthreads=None):
     InvalidInputError
         If the map has missing pixels (rotate masks with :func:`rotate_mask`;
         fill holes before rotating a map).
+    MemoryLimitError
+        If the transforms would not fit in memory (unless ``force``).
+
+    Warns
+    -----
+    CmbtoolsWarning
+        If ``lmax > 3*nside - 1``.
     """
     import healpy as hp
 
@@ -151,6 +190,8 @@ def rotate_map(m, coord_in, coord_out, *, lmax=None, n_iter=3, nthreads=None):
         return a.copy()
     nside = _nside_of(a)
     lmax = 3 * nside - 1 if lmax is None else check_lmax(lmax, nside)
+    warn_lmax_above_band_limit(lmax, nside)
+    _check_transform_memory(nside, lmax, "Rotating a map", force, extra_alms=1)
     nthreads = resolve_nthreads(nthreads)
     alm = _sht.map2alm(a, lmax, n_iter=n_iter, nthreads=nthreads).astype(np.complex128)
     alm = hp.Rotator(coord=[cin, cout]).rotate_alm(alm, lmax=lmax)
@@ -209,7 +250,8 @@ def gaussian_beam_window(fwhm_arcmin, lmax):
 _FILL_CHOICES = (None, "zero", "mean")
 
 
-def smooth_map(m, *, fwhm_arcmin=None, beam=None, lmax=None, fill_missing=None, n_iter=3, nthreads=None):
+def smooth_map(m, *, fwhm_arcmin=None, beam=None, lmax=None, fill_missing=None, n_iter=3, nthreads=None,
+               force=False):
     """Smooth a map with a Gaussian beam or a tabulated beam ``B_l``.
 
     Parameters
@@ -233,17 +275,34 @@ def smooth_map(m, *, fwhm_arcmin=None, beam=None, lmax=None, fill_missing=None, 
         Refinement steps of the analysis.
     nthreads : int, optional
         Threads for the transforms.
+    force : bool, default=False
+        Go ahead even if the memory estimate exceeds what the machine has
+        available.
 
     Returns
     -------
     ndarray of shape (12*nside**2,)
         The smoothed map; missing pixels (if filled) are UNSEEN again.
+
+    Raises
+    ------
+    InvalidInputError
+        For missing pixels without ``fill_missing``, a map with no valid pixel,
+        or a bad beam.
+    MemoryLimitError
+        If the transforms would not fit in memory (unless ``force``).
+
+    Warns
+    -----
+    CmbtoolsWarning
+        If ``lmax > 3*nside - 1``.
     """
     from . import _sht
 
     a = as_map(m, "map")
     nside = _nside_of(a)
     lmax = 3 * nside - 1 if lmax is None else check_lmax(lmax, nside)
+    warn_lmax_above_band_limit(lmax, nside)
     if (fwhm_arcmin is None) == (beam is None):
         raise InvalidInputError("Give exactly one of 'fwhm_arcmin' (Gaussian beam) and 'beam' (tabulated B_l).")
     if beam is None:
@@ -263,6 +322,7 @@ def smooth_map(m, *, fwhm_arcmin=None, beam=None, lmax=None, fill_missing=None, 
             raise InvalidInputError("The 'map' has no valid pixel to smooth.")
         a = a.copy()
         a[bad] = 0.0 if fill_missing == "zero" else float(np.mean(a[~bad]))
+    _check_transform_memory(nside, lmax, "Smoothing a map", force)
     nthreads = resolve_nthreads(nthreads)
     alm = _sht.map2alm(a, lmax, n_iter=n_iter, nthreads=nthreads)
     out = _sht.alm2map(_sht.almxfl(alm, bl, lmax), nside, lmax, nthreads=nthreads)

@@ -23,7 +23,7 @@ import numpy as np
 from ._dipole import _CHUNK, _pixel_vectors
 from ._io import check_input_file
 from ._mapio import normalize_coord
-from ._maptools import _regrade
+from ._maptools import _check_regrade_memory, _regrade
 from ._validation import (
     as_map,
     check_mask,
@@ -156,7 +156,21 @@ def _centre_vectors(lon_deg, lat_deg, coord, map_coord):
 
 # ---------------------------------------------------------------- geometric masks
 
-def latitude_cut_mask(nside, cut_deg, *, coord="G", map_coord="G"):
+def _check_mask_memory(nside, n_maps, what, force, *, chunked=False):
+    """Refuse to build a mask of ``nside`` that would not fit in memory (MemoryLimitError).
+
+    ``chunked`` adds the work buffers of a loop over pixel chunks (pixel numbers, unit vectors
+    and their rotated copies: about 64 bytes per pixel of a chunk).
+    """
+    from ._resources import check_memory, estimate_map_bytes
+
+    need = estimate_map_bytes(nside, n_maps)
+    if chunked:
+        need += 64 * min(12 * nside * nside, _CHUNK)
+    check_memory(need, f"{what} at nside {nside}", force=force)
+
+
+def latitude_cut_mask(nside, cut_deg, *, coord="G", map_coord="G", force=False):
     """Binary mask that removes the band ``|latitude| < cut_deg``.
 
     Parameters
@@ -169,16 +183,25 @@ def latitude_cut_mask(nside, cut_deg, *, coord="G", map_coord="G"):
         System in which the latitude is measured (galactic latitude by default).
     map_coord : {'G', 'C', 'E'}, default='G'
         Coordinate system of the map the mask is for.
+    force : bool, default=False
+        Go ahead even if the memory estimate exceeds what the machine has
+        available (see :func:`cmbtools._resources.check_memory`).
 
     Returns
     -------
     ndarray of shape (12*nside**2,)
         1 where ``|lat| >= cut_deg`` (pixel centres), 0 elsewhere.
+
+    Raises
+    ------
+    MemoryLimitError
+        If the mask would not fit in memory (unless ``force``).
     """
     nside = check_nside(nside)
     cut = check_positive(cut_deg, "cut_deg", allow_zero=True)
     if cut >= 90:
         raise InvalidInputError(f"The 'cut_deg' parameter must be in [0, 90) degrees. Got {cut_deg!r} instead.")
+    _check_mask_memory(nside, 1, "A latitude-cut mask", force, chunked=True)
     # vectors go from the map's system to the one the latitude is measured in
     rot = _rotator(normalize_coord(map_coord, "map_coord"), normalize_coord(coord, "coord"))
     npix = 12 * nside * nside
@@ -194,7 +217,7 @@ def latitude_cut_mask(nside, cut_deg, *, coord="G", map_coord="G"):
     return out
 
 
-def cap_mask(nside, lon_deg, lat_deg, radius_deg, *, coord="G", map_coord="G"):
+def cap_mask(nside, lon_deg, lat_deg, radius_deg, *, coord="G", map_coord="G", force=False):
     """Binary mask that keeps one circular patch (a spherical cap).
 
     Parameters
@@ -207,11 +230,19 @@ def cap_mask(nside, lon_deg, lat_deg, radius_deg, *, coord="G", map_coord="G"):
         Angular radius of the patch, in (0, 180] degrees.
     coord, map_coord : {'G', 'C', 'E'}, default='G'
         System of the centre, and system of the map.
+    force : bool, default=False
+        Go ahead even if the memory estimate exceeds what the machine has
+        available.
 
     Returns
     -------
     ndarray of shape (12*nside**2,)
         1 for pixels whose centre lies within ``radius_deg`` of the centre, 0 elsewhere.
+
+    Raises
+    ------
+    MemoryLimitError
+        If the mask would not fit in memory (unless ``force``).
     """
     import healpy as hp
 
@@ -219,6 +250,7 @@ def cap_mask(nside, lon_deg, lat_deg, radius_deg, *, coord="G", map_coord="G"):
     lon, lat = _check_lonlat(lon_deg, lat_deg, "cap centre")
     r = _check_radius(radius_deg)
     vec = _centre_vectors(lon, lat, normalize_coord(coord, "coord"), normalize_coord(map_coord, "map_coord"))[0]
+    _check_mask_memory(nside, 2, "A cap mask", force)  # the mask and the pixel list of the disc
     out = np.zeros(12 * nside * nside)
     out[hp.query_disc(nside, vec, math.radians(r))] = 1.0
     if not out.any():
@@ -249,7 +281,7 @@ def read_positions_csv(path):
     """
     p = check_input_file(path)
     try:
-        with open(p, newline="", encoding="utf-8") as fh:
+        with open(p, newline="", encoding="utf-8-sig") as fh:  # -sig: skip a byte-order mark
             lines = [ln for ln in fh if ln.strip() and not ln.lstrip().startswith("#")]
     except UnicodeDecodeError:
         raise InputFileError(p, "is not a UTF-8 text (CSV) file") from None
@@ -291,7 +323,7 @@ def read_positions_csv(path):
     return np.array(rows, dtype=np.float64)
 
 
-def disc_mask(nside, positions, radius_deg=None, *, coord="G", map_coord="G"):
+def disc_mask(nside, positions, radius_deg=None, *, coord="G", map_coord="G", force=False):
     """Binary mask that removes discs around a list of positions (e.g. point sources).
 
     Parameters
@@ -307,11 +339,19 @@ def disc_mask(nside, positions, radius_deg=None, *, coord="G", map_coord="G"):
         System of the positions.
     map_coord : {'G', 'C', 'E'}, default='G'
         System of the map.
+    force : bool, default=False
+        Go ahead even if the memory estimate exceeds what the machine has
+        available.
 
     Returns
     -------
     ndarray of shape (12*nside**2,)
         0 for pixels whose centre lies within a disc, 1 elsewhere.
+
+    Raises
+    ------
+    MemoryLimitError
+        If the mask would not fit in memory (unless ``force``).
     """
     import healpy as hp
 
@@ -342,6 +382,7 @@ def disc_mask(nside, positions, radius_deg=None, *, coord="G", map_coord="G"):
     for k, (lon, lat) in enumerate(table[:, :2]):
         _check_lonlat(lon, lat, f"position {k}")
     vecs = _centre_vectors(table[:, 0], table[:, 1], normalize_coord(coord, "coord"), normalize_coord(map_coord, "map_coord"))
+    _check_mask_memory(nside, 2, "A mask with holes", force)  # the mask and the pixel list of one disc
     out = np.ones(12 * nside * nside)
     for vec, r in zip(vecs, radii):
         out[hp.query_disc(nside, vec, math.radians(r))] = 0.0
@@ -403,7 +444,7 @@ def combine_masks(*masks):
     return out
 
 
-def change_mask_resolution(mask, nside_out, *, threshold=None):
+def change_mask_resolution(mask, nside_out, *, threshold=None, force=False):
     """Change a mask's nside: average the sub-pixels going down, repeat going up.
 
     Parameters
@@ -415,13 +456,22 @@ def change_mask_resolution(mask, nside_out, *, threshold=None):
     threshold : float, optional
         If given, re-binarise: 1 where the new value is ``>= threshold``, 0
         elsewhere (``threshold=1`` keeps only fully unmasked coarse pixels).
+    force : bool, default=False
+        Go ahead even if the memory estimate exceeds what the machine has
+        available.
 
     Returns
     -------
     ndarray of shape (12*nside_out**2,)
+
+    Raises
+    ------
+    MemoryLimitError
+        If the new mask would not fit in memory (unless ``force``).
     """
     w = check_mask(mask, "mask")
     nside_out = check_nside(nside_out, "nside_out")
+    _check_regrade_memory(int(round(math.sqrt(w.size / 12))), nside_out, "Changing the resolution of a mask", force=force)
     out = _regrade(w, nside_out)
     if threshold is not None:
         t = check_positive(threshold, "threshold")

@@ -368,6 +368,13 @@ def _solve_reionization_redshift(bg, tau_target, width, z_grid, xe_rec):
         raise InvalidInputError(
             f"The 'reionization_optical_depth' {tau_target:g} would need reionization before z = 150."
         )
+    if tau_extra(0.0) > 0:
+        raise InvalidInputError(
+            f"The free electrons left over from recombination already give an optical depth above "
+            f"{tau_target:g} below z = 200, so no reionization redshift matches the "
+            f"'reionization_optical_depth' {tau_target:g}; the baryon density or expansion rate of this "
+            f"cosmology is far outside the range this model covers."
+        )
     return optimize.brentq(tau_extra, 0.0, 150.0, xtol=1e-6)
 
 
@@ -524,7 +531,17 @@ class IonizationHistory:
     def visibility_peak(self) -> float:
         """Redshift z* of the maximum of the visibility function (in conformal time)."""
         g = self._g_eta
-        i = int(np.argmax(g[self.redshift > 100.0])) + int(np.sum(self.redshift <= 100.0))
+        above = self.redshift > 100.0
+        j = int(np.argmax(g[above]))
+        if j == 0 or j == int(above.sum()) - 1:
+            edge = float(self.redshift[above][j])
+            raise InvalidInputError(
+                f"The visibility function of this cosmology has no maximum between z = 100 and "
+                f"z = {float(self.redshift[-1]):g} (it is largest at the edge, z = {edge:g}): there is no "
+                f"last-scattering surface; its baryon density or expansion rate is far outside the range "
+                f"this model covers."
+            )
+        i = j + int(np.sum(~above))
         return _parabola_peak(self.redshift[i - 1 : i + 2], g[i - 1 : i + 2])
 
     def redshift_at_optical_depth(self, value=1.0) -> float:

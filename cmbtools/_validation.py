@@ -19,6 +19,7 @@ __all__ = [
     "check_nside",
     "nside_from_npix",
     "check_lmax",
+    "warn_lmax_above_band_limit",
     "check_int",
     "check_positive",
     "as_map",
@@ -86,6 +87,28 @@ def check_lmax(lmax, nside=None, name="lmax", *, limit_factor=4) -> int:
     """Check ``lmax`` is a non-negative int; with ``nside``, at most ``limit_factor*nside - 1``."""
     maximum = None if nside is None else limit_factor * nside - 1
     return check_int(lmax, name, minimum=0, maximum=maximum)
+
+
+def warn_lmax_above_band_limit(lmax, nside, *, stacklevel=3):
+    """Warn (CmbtoolsWarning) when ``lmax > 3*nside - 1``.
+
+    Above ``3 nside - 1`` a HEALPix map no longer determines its harmonic
+    coefficients (there are more coefficients than the rings can resolve), so
+    transforms alias power between multipoles (common practice: ``3 nside - 1``
+    is healpy's default band limit).
+    """
+    if lmax > 3 * nside - 1:
+        import warnings
+
+        from .exceptions import CmbtoolsWarning
+
+        warnings.warn(
+            f"lmax = {lmax} is above 3*nside - 1 = {3 * nside - 1} for nside {nside}: a HEALPix map does not "
+            f"determine multipoles that high, so the transforms alias power; use lmax <= {3 * nside - 1} "
+            f"or a higher nside",
+            CmbtoolsWarning,
+            stacklevel=stacklevel,
+        )
 
 
 def missing_pixels(m) -> np.ndarray:

@@ -7,9 +7,10 @@ Command modules import the heavy scientific modules inside ``run`` so that
 errors; it contains no physics.
 
 Error policy: any :class:`~cmbtools.exceptions.CmbtoolsError` (bad input, an
-output that exists, an ill-conditioned matrix, ...) and any operating-system
-error on a file becomes one line on standard error and exit status 2.  With
-``--debug`` the traceback is shown instead.  An unexpected exception is an
+output that exists, an ill-conditioned matrix, ...), any operating-system
+error on a file and running out of memory become one line on standard error
+(line breaks in a message are replaced by spaces) and exit status 2.  With
+``--debug`` (before or after the subcommand) the traceback is shown instead.  An unexpected exception is an
 internal error: one line, exit status 1.
 """
 
@@ -26,15 +27,24 @@ __all__ = ["main", "build_parser"]
 
 #: Subcommands, in the order ``--help`` lists them: (name, module under cmbtools._commands).
 COMMANDS = (
-    # ("mask", "mask"),
+    ("mask", "mask"), ("inspect", "inspect"),
+    ("physics", "physics"),
+    ("spectrum", "spectrum"),
+    ("validate", "validate"),
+    ("simulate", "simulate"),
 )
+
+
+def _one_line(text) -> str:
+    """``text`` with its line breaks replaced by spaces (error reports are one line)."""
+    return " ".join(part.strip() for part in str(text).splitlines() if part.strip())
 
 
 class _Parser(argparse.ArgumentParser):
     """ArgumentParser whose usage errors are one line and exit status 2."""
 
     def error(self, message):
-        self.exit(2, f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
+        self.exit(2, f"{self.prog}: error: {_one_line(message)} (see '{self.prog} --help')\n")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -58,7 +68,7 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
     from .exceptions import CmbtoolsWarning
 
     kind = "warning" if issubclass(category, CmbtoolsWarning) else category.__name__
-    print(f"cmbtools: {kind}: {message}", file=sys.stderr if file is None else file)
+    print(f"cmbtools: {kind}: {_one_line(message)}", file=sys.stderr if file is None else file)
 
 
 def main(argv=None) -> int:
@@ -79,13 +89,24 @@ def main(argv=None) -> int:
     except CmbtoolsError as exc:
         if debug:
             raise
-        print(f"{prog}: error: {exc}", file=sys.stderr)
+        print(f"{prog}: error: {_one_line(exc)}", file=sys.stderr)
         return 2
     except OSError as exc:
         if debug:
             raise
         where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
-        print(f"{prog}: error: {where}{exc.strerror or exc}", file=sys.stderr)
+        print(f"{prog}: error: {_one_line(f'{where}{exc.strerror or exc}')}", file=sys.stderr)
+        return 2
+    except MemoryError as exc:  # an allocation the memory estimates did not foresee
+        if debug:
+            raise
+        detail = f" ({_one_line(exc)})" if str(exc) else ""
+        print(f"{prog}: error: out of memory{detail}; lower nside/lmax or free some memory", file=sys.stderr)
+        return 2
+    except Warning as exc:  # a warning promoted to an error by the user's warning filters
+        if debug:
+            raise
+        print(f"{prog}: error: {_one_line(exc)} (a warning turned into an error by the warning filters)", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print(f"{prog}: interrupted", file=sys.stderr)
@@ -93,7 +114,8 @@ def main(argv=None) -> int:
     except Exception as exc:  # an internal error: say so in one line
         if debug:
             raise
-        print(f"{prog}: internal error: {type(exc).__name__}: {exc} (run with --debug for the traceback)", file=sys.stderr)
+        print(f"{prog}: internal error: {type(exc).__name__}: {_one_line(exc)} (run with --debug for the traceback)",
+              file=sys.stderr)
         return 1
     finally:
         warnings.showwarning = old_show

@@ -19,6 +19,7 @@ __all__ = [
     "OutputPathError",
     "CacheError",
     "MemoryLimitError",
+    "WorkerLostError",
     "CmbtoolsWarning",
 ]
 
@@ -108,6 +109,24 @@ class MemoryLimitError(CmbtoolsError, MemoryError):
     def __init__(self, message, required_bytes, available_bytes):
         self.required_bytes = int(required_bytes)
         self.available_bytes = int(available_bytes)
+        super().__init__(message)
+
+
+class WorkerLostError(CmbtoolsError, RuntimeError):
+    """Worker processes of a simulation run kept dying, or a user-supplied executor broke.
+
+    The simulations finished before the failure are saved in the run
+    directory; running the same call again resumes from them.
+
+    Attributes
+    ----------
+    n_finished, n_sims : int
+        Simulations saved so far and simulations requested.
+    """
+
+    def __init__(self, message, n_finished, n_sims):
+        self.n_finished = int(n_finished)
+        self.n_sims = int(n_sims)
         super().__init__(message)
 
 

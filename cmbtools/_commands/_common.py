@@ -4,11 +4,18 @@ from __future__ import annotations
 
 import argparse
 
-__all__ = ["add_overwrite", "add_threads", "positive_float", "positive_int"]
+__all__ = ["add_overwrite", "add_force", "add_threads", "positive_float", "positive_int"]
 
 
 def add_overwrite(parser):
     parser.add_argument("--overwrite", action="store_true", help="replace output files that already exist")
+
+
+def add_force(parser):
+    parser.add_argument(
+        "--force", action="store_true",
+        help="go ahead even when the memory estimate exceeds what the machine has available",
+    )
 
 
 def add_threads(parser):

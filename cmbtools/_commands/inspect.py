@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ._common import add_overwrite, positive_int
+from ._common import add_force, add_overwrite, positive_int
 
 HELP = "describe a map: resolution, unit, missing pixels, monopole, dipole, range"
 DESCRIPTION = """\
@@ -31,6 +31,7 @@ def add_arguments(parser):
                         help="unit of the values in the file, overriding its header (K, mK, uK, K_CMB, ...)")
     parser.add_argument("--figure", metavar="PNG", help="write a Mollweide view of the map to this file")
     add_overwrite(parser)
+    add_force(parser)
 
 
 def _mollweide(path, m, used, title, overwrite):
@@ -70,15 +71,24 @@ def run(args) -> int:
     from .. import maps
     from .._io import check_output_path
     from .._validation import check_same_nside
-    from ..exceptions import IllConditionedError
+    from ..exceptions import IllConditionedError, InputFileError, ResolutionMismatchError
 
     if args.figure is not None:
         check_output_path(args.figure, overwrite=args.overwrite)
-    m, info = maps.read_map(args.map, field=args.field, unit=args.unit)
+    m, info = maps.read_map(args.map, field=args.field, unit=args.unit, force=args.force)
     missing = maps.missing_pixels(m)
+    if missing.all():
+        raise InputFileError(info.path, f"has no valid pixel: all {m.size} pixels are missing (UNSEEN, NaN or inf)")
     if args.mask is not None:
-        w = maps.read_mask(args.mask)
-        check_same_nside(m, w, "map", "mask")
+        w = maps.read_mask(args.mask, force=args.force)
+        try:
+            check_same_nside(m, w, "map", "mask")
+        except ResolutionMismatchError as exc:
+            raise ResolutionMismatchError(
+                f"The 'map' has nside {exc.nside_a} but the 'mask' has nside {exc.nside_b}; change the mask's "
+                f"resolution first: cmbtools mask --from-mask {args.mask} --nside {exc.nside_a} -o NEW_MASK.fits",
+                exc.nside_a, exc.nside_b,
+            ) from None
         weights = np.where(missing, 0.0, w)
     else:
         weights = np.where(missing, 0.0, 1.0)

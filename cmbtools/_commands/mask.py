@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ._common import add_overwrite, positive_float, positive_int
+from ._common import add_force, add_overwrite, positive_float, positive_int
 
 HELP = "build a mask (caps, latitude cut, holes, thresholds, apodization) or describe one"
 DESCRIPTION = """\
@@ -15,6 +15,11 @@ piece that is asked for: a kept circular patch, a latitude cut, holes around
 listed positions, a threshold on a map.  The result can then be apodized.
 The sky fraction and weight moments (f_sky = mean(w), w2 = mean(w^2),
 w4 = mean(w^4), f_sky_eff = w2^2/w4) are printed.
+
+--from-mask and --from-map keep their own resolution unless --nside asks for
+another one (the change is then reported); two inputs of different nside
+need --nside.  Before building, the memory the mask needs is compared with
+what the machine has available; --force goes ahead anyway.
 
 examples:
   cmbtools mask --nside 128 --keep-cap 250,-55,50 --holes sources.csv --hole-radius 1 \\
@@ -90,6 +95,7 @@ def add_arguments(parser):
     build.add_argument("--apodize-width", type=positive_float, metavar="DEG", help="width of the taper in degrees")
     build.add_argument("-o", "--output", metavar="FILE", help="FITS file to write")
     add_overwrite(parser)
+    add_force(parser)
 
 
 _BUILD_OPTIONS = ("nside", "from_mask", "keep_cap", "cut_latitude", "holes", "hole_radius", "from_map",
@@ -112,15 +118,18 @@ def _usage_error(message):
 
 
 def run(args) -> int:
+    import warnings
+
     from .. import maps
     from .._io import check_output_path
     from .._validation import check_nside
+    from ..exceptions import CmbtoolsWarning
 
     if args.info is not None:
         used = [o for o in _BUILD_OPTIONS if getattr(args, o) is not None]
         if used:
             _usage_error(f"--info describes a mask and cannot be combined with --{used[0].replace('_', '-')}")
-        w = maps.read_mask(args.info)
+        w = maps.read_mask(args.info, force=args.force)
         print(f"{'file':<16}{args.info}")
         _print_moments(maps.mask_moments(w))
         binary = bool(((w == 0) | (w == 1)).all())
@@ -137,46 +146,88 @@ def run(args) -> int:
         _usage_error("--hole-radius needs --holes CSV")
     check_output_path(args.output, overwrite=args.overwrite)
 
-    pieces = []
+    # the memory check comes before reading or building anything big
     nside = None if args.nside is None else check_nside(args.nside, "--nside")
+    if nside is not None:
+        _check_build_memory(nside, args)
+    sources = []  # (option, weights) read from files, at their own resolution
     if args.from_mask is not None:
-        base = maps.read_mask(args.from_mask)
-        nside = nside or _nside(base)
-        if _nside(base) != nside:
-            base = maps.change_mask_resolution(base, nside)
-        pieces.append(base)
+        sources.append(("--from-mask", maps.read_mask(args.from_mask, force=args.force)))
     if args.from_map is not None:
         from .._mapio import _read_table
 
-        values, _facts = _read_table(args.from_map, args.map_field, None)
-        kept = maps.threshold_mask(values, args.threshold, keep=args.keep_where)
-        nside = nside or _nside(kept)
-        if _nside(kept) != nside:
-            kept = maps.change_mask_resolution(kept, nside)
-        pieces.append(kept)
+        values, _facts = _read_table(args.from_map, args.map_field, None, force=args.force)
+        sources.append(("--from-map", maps.threshold_mask(values, args.threshold, keep=args.keep_where)))
     if nside is None:
-        _usage_error("give --nside (or --from-mask / --from-map to take the resolution from)")
-    if args.keep_cap is not None:
-        lon, lat, radius = args.keep_cap
-        pieces.append(maps.cap_mask(nside, lon, lat, radius, coord=args.coord, map_coord=args.coord))
-    if args.cut_latitude is not None:
-        pieces.append(maps.latitude_cut_mask(nside, args.cut_latitude, coord=args.latitude_coord, map_coord=args.coord))
-    if args.holes is not None:
-        pieces.append(maps.disc_mask(nside, args.holes, args.hole_radius, coord=args.coord, map_coord=args.coord))
-    if not pieces:
-        import numpy as np
+        if not sources:
+            _usage_error("give --nside (or --from-mask / --from-map to take the resolution from)")
+        found = {option: _nside(w) for option, w in sources}
+        if len(set(found.values())) > 1:
+            from ..exceptions import ResolutionMismatchError
 
-        pieces.append(np.ones(12 * nside**2))
-    w = maps.combine_masks(*pieces)
-    if args.apodize is not None:
-        w = maps.apodize_mask(w, args.apodize_width, taper=args.apodize)
+            (a, na), (b, nb) = found.items()
+            raise ResolutionMismatchError(
+                f"{a} has nside {na} but {b} has nside {nb}; give --nside N to build the mask at one "
+                f"resolution (both are then changed to it)", na, nb,
+            )
+        nside = next(iter(found.values()))
+        _check_build_memory(nside, args)
+
+    with warnings.catch_warnings():
+        if args.force:  # the estimate above covers the whole build: warn once, not once per step
+            warnings.filterwarnings("ignore", message=".*would need about .* going ahead", category=CmbtoolsWarning)
+        notes = []
+        pieces = []
+        for option, w in sources:
+            if _nside(w) != nside:
+                notes.append(f"{option} changed from nside {_nside(w)} to {nside}")
+                w = maps.change_mask_resolution(w, nside, force=args.force)
+            pieces.append(w)
+        if args.keep_cap is not None:
+            lon, lat, radius = args.keep_cap
+            pieces.append(maps.cap_mask(nside, lon, lat, radius, coord=args.coord, map_coord=args.coord, force=args.force))
+        if args.cut_latitude is not None:
+            pieces.append(maps.latitude_cut_mask(nside, args.cut_latitude, coord=args.latitude_coord,
+                                                 map_coord=args.coord, force=args.force))
+        if args.holes is not None:
+            pieces.append(maps.disc_mask(nside, args.holes, args.hole_radius, coord=args.coord, map_coord=args.coord,
+                                         force=args.force))
+        if not pieces:
+            import numpy as np
+
+            pieces.append(np.ones(12 * nside**2))
+        w = maps.combine_masks(*pieces)
+        del pieces
+        if args.apodize is not None:
+            w = maps.apodize_mask(w, args.apodize_width, taper=args.apodize)
     extra = {"MASKAPOD": (args.apodize or "none", "apodization taper")}
     if args.apodize:
         extra["MASKAPW"] = (args.apodize_width, "apodization width [deg]")
     maps.write_mask(args.output, w, coord=args.coord, overwrite=args.overwrite, extra_header=extra)
+    for note in notes:
+        print(f"{'resolution':<16}{note}")
     print(f"{'written':<16}{args.output}")
     _print_moments(maps.mask_moments(w))
     return 0
+
+
+def _check_build_memory(nside, args):
+    """Refuse (MemoryLimitError) a build whose maps would not fit in memory, before any is allocated.
+
+    Counted at ``nside``: one map per piece, the product, two for the pixel
+    lists of the geometric pieces, three while writing, five for the cosine
+    taper (distances and index lists) or a transform round trip for the
+    Gaussian one.
+    """
+    from .._resources import check_memory, estimate_map_bytes, estimate_transform_bytes
+
+    n_pieces = sum(getattr(args, o) is not None for o in ("from_mask", "from_map", "keep_cap", "cut_latitude", "holes"))
+    need = estimate_map_bytes(nside, max(n_pieces, 1) + 1 + 2 + 3)
+    if args.apodize == "cosine":
+        need += estimate_map_bytes(nside, 5)
+    elif args.apodize == "gaussian":
+        need += estimate_transform_bytes(nside, 3 * nside - 1)
+    check_memory(need, f"Building this mask at nside {nside}", force=args.force)
 
 
 def _nside(w):

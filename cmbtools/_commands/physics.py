@@ -92,7 +92,19 @@ def build_cosmology(args):
     _require(mnu, "--neutrino-mass", 0.0, strict=False, high=100.0)
     ob0 = ombh2 / h2
     om0 = (ombh2 + omch2) / h2
-    common = dict(H0=h0, Om0=om0, Ob0=ob0, Tcmb0=t0, Neff=neff, m_nu=[0.0, 0.0, mnu], name="custom")
+    # astropy counts floor(Neff) neutrino species and wants one mass per species; the mass
+    # goes to one species and the others stay massless
+    n_species = int(math.floor(neff))
+    if n_species == 0:
+        if mnu > 0:
+            raise InvalidInputError(
+                f"A neutrino mass needs at least one neutrino species: give --neff >= 1, or --neutrino-mass 0. "
+                f"Got --neff {neff:g} and a mass of {mnu:g} eV instead."
+            )
+        m_nu = 0.0
+    else:
+        m_nu = [0.0] * (n_species - 1) + [mnu]
+    common = dict(H0=h0, Om0=om0, Ob0=ob0, Tcmb0=t0, Neff=neff, m_nu=m_nu, name="custom")
     try:
         flat = FlatLambdaCDM(**common)
         if omk == 0.0:

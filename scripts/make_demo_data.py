@@ -1,0 +1,200 @@
+"""Write the bundled demo data of the (invented) Tern Sky Survey into maps/.
+
+The Tern Sky Survey is a fictional ground-based survey at 145 GHz that maps
+one circular patch, the Tern Field: radius 50 degrees around galactic
+(l, b) = (250, -55) degrees, nside 128, Gaussian beam of FWHM 25 arcmin, white
+noise of 35 uK-arcmin, deeper towards the centre (from a hits map), with 15
+invented point sources cut out by 1-degree discs.  Everything is drawn from
+one fixed seed, so the files are reproducible (to float32 precision on any
+machine).  Files written:
+
+  tern_sky.fits        the survey map: fiducial CMB, beam, pixel window, point
+                       sources, inhomogeneous noise (the mean of the two
+                       halves), a 100 uK monopole and a 150 uK dipole
+  tern_half1.fits      the first half of the data: same sky, independent noise
+  tern_half2.fits      the second half (for cross-spectra)
+  tern_hits.fits       relative hits (0 outside the field)
+  tern_mask.fits       the analysis mask: cap, source holes, 3-degree cosine apodization
+  tern_sources.csv     the 15 invented sources (lon_deg, lat_deg, peak_uk)
+  tern_beam.csv        the beam transfer function B_l, l = 0..511
+  fiducial_cl.csv      the built-in fiducial spectrum, l = 0..511
+
+Maps are float32; the survey maps and the hits map are partial-sky files
+(only the observed pixels, with an explicit pixel index), so the whole set is
+about 2 MB.
+
+usage: python scripts/make_demo_data.py [--output-dir maps] [--overwrite]
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import sys
+from pathlib import Path
+
+import numpy as np
+
+#: The fixed seed of the demo data.
+SEED = 1450
+NSIDE = 128
+LMAX = 4 * NSIDE - 1
+FIELD_LON, FIELD_LAT, FIELD_RADIUS = 250.0, -55.0, 50.0
+BEAM_FWHM_ARCMIN = 25.0
+DEPTH_UK_ARCMIN = 35.0
+N_SOURCES = 15
+HOLE_RADIUS_DEG = 1.0
+APODIZATION_DEG = 3.0
+MONOPOLE_UK = 100.0
+DIPOLE_UK = (150.0, 60.0, 30.0)  # amplitude, lon, lat (galactic)
+
+#: Random streams (simulation indices of simulation_rng(SEED, i)).
+STREAM_SKY, STREAM_NOISE_1, STREAM_NOISE_2, STREAM_SOURCES = 0, 1, 2, 3
+
+FILES = ("tern_sky.fits", "tern_half1.fits", "tern_half2.fits", "tern_hits.fits", "tern_mask.fits",
+         "tern_sources.csv", "tern_beam.csv", "fiducial_cl.csv")
+
+
+def _angle_to_centre(nside):
+    import healpy as hp
+
+    centre = hp.ang2vec(FIELD_LON, FIELD_LAT, lonlat=True)
+    x, y, z = hp.pix2vec(nside, np.arange(12 * nside * nside))
+    return np.degrees(np.arccos(np.clip(centre[0] * x + centre[1] * y + centre[2] * z, -1.0, 1.0)))
+
+
+def hits_map(nside):
+    """Relative hits: 1 at the centre, 0.25 at the edge (cos^2 profile), 0 outside the field."""
+    theta = _angle_to_centre(nside)
+    inside = theta <= FIELD_RADIUS
+    hits = np.zeros(theta.size)
+    hits[inside] = 0.25 + 0.75 * np.cos(0.5 * np.pi * theta[inside] / FIELD_RADIUS) ** 2
+    return hits
+
+
+def invent_sources(rng):
+    """15 positions at least 2 degrees inside the field and 4 degrees apart, with peak amplitudes."""
+    import healpy as hp
+
+    centre = hp.ang2vec(FIELD_LON, FIELD_LAT, lonlat=True)
+    # a local frame at the centre
+    east = np.cross([0.0, 0.0, 1.0], centre)
+    east /= np.linalg.norm(east)
+    north = np.cross(centre, east)
+    chosen = []
+    while len(chosen) < N_SOURCES:
+        r = np.radians(FIELD_RADIUS - 2.0 - APODIZATION_DEG) * math.sqrt(rng.uniform())
+        phi = rng.uniform(0.0, 2.0 * np.pi)
+        v = np.cos(r) * centre + np.sin(r) * (np.cos(phi) * east + np.sin(phi) * north)
+        if all(np.degrees(np.arccos(np.clip(v @ w, -1, 1))) > 4.0 for w in chosen):
+            chosen.append(v)
+    lon, lat = hp.vec2ang(np.array(chosen), lonlat=True)
+    peak = rng.uniform(300.0, 1500.0, N_SOURCES)
+    return np.round(lon % 360.0, 4), np.round(lat, 4), np.round(peak, 1)
+
+
+def source_map(nside, lon, lat, peak_uk):
+    """Point sources smoothed by the Gaussian beam (flat-sky profile), in K."""
+    import healpy as hp
+
+    sigma = math.radians(BEAM_FWHM_ARCMIN / 60.0) / math.sqrt(8.0 * math.log(2.0))
+    m = np.zeros(12 * nside * nside)
+    for lo, la, a in zip(lon, lat, peak_uk):
+        v = hp.ang2vec(lo, la, lonlat=True)
+        pix = hp.query_disc(nside, v, 6.0 * sigma)
+        x, y, z = hp.pix2vec(nside, pix)
+        d = np.arccos(np.clip(v[0] * x + v[1] * y + v[2] * z, -1.0, 1.0))
+        m[pix] += a * 1e-6 * np.exp(-0.5 * (d / sigma) ** 2)
+    return m
+
+
+def write_sources_csv(path, lon, lat, peak, overwrite):
+    from cmbtools._io import atomic_output
+
+    lines = ["# invented point sources of the Tern Field (Tern Sky Survey demo data; not real objects)",
+             "# lon_deg, lat_deg: galactic position; peak_uk: peak brightness after the 25' beam, uK_CMB",
+             "lon_deg,lat_deg,peak_uk"]
+    lines += [f"{a:.4f},{b:.4f},{c:.1f}" for a, b, c in zip(lon, lat, peak)]
+    with atomic_output(path, overwrite=overwrite) as tmp:
+        tmp.write_text("\n".join(lines) + "\n", encoding="utf-8")
+
+
+def make_demo_data(output_dir, *, overwrite=False, nthreads=None, log=print):
+    """Write every demo file into ``output_dir`` (which must exist)."""
+    from cmbtools import maps, simulate
+    from cmbtools._beams import gaussian_beam, write_beam
+    from cmbtools._io import check_output_path
+
+    out = Path(output_dir)
+    paths = {name: out / name for name in FILES}
+    for p in paths.values():
+        check_output_path(p, overwrite=overwrite)
+
+    header = [("SURVEY", "Tern Sky Survey (invented demo data)"), ("FREQ", 145.0, "GHz (fictional)"),
+              ("CMBSEED", SEED, "master seed of the demo data")]
+
+    cl = simulate.fiducial_cl(LMAX)
+    simulate.write_spectrum_table(paths["fiducial_cl.csv"], cl, overwrite=overwrite,
+                                  header={"source": "cmbtools built-in fiducial spectrum, Planck18 cosmology, default extras"})
+    beam = gaussian_beam(BEAM_FWHM_ARCMIN, LMAX)
+    write_beam(paths["tern_beam.csv"], beam, overwrite=overwrite,
+               header_comment="Tern Sky Survey (invented demo data): Gaussian beam, FWHM 25 arcmin")
+
+    lon, lat, peak = invent_sources(simulate.simulation_rng(SEED, STREAM_SOURCES))
+    write_sources_csv(paths["tern_sources.csv"], lon, lat, peak, overwrite)
+
+    hits = hits_map(NSIDE)
+    hits_out = np.where(hits > 0, hits, np.nan)  # unobserved pixels are left out of the partial file
+    maps.write_map(paths["tern_hits.fits"], hits_out, unit=None, coord="G", overwrite=overwrite,
+                   extra_header=header, dtype="float32", partial=True, column_name="HITS")
+
+    field = maps.cap_mask(NSIDE, FIELD_LON, FIELD_LAT, FIELD_RADIUS)
+    holes = maps.disc_mask(NSIDE, np.column_stack([lon, lat]), HOLE_RADIUS_DEG)
+    mask = maps.apodize_mask(maps.combine_masks(field, holes), APODIZATION_DEG, taper="cosine", nthreads=nthreads)
+    maps.write_mask(paths["tern_mask.fits"], mask, coord="G", overwrite=overwrite, extra_header=header,
+                    dtype="float32")
+
+    sky = simulate.gaussian_sky(
+        cl, NSIDE, lmax=LMAX, beam=beam, pixel_window=True, monopole=MONOPOLE_UK * 1e-6,
+        dipole=simulate.Dipole(DIPOLE_UK[0] * 1e-6, DIPOLE_UK[1], DIPOLE_UK[2]),
+        rng=simulate.simulation_rng(SEED, STREAM_SKY), nthreads=nthreads,
+    )
+    sky += source_map(NSIDE, lon, lat, peak)
+    half_noise = simulate.NoiseModel(DEPTH_UK_ARCMIN * math.sqrt(2.0), hits=hits)
+    n1 = simulate.noise_map(half_noise, NSIDE, rng=simulate.simulation_rng(SEED, STREAM_NOISE_1))
+    n2 = simulate.noise_map(half_noise, NSIDE, rng=simulate.simulation_rng(SEED, STREAM_NOISE_2))
+    seen = hits > 0
+    for name, noise in (("tern_half1.fits", n1), ("tern_half2.fits", n2), ("tern_sky.fits", 0.5 * (n1 + n2))):
+        m = np.full(sky.size, np.nan)
+        m[seen] = sky[seen] + noise[seen]
+        depth = DEPTH_UK_ARCMIN * (1.0 if name == "tern_sky.fits" else math.sqrt(2.0))
+        maps.write_map(paths[name], m, coord="G", overwrite=overwrite, dtype="float32", partial=True,
+                       extra_header=header + [("CMBDEPTH", round(depth, 4), "white-noise depth, uK-arcmin")])
+    for p in paths.values():
+        log(f"wrote {p} ({p.stat().st_size / 1024:.0f} KiB)")
+    return paths
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description="Write the Tern Sky Survey demo data (invented) from a fixed seed.")
+    parser.add_argument("--output-dir", default=str(Path(__file__).resolve().parent.parent / "maps"),
+                        help="directory to write into (default: the repository's maps/)")
+    parser.add_argument("--overwrite", action="store_true", help="replace existing files")
+    parser.add_argument("--threads", type=int, default=None, help="threads for the transforms")
+    args = parser.parse_args(argv)
+    from cmbtools.exceptions import CmbtoolsError
+
+    out = Path(args.output_dir)
+    if not out.is_dir():
+        print(f"make_demo_data: error: {out} is not a directory", file=sys.stderr)
+        return 2
+    try:
+        make_demo_data(out, overwrite=args.overwrite, nthreads=args.threads)
+    except CmbtoolsError as exc:
+        print(f"make_demo_data: error: {exc}", file=sys.stderr)
+        return 2
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
