@@ -13,6 +13,7 @@
 from __future__ import annotations
 
 import contextlib
+import errno
 import hashlib
 import os
 import tempfile
@@ -40,6 +41,8 @@ def check_input_file(path) -> Path:
     InputFileError
         If the path does not exist, is a directory or cannot be read.
     """
+    if not str(path).strip():
+        raise InputFileError(repr(str(path)), "is an empty file name")
     p = Path(path)
     if not p.exists():
         raise InputFileError(p, "no such file")
@@ -62,6 +65,8 @@ def check_output_path(path, *, overwrite: bool = False) -> Path:
         by creating and removing a hidden probe file), or the path is a
         directory.
     """
+    if not str(path).strip():
+        raise OutputPathError(repr(str(path)), "is an empty file name")
     p = Path(path)
     parent = p.parent if str(p.parent) else Path(".")
     if p.is_dir():
@@ -79,7 +84,9 @@ def check_output_path(path, *, overwrite: bool = False) -> Path:
     try:
         fd, probe = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".probe", dir=parent)
     except OSError as exc:
-        raise OutputPathError(p, f"directory {str(parent)!r} is not writable ({exc.strerror or exc})") from None
+        # /proc answers "no such file" to a new name: the reason is not worth showing then
+        detail = "" if exc.errno == errno.ENOENT else f" ({exc.strerror or exc})"
+        raise OutputPathError(p, f"directory {str(parent)!r} is not writable{detail}") from None
     os.close(fd)
     with contextlib.suppress(OSError):
         os.unlink(probe)

@@ -77,6 +77,7 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     if not getattr(args, "command", None):
         parser.print_help()
+        print("cmbtools: error: give a command, e.g. 'cmbtools mask --help'", file=sys.stderr)
         return 2
     from .exceptions import CmbtoolsError
 
