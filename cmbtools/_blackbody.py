@@ -544,7 +544,13 @@ def _check_bandpass(freq, trans):
             f"row {i + 1}: frequencies must be strictly increasing; {freq[i]!r} GHz {kind} "
             f"the previous row's {freq[i - 1]!r} GHz"
         )
-    if trapezoid(trans, freq) <= 0:
+    with np.errstate(over="ignore", invalid="ignore"):
+        area = trapezoid(trans, freq)
+        first_moment = trapezoid(freq * trans, freq)
+    if not (np.isfinite(area) and np.isfinite(first_moment)):
+        return ("the band integrals overflow double precision: the frequencies or the transmission are far too "
+                "large (the transmission may be rescaled freely)")
+    if area <= 0:
         return "the transmission is zero everywhere (no band-integrated response)"
     return None
 

@@ -177,6 +177,12 @@ def resolve_cosmology(cosmo, *, name="cosmo"):
     h0 = float(cosmo.H0.to_value("km/(s Mpc)"))
     if not np.isfinite(h0) or h0 <= 0:
         raise InvalidInputError(f"{what} must have H0 > 0. Got {h0!r} km/s/Mpc instead.")
+    og = float(cosmo.Ogamma0)
+    if not np.isfinite(og) or og <= 0:
+        raise InvalidInputError(
+            f"{what} has a photon density Ogamma0 = {og!r} (Tcmb0 = {t0:g} K, H0 = {h0:g} km/s/Mpc): "
+            "too small to be represented, so there is no recombination to compute."
+        )
     for label in ("Om0", "Odm0"):
         value = getattr(cosmo, label, None)
         if value is not None and (not np.isfinite(value) or value < 0):

@@ -182,6 +182,8 @@ def _open_fits(path):
             try:
                 hdul = fits.open(fh, memmap=False, lazy_load_hdus=False)
             except Exception as exc:
+                if "No SIMPLE card" in str(exc):  # astropy's advice in that message is not for cmbtools users
+                    raise InputFileError(p, "cannot be read as FITS (it does not start with a FITS header)") from None
                 raise InputFileError(p, f"cannot be read as FITS ({_short(exc)})") from None
             try:
                 try:

@@ -305,6 +305,11 @@ def _redshift_grid():
 def _compute_recombination(bg):
     """Tabulate x_p, x_e and T_m on the redshift grid (ascending z)."""
     z = _redshift_grid()
+    if not (np.isfinite(bg.nh0) and bg.nh0 > 0):
+        raise InvalidInputError(
+            f"The cosmology's hydrogen density today is {bg.nh0:g} per m^3 (Ob0 = {bg.cosmo.Ob0:g}): "
+            "too small to be represented, so there is no recombination to compute."
+        )
     xp_saha, xe_saha = _saha_state(z, bg)
     # start of the Peebles regime: Saha hydrogen fraction = 0.99
     def excess(zz):

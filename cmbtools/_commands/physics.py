@@ -90,8 +90,13 @@ def build_cosmology(args):
     _require(t0, "--t0", 0.0, high=100.0)
     _require(neff, "--neff", 0.0, strict=False, high=100.0)
     _require(mnu, "--neutrino-mass", 0.0, strict=False, high=100.0)
-    ob0 = ombh2 / h2
-    om0 = (ombh2 + omch2) / h2
+    ob0 = ombh2 / h2 if h2 > 0 else math.inf
+    om0 = (ombh2 + omch2) / h2 if h2 > 0 else math.inf
+    if not (math.isfinite(ob0) and math.isfinite(om0)):
+        raise InvalidInputError(
+            f"The cosmological parameters give non-finite density parameters (Omega_b = {ob0:g}, "
+            f"Omega_m = {om0:g}): --h0 {h0:g} is far too small."
+        )
     # astropy counts floor(Neff) neutrino species and wants one mass per species; the mass
     # goes to one species and the others stay massless
     n_species = int(math.floor(neff))
