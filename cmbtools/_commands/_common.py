@@ -43,3 +43,13 @@ def positive_int(text):
     if v < 0:
         raise argparse.ArgumentTypeError(f"expected a non-negative whole number, got {text!r}")
     return v
+
+
+def finite_float(text):
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if v != v or v in (float("inf"), float("-inf")):
+        raise argparse.ArgumentTypeError(f"expected a finite number, got {text!r}")
+    return v

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ._common import add_force, add_overwrite, positive_float, positive_int
+from ._common import finite_float, add_force, add_overwrite, positive_float, positive_int
 
 HELP = "build a mask (caps, latitude cut, holes, thresholds, apodization) or describe one"
 DESCRIPTION = """\
@@ -51,16 +51,6 @@ def _nonneg_float(text):
     return v
 
 
-def _number(text):
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if v != v or v in (float("inf"), float("-inf")):
-        raise argparse.ArgumentTypeError(f"expected a finite number, got {text!r}")
-    return v
-
-
 def add_arguments(parser):
     parser.formatter_class = argparse.RawDescriptionHelpFormatter
     what = parser.add_argument_group("describe an existing mask")
@@ -85,7 +75,7 @@ def add_arguments(parser):
     build.add_argument("--from-map", metavar="MAP", help="keep the pixels of MAP on one side of --threshold")
     build.add_argument("--map-field", type=positive_int, default=0, metavar="N",
                        help="column of --from-map to use (default 0)")
-    build.add_argument("--threshold", type=_number, metavar="X",
+    build.add_argument("--threshold", type=finite_float, metavar="X",
                        help="threshold for --from-map, in the units stored in that file")
     build.add_argument("--keep-where", choices=["below", "above"], default="below",
                        help="keep pixels of --from-map below (default) or above the threshold")

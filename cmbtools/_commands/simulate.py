@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ._common import add_overwrite, add_threads, positive_float, positive_int
+from ._common import finite_float, add_overwrite, add_threads, positive_float, positive_int
 
 HELP = "write simulated Gaussian CMB maps with beam, pixel window and noise"
 DESCRIPTION = """\
@@ -26,16 +26,6 @@ examples:
 """
 
 
-def _finite(text):
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if v != v or v in (float("inf"), float("-inf")):
-        raise argparse.ArgumentTypeError(f"expected a finite number, got {text!r}")
-    return v
-
-
 def add_arguments(parser):
     parser.formatter_class = argparse.RawDescriptionHelpFormatter
     sky = parser.add_argument_group("sky")
@@ -52,8 +42,8 @@ def add_arguments(parser):
     beam.add_argument("--beam-fwhm", type=positive_float, metavar="ARCMIN", help="Gaussian beam FWHM in arcmin")
     beam.add_argument("--beam-file", metavar="TABLE", help="beam transfer table B_l (columns ell, b_ell)")
     sky.add_argument("--no-pixel-window", action="store_true", help="do not apply the HEALPix pixel window")
-    sky.add_argument("--monopole-uk", type=_finite, default=0.0, metavar="UK", help="add a constant, in uK")
-    sky.add_argument("--dipole-uk", type=_finite, nargs=3, metavar=("AMPLITUDE", "LON", "LAT"),
+    sky.add_argument("--monopole-uk", type=finite_float, default=0.0, metavar="UK", help="add a constant, in uK")
+    sky.add_argument("--dipole-uk", type=finite_float, nargs=3, metavar=("AMPLITUDE", "LON", "LAT"),
                      help="add a dipole of AMPLITUDE uK towards (LON, LAT) degrees")
 
     noise = parser.add_argument_group("noise")
