@@ -186,11 +186,12 @@ class Bandpowers:
         Raises
         ------
         InputFileError
-            Missing file, wrong columns, a cell that is not a number, or an unknown unit.
+            Missing file, wrong columns, a cell that is not a number, a bin
+            limit that is not a whole number, or an unknown unit.
         """
         p = _io.check_input_file(path)
         try:
-            text = p.read_text(encoding="utf-8")
+            text = p.read_text(encoding="utf-8-sig")  # -sig: a leading byte-order mark is not part of the table
         except UnicodeDecodeError:
             raise InputFileError(p, "is not a UTF-8 text table") from None
         meta = {}
@@ -229,6 +230,12 @@ class Bandpowers:
         scale = _UNITS[unit]
         a = np.array(rows)
         cols = {c: a[:, i] for i, c in enumerate(COLUMNS)}
+        for c in ("ell_min", "ell_max"):
+            v = cols[c]
+            bad = ~np.isfinite(v) | (v != np.round(v)) | (np.abs(v) > 2**62)
+            if bad.any():
+                j = int(np.argmax(bad))
+                raise InputFileError(p, f"data row {j + 1}: {c} = {float(v[j])!r} is not a whole number")
         for c in _SPECTRUM_COLUMNS:
             cols[c] = cols[c] / scale
         try:

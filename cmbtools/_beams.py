@@ -15,11 +15,13 @@ Table files
     ...
 
 Columns may be separated by commas or by whitespace; ``#`` starts a comment
-(whole line or the end of a line); further columns are ignored.
+(whole line or the end of a line); further columns are ignored; a byte-order
+mark at the start (as spreadsheet programs write) is ignored.
 :func:`read_beam` also reads a FITS binary table, either with columns named
 ``ELL`` and ``B_ELL`` (any case) or with one single column taken as B_l
-indexed by ell from 0.  A table must start at ell = 0, have every ell up to
-its last one exactly once and in order, and finite values ``>= 0``.
+indexed by ell from 0; the columns must hold real numbers (integer or
+floating point).  A table must start at ell = 0, have every ell up to its
+last one exactly once and in order, and finite values ``>= 0``.
 """
 
 from __future__ import annotations
@@ -70,7 +72,8 @@ def gaussian_beam(fwhm_arcmin, lmax) -> np.ndarray:
     lmax = check_lmax(lmax)
     sigma = math.radians(fwhm / 60.0) / math.sqrt(8.0 * math.log(2.0))
     ell = np.arange(lmax + 1, dtype=np.float64)
-    return np.exp(-0.5 * ell * (ell + 1.0) * sigma * sigma)
+    with np.errstate(over="ignore"):  # a beam wider than the sky: B_l = 0 above l = 0, not an overflow warning
+        return np.exp(-0.5 * ell * (ell + 1.0) * sigma * sigma)  # in this order, l = 0 gives exactly 0 * sigma
 
 
 # --------------------------------------------------------------------------- reading
@@ -137,7 +140,7 @@ def _split(line: str, comma: bool) -> list[str]:
 def _read_text_table(p: Path):
     """Parse a text table; return (ell, beam, locations) with locations naming each row's line."""
     try:
-        text = p.read_text(encoding="utf-8")
+        text = p.read_text(encoding="utf-8-sig")  # -sig: a leading byte-order mark is not part of the header
     except UnicodeDecodeError:
         raise InputFileError(p, "is neither a FITS file nor a UTF-8 text table") from None
     header = None
@@ -185,38 +188,58 @@ def _read_text_table(p: Path):
 def _read_fits_table(p: Path):
     """Read the first binary-table HDU of a FITS file; return (ell, beam, locations)."""
     from astropy.io import fits
+    from astropy.io.fits.verify import VerifyError
 
-    try:
-        with fits.open(p, memmap=False) as hdul:
-            tables = [h for h in hdul if isinstance(h, fits.BinTableHDU)]
-            if not tables:
-                raise InputFileError(p, "the FITS file has no binary table")
-            hdu = tables[0]
-            names = list(hdu.columns.names)
-            lower = [n.lower() for n in names]
-            data = hdu.data
-            i_ell = next((i for i, c in enumerate(lower) if c in _ELL_NAMES), -1)
-            i_beam = next((i for i, c in enumerate(lower) if c in _BEAM_NAMES), -1)
-            if i_beam >= 0:
-                if i_ell < 0:
-                    raise InputFileError(p, f"the FITS table has a B_ELL column but no ELL column (columns: {names})")
-                ell = np.asarray(data[names[i_ell]], dtype=np.float64).ravel()
-                beam = np.asarray(data[names[i_beam]], dtype=np.float64).ravel()
-            elif len(names) == 1:
-                beam = np.asarray(data[names[0]], dtype=np.float64).ravel()
-                ell = np.arange(beam.size, dtype=np.float64)
-            else:
-                raise InputFileError(
-                    p, f"the FITS table must have columns ELL and B_ELL, or a single column; found {names}"
-                )
-    except InputFileError:
-        raise
-    except (OSError, ValueError, TypeError, KeyError) as exc:
-        raise InputFileError(p, f"cannot read the FITS beam table ({exc})") from None
+    from ._mapio import _open_fits, _short
+
+    # _open_fits reads every HDU now and turns damaged or truncated files (and astropy's
+    # warnings about them) into InputFileError; what is left are tables of the wrong shape
+    with _open_fits(p) as (_, hdul), warnings.catch_warnings():
+        warnings.filterwarnings("ignore", module=r"astropy\.io\.fits.*")
+        try:
+            ell, beam = _parse_fits_table(p, hdul, fits)
+        except InputFileError:
+            raise
+        except (VerifyError, OSError, ValueError, TypeError, KeyError, IndexError) as exc:
+            raise InputFileError(p, f"cannot read the FITS beam table ({_short(exc)})") from None
     if beam.size == 0:
         raise InputFileError(p, "the FITS beam table has no rows")
     where = [f"row {i + 1}" for i in range(beam.size)]
     return ell, beam, where
+
+
+def _parse_fits_table(p: Path, hdul, fits):
+    """(ell, beam) from the first binary table of an open FITS file."""
+    tables = [h for h in hdul if isinstance(h, fits.BinTableHDU)]
+    if not tables:
+        raise InputFileError(p, "the FITS file has no binary table")
+    hdu = tables[0]
+    names = list(hdu.columns.names)
+    lower = [n.lower() for n in names]
+    data = hdu.data
+    i_ell = next((i for i, c in enumerate(lower) if c in _ELL_NAMES), -1)
+    i_beam = next((i for i, c in enumerate(lower) if c in _BEAM_NAMES), -1)
+    if i_beam >= 0:
+        if i_ell < 0:
+            raise InputFileError(p, f"the FITS table has a B_ELL column but no ELL column (columns: {names})")
+        ell = _real_column(p, data, names[i_ell])
+        beam = _real_column(p, data, names[i_beam])
+    elif len(names) == 1:
+        beam = _real_column(p, data, names[0])
+        ell = np.arange(beam.size, dtype=np.float64)
+    else:
+        raise InputFileError(
+            p, f"the FITS table must have columns ELL and B_ELL, or a single column; found {names}"
+        )
+    return ell, beam
+
+
+def _real_column(p: Path, data, name: str) -> np.ndarray:
+    """A FITS column as a flat float64 array; complex, text and variable-length columns are refused."""
+    column = np.asarray(data[name])
+    if column.dtype.kind not in "iuf":
+        raise InputFileError(p, f"the FITS column {name!r} holds {column.dtype} values, not real numbers")
+    return column.astype(np.float64).ravel()
 
 
 def _check_table(p: Path, ell: np.ndarray, beam: np.ndarray, where: list[str]) -> None:

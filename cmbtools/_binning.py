@@ -37,7 +37,8 @@ def _int_array(values, name):
     if a.ndim != 1 or a.size == 0:
         raise InvalidInputError(f"The {name!r} must be a non-empty 1-d array of integers. Got shape {a.shape} instead.")
     if a.dtype.kind == "f":
-        if not np.all(np.isfinite(a)) or not np.all(a == np.round(a)):
+        # whole numbers that fit in int64 (larger ones would wrap around when converted)
+        if not np.all(np.isfinite(a)) or not np.all(a == np.round(a)) or not np.all(np.abs(a) <= 2**62):
             raise InvalidInputError(f"The {name!r} must contain whole numbers. Got {a!r} instead.")
     elif a.dtype.kind not in "iu":
         raise InvalidInputError(f"The {name!r} must be a 1-d array of integers. Got dtype {a.dtype} instead.")
@@ -134,7 +135,9 @@ class Binning:
         if lmax is None:
             raise InvalidInputError("The 'lmax' parameter of Binning.uniform is required (last multipole of the last bin).")
         lmin = check_int(lmin, "lmin", minimum=0)
-        lmax = check_int(lmax, "lmax", minimum=lmin)
+        lmax = check_int(lmax, "lmax", minimum=0)
+        if lmin > lmax:
+            raise InvalidInputError(f"The first multipole lmin={lmin} is above the last, lmax={lmax}.")
         width = check_int(width, "width", minimum=1)
         starts = np.arange(lmin, lmax + 1, width)
         ends = np.minimum(starts + width - 1, lmax)
@@ -184,7 +187,9 @@ class Binning:
         weighting : {'dl', 'cl'}, default='dl'
         """
         lmin = check_int(lmin, "lmin", minimum=1)
-        lmax = check_int(lmax, "lmax", minimum=lmin)
+        lmax = check_int(lmax, "lmax", minimum=1)
+        if lmin > lmax:
+            raise InvalidInputError(f"The first multipole lmin={lmin} is above the last, lmax={lmax}.")
         n_bins = check_int(n_bins, "n_bins", minimum=1, maximum=lmax - lmin + 1)
         raw = np.geomspace(lmin, lmax + 1, n_bins + 1)
         edges = np.unique(np.round(raw).astype(np.int64))

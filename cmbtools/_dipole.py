@@ -28,6 +28,7 @@ __all__ = ["DipoleFit", "fit_monopole_dipole", "remove_monopole_dipole"]
 MAX_CONDITION = 1e12
 
 _CHUNK = 1 << 20
+_MODEL_BLOCK = 1 << 22
 
 
 def _pixel_vectors(nside, pix):
@@ -93,6 +94,23 @@ def _used_weights(m, mask):
     return w
 
 
+def _condition_of_fit(mean_n, cov, n_pixels):
+    """Condition number of the normal matrix of the model (1, n) per unit weight; refuse it above MAX_CONDITION."""
+    normal = np.empty((4, 4))
+    normal[0, 0] = 1.0
+    normal[0, 1:] = normal[1:, 0] = mean_n
+    normal[1:, 1:] = cov + np.outer(mean_n, mean_n)
+    cond = float(np.linalg.cond(normal))
+    if not np.isfinite(cond) or cond > MAX_CONDITION:
+        raise IllConditionedError(
+            f"The unmasked sky ({n_pixels} pixels) cannot separate the monopole from the dipole: "
+            f"the normal matrix has condition number {cond:.3g} (limit {MAX_CONDITION:.0e}). "
+            f"Use a larger sky area or fit the monopole alone.",
+            cond,
+        )
+    return cond
+
+
 def fit_monopole_dipole(m, mask=None):
     """Weighted least-squares monopole and dipole of a map over its unmasked pixels.
 
@@ -152,19 +170,7 @@ def fit_monopole_dipole(m, mask=None):
         cross += wdn.T @ (a[pix] - mean_m)
     cov /= total
     cross /= total
-    # the normal matrix of the model (1, n) per unit weight, to judge how well it is constrained
-    normal = np.empty((4, 4))
-    normal[0, 0] = 1.0
-    normal[0, 1:] = normal[1:, 0] = mean_n
-    normal[1:, 1:] = cov + np.outer(mean_n, mean_n)
-    cond = float(np.linalg.cond(normal))
-    if not np.isfinite(cond) or cond > MAX_CONDITION:
-        raise IllConditionedError(
-            f"The unmasked sky ({used.size} pixels) cannot separate the monopole from the dipole: "
-            f"the normal matrix has condition number {cond:.3g} (limit {MAX_CONDITION:.0e}). "
-            f"Use a larger sky area or fit the monopole alone.",
-            cond,
-        )
+    cond = _condition_of_fit(mean_n, cov, used.size)
     d = np.linalg.solve(cov, cross)
     sol = np.concatenate([[mean_m - float(d @ mean_n)], d])
     d = sol[1:]
@@ -201,3 +207,134 @@ def remove_monopole_dipole(m, mask=None):
     clean = a - fit.evaluate(nside)
     clean[bad] = UNSEEN
     return clean, fit
+
+
+# ----------------------------------------------------------------------------- fast path for full-sky RING maps
+
+# Pixel sums of products of (1, x, y, z) from the adjoint transform at lmax 2, which is exactly
+# A_lm = sum_p g_p Y*_lm(n_p) (no quadrature weights).  With healpy's Y_lm conventions:
+#   Y00 = 1/sqrt(4 pi); Y10 = sqrt(3/4pi) z; Y11 = -sqrt(3/8pi) (x + iy)
+#   Y20 = sqrt(5/16pi) (3z^2 - 1); Y21 = -sqrt(15/8pi) z (x + iy); Y22 = sqrt(15/32pi) (x + iy)^2
+_S0 = np.sqrt(4 * np.pi)
+_S10 = np.sqrt(4 * np.pi / 3)
+_S11 = np.sqrt(8 * np.pi / 3)
+_S20 = np.sqrt(16 * np.pi / 5)
+_S21 = np.sqrt(8 * np.pi / 15)
+_S22 = np.sqrt(32 * np.pi / 15)
+
+#: Smallest eigenvalue of the weighted covariance of pixel directions for the harmonic path.  Below
+#: it (caps narrower than about 5 degrees) the harmonic sums would lose more than ~1e-11 of the
+#: result to cancellation, and the centred pixel sums of :func:`fit_monopole_dipole` are used.
+_SMALL_PATCH_SPREAD = 1e-6
+
+
+def _harmonic_sums(g, lmax, nthreads):
+    """Coefficients ``sum_p g_p Y*_lm(n_p)`` up to ``lmax`` (healpy's layout) of a RING map."""
+    import ducc0
+
+    from . import _sht
+
+    nside = int(round(np.sqrt(g.size / 12)))
+    return ducc0.sht.experimental.adjoint_synthesis(
+        map=g.reshape(1, -1), lmax=lmax, spin=0, nthreads=nthreads, **_sht.ring_geometry(nside)
+    )[0]
+
+
+def _first_moments(a):
+    """``(sum g, sum g x, sum g y, sum g z)`` from the lmax >= 1 sums ``a`` (layout: a00, a10, [a20], a11, ...)."""
+    lmax = int(round((np.sqrt(8 * a.size + 1) - 3) / 2))
+    a00, a10, a11 = a[0].real, a[1].real, a[lmax + 1]
+    return np.array([_S0 * a00, -_S11 * a11.real, _S11 * a11.imag, _S10 * a10])
+
+
+def _second_moments(a):
+    """3x3 ``sum g n n^T`` from the lmax-2 sums ``a`` of a map g."""
+    # layout for lmax 2: a00 a10 a20 | a11 a21 | a22
+    total = _S0 * a[0].real
+    zz = (_S20 * a[2].real + total) / 3.0
+    zx, zy = -_S21 * a[4].real, _S21 * a[4].imag
+    xx_minus_yy, xy = _S22 * a[5].real, -0.5 * _S22 * a[5].imag
+    xx = 0.5 * (total - zz + xx_minus_yy)
+    yy = 0.5 * (total - zz - xx_minus_yy)
+    return np.array([[xx, xy, zx], [xy, yy, zy], [zx, zy, zz]])
+
+
+def weight_sums(w, *, nthreads=None):
+    """The lmax-2 harmonic sums of a weight map that :func:`masked_without_monopole_dipole` needs (reusable)."""
+    from ._validation import resolve_nthreads
+
+    return _harmonic_sums(np.asarray(w, dtype=np.float64), 2, resolve_nthreads(nthreads))
+
+
+def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None):
+    """``w * (m - a - d . n)`` for a full RING map ``m`` and weights ``w``, by two harmonic sums.
+
+    The same weighted least-squares fit as :func:`fit_monopole_dipole` with
+    weights ``w`` (every pixel of ``m`` must be finite; pixels with ``w = 0``
+    do not take part), but the pixel sums of the normal equations come from
+    the adjoint spherical-harmonic transform at lmax 2 (which is exactly
+    ``sum_p g_p Y*_lm(n_p)``) and the fitted model is synthesized at lmax 1:
+    a few passes over the map instead of pixel-centre vectors for every
+    pixel.  This is the estimator's path; it returns a new array.
+    ``sums_of_weights`` (from :func:`weight_sums` of the same ``w``) saves one
+    transform per call.
+
+    Raises
+    ------
+    IllConditionedError
+        Under the same condition as :func:`fit_monopole_dipole`.
+    """
+    import ducc0
+
+    from . import _sht
+    from ._validation import resolve_nthreads
+
+    nthreads = resolve_nthreads(nthreads)
+    nside = int(round(np.sqrt(m.size / 12)))
+    a_w = _harmonic_sums(w, 2, nthreads) if sums_of_weights is None else sums_of_weights
+    first = _first_moments(a_w)
+    total = first[0]
+    mean_n = first[1:] / total if total > 0 else np.zeros(3)
+    cov = _second_moments(a_w) / total - np.outer(mean_n, mean_n) if total > 0 else np.zeros((3, 3))
+    if not total > 0 or np.linalg.eigvalsh(cov)[0] < _SMALL_PATCH_SPREAD:
+        # small patch: the centred sums lose digits to cancellation; take the pixel path
+        clean, _ = remove_monopole_dipole(m, w)
+        clean *= w
+        return clean
+    n_used = int(np.count_nonzero(w))
+    # centre the map on its weighted mean in pixel space (exact), so that only the fluctuations enter
+    # the harmonic sums; the mean is added back to the monopole below
+    offset = float(np.dot(w, m)) / float(w.sum())
+    wm = m - offset
+    wm *= w
+    a_wm = _harmonic_sums(wm, 1, nthreads)
+    sums_m = _first_moments(a_wm)
+    mean_m = sums_m[0] / total
+    cross = sums_m[1:] / total - mean_n * mean_m
+    _condition_of_fit(mean_n, cov, n_used)
+    d = np.linalg.solve(cov, cross)
+    mono = mean_m - float(d @ mean_n)
+    # the model a + d.n as coefficients up to lmax 1 (layout a00, a10, a11)
+    alm = np.zeros((1, 3), dtype=np.complex128)
+    alm[0, 0] = mono * _S0
+    alm[0, 1] = d[2] * _S10
+    alm[0, 2] = (-d[0] + 1j * d[1]) * (0.5 * _S11)  # a_11 Y_11 + a_1-1 Y_1-1 = dx x + dy y
+    # synthesize the model ring block by ring block (about 2**22 pixels, 32 MB, each: fewer calls cost
+    # less) and subtract it in place, so that no second map-sized array is alive
+    geom = _sht.ring_geometry(nside)
+    starts = geom["ringstart"].astype(np.int64)
+    n_rings = starts.size
+    bounds = np.append(starts, m.size)
+    r0 = 0
+    while r0 < n_rings:
+        r1 = int(np.searchsorted(bounds, bounds[r0] + _MODEL_BLOCK, side="right")) - 1
+        r1 = min(n_rings, max(r1, r0 + 1))
+        p0, p1 = int(bounds[r0]), int(bounds[r1])
+        block = ducc0.sht.experimental.synthesis(
+            alm=alm, lmax=1, spin=0, nthreads=nthreads, theta=geom["theta"][r0:r1], phi0=geom["phi0"][r0:r1],
+            nphi=geom["nphi"][r0:r1], ringstart=(geom["ringstart"][r0:r1] - geom["ringstart"][r0]),
+        )[0]
+        block *= w[p0:p1]
+        wm[p0:p1] -= block
+        r0 = r1
+    return wm

@@ -206,7 +206,18 @@ def _resolve_inputs(
     if coupling not in _COUPLING_MODES:
         raise InvalidInputError(f"The 'coupling' parameter must be 'exact' or 'fast'. Got {coupling!r} instead.")
     fast = None
-    if coupling == "fast":
+    explicit = fast_l_exact is not None or fast_l_toeplitz is not None or fast_band is not None
+    if coupling == "fast" and not explicit and lmax > _coupling.fast_lmax_limit(nside):
+        pass  # the banded form cannot represent the grid's aliasing up there: the exact matrix it is
+    elif coupling == "fast":
+        if lmax > _coupling.fast_lmax_limit(nside):
+            warnings.warn(
+                f"The fast coupling approximation with lmax={lmax} above 2*nside={2 * nside} misses the "
+                f"HEALPix grid's aliasing: the highest bandpowers may be off by several percent "
+                f"(leave the fast_* settings unset to get the exact matrix there).",
+                CmbtoolsWarning,
+                stacklevel=3,
+            )
         d_exact, d_toep, d_band = _coupling.default_fast_settings(lmax)
         l_exact = d_exact if fast_l_exact is None else check_int(fast_l_exact, "fast_l_exact", minimum=0, maximum=lmax)
         l_toep = (
@@ -269,6 +280,57 @@ def _resolve_inputs(
         mask1_sha256=_io.sha256_arrays(w1),
         mask2_sha256=None if w2 is None else _io.sha256_arrays(w2),
     )
+
+
+def _check_estimator_memory(mask, binning, *, lmax, mask2, n_iter, covariance, force) -> int | None:
+    """Refuse, before any large allocation, an estimator whose construction would not fit in memory.
+
+    Estimates the peak of :meth:`SpectrumEstimator._build` phase by phase (the
+    largest wins; see :mod:`cmbtools._resources`): the copies of the masks; a
+    mask transform up to ``2*lmax`` (the coefficients of every mask and
+    ducc0's ring buffer of ``(4 nside - 1) x (2 lmax + 1)`` complex values, or,
+    for large transforms, the pieces of the split transform of
+    :func:`cmbtools._sht.map_spectra`); the dense
+    ``(lmax+1) x (lmax+1)`` coupling matrix (one at a time; two for the
+    covariance of an auto-spectrum; ``coupling='fast'`` fills a dense matrix
+    too); and the binned ``(n_bins, lmax+1)`` and ``(n_bins, n_bins)``
+    results.  Returns the estimate in bytes, or None for inputs that
+    :func:`_resolve_inputs` will refuse with its own message.
+    """
+    from ._resources import check_memory, estimate_alm_bytes, estimate_coupling_bytes, estimate_map_bytes
+    from .exceptions import CmbtoolsError
+
+    try:
+        nside = nside_from_npix(np.size(mask), "mask")
+        lmax = 3 * nside - 1 if lmax is None else check_lmax(lmax, nside)
+        refine = check_int(n_iter, "n_iter", minimum=0, maximum=20) > 0
+    except CmbtoolsError:
+        return None
+    n_bins = binning.n_bins if isinstance(binning, Binning) else lmax + 1
+    covariance = isinstance(covariance, (bool, np.bool_)) and bool(covariance)
+    cross = mask2 is not None
+    lw = _coupling.mask_lmax(lmax, nside, 1 if refine else 0)
+    masks = estimate_map_bytes(nside, 2 if cross else 1)
+    alm = estimate_alm_bytes(lw)
+    n_masks = 2 if cross else 1
+    leg = _sht._leg_bytes(nside, lw)  # ducc0's buffer of Legendre coefficients
+    if refine:  # full coefficients of every mask, plus a synthesized map, the residual and the correction
+        transform = n_masks * alm + leg + estimate_map_bytes(nside, 2) + alm
+    elif leg + n_masks * alm <= 2 * _sht.LEG_BUFFER_BYTES:  # one call per mask (see _sht.map_spectra)
+        transform = n_masks * alm + leg
+    else:  # split: one group of m per mask, its partial sum and one group of rings' buffer
+        transform = (n_masks + 2) * _sht.LEG_BUFFER_BYTES
+    matrix = estimate_coupling_bytes(lmax)
+    row, square = 8 * n_bins * (lmax + 1), 8 * n_bins * n_bins
+    results = (3 if cross else 1) * row + (5 if covariance else 3) * square
+    phases = [
+        masks + transform,  # the transforms of the masks
+        masks + matrix + results + row + 4 * square,  # one coupling matrix, then its binned inverse
+    ]
+    if covariance:  # the squared mask (and mask1 * mask2): a map, its transform, one or two matrices
+        extra = estimate_map_bytes(nside, 1)
+        phases += [masks + extra + transform + results, masks + extra + (1 if cross else 2) * matrix + results + row]
+    return check_memory(max(phases), f"Building the spectrum estimator at nside {nside} with lmax {lmax}", force=force)
 
 
 # ----------------------------------------------------------------------------- building blocks
@@ -378,6 +440,11 @@ class SpectrumEstimator:
         123538) for large lmax: exact below ``fast_l_exact``, a band of
         half-width ``fast_band`` around the diagonal up to ``fast_l_toeplitz``,
         Toeplitz above.  Defaults: :func:`cmbtools._coupling.default_fast_settings`.
+        With ``lmax`` above ``2 nside`` the exact matrix is computed instead
+        (unless the settings below are given): there the coupling is dominated
+        by the HEALPix grid's aliasing, which a banded form cannot represent
+        (bandpowers off by 0.5% at 2.5 nside and 14% at 3 nside, against a few
+        1e-6 up to 2.4 nside).
         It agrees with ``'exact'`` to < 1e-3 for bins up to ``2 nside``; above,
         it misses the quadrature-aliasing part of the exact matrix (percent
         level near ``3 nside``).
@@ -404,6 +471,11 @@ class SpectrumEstimator:
         ``Bandpowers.covariance``.
     max_condition_number : float, default=MAX_CONDITION_NUMBER (1e3)
         Largest accepted condition number of the binned coupling matrix.
+    force : bool, default=False
+        Build even when the memory estimate (mask transforms up to ``2*lmax``,
+        coupling matrices), made before any large allocation, exceeds what the
+        machine has available: warn instead of raising (see
+        :func:`cmbtools._resources.check_memory`).
 
     Attributes
     ----------
@@ -428,6 +500,9 @@ class SpectrumEstimator:
         Bad settings, or mask and mask2 of different nside.
     IllConditionedError
         If the binned coupling matrix cannot be inverted reliably.
+    MemoryLimitError
+        If building would need more memory than the machine has available
+        (unless ``force``); the message gives the estimate.
 
     Notes
     -----
@@ -487,7 +562,11 @@ class SpectrumEstimator:
         nthreads=None,
         covariance=False,
         max_condition_number=MAX_CONDITION_NUMBER,
+        force=False,
     ):
+        _check_estimator_memory(
+            mask, binning, lmax=lmax, mask2=mask2, n_iter=n_iter, covariance=covariance, force=force
+        )
         inputs = _resolve_inputs(
             mask,
             binning,
@@ -525,14 +604,24 @@ class SpectrumEstimator:
         f12 = inp.beam1 * inp.beam2 * inp.pixwin**2 * np.sqrt(inp.transfer1 * inp.transfer2)
         same_factor = np.array_equal(f1, f2) and np.array_equal(f1, f12)
 
-        alm1 = _sht.map2alm(inp.mask1, lw, n_iter=inp.n_iter, nthreads=nthreads)
-        w11 = _sht.alm2cl(alm1, lmax=lw)
-        if inp.mask2 is not None:
-            alm2 = _sht.map2alm(inp.mask2, lw, n_iter=inp.n_iter, nthreads=nthreads)
-            w22 = _sht.alm2cl(alm2, lmax=lw)
-            w12 = _sht.alm2cl(alm1, alm2, lmax=lw)
-            del alm2
-        del alm1
+        if inp.n_iter == 0:  # never holds the masks' full coefficients (see _sht.map_spectra)
+            masks = [inp.mask1] if inp.mask2 is None else [inp.mask1, inp.mask2]
+            rings = _sht.occupied_rings(inp.mask1)
+            if inp.mask2 is not None:
+                rings = rings | _sht.occupied_rings(inp.mask2)
+            spectra = _sht.map_spectra(masks, lw, nthreads=nthreads, rings=rings)
+            w11 = spectra[0]
+            if inp.mask2 is not None:
+                w22, w12 = spectra[1], spectra[2]
+        else:
+            alm1 = _sht.map2alm(inp.mask1, lw, n_iter=inp.n_iter, nthreads=nthreads)
+            w11 = _sht.alm2cl(alm1, lmax=lw)
+            if inp.mask2 is not None:
+                alm2 = _sht.map2alm(inp.mask2, lw, n_iter=inp.n_iter, nthreads=nthreads)
+                w22 = _sht.alm2cl(alm2, lmax=lw)
+                w12 = _sht.alm2cl(alm1, alm2, lmax=lw)
+                del alm2
+            del alm1
 
         def pm_of(w):
             m = _coupling.coupling_matrix(w, lmax, fast=fast, nthreads=nthreads)
@@ -565,8 +654,11 @@ class SpectrumEstimator:
         g11 = g12 = None
         if inp.covariance:
             sq = inp.mask1 * inp.mask1
-            a_sq = _sht.map2alm(sq, lw, n_iter=inp.n_iter, nthreads=nthreads)
-            m2 = _coupling.coupling_matrix(_sht.alm2cl(a_sq, lmax=lw), lmax, fast=fast, nthreads=nthreads, scale_columns=False)
+            m2 = _coupling.coupling_matrix(
+                _coupling.mask_spectrum(sq, lmax=lmax, n_iter=inp.n_iter, nthreads=nthreads),
+                lmax, fast=fast, nthreads=nthreads, scale_columns=False,
+            )
+            del sq
             if inp.mask2 is None:
                 g12 = None if same_factor else _covariance_kernel(m2.copy(), f12, binning, lmax)
                 g11 = _covariance_kernel(m2, f1, binning, lmax)
@@ -574,8 +666,11 @@ class SpectrumEstimator:
                 g11 = _covariance_kernel(m2, f1, binning, lmax)
                 del m2
                 prod = inp.mask1 * inp.mask2
-                a_pr = _sht.map2alm(prod, lw, n_iter=inp.n_iter, nthreads=nthreads)
-                m2 = _coupling.coupling_matrix(_sht.alm2cl(a_pr, lmax=lw), lmax, fast=fast, nthreads=nthreads, scale_columns=False)
+                m2 = _coupling.coupling_matrix(
+                    _coupling.mask_spectrum(prod, lmax=lmax, n_iter=inp.n_iter, nthreads=nthreads),
+                    lmax, fast=fast, nthreads=nthreads, scale_columns=False,
+                )
+                del prod
                 g12 = _covariance_kernel(m2, f12, binning, lmax)
             del m2
 
@@ -613,7 +708,11 @@ class SpectrumEstimator:
         raise AttributeError(f"SpectrumEstimator is immutable; cannot delete {name!r}")
 
     def __getstate__(self):
-        return dict(self.__dict__)
+        # the thread count belongs to the process: an estimator sent to a worker process uses that
+        # worker's budget ($CMBTOOLS_NUM_THREADS, set by the Monte Carlo engine), never oversubscribes
+        state = dict(self.__dict__)
+        state["_nthreads"] = None
+        return state
 
     def __setstate__(self, state):
         for k, v in state.items():
@@ -774,21 +873,42 @@ class SpectrumEstimator:
                     f"estimator, or use cmbtools.spectrum.estimate_spectrum, which does that for you."
                 )
             a = np.where(bad, 0.0, a)
+        peak = float(np.max(np.abs(a[mask > 0]), initial=0.0))
+        if peak > _LARGEST_MAP_VALUE:
+            raise InvalidInputError(
+                f"The {name!r} has values up to {peak:.3g} inside the mask; the transforms square and sum them, "
+                f"which overflows double precision beyond {_LARGEST_MAP_VALUE:g} (K). Check the map's unit."
+            )
         if self.remove_monopole_dipole:
-            from ._dipole import remove_monopole_dipole
+            from ._dipole import masked_without_monopole_dipole, weight_sums
 
-            a, _ = remove_monopole_dipole(a, mask)
+            key = "_weight_sums2" if is_second else "_weight_sums1"
+            sums = self._cached(key, lambda: weight_sums(mask, nthreads=self._nthreads))
+            return masked_without_monopole_dipole(a, mask, nthreads=self._nthreads, sums_of_weights=sums)
         return a * mask
 
-    def _alm(self, masked):
-        return _sht.map2alm(masked, self.lmax, n_iter=self._inputs.n_iter, nthreads=self._nthreads)
+    def _cached(self, key, make):
+        """A small derived quantity of the masks, computed on first use and kept."""
+        value = self.__dict__.get(key)
+        if value is None:
+            value = make()
+            object.__setattr__(self, key, value)
+        return value
+
+    def _alm(self, masked, is_second=False):
+        if self._inputs.n_iter:
+            return _sht.map2alm(masked, self.lmax, n_iter=self._inputs.n_iter, nthreads=self._nthreads)
+        # the masked map is zero on the rings the mask does not touch: the transform skips them
+        mask = self.mask2 if is_second else self.mask
+        rings = self._cached("_rings2" if is_second else "_rings1", lambda: _sht.occupied_rings(mask))
+        return _sht.map2alm(masked, self.lmax, nthreads=self._nthreads, rings=rings)
 
     def pseudo_spectrum(self, map1, map2=None) -> np.ndarray:
         """Pseudo-Cl (ell = 0..lmax, K^2) of the masked map(s), after the monopole/dipole removal."""
         a1 = self._alm(self._prepare(map1, "map1", self.mask))
         if map2 is None:
             return _sht.alm2cl(a1, lmax=self.lmax)
-        a2 = self._alm(self._prepare(map2, "map2", self.mask2, True))
+        a2 = self._alm(self._prepare(map2, "map2", self.mask2, True), True)
         return _sht.alm2cl(a1, a2, lmax=self.lmax)
 
     def estimate(self, map1, map2=None, *, noise_cl=None, noise_maps=None):
@@ -841,7 +961,7 @@ class SpectrumEstimator:
         total11 = ainv11 @ self._bin_pseudo(pseudo11)
         noise_b = None
         if cross:
-            a2 = self._alm(self._prepare(map2, "map2", self.mask2, True))
+            a2 = self._alm(self._prepare(map2, "map2", self.mask2, True), True)
             pseudo12 = _sht.alm2cl(a1, a2, lmax=lmax)
             pseudo22 = _sht.alm2cl(a2, lmax=lmax)
             _, _, ainv12 = self._pair(True)
@@ -963,7 +1083,12 @@ class SpectrumEstimator:
         if cross:
             meta["transfer2"] = inp.descriptions["transfer2"]
         meta["monopole_dipole_removed"] = "yes" if inp.remove_monopole_dipole else "no"
-        meta["coupling"] = inp.coupling if inp.fast is None else "fast l_exact={} l_toeplitz={} band={}".format(*inp.fast)
+        if inp.fast is not None:
+            meta["coupling"] = "fast l_exact={} l_toeplitz={} band={}".format(*inp.fast)
+        elif inp.coupling == "fast":
+            meta["coupling"] = "fast (exact matrix: lmax above 2 nside)"
+        else:
+            meta["coupling"] = inp.coupling
         meta["n_iter"] = inp.n_iter
         meta["condition_number"] = float(f"{self.condition_number:.6g}")
         meta["errors"] = "Knox formula with f_sky_eff = w2^2/w4"
@@ -1045,7 +1170,8 @@ class SpectrumEstimator:
         """
         p = _io.check_input_file(path)
         try:
-            with np.load(p, allow_pickle=False) as z:
+            # open the file here: np.load leaves its own handle open when the zip is damaged
+            with open(p, "rb") as fh, np.load(fh, allow_pickle=False) as z:
                 data = {k: z[k] for k in z.files}
         except Exception as exc:  # noqa: BLE001 - any decoding failure means a corrupt file
             raise CacheError(f"{p}: cannot read the estimator file ({type(exc).__name__}: {exc}); it is corrupt") from None
@@ -1101,13 +1227,15 @@ class SpectrumEstimator:
         return obj
 
     @classmethod
-    def load_or_build(cls, path, mask, binning, **kwargs) -> "SpectrumEstimator":
+    def load_or_build(cls, path, mask, binning, *, force=False, **kwargs) -> "SpectrumEstimator":
         """Load the estimator saved at ``path`` if it was built from these inputs, else build and save it.
 
         The inputs are identified by their hash (:attr:`cache_key`).  A file
         built from other inputs (stale) or a corrupt file is reported with a
         :class:`~cmbtools.exceptions.CmbtoolsWarning` and replaced,
-        atomically, by a freshly built estimator.
+        atomically, by a freshly built estimator.  A file that is not a
+        ``.npz`` archive at all (a map given as the cache path by mistake,
+        ...) is never replaced.
 
         Parameters
         ----------
@@ -1115,10 +1243,23 @@ class SpectrumEstimator:
             The ``.npz`` cache file.
         mask, binning, **kwargs
             As for :class:`SpectrumEstimator`.
+        force : bool, default=False
+            When building: go ahead even if the memory estimate exceeds what
+            the machine has available (as for :class:`SpectrumEstimator`).
+
+        Raises
+        ------
+        CacheError
+            If ``path`` holds a file that is not a ``.npz`` archive.
         """
         p = Path(path)
         nthreads = kwargs.get("nthreads")
         if p.exists():
+            if not _may_replace_as_cache(p):
+                raise CacheError(
+                    f"{p}: is not an estimator cache (not a .npz archive) and is left alone; "
+                    "choose another cache path or delete the file"
+                )
             key = _resolve_inputs(mask, binning, **kwargs).cache_key
             try:
                 est = cls.load(p, nthreads=nthreads)
@@ -1135,7 +1276,7 @@ class SpectrumEstimator:
                 )
         else:
             _io.check_output_path(p)
-        est = cls(mask, binning, **kwargs)
+        est = cls(mask, binning, force=force, **kwargs)
         est.save(p, overwrite=True)
         return est
 
@@ -1144,6 +1285,20 @@ class SpectrumEstimator:
             f"SpectrumEstimator(nside={self.nside}, lmax={self.lmax}, {self.binning!r}, "
             f"f_sky={self.f_sky:.3f}, coupling={self.coupling!r})"
         )
+
+
+#: Largest |map value| (K) the estimator accepts: squares summed over up to 12 * 2**58 pixels stay finite.
+_LARGEST_MAP_VALUE = 1e100
+
+
+def _may_replace_as_cache(p: Path) -> bool:
+    """Whether an existing file may be replaced by a cache: an empty file or a zip archive (.npz), damaged or not."""
+    try:
+        with open(p, "rb") as fh:
+            head = fh.read(2)
+    except OSError:
+        return True  # not a readable file: load() reports it
+    return head in (b"", b"PK")
 
 
 def _checksum(arrays: dict, text: str) -> str:

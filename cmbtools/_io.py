@@ -16,6 +16,7 @@ import contextlib
 import errno
 import hashlib
 import os
+import stat
 import tempfile
 from pathlib import Path
 
@@ -43,6 +44,8 @@ def check_input_file(path) -> Path:
     """
     if not str(path).strip():
         raise InputFileError(repr(str(path)), "is an empty file name")
+    if "\x00" in str(path):
+        raise InputFileError(repr(str(path)), "contains a NUL character, which no file name can hold")
     p = Path(path)
     if not p.exists():
         raise InputFileError(p, "no such file")
@@ -67,6 +70,8 @@ def check_output_path(path, *, overwrite: bool = False) -> Path:
     """
     if not str(path).strip():
         raise OutputPathError(repr(str(path)), "is an empty file name")
+    if "\x00" in str(path):
+        raise OutputPathError(repr(str(path)), "contains a NUL character, which no file name can hold")
     p = Path(path)
     parent = p.parent if str(p.parent) else Path(".")
     if p.is_dir():
@@ -130,11 +135,32 @@ def atomic_output(path, *, overwrite: bool = False, suffix: str | None = None):
             raise OutputExistsError(final)
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
+        # mkstemp makes the file private (0600); give it the mode a plainly
+        # created file would have: the old file's, or 0666 less the umask.
+        try:
+            mode = stat.S_IMODE(final.stat().st_mode)
+        except FileNotFoundError:
+            mode = 0o666 & ~_umask()
+        os.chmod(tmp, mode)
         os.replace(tmp, final)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
             tmp.unlink()
         raise
+
+
+def _umask() -> int:
+    """The process's file-creation mask, read without changing it where Linux allows."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError, IndexError):
+        pass
+    current = os.umask(0o022)  # elsewhere: set and restore (not thread-safe, but brief)
+    os.umask(current)
+    return current
 
 
 def sha256_file(path, *, chunk_bytes: int = 1 << 20) -> str:
@@ -158,7 +184,9 @@ def sha256_arrays(*items) -> str:
             a = np.ascontiguousarray(item)
             a = a.astype(a.dtype.newbyteorder("<"), copy=False)
             h.update(f"ndarray:{a.dtype.str}:{a.shape}:".encode())
-            h.update(a.tobytes())
+            flat = a.reshape(-1)
+            for start in range(0, flat.size, 1 << 20):  # in blocks: no copy of a large array
+                h.update(flat[start:start + (1 << 20)].view(np.uint8))
         else:
             h.update(f"{type(item).__name__}:{item!r};".encode())
     return h.hexdigest()

@@ -550,8 +550,8 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
     OutputExistsError
         If ``path`` exists and ``overwrite`` is false.
     InvalidInputError
-        For a malformed map, an unknown unit or dtype, or ``partial=True`` with
-        no valid pixel.
+        For a malformed map, an unknown unit or dtype, a value that does not
+        fit in the dtype (in the unit), or ``partial=True`` with no valid pixel.
     """
     import healpy as hp
     from astropy.io import fits
@@ -586,8 +586,17 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
     bad = missing_pixels(a)
     values = a.copy()
     if unit is not None and scale != 1.0:
-        values[~bad] /= scale
+        with np.errstate(over="ignore"):  # checked just below
+            values[~bad] /= scale
     values[bad] = UNSEEN
+    too_big = ~bad & ~(np.abs(values) <= np.finfo(out_dtype).max)
+    if too_big.any():
+        i = int(np.argmax(too_big))
+        raise InvalidInputError(
+            f"The map value {float(a[i])!r} at pixel {i} does not fit in {out_dtype.name}"
+            + (f" (in {unit})" if unit is not None else "")
+            + ("; write the map with dtype='float64'." if out_dtype == np.float32 else ".")
+        )
     if nest:
         values = hp.reorder(values, r2n=True)
         bad = hp.reorder(bad.astype(np.int8), r2n=True).astype(bool)

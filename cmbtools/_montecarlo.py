@@ -78,6 +78,7 @@ import math
 import os
 import pickle
 import re
+import types
 import uuid
 import warnings
 from pathlib import Path
@@ -254,6 +255,9 @@ def _pool_task(index, seed):
     return _execute(_WORKER_JOB, index, seed)
 
 
+#: Largest number of simulations in one run (a bound that keeps a typo from exhausting memory).
+MAX_SIMULATIONS = 10_000_000
+
 #: The thread count this module put into $CMBTOOLS_NUM_THREADS of a dask worker
 #: (None: not set by us, so a value found there was set by the user and is kept).
 _DASK_THREADS_SET = None
@@ -329,7 +333,8 @@ def _write_record(run_dir: Path, index: int, arrays: dict, input_hash: str) -> N
 def _read_record(path: Path, index: int, input_hash: str):
     """Return (arrays, None) for a good record, or (None, problem)."""
     try:
-        with np.load(path, allow_pickle=False) as z:
+        # open the file here: np.load leaves its own handle open when the zip is damaged
+        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as z:
             data = {k: z[k] for k in z.files}
     except Exception as exc:  # any unreadable file is treated the same way: redo it
         return None, f"cannot be read ({type(exc).__name__}: {exc})"
@@ -605,6 +610,71 @@ class _Store:
         self.progress.update()
 
 
+# --------------------------------------------------------------------------- memory of a run
+
+_SKIP_TYPES = (type, types.ModuleType, types.FunctionType, types.BuiltinFunctionType, types.MethodType)
+
+
+def _approx_nbytes(obj, seen=None, depth=0) -> int:
+    """Bytes of the numpy arrays (and strings) reachable from ``obj``, each counted once.
+
+    Follows dicts, sequences, instance attributes and slots (so dataclasses
+    and the spectrum estimator are covered); skips modules, classes and
+    functions.  Used as the size of a run's context, which each worker holds.
+    """
+    if seen is None:
+        seen = set()
+    if depth > 30 or id(obj) in seen or len(seen) > 100_000 or isinstance(obj, _SKIP_TYPES):
+        return 0
+    seen.add(id(obj))
+    if isinstance(obj, np.ndarray):
+        return int(obj.nbytes)
+    if isinstance(obj, (str, bytes, bytearray)):
+        return len(obj)
+    if isinstance(obj, dict):
+        items = [*obj.keys(), *obj.values()]
+    elif isinstance(obj, (list, tuple, set, frozenset)):
+        items = list(obj)
+    else:
+        attrs = getattr(obj, "__dict__", None)
+        items = list(attrs.values()) if isinstance(attrs, dict) else []
+        for cls in type(obj).__mro__:
+            slots = cls.__dict__.get("__slots__", ())
+            for name in (slots,) if isinstance(slots, str) else slots:
+                if name not in ("__dict__", "__weakref__"):
+                    items.append(getattr(obj, name, None))
+    return sum(_approx_nbytes(x, seen, depth + 1) for x in items)
+
+
+def _check_run_memory(context, per_simulation, n_sims, executor, client, workers, force):
+    """Refuse a run whose workers together would need more memory than the machine has, before any starts.
+
+    Local pool: every worker process holds the pickled job and its unpickled
+    copy (twice the context) plus one simulation; the parent holds one more
+    pickle.  Other executors: as many simulations at once as the executor has
+    workers (threads share the context).  dask workers run on their own hosts
+    under dask's own memory limits and are not checked.
+    """
+    from ._resources import check_memory, format_bytes
+
+    if client is not None:
+        return None
+    per_sim = 0 if per_simulation is None else per_simulation
+    if executor is None:
+        n = max(1, min(workers, n_sims))
+        shared = _approx_nbytes(context)
+        need = n * (2 * shared + per_sim) + shared
+        where = f"{n} worker process{'es' if n != 1 else ''}"
+    else:
+        n = max(1, min(int(getattr(executor, "_max_workers", 1) or 1), n_sims))
+        shared = 0 if isinstance(executor, cf.ThreadPoolExecutor) else _approx_nbytes(context)
+        need = n * (shared + per_sim)
+        where = f"{n} concurrent task{'s' if n != 1 else ''}"
+    return check_memory(
+        need, f"Running {n_sims} simulations on {where} (about {format_bytes(need / n)} each)", force=force
+    )
+
+
 # --------------------------------------------------------------------------- public: generic runs
 
 
@@ -673,6 +743,8 @@ def run_simulations(
     max_restarts=3,
     input_hash=None,
     description="simulations",
+    memory_per_simulation=None,
+    force=False,
 ) -> SimulationSet:
     """Run a per-simulation function many times, in parallel, streaming to disk.
 
@@ -718,6 +790,16 @@ def run_simulations(
         the cmbtools version.
     description : str, default='simulations'
         Label of the progress bar.
+    memory_per_simulation : int, optional
+        Bytes one call of ``simulate_one`` allocates at its peak (your
+        estimate).  Before any worker starts, this plus the size of
+        ``context`` is multiplied by the number of workers that run at once
+        and compared with the memory available
+        (:func:`cmbtools._resources.check_memory`); without it only the
+        copies of the context are counted.  dask clusters are not checked.
+    force : bool, default=False
+        Run even when that estimate exceeds the memory available (warn
+        instead of raising).
 
     Returns
     -------
@@ -734,6 +816,9 @@ def run_simulations(
     InvalidInputError
         Bad arguments, or a per-simulation function that returns something
         other than a dict of numeric arrays.
+    MemoryLimitError
+        The workers together would need more memory than the machine has
+        available (unless ``force``); nothing is run or written.
 
     Examples
     --------
@@ -748,7 +833,7 @@ def run_simulations(
     """
     if not callable(simulate_one):
         raise InvalidInputError(f"The 'simulate_one' parameter must be a callable. Got {simulate_one!r} instead.")
-    n_sims = check_int(n_sims, "n_sims", minimum=1)
+    n_sims = check_int(n_sims, "n_sims", minimum=1, maximum=MAX_SIMULATIONS)
     if seed is not None:
         seed = check_int(seed, "seed", minimum=0)
     max_restarts = check_int(max_restarts, "max_restarts", minimum=0)
@@ -770,6 +855,9 @@ def run_simulations(
         if threads_per_worker is None:
             threads_per_worker = max(1, cores // workers)
         threads_per_worker = check_int(threads_per_worker, "threads_per_worker", minimum=1)
+    if memory_per_simulation is not None:
+        memory_per_simulation = check_int(memory_per_simulation, "memory_per_simulation", minimum=0)
+    _check_run_memory(context, memory_per_simulation, n_sims, executor, client, workers, force)
 
     job = _Job(simulate_one, context)
     identity = _inputs_hash(simulate_one, context, input_hash)
@@ -1122,8 +1210,11 @@ class ValidationResult:
                 a.spines[side].set_visible(False)
         s = self.summary()
         if title is None:
-            title = (f"{self.n_sims} simulations: max |bias| {s['max_abs_bias_sigma']:.2f} sigma, "
-                     f"median error ratio {s['median_error_ratio']:.3f}")
+            def num(key, spec):  # None: not a number (a null run has no scatter)
+                return "n/a" if s[key] is None else format(s[key], spec)
+
+            title = (f"{self.n_sims} simulations: max |bias| {num('max_abs_bias_sigma', '.2f')} sigma, "
+                     f"median error ratio {num('median_error_ratio', '.3f')}")
         ax.set_title(title, fontsize=10, loc="left", color=ink)
         fig.text(0.99, 0.005, f"cmbtools {__version__}", ha="right", va="bottom", fontsize=6, color=soft)
         with atomic_output(out, overwrite=overwrite) as tmp:
@@ -1242,14 +1333,36 @@ class _ValidationSetup:
     record_pseudo: bool
 
 
+def _validation_memory(estimator, noise, with_dipole, with_filter) -> int:
+    """Peak bytes of one :func:`_simulate_and_estimate` (the phases run one after the other; the largest wins).
+
+    The optional pseudo-spectrum is one more measurement of the same size.
+    """
+    from ._resources import estimate_alm_bytes, estimate_map_bytes
+    from ._skies import _noise_bytes, _sky_bytes
+
+    nside, lmax = int(estimator.nside), int(estimator.lmax)
+    one = estimate_map_bytes(nside)
+    alm = estimate_alm_bytes(lmax)
+    # a measurement: the filled and the masked copies of the map, the coefficients and the larger of
+    # the transform's ring buffer and the temporaries of the spectrum
+    measure = 3 * one + alm + max(16 * (4 * nside - 1) * (lmax + 1), 3 * alm)
+    phases = [_sky_bytes(nside, lmax, with_dipole), one + measure]
+    if with_filter:  # the sky, the filtered sky and its float64 copy
+        phases.append(3 * one)
+    if noise is not None:  # the sky while its noise is drawn; then the sky, the noise and their sum
+        phases += [one + _noise_bytes(noise, nside, lmax), 3 * one]
+    return max(phases)
+
+
 def _simulate_and_estimate(index, rng, setup):
     """One validation simulation: sky (+ filter) (+ noise) -> bandpowers."""
-    from ._skies import gaussian_sky, noise_map
+    from ._skies import _ALREADY_CHECKED, gaussian_sky, noise_map
 
     est = setup.estimator
     sky = gaussian_sky(
         setup.cl, est.nside, lmax=est.lmax, beam=setup.sky_beam, pixel_window=False,
-        monopole=setup.monopole, dipole=setup.dipole, rng=rng,
+        monopole=setup.monopole, dipole=setup.dipole, rng=rng, force=_ALREADY_CHECKED,
     )
     if setup.sky_filter is not None:
         filtered = np.asarray(setup.sky_filter(sky), dtype=np.float64)
@@ -1262,7 +1375,7 @@ def _simulate_and_estimate(index, rng, setup):
     if setup.record_pseudo:
         out["pseudo_cl"] = est.pseudo_spectrum(sky)
     if setup.noise is not None:
-        sky = sky + noise_map(setup.noise, est.nside, rng=rng)
+        sky = sky + noise_map(setup.noise, est.nside, rng=rng, force=_ALREADY_CHECKED)
     bp = est.estimate(sky, noise_cl=setup.noise_cl)
     out["cl"] = bp.cl
     out["cl_err"] = bp.cl_err
@@ -1287,6 +1400,7 @@ def validate_estimator(
     progress=None,
     restart=False,
     max_restarts=3,
+    force=False,
 ) -> ValidationResult:
     """Check a spectrum estimator on simulated skies: bias, error bars and transfer per bin.
 
@@ -1329,6 +1443,11 @@ def validate_estimator(
         more transform per simulation); the result's ``mean_pseudo_cl``.
     run_dir, executor, workers, threads_per_worker, progress, restart, max_restarts
         As in :func:`run_simulations`.
+    force : bool, default=False
+        Run even when the memory estimate (one simulated sky, its noise and
+        its measurement per worker, times the workers that run at once)
+        exceeds what the machine has available: warn instead of raising
+        :class:`~cmbtools.exceptions.MemoryLimitError`.
 
     Returns
     -------
@@ -1348,7 +1467,7 @@ def validate_estimator(
                 f"The 'estimator' parameter must be a cmbtools.spectrum.SpectrumEstimator. Got {type(estimator).__name__} instead."
             )
     lmax, nside = int(estimator.lmax), int(estimator.nside)
-    n_sims = check_int(n_sims, "n_sims", minimum=2)
+    n_sims = check_int(n_sims, "n_sims", minimum=2, maximum=MAX_SIMULATIONS)
     if cl is None:
         from ._fiducial import fiducial_cl
 
@@ -1393,6 +1512,8 @@ def validate_estimator(
         _simulate_and_estimate, n_sims, seed=seed, context=setup, run_dir=run_dir, executor=executor,
         workers=workers, threads_per_worker=threads_per_worker, progress=progress, restart=restart,
         max_restarts=max_restarts, description="validation",
+        memory_per_simulation=_validation_memory(estimator, noise, dipole is not None, sky_filter is not None),
+        force=force,
     )
     binning = estimator.binning
     metadata = {
@@ -1419,7 +1540,7 @@ def validate_estimator(
 
 
 def validate_pipeline(mask, binning, cl=None, *, beam=None, noise=None, pixel_window=True, n_sims=100, seed=None,
-                      estimator_options=None, **run_options) -> ValidationResult:
+                      estimator_options=None, force=False, **run_options) -> ValidationResult:
     """Build a spectrum estimator and check it on simulated skies, in one call.
 
     Equivalent to ``validate_estimator(SpectrumEstimator(mask, binning,
@@ -1444,6 +1565,9 @@ def validate_pipeline(mask, binning, cl=None, *, beam=None, noise=None, pixel_wi
     estimator_options : dict, optional
         More keyword arguments of :class:`~cmbtools.spectrum.SpectrumEstimator`
         (``lmax``, ``coupling``, ``remove_monopole_dipole``, ...).
+    force : bool, default=False
+        Go ahead even when the memory estimate of the estimator or of the
+        simulations exceeds what the machine has available (both steps).
     **run_options
         Keyword arguments of :func:`validate_estimator` (``run_dir``,
         ``executor``, ``workers``, ``progress``, ``monopole``, ...).
@@ -1455,5 +1579,6 @@ def validate_pipeline(mask, binning, cl=None, *, beam=None, noise=None, pixel_wi
     from ._estimator import SpectrumEstimator
 
     options = dict(estimator_options or {})
+    options.setdefault("force", force)
     est = SpectrumEstimator(mask, binning, beam=beam, pixel_window=pixel_window, **options)
-    return validate_estimator(est, cl, noise=noise, n_sims=n_sims, seed=seed, **run_options)
+    return validate_estimator(est, cl, noise=noise, n_sims=n_sims, seed=seed, force=force, **run_options)

@@ -400,7 +400,8 @@ def _load_cached(path: Path, nside: int, lmax: int):
     if not path.exists():
         return None
     try:
-        with np.load(path, allow_pickle=False) as data:
+        # open the file here: np.load leaves its own handle open when the zip is damaged
+        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as data:
             window = np.array(data["window"], dtype=np.float64)
             f_nside = int(data["nside"])
             f_lmax = int(data["lmax"])

@@ -78,6 +78,56 @@ __all__ = [
 #: One arcminute in radians.
 ARCMIN_IN_RAD = math.pi / (180.0 * 60.0)
 
+#: Passed as ``force`` by callers that have checked the memory of the whole job already
+#: (the Monte Carlo engine): no second estimate, no repeated warning per simulation.
+_ALREADY_CHECKED = object()
+
+
+# --------------------------------------------------------------------------- memory estimates
+# Measured peaks (resident memory, nside 256-1024, lmax up to 1535) are within ~15% of these.
+
+
+def _synthesis_bytes(nside, lmax) -> int:
+    """One synthesis: coefficients with their filtered copy's temporaries, the output map and ducc's ring buffer.
+
+    The ring buffer holds about 1.25 x ``(4 nside - 1) x (lmax + 1)`` complex values (measured).
+    """
+    from ._resources import estimate_alm_bytes, estimate_map_bytes
+
+    ring = 16 * (4 * nside - 1) * (lmax + 1)
+    return estimate_map_bytes(nside) + int(1.5 * estimate_alm_bytes(lmax)) + int(1.25 * ring)
+
+
+def _sky_bytes(nside, lmax, with_dipole=False) -> int:
+    """Peak of :func:`gaussian_sky`: the draws (about four sets of coefficients), the synthesis, the dipole."""
+    from ._resources import estimate_alm_bytes, estimate_map_bytes
+
+    phases = [4 * estimate_alm_bytes(lmax), _synthesis_bytes(nside, lmax)]
+    if with_dipole:  # the map, the pixel numbers, three coordinate maps and two temporaries
+        phases.append(estimate_map_bytes(nside, 7))
+    return max(phases)
+
+
+def _noise_bytes(model, nside, lmax) -> int:
+    """Peak of :func:`noise_map`: the white draws, the correlated part's synthesis, the hits scaling."""
+    from ._resources import estimate_alm_bytes, estimate_map_bytes
+
+    one = estimate_map_bytes(nside)
+    phases = [2 * one]  # the draws and the scaled copy
+    if model.ell_knee is not None:
+        phases += [one + 4 * estimate_alm_bytes(lmax), one + _synthesis_bytes(nside, lmax)]
+    if model.hits is not None and "relative_sigma" not in model.__dict__:
+        phases.append(4 * one)  # the noise, then 1/hits, its square root and the observed-pixel selection
+    return max(phases)
+
+
+def _check_memory(need, what, force):
+    if force is _ALREADY_CHECKED:
+        return need
+    from ._resources import check_memory
+
+    return check_memory(need, what, force=force)
+
 
 # --------------------------------------------------------------------------- random streams
 
@@ -252,12 +302,20 @@ def _dipole_vector(dipole) -> np.ndarray:
     return v
 
 
-def dipole_map(nside, dipole) -> np.ndarray:
-    """A RING map of ``d . n`` for a dipole ``d`` (3-vector in K or :class:`Dipole`)."""
+def dipole_map(nside, dipole, *, force=False) -> np.ndarray:
+    """A RING map of ``d . n`` for a dipole ``d`` (3-vector in K or :class:`Dipole`).
+
+    ``force=True`` goes ahead (with a warning) when the map and its temporaries
+    (about six maps) would not fit in the memory available; otherwise that
+    raises :class:`~cmbtools.exceptions.MemoryLimitError` before allocating.
+    """
     import healpy as hp
+
+    from ._resources import estimate_map_bytes
 
     nside = check_nside(nside)
     v = _dipole_vector(dipole)
+    _check_memory(estimate_map_bytes(nside, 6), f"A dipole map at nside {nside}", force)
     x, y, z = hp.pix2vec(nside, np.arange(12 * nside * nside))
     return v[0] * x + v[1] * y + v[2] * z
 
@@ -273,6 +331,7 @@ def gaussian_sky(
     dipole=None,
     rng=None,
     nthreads=None,
+    force=False,
 ) -> np.ndarray:
     """Simulate a Gaussian CMB temperature map as an instrument would see it.
 
@@ -303,11 +362,20 @@ def gaussian_sky(
         Random source; use :func:`simulation_rng` for sets of simulations.
     nthreads : int, optional
         Threads for the transform (default: all cores).
+    force : bool, default=False
+        Go ahead (with a :class:`~cmbtools.exceptions.CmbtoolsWarning`) even
+        when the memory estimate exceeds what the machine has available.
 
     Returns
     -------
     m : ndarray of float64, shape (12*nside**2,)
         The map in K_CMB, RING ordering.
+
+    Raises
+    ------
+    MemoryLimitError
+        If the map, its coefficients and the transform would not fit in
+        memory (estimated before allocating; unless ``force``).
     """
     nside = check_nside(nside)
     cl = check_cl(cl, "cl")
@@ -325,6 +393,7 @@ def gaussian_sky(
     if not isinstance(pixel_window, (bool, np.bool_)):
         raise InvalidInputError(f"The 'pixel_window' parameter must be True or False. Got {pixel_window!r} instead.")
     dip = None if dipole is None else _dipole_vector(dipole)
+    _check_memory(_sky_bytes(nside, lmax, dip is not None), f"A simulated sky at nside {nside} with lmax {lmax}", force)
     b = _beam_factor(beam, lmax)
 
     transfer = np.ones(lmax + 1)
@@ -341,7 +410,7 @@ def gaussian_sky(
     if monopole:
         m += monopole
     if dip is not None:
-        m += dipole_map(nside, dip)
+        m += dipole_map(nside, dip, force=_ALREADY_CHECKED)
     return m
 
 
@@ -351,7 +420,12 @@ def gaussian_sky(
 def depth_to_white_noise(depth_uk_arcmin) -> float:
     """White-noise power N_white in K^2 of a map depth in uK-arcmin: ``(depth in K rad)^2``."""
     d = check_positive(depth_uk_arcmin, "depth_uk_arcmin", allow_zero=True)
-    return (d * 1e-6 * ARCMIN_IN_RAD) ** 2
+    sigma = d * 1e-6 * ARCMIN_IN_RAD
+    if sigma * sigma == math.inf:  # (float ** 2 would raise OverflowError instead)
+        raise InvalidInputError(
+            f"The 'depth_uk_arcmin' parameter is too large: its noise power overflows a double. Got {d!r} instead."
+        )
+    return sigma * sigma
 
 
 @dataclass(frozen=True, eq=False)
@@ -387,6 +461,7 @@ class NoiseModel:
 
     def __post_init__(self):
         object.__setattr__(self, "depth_uk_arcmin", check_positive(self.depth_uk_arcmin, "depth_uk_arcmin"))
+        depth_to_white_noise(self.depth_uk_arcmin)  # refuses a depth whose noise power overflows
         if self.hits is not None:
             h = as_map(self.hits, "hits").copy()
             h[missing_pixels(h)] = 0.0
@@ -465,8 +540,14 @@ def noise_spectrum(model, lmax, nside=None) -> np.ndarray:
     nl = np.full(lmax + 1, model.white_noise)
     if model.ell_knee is not None:
         ell = np.arange(1, lmax + 1, dtype=np.float64)
-        nl[1:] *= 1.0 + (model.ell_knee / ell) ** model.alpha
+        with np.errstate(over="ignore", invalid="ignore"):  # checked just below (0 * inf when N_white underflows)
+            nl[1:] *= 1.0 + (model.ell_knee / ell) ** model.alpha
         nl[0] = 0.0
+        if not np.all(np.isfinite(nl)):
+            raise InvalidInputError(
+                f"The noise model's correlated part N_white (ell_knee / l)^alpha overflows a double at l = 1 "
+                f"(ell_knee = {model.ell_knee!r}, alpha = {model.alpha!r}); lower 'ell_knee' or 'alpha'."
+            )
     return nl
 
 
@@ -484,7 +565,7 @@ def _check_model_nside(model, nside) -> int:
     return nside
 
 
-def noise_map(model, nside, *, rng=None, lmax=None, nthreads=None) -> np.ndarray:
+def noise_map(model, nside, *, rng=None, lmax=None, nthreads=None, force=False) -> np.ndarray:
     """Draw a noise map from a :class:`NoiseModel`.
 
     The white part is drawn pixel by pixel (standard deviation
@@ -504,15 +585,25 @@ def noise_map(model, nside, *, rng=None, lmax=None, nthreads=None) -> np.ndarray
         Largest multipole of the correlated part (default ``3*nside - 1``).
     nthreads : int, optional
         Threads for the transform of the correlated part.
+    force : bool, default=False
+        Go ahead (with a :class:`~cmbtools.exceptions.CmbtoolsWarning`) even
+        when the memory estimate exceeds what the machine has available.
 
     Returns
     -------
     n : ndarray of float64, shape (12*nside**2,)
         Noise in K_CMB, RING.
+
+    Raises
+    ------
+    MemoryLimitError
+        If the noise map and its temporaries would not fit in memory
+        (estimated before allocating; unless ``force``).
     """
     model = _check_model(model)
     nside = _check_model_nside(model, nside)
     lmax = 3 * nside - 1 if lmax is None else check_lmax(lmax, nside)
+    _check_memory(_noise_bytes(model, nside, lmax), f"A noise map at nside {nside}", force)
     gen = resolve_rng(rng)
     npix = 12 * nside * nside
     sigma = math.sqrt(model.white_noise * npix / (4.0 * math.pi))
@@ -529,9 +620,9 @@ def noise_map(model, nside, *, rng=None, lmax=None, nthreads=None) -> np.ndarray
     return n
 
 
-def white_noise_map(nside, depth_uk_arcmin, *, rng=None, hits=None) -> np.ndarray:
+def white_noise_map(nside, depth_uk_arcmin, *, rng=None, hits=None, force=False) -> np.ndarray:
     """White noise of a given depth in uK-arcmin (optionally shaped by a hits map), K_CMB, RING.
 
-    Equivalent to ``noise_map(NoiseModel(depth_uk_arcmin, hits=hits), nside, rng=rng)``.
+    Equivalent to ``noise_map(NoiseModel(depth_uk_arcmin, hits=hits), nside, rng=rng, force=force)``.
     """
-    return noise_map(NoiseModel(depth_uk_arcmin, hits=hits), nside, rng=rng)
+    return noise_map(NoiseModel(depth_uk_arcmin, hits=hits), nside, rng=rng, force=force)

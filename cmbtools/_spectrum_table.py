@@ -17,7 +17,9 @@ A spectrum table is a UTF-8 text file:
   C_l and a D_l column (as the files :func:`write_spectrum_table` writes), the
   C_l column is read and the D_l column is ignored; other columns (errors,
   notes) are ignored too;
-* blank lines are skipped.
+* blank lines are skipped; a byte-order mark at the start (as spreadsheet
+  programs write) is ignored;
+* ell is at most 10**7 (far beyond any map a machine can hold).
 
 Example (the layout :func:`write_spectrum_table` writes)::
 
@@ -44,6 +46,10 @@ from ._validation import check_cl
 from .exceptions import InputFileError, InvalidInputError
 
 __all__ = ["read_spectrum_table", "write_spectrum_table"]
+
+#: The largest multipole a table may hold.  lmax <= 4 nside - 1 puts ell = 10**7 beyond nside 2**21, whose
+#: map alone needs 420 TB; the bound keeps a typing error (or a damaged file) from allocating terabytes.
+LARGEST_ELL = 10**7
 
 _UNITS = {"k2": 1.0, "kcmb2": 1.0, "uk2": 1e-12, "ukcmb2": 1e-12}
 _SPECTRUM_COLUMN = re.compile(r"^(cl|dl)(?:_(k2|uk2|kcmb2|ukcmb2))?$")
@@ -75,12 +81,14 @@ def read_spectrum_table(path) -> np.ndarray:
     InputFileError
         If the file is missing or unreadable, or has no ``ell`` or spectrum
         column, an unknown or missing unit, a non-numeric or non-finite cell,
-        a negative power, a non-integer ell, or a gap or repeat in ell.  The
-        message names the file, the line and the problem.
+        a negative power, a non-integer ell, an ell above
+        10**7, a gap or repeat in ell, or a D_l whose C_l is
+        too large for a double.  The message names the file, the line and
+        the problem.
     """
     p = check_input_file(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        text = p.read_text(encoding="utf-8-sig")  # -sig: a leading byte-order mark is not part of the header
     except UnicodeDecodeError:
         raise InputFileError(p, "is not a UTF-8 text file (expected a spectrum table)") from None
     unit_comment = None
@@ -160,6 +168,8 @@ def read_spectrum_table(path) -> np.ndarray:
             raise InputFileError(p, f"line {number}: ell {cells[ell_col]!r} is not a number") from None
         if not math.isfinite(ell_value) or ell_value != int(ell_value) or ell_value < 0:
             raise InputFileError(p, f"line {number}: ell {cells[ell_col]!r} is not a non-negative integer")
+        if ell_value > LARGEST_ELL:
+            raise InputFileError(p, f"line {number}: ell {cells[ell_col]!r} is above the largest ell, {LARGEST_ELL}")
         try:
             v = float(cells[col])
         except ValueError:
@@ -192,7 +202,14 @@ def read_spectrum_table(path) -> np.ndarray:
             ell, dvals, start = ell[1:], values[1:], 1
         else:
             dvals, start = values, lmin
-        cl[start:] = 2.0 * math.pi * dvals * factor / (ell * (ell + 1.0))
+        # the factor first: 2 pi D_l alone overflows for D_l near the largest double
+        with np.errstate(over="ignore"):
+            cl[start:] = dvals * factor * (2.0 * math.pi / (ell * (ell + 1.0)))
+        if not np.all(np.isfinite(cl)):
+            j = int(np.argmax(~np.isfinite(cl))) - lmin
+            raise InputFileError(
+                p, f"line {rows[j][0]}: {names[col]} value {values[j]!r} gives a C_l too large for a double"
+            )
     return cl
 
 

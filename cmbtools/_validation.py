@@ -111,6 +111,9 @@ def warn_lmax_above_band_limit(lmax, nside, *, stacklevel=3):
         )
 
 
+_CHUNK = 1 << 20
+
+
 def missing_pixels(m) -> np.ndarray:
     """Boolean array, true where a map pixel is missing (UNSEEN sentinel, NaN or +-inf).
 
@@ -118,7 +121,14 @@ def missing_pixels(m) -> np.ndarray:
     in healpy, so float32 files are handled too.
     """
     m = np.asarray(m)
-    return ~np.isfinite(m) | (np.abs(m - UNSEEN) <= 1e-5 * abs(UNSEEN))
+    if m.ndim != 1 or m.size <= _CHUNK:
+        return ~np.isfinite(m) | (np.abs(m - UNSEEN) <= 1e-5 * abs(UNSEEN))
+    # in blocks: the vectorised test holds two map-sized float temporaries (800 MB at nside 2048)
+    out = np.empty(m.shape, dtype=bool)
+    for start in range(0, m.size, _CHUNK):
+        block = m[start:start + _CHUNK]
+        out[start:start + _CHUNK] = ~np.isfinite(block) | (np.abs(block - UNSEEN) <= 1e-5 * abs(UNSEEN))
+    return out
 
 
 def as_map(m, name="map", *, allow_missing=True) -> np.ndarray:
@@ -200,4 +210,4 @@ def resolve_nthreads(nthreads=None) -> int:
             return max(1, len(os.sched_getaffinity(0)))
         except AttributeError:  # pragma: no cover - not on Linux
             return max(1, os.cpu_count() or 1)
-    return check_int(nthreads, "nthreads", minimum=1)
+    return check_int(nthreads, "nthreads", minimum=1, maximum=4096)

@@ -71,6 +71,35 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
     print(f"cmbtools: {kind}: {_one_line(message)}", file=sys.stderr if file is None else file)
 
 
+#: Options that name files a command reads, and options that name files it writes.
+_INPUT_OPTIONS = ("map", "map2", "mask", "mask2", "info", "from_mask", "from_map", "holes", "beam", "beam2", "theory",
+                  "noise_spectrum", "spectrum", "beam_file", "hits")
+_OUTPUT_OPTIONS = ("output", "fits", "figure", "table", "json", "write_spectrum", "operator_cache")
+
+
+def _refuse_inputs_as_outputs(args):
+    """An output that is one of the inputs is refused, even with --overwrite: inputs are never modified."""
+    import os
+
+    from .exceptions import OutputPathError
+
+    inputs = [getattr(args, k) for k in _INPUT_OPTIONS if isinstance(getattr(args, k, None), str)]
+    inputs = [p for p in inputs if os.path.isfile(p)]
+    for key in _OUTPUT_OPTIONS:
+        out = getattr(args, key, None)
+        if not isinstance(out, str) or not os.path.exists(out):
+            continue
+        if key != "operator_cache" and not getattr(args, "overwrite", False):
+            continue  # refused later as an existing output, with the usual message
+        for p in inputs:
+            try:
+                same = os.path.samefile(out, p)
+            except OSError:
+                continue
+            if same:
+                raise OutputPathError(out, "is also an input of this command; cmbtools never writes over its inputs")
+
+
 def main(argv=None) -> int:
     """Run the command line; return the exit status."""
     parser = build_parser()
@@ -86,6 +115,7 @@ def main(argv=None) -> int:
     old_show = warnings.showwarning
     warnings.showwarning = _show_warning
     try:
+        _refuse_inputs_as_outputs(args)
         return int(args._run(args) or 0)
     except CmbtoolsError as exc:
         if debug:

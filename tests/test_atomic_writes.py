@@ -283,3 +283,26 @@ def test_writers_never_modify_the_arrays_they_are_given(tmp_path):
     maps.write_map(tmp_path / "a.fits", m, unit="uK_CMB", nest=True, dtype="float32")
     maps.write_map(tmp_path / "b.fits", m, partial=True)
     np.testing.assert_array_equal(m, before)
+
+
+@pytest.mark.parametrize("umask", [0o022, 0o077, 0o002])
+def test_new_outputs_get_the_mode_the_umask_gives(tmp_path, umask):
+    # common practice: a newly created file gets 0666 less the umask (POSIX open(2) with O_CREAT)
+    old = os.umask(umask)
+    try:
+        target = tmp_path / "new.csv"
+        with _io.atomic_output(target) as tmp:
+            tmp.write_text("a,b\n1,2\n")
+        assert (target.stat().st_mode & 0o777) == (0o666 & ~umask)
+    finally:
+        os.umask(old)
+
+
+def test_overwritten_outputs_keep_their_mode(tmp_path):
+    target = tmp_path / "old.csv"
+    target.write_text("old\n")
+    os.chmod(target, 0o640)
+    with _io.atomic_output(target, overwrite=True) as tmp:
+        tmp.write_text("new\n")
+    assert target.read_text() == "new\n"
+    assert (target.stat().st_mode & 0o777) == 0o640

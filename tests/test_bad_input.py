@@ -667,3 +667,386 @@ def test_every_cmbtools_error_class_reaches_the_user_as_one_line(monkeypatch, ca
         code, out, err = run_cli(capsys, "mask", "--nside", "8")
         assert code == 2, cls
         one_error_line(err, "cmbtools mask: error:", str(error))
+
+
+# ---------------------------------------------------------------- memory: the spectrum estimator, simulations, their CLIs
+
+def _steep_cl(lmax):
+    ell = np.arange(lmax + 1)
+    return np.where(ell >= 2, 1e-10 / (ell + 1.0) ** 2, 0.0)
+
+
+def _spectrum_file(path, lmax=60):
+    """A spectrum table (K^2) for the simulate and validate commands, so they need not compute the fiducial one."""
+    lines = ["# unit: K^2", "ell,cl"] + [f"{ell},{v:.17g}" for ell, v in enumerate(_steep_cl(lmax))]
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def _table_rows(path):
+    """The data lines of a CSV table written by cmbtools (the '#' header lines left out)."""
+    return [line for line in path.read_text().splitlines() if not line.startswith("#")]
+
+
+def _draw_for_memory(index, rng, context):
+    return {"x": rng.standard_normal(3) + context["offset"]}
+
+
+def test_estimator_refuses_a_large_lmax_before_allocating(monkeypatch):
+    import time
+
+    from cmbtools.spectrum import Binning, SpectrumEstimator
+
+    mask = maps.cap_mask(256, 0, 30, 60)
+    mask2 = maps.cap_mask(256, 10, 30, 60)
+    binning = Binning.uniform(2, 767, 16)
+    monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "50MB")
+    tracemalloc.start()
+    try:
+        start = time.perf_counter()
+        with pytest.raises(MemoryLimitError, match=(
+            r"^Building the spectrum estimator at nside 256 with lmax 767 would need about [0-9.]+ MB "
+            r"but the machine has 50 MB available .*CLI: --force"
+        )) as info:
+            SpectrumEstimator(mask, binning, lmax=767, pixel_window=False, nthreads=1)
+        elapsed = time.perf_counter() - start
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    assert elapsed < 1.0
+    assert peak < 1_000_000  # refused before anything large, not even the 6.3 MB copy of the mask
+    # at least the mask's coefficients up to 2 lmax and the mask's copy, at most a few times that
+    floor = _resources.estimate_alm_bytes(2 * 767) + _resources.estimate_map_bytes(256)
+    assert floor < info.value.required_bytes < 5 * floor
+    assert info.value.available_bytes == 50_000_000
+    # the covariance and a second mask cost more
+    for options in ({"covariance": True}, {"mask2": mask2}):
+        with pytest.raises(MemoryLimitError) as more:
+            SpectrumEstimator(mask, binning, lmax=767, pixel_window=False, nthreads=1, **options)
+        assert more.value.required_bytes > info.value.required_bytes
+
+
+def test_memory_estimates_of_the_estimator_and_the_sky_are_close_to_what_numpy_allocates():
+    from cmbtools import _estimator, simulate
+    from cmbtools._skies import _sky_bytes
+    from cmbtools.spectrum import Binning, SpectrumEstimator
+
+    nside, lmax = 64, 191
+    mask, mask2 = maps.cap_mask(nside, 0, 30, 60), maps.cap_mask(nside, 10, 30, 60)
+    binning = Binning.uniform(2, lmax, 16)
+    cases = [
+        ({}, lambda: SpectrumEstimator(mask, binning, lmax=lmax, pixel_window=False, nthreads=1)),
+        ({"covariance": True},
+         lambda: SpectrumEstimator(mask, binning, lmax=lmax, pixel_window=False, nthreads=1, covariance=True)),
+        ({"mask2": mask2, "covariance": True},
+         lambda: SpectrumEstimator(mask, binning, lmax=lmax, mask2=mask2, pixel_window=False, nthreads=1, covariance=True)),
+    ]
+    for options, build in cases:
+        need = _estimator._check_estimator_memory(
+            mask, binning, lmax=lmax, mask2=options.get("mask2"), n_iter=0,
+            covariance=options.get("covariance", False), force=False,
+        )
+        tracemalloc.start()
+        try:
+            build()
+            _, peak = tracemalloc.get_traced_memory()
+        finally:
+            tracemalloc.stop()
+        # numpy reports its allocations to tracemalloc (Python docs, tracemalloc); ducc0's own work
+        # buffers are not traced, so the traced peak sits a little below the estimate (measured 0.9)
+        assert 0.5 * need <= peak <= 2 * need, (options, peak, need)
+    need = _sky_bytes(nside, lmax, with_dipole=True)
+    tracemalloc.start()
+    try:
+        simulate.gaussian_sky(_steep_cl(lmax), nside, lmax=lmax, pixel_window=False, dipole=[1e-3, 0, 0], rng=1, nthreads=1)
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    assert 0.5 * need <= peak <= 2 * need, (peak, need)
+
+
+def test_estimator_force_warns_and_builds_the_same_estimator(tmp_path, monkeypatch):
+    from cmbtools import _estimator
+    from cmbtools.spectrum import Binning, SpectrumEstimator, estimate_spectrum
+
+    mask = maps.cap_mask(16, 0, 30, 60)
+    binning = Binning.uniform(2, 47, 8)
+    options = {"pixel_window": False, "nthreads": 1}
+    reference = SpectrumEstimator(mask, binning, **options)
+    need = _estimator._check_estimator_memory(mask, binning, lmax=None, mask2=None, n_iter=0, covariance=False, force=False)
+    monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", str(need))  # 80 % of it may be used: just too small
+    with pytest.raises(MemoryLimitError, match="Building the spectrum estimator at nside 16 with lmax 47 would need"):
+        SpectrumEstimator(mask, binning, **options)
+    with pytest.warns(CmbtoolsWarning, match="Building the spectrum estimator at nside 16 with lmax 47 .* going ahead") as record:
+        forced = SpectrumEstimator(mask, binning, force=True, **options)
+    assert len(record) == 1
+    assert forced.cache_key == reference.cache_key
+    np.testing.assert_array_equal(forced.bandpower_windows, reference.bandpower_windows)
+    # the cache helper checks when it builds, and passes force on
+    path = tmp_path / "estimator.npz"
+    with pytest.raises(MemoryLimitError):
+        SpectrumEstimator.load_or_build(path, mask, binning, **options)
+    assert not path.exists()
+    with pytest.warns(CmbtoolsWarning, match="going ahead"):
+        SpectrumEstimator.load_or_build(path, mask, binning, force=True, **options)
+    assert SpectrumEstimator.load(path).cache_key == reference.cache_key
+    with pytest.raises(MemoryLimitError):
+        estimate_spectrum(sky(16), mask, binning, **options)
+    with pytest.warns(CmbtoolsWarning, match="going ahead"):
+        bp = estimate_spectrum(sky(16), mask, binning, force=True, **options)
+    np.testing.assert_array_equal(bp.cl, reference.estimate(sky(16)).cl)
+
+
+def test_simulated_maps_refuse_huge_nside_and_force_goes_ahead(monkeypatch):
+    from cmbtools import simulate
+
+    cl = _steep_cl(47)
+    model = simulate.NoiseModel(10.0, ell_knee=20.0, alpha=2.0)
+    # nside 2^20: one map is 105.6 TB, beyond any machine, refused at once
+    for build, what in [
+        (lambda: simulate.gaussian_sky(cl, 2**20, lmax=47, pixel_window=False), "A simulated sky at nside 1048576 with lmax 47"),
+        (lambda: simulate.noise_map(model, 2**20, lmax=47), "A noise map at nside 1048576"),
+        (lambda: simulate.white_noise_map(2**20, 10.0), "A noise map at nside 1048576"),
+        (lambda: simulate.dipole_map(2**20, [1e-3, 0, 0]), "A dipole map at nside 1048576"),
+    ]:
+        with pytest.raises(MemoryLimitError, match=what + r" would need about [0-9.]+ TB"):
+            build()
+    monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")  # one nside-16 map is 24.6 kB
+    with pytest.raises(MemoryLimitError, match="A simulated sky at nside 16 with lmax 47 would need"):
+        simulate.gaussian_sky(cl, 16, lmax=47, pixel_window=False, rng=3)
+    with pytest.raises(MemoryLimitError, match="A noise map at nside 16 would need"):
+        simulate.noise_map(model, 16, rng=3)
+    with pytest.warns(CmbtoolsWarning, match="A simulated sky at nside 16 .* going ahead") as record:
+        sky_forced = simulate.gaussian_sky(cl, 16, lmax=47, pixel_window=False, dipole=[1e-3, 0, 0], rng=3,
+                                           nthreads=1, force=True)
+    assert len(record) == 1  # the dipole inside is covered by the same estimate
+    with pytest.warns(CmbtoolsWarning, match="A noise map at nside 16 .* going ahead"):
+        noise_forced = simulate.noise_map(model, 16, rng=3, nthreads=1, force=True)
+    monkeypatch.delenv("CMBTOOLS_MEMORY_LIMIT")
+    np.testing.assert_array_equal(
+        sky_forced, simulate.gaussian_sky(cl, 16, lmax=47, pixel_window=False, dipole=[1e-3, 0, 0], rng=3, nthreads=1)
+    )
+    np.testing.assert_array_equal(noise_forced, simulate.noise_map(model, 16, rng=3, nthreads=1))
+
+
+def test_simulation_runs_count_every_worker_and_refuse_before_starting(tmp_path, monkeypatch):
+    from concurrent.futures import ThreadPoolExecutor
+
+    from cmbtools.simulate import run_simulations
+
+    context = {"offset": 1.0, "table": np.zeros(125_000)}  # 1 MB that every worker holds
+    run_dir = tmp_path / "run"
+    with ThreadPoolExecutor(2) as pool:
+        with pytest.raises(MemoryLimitError, match=(
+            r"^Running 5 simulations on 2 concurrent tasks \(about 1 PB each\) would need about 2 PB"
+        )) as info:
+            run_simulations(_draw_for_memory, 5, seed=1, context=context, executor=pool, run_dir=run_dir,
+                            memory_per_simulation=10**15, progress=False)
+    assert info.value.required_bytes == 2 * 10**15  # threads share the context
+    assert not run_dir.exists()  # nothing started, nothing written
+    # the local process pool: each worker holds the pickled context and its copy, plus one simulation;
+    # never more workers than simulations.  Refused before any process starts.
+    needs = {}
+    for workers, n_sims in ((1, 2), (3, 2)):
+        with pytest.raises(MemoryLimitError, match=f"Running {n_sims} simulations on {min(workers, n_sims)} worker process") as info:
+            run_simulations(_draw_for_memory, n_sims, seed=1, context=context, workers=workers,
+                            memory_per_simulation=10**15, progress=False)
+        needs[workers] = info.value.required_bytes
+    per_worker = needs[3] - needs[1]
+    assert 10**15 + 2_000_000 <= per_worker <= 10**15 + 2_001_000
+    # force: warn once and run; the results are those of an unforced run
+    monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")
+    with ThreadPoolExecutor(2) as pool:
+        with pytest.raises(MemoryLimitError, match="Running 4 simulations on 2 concurrent tasks"):
+            run_simulations(_draw_for_memory, 4, seed=1, context=context, executor=pool,
+                            memory_per_simulation=100_000, progress=False)
+        with pytest.warns(CmbtoolsWarning, match="Running 4 simulations .* going ahead") as record:
+            forced = run_simulations(_draw_for_memory, 4, seed=1, context=context, executor=pool,
+                                     memory_per_simulation=100_000, progress=False, force=True)
+        assert len(record) == 1
+        monkeypatch.delenv("CMBTOOLS_MEMORY_LIMIT")
+        plain = run_simulations(_draw_for_memory, 4, seed=1, context=context, executor=pool, progress=False)
+    np.testing.assert_array_equal(forced["x"], plain["x"])
+
+
+def test_validation_refuses_before_simulating_and_force_runs(monkeypatch):
+    from concurrent.futures import ThreadPoolExecutor
+
+    from cmbtools.simulate import NoiseModel, validate_estimator
+    from cmbtools.spectrum import Binning, SpectrumEstimator
+
+    est = SpectrumEstimator(maps.cap_mask(16, 0, 30, 60), Binning.uniform(2, 47, 8), pixel_window=False, nthreads=1)
+    cl, noise = _steep_cl(47), NoiseModel(20.0)
+    monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")
+    with ThreadPoolExecutor(2) as pool:
+        with pytest.raises(MemoryLimitError, match=r"^Running 3 simulations on 2 concurrent tasks \(about [0-9.]+ kB each\)") as info:
+            validate_estimator(est, cl, n_sims=3, seed=5, noise=noise, executor=pool, progress=False)
+        # each simulation holds at least its sky, its noise and their sum (three maps of 24.6 kB)
+        assert info.value.required_bytes >= 2 * 3 * _resources.estimate_map_bytes(16)
+        with pytest.warns(CmbtoolsWarning, match="Running 3 simulations .* going ahead") as record:
+            forced = validate_estimator(est, cl, n_sims=3, seed=5, noise=noise, executor=pool, progress=False, force=True)
+        assert len(record) == 1  # once for the run, not once per simulated sky or noise map
+        monkeypatch.delenv("CMBTOOLS_MEMORY_LIMIT")
+        plain = validate_estimator(est, cl, n_sims=3, seed=5, noise=noise, executor=pool, progress=False)
+    np.testing.assert_allclose(forced.mean, plain.mean, rtol=1e-12, atol=0)
+
+
+@pytest.mark.filterwarnings("default::cmbtools.exceptions.CmbtoolsWarning")
+def test_spectrum_cli_memory_refusal_and_force(tmp_path, capsys, monkeypatch):
+    mask_path = maps.write_mask(tmp_path / "mask.fits", maps.cap_mask(16, 0, 30, 60))
+    map_path = maps.write_map(tmp_path / "map.fits", sky(16))
+    argv = ("spectrum", map_path, "--mask", mask_path, "--no-pixel-window", "--threads", 1, "-o")
+    out_path = tmp_path / "spectrum.csv"
+    monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")
+    code, out, err = run_cli(capsys, *argv, out_path)
+    assert code == 2 and out == ""
+    one_error_line(err, "cmbtools spectrum: error: Building the spectrum estimator at nside 16 with lmax 47 would need about",
+                   "but the machine has 10 kB available", "--force")
+    assert not out_path.exists()
+    code, out, err = run_cli(capsys, *argv, out_path, "--force")
+    assert code == 0
+    lines = err.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("cmbtools: warning: Building the spectrum estimator at nside 16")
+    assert "going ahead" in lines[0]
+    monkeypatch.delenv("CMBTOOLS_MEMORY_LIMIT")
+    code, out, err = run_cli(capsys, *argv, tmp_path / "plain.csv")
+    assert code == 0 and err == ""
+    assert _table_rows(out_path) == _table_rows(tmp_path / "plain.csv")
+
+
+@pytest.mark.filterwarnings("default::cmbtools.exceptions.CmbtoolsWarning")
+def test_simulate_cli_memory_refusal_and_force(tmp_path, capsys, monkeypatch):
+    # nside 2^20 with the default lmax 3*nside-1: the coefficients alone are hundreds of TB
+    code, out, err = run_cli(capsys, "simulate", "--nside", 2**20, "--seed", 1, "--output-dir", tmp_path / "huge")
+    assert code == 2 and out == ""
+    one_error_line(err, "cmbtools simulate: error: Simulating maps at nside 1048576 with lmax 3145727 would need about",
+                   "TB but the machine has", "--force")
+    assert not (tmp_path / "huge").exists()  # refused before the output directory is made
+    argv = ("simulate", "--nside", 16, "--seed", 3, "--count", 2, "--noise-depth", 30, "--dipole-uk", 100, 10, 20,
+            "--spectrum", _spectrum_file(tmp_path / "cl.csv"), "--no-pixel-window", "--threads", 1, "--output-dir")
+    monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")
+    code, out, err = run_cli(capsys, *argv, tmp_path / "forced")
+    assert code == 2 and out == ""
+    one_error_line(err, "Simulating maps at nside 16 with lmax 47 would need about", "10 kB available", "--force")
+    assert not (tmp_path / "forced").exists()
+    code, out, err = run_cli(capsys, *argv, tmp_path / "forced", "--force")
+    assert code == 0
+    lines = err.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("cmbtools: warning: Simulating maps at nside 16")  # once, not per map
+    monkeypatch.delenv("CMBTOOLS_MEMORY_LIMIT")
+    code, out, err = run_cli(capsys, *argv, tmp_path / "plain")
+    assert code == 0 and err == ""
+    for i in range(2):
+        forced, _ = maps.read_map(tmp_path / "forced" / f"sky_{i:04d}.fits")
+        plain, _ = maps.read_map(tmp_path / "plain" / f"sky_{i:04d}.fits")
+        np.testing.assert_array_equal(forced, plain)
+
+
+@pytest.mark.filterwarnings("default::cmbtools.exceptions.CmbtoolsWarning")
+def test_validate_cli_memory_refusal_and_force(tmp_path, capsys, monkeypatch):
+    import json
+
+    mask_path = maps.write_mask(tmp_path / "mask.fits", maps.cap_mask(16, 0, 90, 120))
+    argv = ("validate", mask_path, "--lmax", 40, "--bin-width", 8, "--no-pixel-window", "--no-progress", "--seed", 4,
+            "--spectrum", _spectrum_file(tmp_path / "cl.csv"))
+    run_dir = tmp_path / "run"
+    # the estimator is refused first
+    monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")
+    code, out, err = run_cli(capsys, *argv, "--sims", 2, "--workers", 1, "--run-dir", run_dir)
+    assert code == 2 and out == ""
+    one_error_line(err, "cmbtools validate: error: Building the spectrum estimator at nside 16 with lmax 40 would need about",
+                   "--force")
+    # the estimator fits in 1 MB, but not a thousand workers with one simulation each
+    monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "1MB")
+    code, out, err = run_cli(capsys, *argv, "--sims", 1000, "--workers", 1000, "--run-dir", run_dir)
+    assert code == 2 and out == ""
+    one_error_line(err, "cmbtools validate: error: Running 1000 simulations on 1000 worker processes (about",
+                   "but the machine has 1 MB available", "--force")
+    assert not run_dir.exists()  # nothing simulated, nothing written
+    monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")
+    code, out, err = run_cli(capsys, *argv, "--sims", 2, "--workers", 1, "--run-dir", run_dir, "--force")
+    assert code == 0
+    lines = err.splitlines()
+    assert len(lines) == 2 and all(line.startswith("cmbtools: warning: ") and "going ahead" in line for line in lines)
+    assert "Building the spectrum estimator at nside 16" in lines[0]
+    assert "Running 2 simulations on 1 worker process" in lines[1]
+    assert json.loads((run_dir / "summary.json").read_text())["nsims"] == 2
+
+
+# ----------------------------------------------------------------------------- paths, counts, inputs as outputs
+
+
+def test_file_names_with_a_nul_character_are_refused(tmp_path, capsys):
+    from cmbtools import _io
+    from cmbtools.exceptions import InputFileError, OutputPathError
+
+    with pytest.raises(InputFileError, match="NUL character"):
+        _io.check_input_file("sky\x00.fits")
+    with pytest.raises(OutputPathError, match="NUL character"):
+        _io.check_output_path(str(tmp_path / "out\x00.csv"))
+    code = cli.main(["mask", "--nside", "16", "--cut-latitude", "20", "-o", str(tmp_path / "m\x00.fits")])
+    assert code == 2
+    err = capsys.readouterr().err
+    assert "NUL character" in err and len(err.strip().splitlines()) == 1
+    assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize(
+    "argv",
+    [
+        ["simulate", "--fiducial", "--nside", "16", "--count", "10000000", "--output-dir", "{tmp}/sims"],
+        ["validate", "{mask}", "--sims", "2000000"],
+        ["validate", "{mask}", "--threads", "100000"],
+        ["spectrum", "{map}", "--mask", "{mask}", "--threads", "5000", "-o", "{tmp}/t.csv"],
+    ],
+    ids=["count", "sims", "validate-threads", "spectrum-threads"],
+)
+def test_absurd_counts_are_refused_before_any_work(tmp_path, capsys, argv):
+    m = maps.write_map(tmp_path / "m.fits", np.zeros(12 * 16**2))
+    w = maps.write_mask(tmp_path / "w.fits", maps.latitude_cut_mask(16, 20.0))
+    argv = [a.format(tmp=tmp_path, map=m, mask=w) for a in argv]
+    with pytest.raises(SystemExit) as exit_info:
+        cli.main(argv)
+    assert exit_info.value.code == 2
+    assert "expected at most" in capsys.readouterr().err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["m.fits", "w.fits"]
+
+
+def test_api_counts_have_upper_bounds():
+    from cmbtools import simulate
+    from cmbtools._validation import resolve_nthreads
+
+    with pytest.raises(InvalidInputError, match="n_sims"):
+        simulate.run_simulations(lambda i, rng, context: {"x": 1.0}, 10**12, seed=1, progress=False)
+    with pytest.raises(InvalidInputError, match="nthreads"):
+        resolve_nthreads(10**6)
+
+
+@pytest.mark.parametrize(
+    "argv",
+    [
+        ["spectrum", "{map}", "--mask", "{mask}", "-o", "{map}", "--overwrite"],
+        ["spectrum", "{map}", "--mask", "{mask}", "-o", "{tmp}/t.csv", "--figure", "{mask}", "--overwrite"],
+        ["mask", "--from-mask", "{mask}", "--apodize", "cosine", "--apodize-width", "2", "-o", "{mask}", "--overwrite"],
+        ["inspect", "{map}", "--figure", "{map}", "--overwrite"],
+    ],
+    ids=["spectrum-table", "spectrum-figure", "mask", "inspect"],
+)
+def test_an_output_that_is_an_input_is_refused_even_with_overwrite(tmp_path, capsys, argv):
+    m = maps.write_map(tmp_path / "m.fits", np.random.default_rng(0).normal(size=12 * 16**2))
+    w = maps.write_mask(tmp_path / "w.fits", maps.apodize_mask(maps.latitude_cut_mask(16, 20.0), 10.0))
+    before = {p: p.read_bytes() for p in (m, w)}
+    argv = [a.format(tmp=tmp_path, map=m, mask=w) for a in argv]
+    assert cli.main(argv) == 2
+    err = capsys.readouterr().err
+    assert "is also an input" in err and len(err.strip().splitlines()) == 1
+    assert {p: p.read_bytes() for p in (m, w)} == before
+
+
+def test_a_failed_simulate_run_removes_the_directory_it_created(tmp_path, capsys):
+    bad = tmp_path / "spectrum.csv"
+    bad.write_text("ell,cl\n0,1\n1,-5\n")  # negative power: refused after the directory is made
+    out = tmp_path / "sims"
+    assert cli.main(["simulate", "--nside", "16", "--spectrum", str(bad), "--output-dir", str(out)]) == 2
+    assert "cmbtools simulate: error:" in capsys.readouterr().err
+    assert not out.exists()

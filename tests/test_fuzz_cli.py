@@ -18,87 +18,35 @@ computation.  Examples are derandomized for CI; set
 
 from __future__ import annotations
 
-import contextlib
-import io
 import itertools
-import os
-import signal
 import tempfile
-import warnings
 from pathlib import Path
 
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import given
 from hypothesis import strategies as st
 
-from cmbtools import cli, maps
+import _fuzzing
+from _fuzzing import Hang, check_cli_outcome, run_cli, time_limit
+from cmbtools import maps
 from cmbtools._validation import UNSEEN
 
-_EXPLORE = int(os.environ.get("CMBTOOLS_FUZZ_EXAMPLES", "0"))
 FINISHED = ("mask", "inspect", "physics")
 
 
 def fuzz_settings(max_examples):
-    return settings(
-        max_examples=_EXPLORE or max_examples,
-        derandomize=not _EXPLORE,
-        database=None,
-        deadline=None,  # the SIGALRM guard below bounds each run instead (physics runs take ~1 s)
-        suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large],
-    )
-
-
-class CommandHang(Exception):
-    """A command ran past its time limit."""
-
-
-@contextlib.contextmanager
-def time_limit(seconds):
-    def on_alarm(signum, frame):
-        raise CommandHang(f"the command did not finish within {seconds} s")
-
-    old = signal.signal(signal.SIGALRM, on_alarm)
-    signal.setitimer(signal.ITIMER_REAL, seconds)
-    try:
-        yield
-    finally:
-        signal.setitimer(signal.ITIMER_REAL, 0)
-        signal.signal(signal.SIGALRM, old)
+    # no per-example deadline: the time limit of run() bounds each command instead (physics runs take ~1 s)
+    return _fuzzing.fuzz_settings(max_examples, deadline=None)
 
 
 def run(argv, seconds=30.0):
-    """(status, stdout, stderr) of ``cmbtools argv`` run in-process, warnings shown as a user sees them."""
-    out, err = io.StringIO(), io.StringIO()
-    with warnings.catch_warnings():
-        warnings.simplefilter("default")  # as outside the test suite: warnings are printed, not raised
-        # relative output names land in the scratch directory, never in the working tree
-        with contextlib.chdir(_DIR), contextlib.redirect_stdout(out), contextlib.redirect_stderr(err), \
-                time_limit(seconds):
-            try:
-                code = cli.main(list(argv))
-            except SystemExit as exc:  # argparse: --help, --version and usage errors
-                code = exc.code
-    return code, out.getvalue(), err.getvalue()
+    """(status, stdout, stderr) of ``cmbtools argv`` run in-process in the scratch directory."""
+    return run_cli(argv, _DIR, seconds)
 
 
-def check_outcome(argv, code, out, err):
-    shown = f"argv={argv!r}\nstatus={code}\nstderr:\n{err}"
-    assert code in (0, 2), shown
-    assert "Traceback" not in err and "internal error" not in err, shown
-    lines = err.splitlines()
-    if code == 2:
-        assert lines, shown
-        assert "error:" in lines[-1], shown
-        others = lines[:-1]
-    else:
-        others = lines
-    # every other line is one of cmbtools' own warnings (foreign warnings are not for the user)
-    for line in others:
-        assert line.startswith("cmbtools: warning: "), shown
+check_outcome = check_cli_outcome
 
-
-# ---------------------------------------------------------------- input and output files
 
 _DIR = Path(tempfile.mkdtemp(prefix="cmbtools-fuzz-cli-"))
 _COUNTER = itertools.count()
@@ -332,6 +280,6 @@ def test_any_token_list_exits_0_or_2(tokens):
 def test_the_time_limit_turns_a_hang_into_an_error():
     import time
 
-    with pytest.raises(CommandHang):
+    with pytest.raises(Hang):
         with time_limit(0.05):
             time.sleep(2.0)

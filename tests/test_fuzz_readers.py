@@ -16,57 +16,22 @@ with fresh randomness.
 
 from __future__ import annotations
 
-import contextlib
 import io
 import itertools
 import math
-import os
-import signal
 import tempfile
-import warnings
 from pathlib import Path
 
 import numpy as np
 import pytest
 from astropy.io import fits
-from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import assume, given
 from hypothesis import strategies as st
 
+from _fuzzing import Hang, attempt, fuzz_settings, only_our_warnings, time_limit
 from cmbtools import maps, physics
 from cmbtools._validation import UNSEEN
-from cmbtools.exceptions import CmbtoolsError, CmbtoolsWarning, InputFileError
-
-_EXPLORE = int(os.environ.get("CMBTOOLS_FUZZ_EXAMPLES", "0"))
-
-
-def fuzz_settings(max_examples):
-    """Modest, reproducible runs in CI; many random ones when CMBTOOLS_FUZZ_EXAMPLES is set."""
-    return settings(
-        max_examples=_EXPLORE or max_examples,
-        derandomize=not _EXPLORE,
-        database=None,
-        deadline=5000,  # ms per example; the readers take a few ms on these small files
-        suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large],
-    )
-
-
-class ReaderHang(Exception):
-    """An example ran past its time limit (not a CmbtoolsError, so the test fails)."""
-
-
-@contextlib.contextmanager
-def time_limit(seconds=10.0):
-    def on_alarm(signum, frame):
-        raise ReaderHang(f"the reader did not finish within {seconds} s")
-
-    old = signal.signal(signal.SIGALRM, on_alarm)
-    signal.setitimer(signal.ITIMER_REAL, seconds)
-    try:
-        yield
-    finally:
-        signal.setitimer(signal.ITIMER_REAL, 0)
-        signal.signal(signal.SIGALRM, old)
-
+from cmbtools.exceptions import CmbtoolsError, InputFileError
 
 _WORKDIR = Path(tempfile.mkdtemp(prefix="cmbtools-fuzz-readers-"))
 _COUNTER = itertools.count()
@@ -75,30 +40,6 @@ _COUNTER = itertools.count()
 def new_path(suffix):
     return _WORKDIR / f"case{next(_COUNTER)}{suffix}"
 
-
-def attempt(reader, path, **kwargs):
-    """(result, error, warnings): the reader's result, or the CmbtoolsError it raised.
-
-    Any other exception propagates and fails the test.  Warnings are recorded
-    (the suite turns them into errors otherwise) and checked by the caller.
-    """
-    with warnings.catch_warnings(record=True) as caught, time_limit():
-        warnings.simplefilter("always")
-        try:
-            result = reader(path, **kwargs)
-        except CmbtoolsError as exc:
-            assert str(exc).strip(), "an error without a message"
-            return None, exc, list(caught)
-    return result, None, list(caught)
-
-
-def only_our_warnings(caught):
-    """Readers speak through CmbtoolsWarning only (no third-party noise reaches the user)."""
-    foreign = [f"{w.category.__name__}: {w.message}" for w in caught if not issubclass(w.category, CmbtoolsWarning)]
-    assert not foreign, foreign
-
-
-# ---------------------------------------------------------------- invariants of a loaded map or mask
 
 def check_loaded_map(m, info):
     assert isinstance(m, np.ndarray) and m.dtype == np.float64 and m.ndim == 1
@@ -754,6 +695,6 @@ def test_valid_bandpass_tables_load_exactly(freqs, seed, sep, header, bom):
 def test_the_time_limit_turns_a_hang_into_an_error():
     import time
 
-    with pytest.raises(ReaderHang):
+    with pytest.raises(Hang):
         with time_limit(0.05):
             time.sleep(2.0)

@@ -4,7 +4,15 @@ from __future__ import annotations
 
 import argparse
 
-__all__ = ["add_overwrite", "add_force", "add_threads", "positive_float", "positive_int"]
+__all__ = [
+    "add_overwrite", "add_force", "add_threads", "positive_float", "positive_int", "finite_float", "bounded_int",
+    "MAX_THREADS", "MAX_SIMULATIONS",
+]
+
+
+#: Upper bounds of counts given on the command line.
+MAX_THREADS = 1024
+MAX_SIMULATIONS = 1_000_000
 
 
 def add_overwrite(parser):
@@ -20,7 +28,7 @@ def add_force(parser):
 
 def add_threads(parser):
     parser.add_argument(
-        "--threads", type=positive_int, default=0, metavar="N",
+        "--threads", type=bounded_int(MAX_THREADS), default=0, metavar="N",
         help="threads for the transforms (default: all cores)",
     )
 
@@ -43,6 +51,18 @@ def positive_int(text):
     if v < 0:
         raise argparse.ArgumentTypeError(f"expected a non-negative whole number, got {text!r}")
     return v
+
+
+def bounded_int(maximum):
+    """An argparse type: a whole number in [0, maximum] (a bound that keeps a typo from exhausting memory)."""
+    def parse(text):
+        v = positive_int(text)
+        if v > maximum:
+            raise argparse.ArgumentTypeError(f"expected at most {maximum}, got {text!r}")
+        return v
+
+    parse.__name__ = "whole number"
+    return parse
 
 
 def finite_float(text):

@@ -3,8 +3,11 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 
-from ._common import finite_float, add_overwrite, add_threads, positive_float, positive_int
+from ._common import (
+    MAX_SIMULATIONS, add_force, add_overwrite, add_threads, bounded_int, finite_float, positive_float, positive_int,
+)
 
 HELP = "write simulated Gaussian CMB maps with beam, pixel window and noise"
 DESCRIPTION = """\
@@ -16,7 +19,9 @@ window, plus optional noise (white at a depth, shaped by a hits map, with a
 1/f knee) and an optional monopole and dipole.  Map i of a run with seed S
 depends only on (S, i): runs split over several calls (--first-index) or
 machines give the same maps.  Every file records CMBSEED and CMBSIMID in its
-header.  Nothing is overwritten without --overwrite.
+header.  Nothing is overwritten without --overwrite.  If one map with its
+noise would need more memory than the machine has available, the command
+stops before computing anything; --force goes ahead anyway.
 
 examples:
   cmbtools simulate --nside 128 --beam-fwhm 25 --noise-depth 35 --seed 1 --count 10 \\
@@ -59,8 +64,8 @@ def add_arguments(parser):
     run = parser.add_argument_group("run and output")
     run.add_argument("--seed", type=positive_int, metavar="S",
                      help="master seed (default: drawn at random and printed)")
-    run.add_argument("--count", type=positive_int, default=1, metavar="N", help="number of maps (default 1)")
-    run.add_argument("--first-index", type=positive_int, default=0, metavar="I",
+    run.add_argument("--count", type=bounded_int(MAX_SIMULATIONS), default=1, metavar="N", help="number of maps (default 1)")
+    run.add_argument("--first-index", type=bounded_int(10**9), default=0, metavar="I",
                      help="index of the first map (default 0); map i is sky_{i:04d}.fits")
     run.add_argument("--output-dir", default=".", metavar="DIR", help="directory for the maps (default: .)")
     run.add_argument("--prefix", default="sky", help="file-name prefix (default: sky)")
@@ -70,19 +75,53 @@ def add_arguments(parser):
                      help="also write the input spectrum (fiducial or --spectrum) as a table")
     add_threads(run)
     add_overwrite(parser)
+    add_force(parser)
+
+
+def _check_map_memory(args, nside, lmax):
+    """Refuse (MemoryLimitError) maps that would not fit in memory, before the spectrum or any map is computed.
+
+    One map at a time: the sky (draws, synthesis, dipole), its noise and their
+    sum, then the copies made to write it and to report its rms; with hits,
+    the hits map and the noise model's copy are held throughout.
+    """
+    from .._resources import check_memory, estimate_map_bytes
+    from .._skies import NoiseModel, _noise_bytes, _sky_bytes
+
+    one = estimate_map_bytes(nside)
+    phases = [_sky_bytes(nside, lmax, args.dipole_uk is not None), 4 * one]
+    if args.noise_depth is not None:
+        model = NoiseModel(args.noise_depth, ell_knee=args.knee_ell, alpha=args.knee_slope)
+        phases += [one + _noise_bytes(model, nside, lmax), 3 * one]
+        if args.hits is not None:
+            phases.append(4 * one)  # the noise, then 1/hits, its square root and the observed pixels
+    held = estimate_map_bytes(nside, 2) if args.hits is not None else 0
+    check_memory(held + max(phases), f"Simulating maps at nside {nside} with lmax {lmax}", force=args.force)
 
 
 def run(args) -> int:
+    created = []
+    try:
+        return _run(args, created)
+    except BaseException:
+        for d in created:  # a directory this run made and left empty goes away again
+            with contextlib.suppress(OSError):
+                d.rmdir()
+        raise
+
+
+def _run(args, created) -> int:
     import math
     import re
+    import warnings
     from pathlib import Path
 
     import numpy as np
 
     from .. import simulate
     from .._io import check_input_file, check_output_path
-    from .._validation import check_lmax, check_nside
-    from ..exceptions import InvalidInputError
+    from .._validation import check_lmax, check_nside, missing_pixels
+    from ..exceptions import CmbtoolsWarning, InvalidInputError
 
     if args.count > 0 and args.nside is None:
         raise InvalidInputError("--nside is required to simulate maps (or pass --count 0 with --write-spectrum)")
@@ -108,6 +147,8 @@ def run(args) -> int:
         check_input_file(args.beam_file)
     if args.hits is not None:
         check_input_file(args.hits)
+    if args.count > 0:  # before the output directory is created
+        _check_map_memory(args, nside, lmax)
     outputs = []
     if args.count > 0:
         out_dir = Path(args.output_dir)
@@ -115,6 +156,7 @@ def run(args) -> int:
             if not out_dir.parent.exists():
                 raise InvalidInputError(f"--output-dir {str(out_dir)!r}: its parent directory does not exist")
             out_dir.mkdir()
+            created.append(out_dir)
         outputs = [out_dir / f"{args.prefix}_{i:04d}.fits" for i in range(args.first_index, args.first_index + args.count)]
         for p in outputs:
             check_output_path(p, overwrite=args.overwrite)
@@ -155,7 +197,7 @@ def run(args) -> int:
             from ..maps import read_map
 
             # hits are relative weights with no unit: read the values as they are
-            hits, _ = read_map(args.hits, unit="K")
+            hits, _ = read_map(args.hits, unit="K", force=args.force)
         noise = simulate.NoiseModel(args.noise_depth, hits=hits, ell_knee=args.knee_ell, alpha=args.knee_slope)
         if noise.nside is not None and noise.nside != nside:
             raise InvalidInputError(f"--hits has nside {noise.nside} but --nside is {nside}")
@@ -173,10 +215,13 @@ def run(args) -> int:
           f"noise: {'none' if noise is None else f'{args.noise_depth:g} uK-arcmin' + (' with hits' if noise.hits is not None else '') + (f', knee {args.knee_ell:g}, slope {args.knee_slope:g}' if args.knee_ell else '')}")
     for i, path in zip(range(args.first_index, args.first_index + args.count), outputs):
         rng = simulate.simulation_rng(seed, i)
-        m = simulate.gaussian_sky(cl, nside, lmax=lmax, beam=beam, pixel_window=not args.no_pixel_window,
-                                  monopole=monopole, dipole=dipole, rng=rng, nthreads=nthreads)
-        if noise is not None:
-            m = m + simulate.noise_map(noise, nside, rng=rng, nthreads=nthreads)
+        with warnings.catch_warnings():
+            if args.force:  # the estimate above covers every map: warn once, not once per map
+                warnings.filterwarnings("ignore", message=".*would need about .* going ahead", category=CmbtoolsWarning)
+            m = simulate.gaussian_sky(cl, nside, lmax=lmax, beam=beam, pixel_window=not args.no_pixel_window,
+                                      monopole=monopole, dipole=dipole, rng=rng, nthreads=nthreads, force=args.force)
+            if noise is not None:
+                m = m + simulate.noise_map(noise, nside, rng=rng, nthreads=nthreads, force=args.force)
         header = [
             ("CMBSEED", seed, "master seed of the simulation set"),
             ("CMBSIMID", i, "index of this simulation in the set"),
@@ -187,7 +232,8 @@ def run(args) -> int:
         ]
         write_map(path, m, coord=args.coord, overwrite=args.overwrite, extra_header=header,
                   dtype="float32" if args.float32 else None, partial=noise is not None and noise.hits is not None)
-        good = np.isfinite(m) & (np.abs(m) < 1e20)
-        rms = math.sqrt(float(np.mean(m[good] ** 2)))
+        good = m[~missing_pixels(m)]  # the observed pixels
+        peak = float(np.max(np.abs(good), initial=0.0))
+        rms = peak * math.sqrt(float(np.mean((good / peak) ** 2))) if peak > 0 else 0.0  # no overflow in m**2
         print(f"wrote {path}  (rms {rms * 1e6:.1f} uK)")
     return 0

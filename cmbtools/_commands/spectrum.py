@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ._common import add_overwrite, add_threads, positive_float, positive_int
+from ._common import add_force, add_overwrite, add_threads, positive_float, positive_int
 
 HELP = "measure the angular power spectrum of a masked map (pseudo-Cl with mode-coupling correction)"
 DESCRIPTION = """\
@@ -25,6 +25,10 @@ format of cmbtools.simulate ('ell' and 'cl' or 'dl', unit as a column suffix
 such as cl_k2, dl_uk2 or in a '# unit: uK^2' comment; cl without a unit is
 K^2).  --noise-spectrum: 'ell' and 'nl' (or 'cl'), in K^2 unless a comment
 line says '# unit: uK^2'.
+
+Before the mask transforms and the mode-coupling matrix are computed, their
+memory is estimated; the command stops if it exceeds what the machine has
+available, and --force goes ahead anyway.
 
 examples:
   cmbtools spectrum tern_map.fits --mask tern_mask.fits --beam-fwhm 25 -o tern_spectrum.csv
@@ -65,7 +69,7 @@ def add_arguments(parser):
     parser.add_argument("--noise-spectrum", metavar="FILE",
                         help="noise spectrum N_l of MAP as observed (columns ell and nl or cl), subtracted from the auto-spectrum")
     parser.add_argument("--fast-coupling", action="store_true",
-                        help="approximate the mode-coupling matrix (faster at large lmax)")
+                        help="approximate the mode-coupling matrix (faster at large lmax; exact when lmax > 2 nside, where the approximation fails)")
     parser.add_argument("--theory", metavar="FILE", help="theory spectrum to draw in the figure (columns ell and cl or dl)")
     parser.add_argument("--operator-cache", metavar="PATH",
                         help="reuse (or create) the precomputed estimator in this .npz file")
@@ -75,6 +79,7 @@ def add_arguments(parser):
     parser.add_argument("--unit", choices=("uK", "K"), default="uK", help="unit of the written spectra: uK^2 (default) or K^2")
     add_overwrite(parser)
     add_threads(parser)
+    add_force(parser)
 
 
 # ----------------------------------------------------------------------------- spectrum files
@@ -92,7 +97,7 @@ def _read_spectrum_file(path, what, names):
 
     p = check_input_file(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        text = p.read_text(encoding="utf-8-sig")  # -sig: a leading byte-order mark is not part of the header
     except UnicodeDecodeError:
         raise InputFileError(p, f"the {what} file is not a UTF-8 text table") from None
     scale = 1.0
@@ -138,6 +143,10 @@ def _read_spectrum_file(path, what, names):
     val = a[:, header.index(column)] * scale
     if not np.all(np.isfinite(val)) or not np.all(np.isfinite(ell)) or np.any(ell != np.round(ell)) or np.any(ell < 0):
         raise InputFileError(p, f"the {what} file has non-finite values or ells that are not whole numbers >= 0")
+    from .._spectrum_table import LARGEST_ELL
+
+    if ell.max() > LARGEST_ELL:
+        raise InputFileError(p, f"the {what} file has an ell above the largest ell, {LARGEST_ELL}")
     ell = ell.astype(int)
     if np.any(np.diff(ell) != 1):
         raise InputFileError(p, f"the {what} file must list every ell once, in increasing order, without gaps")
@@ -221,13 +230,13 @@ def run(args) -> int:
         raise InvalidInputError("--noise-spectrum applies to an auto-spectrum only; a cross-spectrum has no noise bias.")
 
     # 2. inputs
-    m1, info1 = maps.read_map(args.map)
-    w1 = maps.read_mask(args.mask)
+    m1, info1 = maps.read_map(args.map, force=args.force)
+    w1 = maps.read_mask(args.mask, force=args.force)
     check_same_nside(m1, w1, args.map, args.mask)
     m2 = info2 = w2 = None
     if args.map2 is not None:
-        m2, info2 = maps.read_map(args.map2)
-        w2 = maps.read_mask(args.mask2) if args.mask2 else w1
+        m2, info2 = maps.read_map(args.map2, force=args.force)
+        w2 = maps.read_mask(args.mask2, force=args.force) if args.mask2 else w1
         check_same_nside(m2, w2, args.map2, args.mask2 or args.mask)
         check_same_nside(m1, m2, args.map, args.map2)
     nside = info1.nside
@@ -280,6 +289,7 @@ def run(args) -> int:
         remove_monopole_dipole=not args.keep_monopole_dipole,
         coupling="fast" if args.fast_coupling else "exact",
         nthreads=args.threads or None,
+        force=args.force,
     )
     if args.operator_cache is not None:
         est = sp.SpectrumEstimator.load_or_build(args.operator_cache, w1, binning, **kwargs)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ._common import add_overwrite, positive_float, positive_int
+from ._common import MAX_SIMULATIONS, MAX_THREADS, add_force, add_overwrite, bounded_int, positive_float, positive_int
 
 HELP = "check the spectrum estimator on simulated skies with your mask, beam and noise (Monte Carlo)"
 DESCRIPTION = """\
@@ -30,6 +30,10 @@ Outputs (by default in the run directory): summary.csv (one row per bin, a
 nsims, max_abs_bias_sigma, median_error_ratio, ... and the per-bin columns)
 and validation.png (input against the mean recovered D_l with scatter bands,
 and the bias per bin).
+
+The memory of the estimator and of the simulations (one per local worker at
+a time) is estimated before they start; the command stops if it exceeds what
+the machine has available, and --force goes ahead anyway.
 
 examples:
   cmbtools validate tern_mask.fits --beam-fwhm 25 --noise-depth 35 --hits tern_hits.fits \\
@@ -57,7 +61,7 @@ def add_arguments(parser):
     parser.add_argument("--keep-monopole-dipole", action="store_true",
                         help="do not fit and remove the monopole and dipole before the transform")
     parser.add_argument("--fast-coupling", action="store_true",
-                        help="approximate the mode-coupling matrix (faster at large lmax)")
+                        help="approximate the mode-coupling matrix (faster at large lmax; exact when lmax > 2 nside, where the approximation fails)")
     noise = parser.add_argument_group("noise (default: none)")
     noise.add_argument("--noise-depth", type=positive_float, metavar="UK_ARCMIN",
                        help="white-noise depth in uK-arcmin (the rms over observed pixels with --hits)")
@@ -68,14 +72,14 @@ def add_arguments(parser):
     parser.add_argument("--spectrum", metavar="FILE",
                         help="input sky spectrum table (columns ell and cl or dl; default: the built-in fiducial spectrum)")
     sims = parser.add_argument_group("simulations")
-    sims.add_argument("--sims", type=positive_int, default=100, metavar="N", help="number of simulations (default 100)")
+    sims.add_argument("--sims", type=bounded_int(MAX_SIMULATIONS), default=100, metavar="N", help="number of simulations (default 100)")
     sims.add_argument("--seed", type=positive_int, metavar="S",
                       help="master seed (default: the one recorded in the run directory, else a fresh one, printed)")
     where = sims.add_mutually_exclusive_group()
-    where.add_argument("--workers", type=positive_int, default=0, metavar="N",
+    where.add_argument("--workers", type=bounded_int(MAX_THREADS), default=0, metavar="N",
                        help="local worker processes (default 0: one per core)")
     where.add_argument("--scheduler", metavar="ADDRESS", help="run on the dask cluster whose scheduler is at ADDRESS")
-    sims.add_argument("--threads", type=positive_int, default=0, metavar="N",
+    sims.add_argument("--threads", type=bounded_int(MAX_THREADS), default=0, metavar="N",
                       help="transform threads per local worker (default: cores / workers)")
     sims.add_argument("--run-dir", default="validation_run", metavar="DIR",
                       help="directory of the run's simulations and outputs (default ./validation_run); "
@@ -89,6 +93,7 @@ def add_arguments(parser):
     out.add_argument("--figure", metavar="FIG.png", help="figure, PNG or PDF (default RUN_DIR/validation.png)")
     out.add_argument("--unit", choices=("uK", "K"), default="uK", help="unit of the table's spectra: uK^2 (default) or K^2")
     add_overwrite(parser)
+    add_force(parser)
 
 
 def _dask_client(address):
@@ -153,7 +158,7 @@ def run(args) -> int:
         raise InvalidInputError(f"--sims must be at least 2 to measure a scatter. Got {args.sims} instead.")
 
     # 2. inputs
-    mask = maps.read_mask(args.mask)
+    mask = maps.read_mask(args.mask, force=args.force)
     nside = int(round(np.sqrt(mask.size / 12)))
     lmax = 3 * nside - 1 if args.lmax is None else args.lmax
     if args.lmin > lmax:
@@ -165,7 +170,7 @@ def run(args) -> int:
     if args.noise_depth is not None:
         hits = None
         if args.hits is not None:
-            hits, _info = maps.read_map(args.hits, unit="K")
+            hits, _info = maps.read_map(args.hits, unit="K", force=args.force)
         noise = NoiseModel(depth_uk_arcmin=args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
     if args.spectrum is not None:
         from .._spectrum_table import read_spectrum_table
@@ -187,6 +192,7 @@ def run(args) -> int:
     est = sp.SpectrumEstimator(
         mask, binning, lmax=lmax, beam=beam, pixel_window=not args.no_pixel_window,
         remove_monopole_dipole=not args.keep_monopole_dipole, coupling="fast" if args.fast_coupling else "exact",
+        force=args.force,
     )
 
     # 3. the simulations
@@ -202,7 +208,7 @@ def run(args) -> int:
         result = validate_estimator(
             est, cl, n_sims=args.sims, seed=args.seed, noise=noise, run_dir=run_dir, executor=client,
             workers=None if client is not None else n_workers, threads_per_worker=args.threads or None,
-            progress=False if args.no_progress else None, restart=args.restart,
+            progress=False if args.no_progress else None, restart=args.restart, force=args.force,
         )
     finally:
         if client is not None:
@@ -229,7 +235,12 @@ def run(args) -> int:
             written.append(result.plot(path, overwrite=overwrite))
 
     s = result.summary()
-    worst = int(np.nanargmax(np.abs(result.bias_sigma)))
+    # a null run (zero spectrum, no noise) has no scatter: its ratios are not numbers (None in the summary)
+    worst = int(np.argmax(np.where(np.isfinite(result.bias_sigma), np.abs(result.bias_sigma), -1.0)))
+
+    def num(key, spec):
+        return "n/a" if s[key] is None else format(s[key], spec)
+
     ran = result.n_sims - int(meta.get("n_resumed", 0))
     print(f"validated the spectrum estimator on {result.n_sims} simulations (seed {result.seed}) on {where_text}")
     if meta.get("n_resumed"):
@@ -240,10 +251,10 @@ def run(args) -> int:
         f"{args.noise_depth:g} uK-arcmin" + (" shaped by the hits map" if args.hits else "")
         + (f", knee at ell {args.noise_knee:g} (slope {args.noise_slope:g})" if args.noise_knee else ""))
     print(f"  input: {spectrum_text}; beam: {meta['beam']}; noise: {noise_text}")
-    print(f"  bias: max |bias| {s['max_abs_bias_sigma']:.2f} sigma (ell {int(result.ell_min[worst])}-"
-          f"{int(result.ell_max[worst])}), rms {s['rms_bias_sigma']:.2f} sigma over {s['n_bins']} bins")
-    print(f"  error bars: scatter / analytic error = {s['median_error_ratio']:.3f} (median; "
-          f"{s['min_error_ratio']:.3f} to {s['max_error_ratio']:.3f})")
-    print(f"  transfer (mean / expected): median {s['median_transfer']:.4f}")
+    print(f"  bias: max |bias| {num('max_abs_bias_sigma', '.2f')} sigma (ell {int(result.ell_min[worst])}-"
+          f"{int(result.ell_max[worst])}), rms {num('rms_bias_sigma', '.2f')} sigma over {s['n_bins']} bins")
+    print(f"  error bars: scatter / analytic error = {num('median_error_ratio', '.3f')} (median; "
+          f"{num('min_error_ratio', '.3f')} to {num('max_error_ratio', '.3f')})")
+    print(f"  transfer (mean / expected): median {num('median_transfer', '.4f')}")
     print("  wrote " + ", ".join(str(p) for p in written))
     return 0

@@ -1,0 +1,465 @@
+"""Speed and memory of cmbtools, as ratios against reference runs in the same process.
+
+Every workload builds its inputs from a fixed seed, times cmbtools and a
+reference on the same inputs side by side (the median of several repeats;
+these machines are noisy) and reports the ratio, with the target it must
+meet.  One JSON object is printed on stdout (progress goes to stderr).
+
+W1  nside 1024, lmax 3071, a galactic-latitude cut apodized to f_sky ~ 0.6,
+    bins of width 30.  *First call*: building the estimator (mask transform,
+    coupling matrix, binning, inversion) and estimating one map, against
+    healpy's full-sky spectrum (``anafast``, its default 3 iterations) of the
+    masked map at the same lmax; with the exact coupling matrix and with the
+    fast approximation.  *Reuse*: the built estimator applied to a new map.
+    *Coupling build*: cmbtools' coupling matrix against ducc0's compiled
+    kernel called directly on the same mask spectrum.  *Fast accuracy*:
+    largest relative bandpower difference, fast vs exact, over all bins and
+    over the bins below 2 nside.  At this lmax (above 2 nside) ``'fast'``
+    computes the exact matrix (see ``cmbtools._coupling.fast_lmax_limit``);
+    the banded approximation forced at the same lmax is reported too
+    (``banded_*``), to show why.
+W2  One Monte Carlo validation simulation at nside 512 (what every worker of
+    ``cmbtools.simulate.validate_estimator`` runs: sky synthesis, noise,
+    mask, monopole/dipole removal, analysis, binning) against one bare ducc0
+    synthesis plus one bare ducc0 analysis at the same nside and lmax; also
+    the time of drawing the simulation's random numbers alone (numpy), a floor
+    under the ratio.
+W3  (``--large``) nside 2048, lmax 6143, fast approximation, first call,
+    against healpy's full-sky spectrum; peak resident memory of the first
+    call, measured in a fresh child process.
+W4  Comoving distance at 1e6 redshifts between 0 and 1100 (building the
+    table included) against astropy's ``comoving_distance`` (measured on 1e4
+    redshifts and scaled by 100); largest relative difference from astropy.
+
+The pixel window of an nside is computed once and then read from the disk
+cache (``cmbtools._io.cache_dir()``); the first calls above are timed with it
+cached, and the time of a first computation is reported on its own.
+
+Usage::
+
+    python scripts/benchmark.py              # W1, W2, W4 (a few minutes)
+    python scripts/benchmark.py --large      # also W3 (about ten more minutes, 3 GB)
+    python scripts/benchmark.py --quick      # tiny sizes, to check the script itself
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import statistics
+import subprocess
+import sys
+import time
+import warnings
+
+
+def _log(*args):
+    print(*args, file=sys.stderr, flush=True)
+
+
+def _median_time(fn, repeats):
+    """Median wall time of ``fn()`` over ``repeats`` calls, and the last result."""
+    times, out = [], None
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        out = fn()
+        times.append(time.perf_counter() - t0)
+    return statistics.median(times), out
+
+
+def _paired(ours, reference, repeats):
+    """Median times of two functions measured alternately (so slow phases of the machine hit both)."""
+    t_ours, t_ref, out = [], [], None
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        out = ours()
+        t_ours.append(time.perf_counter() - t0)
+        t0 = time.perf_counter()
+        reference()
+        t_ref.append(time.perf_counter() - t0)
+    return statistics.median(t_ours), statistics.median(t_ref), out
+
+
+def _machine(threads):
+    cpu = platform.processor() or platform.machine()
+    try:
+        with open("/proc/cpuinfo", encoding="ascii", errors="replace") as fh:
+            for line in fh:
+                if line.startswith("model name"):
+                    cpu = line.split(":", 1)[1].strip()
+                    break
+    except OSError:
+        pass
+    import ducc0
+    import healpy
+    import numpy
+
+    return {
+        "cpu": cpu,
+        "cores": os.cpu_count(),
+        "threads": threads,
+        "python": platform.python_version(),
+        "numpy": numpy.__version__,
+        "ducc0": ducc0.__version__,
+        "healpy": healpy.__version__,
+    }
+
+
+def _survey_inputs(nside, lmax, seed, n_maps=2):
+    """Apodized latitude-cut mask (f_sky ~ 0.6) and ``n_maps`` beamed sky + white-noise maps."""
+    import numpy as np
+
+    from cmbtools import maps, simulate
+
+    mask = maps.apodize_mask(maps.latitude_cut_mask(nside, 22.0), 2.0)
+    cl = simulate.fiducial_cl(lmax)
+    noise = simulate.NoiseModel(depth_uk_arcmin=30.0)
+    skies = []
+    for k in range(n_maps):
+        rng = simulate.simulation_rng(seed, k)
+        sky = simulate.gaussian_sky(cl, nside, lmax=lmax, beam=5.0, rng=rng)
+        sky += simulate.noise_map(noise, nside, rng=rng)
+        skies.append(sky)
+    return mask, skies, float(np.mean(mask))
+
+
+def _pixel_window_first(nside, lmax, threads):
+    """Time of one pixel-window computation without the cache (then stored in it for the timed runs)."""
+    from cmbtools import spectrum
+
+    t0 = time.perf_counter()
+    spectrum.pixel_window(nside, lmax, use_cache=False, nthreads=threads)
+    first = time.perf_counter() - t0
+    spectrum.pixel_window(nside, lmax, nthreads=threads)  # make sure the cache holds it
+    return first
+
+
+def workload_1(nside, repeats, threads, seed):
+    import ducc0
+    import healpy as hp
+    import numpy as np
+
+    from cmbtools import _coupling, spectrum
+    from cmbtools.exceptions import CmbtoolsWarning
+
+    lmax = 3 * nside - 1
+    _log(f"W1: inputs at nside {nside}")
+    mask, (map1, map2), fsky = _survey_inputs(nside, lmax, seed)
+    binning = spectrum.Binning.uniform(2, lmax, 30)
+    pixwin_first = _pixel_window_first(nside, lmax, threads)
+    masked = map1 * mask
+
+    def anafast():
+        return hp.anafast(masked, lmax=lmax)
+
+    def first_call(coupling):
+        def run():
+            est = spectrum.SpectrumEstimator(mask, binning, lmax=lmax, coupling=coupling, nthreads=threads)
+            return est, est.estimate(map1)
+        return run
+
+    _log("W1: first calls (exact, fast) against anafast")
+    t_exact, t_ref1, (est_exact, bp_exact) = _paired(first_call("exact"), anafast, repeats)
+    t_fast, t_ref2, (est_fast, bp_fast) = _paired(first_call("fast"), anafast, repeats)
+    t_ref = statistics.median([t_ref1, t_ref2])
+
+    _log("W1: reuse")
+    t_reuse, t_ref3, _ = _paired(lambda: est_exact.estimate(map2), anafast, repeats)
+
+    _log("W1: coupling build against the bare kernel")
+    w_l = _coupling.mask_spectrum(mask, lmax=lmax, nthreads=threads)
+
+    def ours_coupling():
+        return _coupling.coupling_matrix(w_l, lmax, nthreads=threads)
+
+    def bare_coupling():
+        spec = np.zeros((1, 2 * lmax + 1))
+        spec[0, :] = w_l[: 2 * lmax + 1]
+        out = np.empty((1, lmax + 1, lmax + 1))
+        return ducc0.misc.experimental.coupling_matrix_rect(spec, (0,), out, nthreads=threads)
+
+    t_coupling, t_bare, _ = _paired(ours_coupling, bare_coupling, repeats)
+
+    _log("W1: the banded approximation forced at this lmax")
+    settings = _coupling.default_fast_settings(lmax)
+
+    def banded_call():
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", CmbtoolsWarning)  # "above 2*nside": we know
+            est = spectrum.SpectrumEstimator(
+                mask, binning, lmax=lmax, coupling="fast", fast_l_exact=settings[0],
+                fast_l_toeplitz=settings[1], fast_band=settings[2], nthreads=threads,
+            )
+        return est.estimate(map1)
+
+    t_banded, bp_banded = _median_time(banded_call, 1)
+
+    low = bp_exact.ell_max < 2 * nside
+    rel = np.abs(bp_fast.cl / bp_exact.cl - 1.0)
+    rel_banded = np.abs(bp_banded.cl / bp_exact.cl - 1.0)
+    return {
+        "nside": nside,
+        "lmax": lmax,
+        "f_sky": round(fsky, 4),
+        "n_bins": int(binning.n_bins),
+        "repeats": repeats,
+        "anafast_s": round(t_ref, 3),
+        "first_call_exact_s": round(t_exact, 3),
+        "first_call_fast_s": round(t_fast, 3),
+        "first_call_exact_ratio": round(t_exact / t_ref1, 3),
+        "first_call_fast_ratio": round(t_fast / t_ref2, 3),
+        "reuse_s": round(t_reuse, 3),
+        "reuse_ratio": round(t_reuse / t_ref3, 3),
+        "coupling_s": round(t_coupling, 3),
+        "bare_kernel_s": round(t_bare, 3),
+        "coupling_ratio": round(t_coupling / t_bare, 3),
+        "fast_max_rel_diff_all_bins": float(f"{rel.max():.3g}"),
+        "fast_max_rel_diff_below_2nside": float(f"{rel[low].max():.3g}"),
+        "first_call_banded_s": round(t_banded, 3),
+        "banded_max_rel_diff_all_bins": float(f"{rel_banded.max():.3g}"),
+        "banded_max_rel_diff_below_2nside": float(f"{rel_banded[low].max():.3g}"),
+        "pixel_window_first_computation_s": round(pixwin_first, 3),
+    }
+
+
+def workload_2(nside, repeats, threads, seed):
+    import ducc0
+    import numpy as np
+
+    from cmbtools import _sht, maps, simulate, spectrum
+    from cmbtools._montecarlo import _simulate_and_estimate, _ValidationSetup
+
+    lmax = 3 * nside - 1
+    _log(f"W2: one simulation at nside {nside}")
+    mask = maps.apodize_mask(maps.latitude_cut_mask(nside, 22.0), 2.0)
+    binning = spectrum.Binning.uniform(2, lmax, 30)
+    cl = simulate.fiducial_cl(lmax)
+    noise = simulate.NoiseModel(depth_uk_arcmin=30.0)
+    setups = {}
+    for removal in (True, False):
+        est = spectrum.SpectrumEstimator(
+            mask, binning, lmax=lmax, pixel_window=False, remove_monopole_dipole=removal, nthreads=threads
+        )
+        setups[removal] = _ValidationSetup(
+            estimator=est, cl=cl, sky_beam=np.asarray(est.beam), noise=noise,
+            noise_cl=simulate.noise_spectrum(noise, lmax, nside), monopole=0.0, dipole=None,
+            sky_filter=None, record_pseudo=False,
+        )
+    geom = _sht.ring_geometry(nside)
+    alm = simulate.gaussian_alm(cl, lmax, rng=seed).reshape(1, -1)
+
+    def bare():
+        m = ducc0.sht.experimental.synthesis(alm=alm, lmax=lmax, spin=0, nthreads=threads, **geom)
+        return ducc0.sht.experimental.adjoint_synthesis(map=m, lmax=lmax, spin=0, nthreads=threads, **geom)
+
+    counter = iter(range(10**6))
+
+    def one(removal):
+        return lambda: _simulate_and_estimate(next(counter), simulate.simulation_rng(seed, 0), setups[removal])
+
+    reps = max(repeats, 5)
+    for _ in range(2):  # warm-up: first-use caches (ring geometry, coefficient layouts)
+        one(True)()
+        bare()
+    t_sim, t_bare, _ = _paired(one(True), bare, reps)
+    t_plain, t_bare2, _ = _paired(one(False), bare, reps)
+
+    def random_numbers():  # the normal deviates one simulation draws: sky coefficients and pixel noise
+        rng = simulate.simulation_rng(seed, 1)
+        simulate.gaussian_alm(cl, lmax, rng=rng)
+        return rng.standard_normal(12 * nside * nside)
+
+    t_random, t_bare3, _ = _paired(random_numbers, bare, reps)
+    return {
+        "nside": nside,
+        "lmax": lmax,
+        "repeats": reps,
+        "simulation_s": round(t_sim, 4),
+        "bare_synthesis_analysis_s": round(t_bare, 4),
+        "simulation_ratio": round(t_sim / t_bare, 3),
+        "simulation_without_monopole_dipole_removal_s": round(t_plain, 4),
+        "simulation_without_monopole_dipole_removal_ratio": round(t_plain / t_bare2, 3),
+        "random_numbers_s": round(t_random, 4),
+        "random_numbers_ratio": round(t_random / t_bare3, 3),
+    }
+
+
+def _peak_rss_kb():
+    """High-water mark of this process's resident memory in kB (VmHWM).
+
+    Not ``getrusage``: on Linux its ``ru_maxrss`` carries over the parent's
+    resident size from before ``exec`` (a forked copy of a large parent).
+    """
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1])
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+
+
+def _child_first_call(inputs_dir, threads, coupling):
+    """In a fresh process: one first call on the inputs saved in ``inputs_dir``; prints time and peak memory."""
+    import numpy as np
+
+    from cmbtools import spectrum
+
+    mask = np.load(os.path.join(inputs_dir, "mask.npy"))
+    map1 = np.load(os.path.join(inputs_dir, "map.npy"))
+    nside = int(round((mask.size / 12) ** 0.5))
+    lmax = 3 * nside - 1
+    binning = spectrum.Binning.uniform(2, lmax, 30)
+    spectrum.pixel_window(nside, lmax, nthreads=threads)  # cached by the parent
+    before = _peak_rss_kb()
+    t0 = time.perf_counter()
+    est = spectrum.SpectrumEstimator(mask, binning, lmax=lmax, coupling=coupling, nthreads=threads)
+    est.estimate(map1)
+    elapsed = time.perf_counter() - t0
+    peak = _peak_rss_kb()
+    print(json.dumps({"seconds": elapsed, "peak_rss_kb": peak, "rss_before_kb": before}))
+
+
+def _peak_memory(mask, map1, threads, coupling):
+    """Peak resident memory of a first call in a fresh process that holds only the mask and the map."""
+    import tempfile
+
+    import numpy as np
+
+    with tempfile.TemporaryDirectory(prefix="cmbtools-benchmark-") as tmp:
+        np.save(os.path.join(tmp, "mask.npy"), mask)
+        np.save(os.path.join(tmp, "map.npy"), map1)
+        cmd = [sys.executable, __file__, "--child-first-call", tmp, "--threads", str(threads), "--coupling", coupling]
+        res = subprocess.run(cmd, capture_output=True, text=True, check=True)
+    return json.loads(res.stdout.strip().splitlines()[-1])
+
+
+def workload_3(nside, repeats, threads, seed):
+    import healpy as hp
+
+    from cmbtools import spectrum
+
+    lmax = 3 * nside - 1
+    _log(f"W3: inputs at nside {nside}")
+    mask, (map1,), fsky = _survey_inputs(nside, lmax, seed, n_maps=1)
+    binning = spectrum.Binning.uniform(2, lmax, 30)
+    pixwin_first = _pixel_window_first(nside, lmax, threads)
+    masked = map1 * mask
+
+    def ours():
+        est = spectrum.SpectrumEstimator(mask, binning, lmax=lmax, coupling="fast", nthreads=threads)
+        return est.estimate(map1)
+
+    _log("W3: first call (fast) against anafast")
+    t_fast, t_ref, _ = _paired(ours, lambda: hp.anafast(masked, lmax=lmax), repeats)
+    masked = None  # free the copy before the child process runs
+    _log("W3: peak memory in a fresh process")
+    mem = _peak_memory(mask, map1, threads, "fast")
+    return {
+        "nside": nside,
+        "lmax": lmax,
+        "f_sky": round(fsky, 4),
+        "repeats": repeats,
+        "anafast_s": round(t_ref, 3),
+        "first_call_fast_s": round(t_fast, 3),
+        "first_call_fast_ratio": round(t_fast / t_ref, 3),
+        "peak_rss_gb": round(mem["peak_rss_kb"] * 1024 / 1e9, 3),
+        "rss_with_inputs_loaded_gb": round(mem["rss_before_kb"] * 1024 / 1e9, 3),
+        "first_call_fast_in_child_s": round(mem["seconds"], 3),
+        "pixel_window_first_computation_s": round(pixwin_first, 3),
+    }
+
+
+def workload_4(n_z, n_ref, repeats):
+    import numpy as np
+    from astropy.cosmology import Planck18
+
+    from cmbtools import physics
+
+    _log(f"W4: comoving distance at {n_z} redshifts")
+    rng = np.random.default_rng(4)
+    z = np.sort(rng.uniform(0.0, 1100.0, n_z))
+    z_ref = z[:: max(1, n_z // n_ref)][:n_ref]
+    t_ours, d = _median_time(lambda: physics.comoving_distance(z, Planck18), repeats)
+    t_astropy, d_ref = _median_time(lambda: Planck18.comoving_distance(z_ref).to_value("Mpc"), max(1, repeats // 2))
+    ours_on_ref = physics.comoving_distance(z_ref, Planck18)
+    mask = d_ref > 0
+    err = float(np.max(np.abs(ours_on_ref[mask] / d_ref[mask] - 1.0)))
+    scaled = t_astropy * (n_z / z_ref.size)
+    return {
+        "n_redshifts": int(n_z),
+        "n_astropy": int(z_ref.size),
+        "cmbtools_s": round(t_ours, 4),
+        "astropy_s": round(t_astropy, 4),
+        "astropy_scaled_s": round(scaled, 3),
+        "ratio": float(f"{t_ours / scaled:.3g}"),
+        "max_rel_diff": float(f"{err:.3g}"),
+    }
+
+
+TARGETS = {
+    # (workload, key): (target, direction) -- issue 6
+    ("W1", "first_call_exact_ratio"): 2.0,
+    ("W1", "first_call_fast_ratio"): 1.2,
+    ("W1", "reuse_ratio"): 0.6,
+    ("W1", "coupling_ratio"): 1.15,
+    ("W1", "fast_max_rel_diff_all_bins"): 1e-3,
+    ("W2", "simulation_ratio"): 1.2,
+    ("W3", "first_call_fast_ratio"): 1.3,
+    ("W3", "peak_rss_gb"): 3.0,
+    ("W4", "ratio"): 0.01,
+    ("W4", "max_rel_diff"): 1e-6,
+}
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--large", action="store_true", help="also run W3 (nside 2048)")
+    parser.add_argument("--quick", action="store_true", help="tiny sizes, to check the script runs")
+    parser.add_argument("--repeats", type=int, default=3, help="repeats per timing (median; default 3)")
+    parser.add_argument("--threads", type=int, default=os.cpu_count() or 1, help="threads (default: all cores)")
+    parser.add_argument("--seed", type=int, default=2026, help="seed of the inputs (default 2026)")
+    parser.add_argument("--only", choices=["W1", "W2", "W3", "W4"], action="append", help="run only these workloads")
+    parser.add_argument("--child-first-call", metavar="DIR", help=argparse.SUPPRESS)
+    parser.add_argument("--coupling", default="fast", help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    # healpy's transforms take their thread count from the environment, read when it is first used
+    os.environ["OMP_NUM_THREADS"] = str(args.threads)
+
+    if args.child_first_call:
+        _child_first_call(args.child_first_call, args.threads, args.coupling)
+        return 0
+
+    sizes = {"W1": 1024, "W2": 512, "W3": 2048, "W4": (10**6, 10**4)}
+    if args.quick:
+        sizes = {"W1": 32, "W2": 32, "W3": 64, "W4": (10**4, 100)}
+    wanted = args.only or ["W1", "W2", "W4"] + (["W3"] if args.large else [])
+    if args.quick and not args.only:
+        wanted = ["W1", "W2", "W3", "W4"]
+    repeats = 1 if args.quick else args.repeats
+
+    report = {"machine": _machine(args.threads), "quick": bool(args.quick)}
+    if "W1" in wanted:
+        report["W1"] = workload_1(sizes["W1"], repeats, args.threads, args.seed)
+    if "W2" in wanted:
+        report["W2"] = workload_2(sizes["W2"], repeats, args.threads, args.seed)
+    if "W3" in wanted:
+        report["W3"] = workload_3(sizes["W3"], max(1, repeats - 2) if not args.quick else 1, args.threads, args.seed)
+    if "W4" in wanted:
+        report["W4"] = workload_4(*sizes["W4"], repeats)
+    targets = {}
+    for (name, key), limit in TARGETS.items():
+        if name in report:
+            value = report[name][key]
+            targets[f"{name}.{key}"] = {"value": value, "target": limit, "met": bool(value <= limit)}
+    report["targets"] = targets
+    print(json.dumps(report, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
