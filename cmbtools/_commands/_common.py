@@ -34,11 +34,8 @@ def add_threads(parser):
 
 
 def positive_float(text):
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not v > 0 or v == float("inf"):
+    v = finite_float(text)
+    if not v > 0:
         raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
     return v
 
