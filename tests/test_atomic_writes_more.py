@@ -1,11 +1,12 @@
 """Every kind of output survives a SIGKILL at any moment; the spectrum commands never modify their inputs.
 
-test_atomic_writes.py kills ``maps.write_map`` and ``_io.atomic_output``.  Here a
-forked writer process writes one output over and over, each time a new
+A forked writer process writes one output over and over, each time a new
 version, and is killed with SIGKILL, either at a random moment or a random
 instant after its temporary file appeared (so that some kills land in the
 middle of a write), for each writer kind:
 
+* ``map``: ``maps.write_map`` of an nside-256 map (6.3 MB);
+* ``raw_output``: ``_io.atomic_output`` with a 32 MB file written in chunks;
 * ``spectrum_table``: ``simulate.write_spectrum_table`` (the text spectrum table);
 * ``bandpower_table``: ``Bandpowers.write_csv`` (the table of ``cmbtools spectrum``);
 * ``figure``: ``Bandpowers.plot`` to PNG (matplotlib's savefig through atomic_output);
@@ -205,7 +206,57 @@ class ValidationSummary(Kind):
         return int(doc["seed"])
 
 
+BIG_NSIDE = 256  # 786 432 pixels of 8 bytes: a 6.3 MB file, tens of milliseconds to write
+CHUNK = 1 << 20
+N_CHUNKS = 32
+
+
+class Map(Kind):
+    """``maps.write_map`` of an nside-256 map: every pixel tells which version it belongs to."""
+
+    suffix = ".fits"
+
+    def pixels(self, version):
+        return np.full(12 * BIG_NSIDE**2, float(version)) + np.arange(12 * BIG_NSIDE**2) * 1e-9
+
+    def write(self, target, version, overwrite=True):
+        maps.write_map(target, self.pixels(version), overwrite=overwrite)
+
+    def read_label(self, target):
+        m, _ = maps.read_map(target)
+        version = int(round(m[0]))
+        np.testing.assert_array_equal(m, self.pixels(version))
+        return version
+
+
+class RawOutput(Kind):
+    """``_io.atomic_output`` with a 32 MB file written in 1 MB chunks."""
+
+    suffix = ".bin"
+
+    @staticmethod
+    def chunk(version, k):
+        return bytes([(version * 31 + k) % 251]) * CHUNK
+
+    def write(self, target, version, overwrite=True):
+        with _io.atomic_output(target, overwrite=overwrite) as tmp:
+            with open(tmp, "wb") as fh:
+                for k in range(N_CHUNKS):
+                    fh.write(self.chunk(version, k))
+                    fh.flush()
+
+    def read_label(self, target):
+        data = target.read_bytes()
+        assert len(data) == CHUNK * N_CHUNKS, f"a partial file of {len(data)} bytes is visible as the target"
+        version = next(v for v in range(251) if data[0] == self.chunk(v, 0)[0] and data[CHUNK] == self.chunk(v, 1)[0])
+        digest = hashlib.sha256(b"".join(self.chunk(version, k) for k in range(N_CHUNKS))).hexdigest()
+        assert hashlib.sha256(data).hexdigest() == digest, "the target holds bytes that no version wrote"
+        return version
+
+
 KINDS = {
+    "map": Map,
+    "raw_output": RawOutput,
     "spectrum_table": SpectrumTable,
     "bandpower_table": BandpowerTable,
     "figure": Figure,
