@@ -13,13 +13,13 @@ are checked not to change the arrays they are given.
 from __future__ import annotations
 
 import os
-import time
 from pathlib import Path
 
 import numpy as np
 import pytest
 
-from cmbtools import _io, cli, maps, physics
+from _untouched import fingerprint, run_on_inputs
+from cmbtools import _io, maps, physics
 from cmbtools._validation import UNSEEN
 
 
@@ -36,11 +36,6 @@ def test_a_failing_writer_leaves_nothing_behind(tmp_path):
 
 
 # ---------------------------------------------------------------- inputs are never modified
-
-def fingerprint(path):
-    st = os.stat(path)
-    return (_io.sha256_file(path), st.st_size, st.st_mode, st.st_mtime_ns)
-
 
 @pytest.fixture
 def input_files(tmp_path):
@@ -82,18 +77,9 @@ def input_files(tmp_path):
     ],
 )
 def test_commands_never_modify_their_inputs(input_files, tmp_path, capsys, argv, expect):
-    out_dir = tmp_path / "outputs"
-    out_dir.mkdir()
-    names = {k: str(v) for k, v in input_files.items()}
-    argv = [a.replace("{out}", str(out_dir)).format(**names) for a in argv]
-    before = {k: fingerprint(p) for k, p in input_files.items()}
-    time.sleep(0.01)  # a rewrite, even of identical bytes, would show in the modification time
-    code = cli.main(argv)
-    _, err = capsys.readouterr()
+    # inputs unchanged, nothing beside them, and only the requested outputs among the outputs
+    code, err, out_dir, argv = run_on_inputs(argv, input_files, tmp_path, capsys)
     assert code == expect, err
-    assert {k: fingerprint(p) for k, p in input_files.items()} == before
-    # nothing but the requested outputs appears, next to the inputs or among the outputs
-    assert sorted(p.name for p in tmp_path.iterdir()) == sorted([*(p.name for p in input_files.values()), "outputs"])
     written = sorted(p.name for p in out_dir.iterdir())
     wanted = sorted(Path(a).name for a in argv if a.startswith(str(out_dir)))
     assert written == (wanted if code == 0 else [])

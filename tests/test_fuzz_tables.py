@@ -91,6 +91,21 @@ class Case:
         return f"Case({shown}, kwargs={self.kwargs}, data={self.data[:300]!r})"
 
 
+def _damage_rows(draw, cells, defects):
+    """The row defects the spectrum and beam tables share: a gap, a duplicate, a swap, a short row."""
+    if "gap" in defects:
+        del cells[draw(st.integers(1, len(cells) - 2))]
+    if "duplicate" in defects:
+        k = draw(st.integers(0, len(cells) - 1))
+        cells.insert(k, list(cells[k]))
+    if "swap" in defects:
+        k = draw(st.integers(0, len(cells) - 2))
+        cells[k], cells[k + 1] = cells[k + 1], cells[k]
+    if "short_row" in defects:
+        cells[draw(st.integers(0, len(cells) - 1))].pop()
+    return cells
+
+
 @st.composite
 def spectrum_tables(draw):
     defects = set(draw(st.one_of(st.just(frozenset()), st.just(frozenset()),
@@ -204,16 +219,7 @@ def spectrum_tables(draw):
             row[i_ell] = str(10**12 + k)
     if "astronomical_ell" in defects:
         cells[0][i_ell] = "1e300"
-    if "gap" in defects:
-        del cells[draw(st.integers(1, len(cells) - 2))]
-    if "duplicate" in defects:
-        k = draw(st.integers(0, len(cells) - 1))
-        cells.insert(k, list(cells[k]))
-    if "swap" in defects:
-        k = draw(st.integers(0, len(cells) - 2))
-        cells[k], cells[k + 1] = cells[k + 1], cells[k]
-    if "short_row" in defects:
-        cells[draw(st.integers(0, len(cells) - 1))].pop()
+    cells = _damage_rows(draw, cells, defects)
     if "long_row" in defects:
         cells[draw(st.integers(0, len(cells) - 1))].append("0")
     if "no_rows" in defects:
@@ -369,16 +375,7 @@ def beam_texts(draw):
         cells[r][i_ell] = f"{r}.5"
     if "start_at_1" in defects:
         del cells[0]
-    if "gap" in defects:
-        del cells[draw(st.integers(1, len(cells) - 2))]
-    if "duplicate" in defects:
-        k = draw(st.integers(0, len(cells) - 1))
-        cells.insert(k, list(cells[k]))
-    if "swap" in defects:
-        k = draw(st.integers(0, len(cells) - 2))
-        cells[k], cells[k + 1] = cells[k + 1], cells[k]
-    if "short_row" in defects:
-        cells[draw(st.integers(0, len(cells) - 1))].pop()
+    cells = _damage_rows(draw, cells, defects)
     if "no_rows" in defects:
         cells = []
     if draw(st.integers(0, 4)) == 0 and cells and "short_row" not in defects:  # more cells than the header names: the extra ones are ignored
