@@ -15,8 +15,8 @@ from __future__ import annotations
 
 import importlib
 
-from ._version import __version__
-from . import exceptions
+from cmbtools._version import __version__
+from cmbtools import exceptions
 
 __all__ = ["__version__", "exceptions", "maps", "spectrum", "physics", "simulate"]
 

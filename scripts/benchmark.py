@@ -15,7 +15,7 @@ W1  nside 1024, lmax 3071, a galactic-latitude cut apodized to f_sky ~ 0.6,
     kernel called directly on the same mask spectrum.  *Fast accuracy*:
     largest relative bandpower difference, fast vs exact, over all bins and
     over the bins below 2 nside.  At this lmax (above 2 nside) ``'fast'``
-    computes the exact matrix (see ``cmbtools._coupling.fast_lmax_limit``);
+    computes the exact matrix (see ``cmbtools.spectrum.coupling.fast_lmax_limit``);
     the banded approximation forced at the same lmax is reported too
     (``banded_*``), to show why.
 W2  One Monte Carlo validation simulation at nside 512 (what every worker of
@@ -32,7 +32,7 @@ W4  Comoving distance at 1e6 redshifts between 0 and 1100 (building the
     redshifts and scaled by 100); largest relative difference from astropy.
 
 The pixel window of an nside is computed once and then read from the disk
-cache (``cmbtools._io.cache_dir()``); the first calls above are timed with it
+cache (``cmbtools._core.files.cache_dir()``); the first calls above are timed with it
 cached, and the time of a first computation is reported on its own.
 
 Usage::
@@ -142,7 +142,8 @@ def workload_1(nside, repeats, threads, seed):
     import healpy as hp
     import numpy as np
 
-    from cmbtools import _coupling, spectrum
+    from cmbtools import spectrum
+    from cmbtools.spectrum import coupling as _coupling
     from cmbtools.exceptions import CmbtoolsWarning
 
     lmax = 3 * nside - 1
@@ -229,8 +230,9 @@ def workload_2(nside, repeats, threads, seed):
     import ducc0
     import numpy as np
 
-    from cmbtools import _sht, maps, simulate, spectrum
-    from cmbtools._montecarlo import _simulate_and_estimate, _ValidationSetup
+    from cmbtools import maps, simulate, spectrum
+    from cmbtools._core import sht as _sht
+    from cmbtools.simulate.validation import _simulate_and_estimate, _ValidationSetup
 
     lmax = 3 * nside - 1
     _log(f"W2: one simulation at nside {nside}")

@@ -109,7 +109,7 @@ def source_map(nside, lon, lat, peak_uk):
 
 
 def write_sources_csv(path, lon, lat, peak, overwrite):
-    from cmbtools._io import atomic_output
+    from cmbtools._core.files import atomic_output
 
     lines = ["# invented point sources of the Tern Field (Tern Sky Survey demo data; not real objects)",
              "# lon_deg, lat_deg: galactic position; peak_uk: peak brightness after the 25' beam, uK_CMB",
@@ -122,8 +122,8 @@ def write_sources_csv(path, lon, lat, peak, overwrite):
 def make_demo_data(output_dir, *, overwrite=False, nthreads=None, log=print):
     """Write every demo file into ``output_dir`` (which must exist)."""
     from cmbtools import maps, simulate
-    from cmbtools._beams import gaussian_beam, write_beam
-    from cmbtools._io import check_output_path
+    from cmbtools.spectrum.beams import gaussian_beam, write_beam
+    from cmbtools._core.files import check_output_path
 
     out = Path(output_dir)
     paths = {name: out / name for name in FILES}

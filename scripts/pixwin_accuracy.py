@@ -1,4 +1,4 @@
-"""Accuracy and speed of cmbtools' HEALPix pixel window (cmbtools._pixwin).
+"""Accuracy and speed of cmbtools' HEALPix pixel window (cmbtools.spectrum.pixel_windows).
 
 Three measurements, printed as tables:
 
@@ -27,7 +27,7 @@ import healpy as hp
 import numpy as np
 from scipy.special import sph_harm_y
 
-from cmbtools import _pixwin
+from cmbtools.spectrum import pixel_windows as _pixwin
 
 
 def _direct_window_squared(nside, k, lmax):

@@ -20,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-from cmbtools._montecarlo import run_simulations
+from cmbtools.simulate.engine import run_simulations
 
 N_SIMS = 40
 SEED = 4242

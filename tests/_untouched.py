@@ -5,7 +5,8 @@ from __future__ import annotations
 import os
 import time
 
-from cmbtools import _io, cli
+from cmbtools import cli
+from cmbtools._core import files as _io
 
 
 def fingerprint(path):

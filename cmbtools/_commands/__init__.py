@@ -1,1 +1,0 @@
-"""Subcommands of the ``cmbtools`` tool, one module each (see :mod:`cmbtools.cli`)."""

@@ -1,0 +1,328 @@
+"""Spherical-harmonic transforms on HEALPix maps, through ducc0.
+
+This is the only module that imports :mod:`ducc0.sht`.  Coefficients use
+healpy's layout (m-major, ``index = m*(2*lmax+1-m)//2 + l``), so they can be
+passed to healpy functions unchanged.  Maps are in RING ordering.
+
+``map2alm`` is the adjoint synthesis scaled by the pixel area, optionally
+followed by ``n_iter`` Jacobi refinements ``alm += A^T W (m - A alm)``, the
+same scheme as healpy's ``map2alm(iter=...)`` (so results agree with healpy to
+rounding for the same ``n_iter``).
+
+Memory.  ducc0's one-call adjoint transform holds a buffer of Legendre
+coefficients of ``n_rings x (lmax+1)`` complex values (805 MB at nside 2048,
+lmax 6143; 1.6 GB for the mask transform to 2 lmax), on top of the result.
+When that buffer would exceed :data:`LEG_BUFFER_BYTES`, the transform runs in
+pieces through ducc0's two halves (``map2leg``, ``leg2alm``): groups of rings
+(each with its north-south mirror, so ducc0 keeps its symmetry speed-up),
+and groups of m whose partial coefficients are added into the result.
+:func:`map_spectra` goes one step further for power spectra: it loops over
+groups of m outermost and keeps only one group's coefficients, so a mask
+spectrum to ``2 lmax`` never holds its full set of coefficients (1.2 GB at
+nside 2048).  The pieces add up the same sums in another order (differences
+at the 1e-15 level).
+"""
+
+from __future__ import annotations
+
+import functools
+
+import numpy as np
+import ducc0
+
+from cmbtools._core.checks import resolve_nthreads
+
+__all__ = ["ring_geometry", "occupied_rings", "adjoint_sums", "synthesis_on_rings", "map2alm", "map_spectra", "alm2map", "alm2cl", "almxfl", "alm_size", "alm_ell"]
+
+#: Largest buffer of Legendre coefficients (bytes) a transform holds at once; above it the transform is split.
+LEG_BUFFER_BYTES = 128 * 2**20
+
+
+@functools.lru_cache(maxsize=16)
+def ring_geometry(nside: int) -> dict:
+    """Ring layout of a RING-ordered HEALPix map (theta, phi0, nphi, ringstart), cached."""
+    info = ducc0.healpix.Healpix_Base(int(nside), "RING").sht_info()
+    for v in info.values():
+        v.setflags(write=False)
+    return info
+
+
+def alm_size(lmax: int, mmax: int | None = None) -> int:
+    """Number of complex coefficients for ``lmax`` (and ``mmax``, default lmax)."""
+    mmax = lmax if mmax is None else mmax
+    return (mmax + 1) * (lmax + 1) - (mmax * (mmax + 1)) // 2
+
+
+@functools.lru_cache(maxsize=8)
+def alm_ell(lmax: int) -> np.ndarray:
+    """ell of every coefficient in healpy's layout (read-only, cached)."""
+    ell = np.concatenate([np.arange(m, lmax + 1) for m in range(lmax + 1)])
+    ell.setflags(write=False)
+    return ell
+
+
+@functools.lru_cache(maxsize=8)
+def _m_weights(lmax: int) -> np.ndarray:
+    """1 for m = 0 coefficients, 2 for m > 0 (the m < 0 half is implied)."""
+    w = np.full(alm_size(lmax), 2.0)
+    w[: lmax + 1] = 1.0
+    w.setflags(write=False)
+    return w
+
+
+def alm2map(alm, nside: int, lmax: int, *, nthreads: int | None = None) -> np.ndarray:
+    """Synthesize a RING-ordered map of ``nside`` from coefficients up to ``lmax``."""
+    geom = ring_geometry(nside)
+    alm = np.asarray(alm)
+    out = ducc0.sht.experimental.synthesis(
+        alm=alm.reshape(1, -1),
+        lmax=lmax,
+        spin=0,
+        nthreads=resolve_nthreads(nthreads),
+        **geom,
+    )
+    return out[0]
+
+
+def occupied_rings(m) -> np.ndarray:
+    """Boolean array over the rings of a RING map: true where the ring has a non-zero pixel (read-only)."""
+    m = np.asarray(m)
+    nside = int(round(np.sqrt(m.size / 12)))
+    starts = ring_geometry(nside)["ringstart"].astype(np.intp)
+    out = np.zeros(starts.size, dtype=bool)
+    bounds = np.append(starts, m.size)
+    step = 64  # rings per block: no map-sized temporary
+    for r0 in range(0, starts.size, step):
+        r1 = min(starts.size, r0 + step)
+        block = m[bounds[r0]:bounds[r1]] != 0
+        out[r0:r1] = np.logical_or.reduceat(block, starts[r0:r1] - bounds[r0])
+    out.setflags(write=False)
+    return out
+
+
+def _subset(geom: dict, rings) -> dict:
+    if rings is None:
+        return geom
+    return {k: np.ascontiguousarray(v[rings]) for k, v in geom.items()}
+
+
+def map2alm(m, lmax: int, *, n_iter: int = 0, nthreads: int | None = None, rings=None) -> np.ndarray:
+    """Harmonic coefficients of a RING-ordered map up to ``lmax``.
+
+    Parameters
+    ----------
+    m : ndarray of shape (12*nside**2,)
+        The map (float32 or float64; float64 is used internally).
+    lmax : int
+        Largest multipole.
+    n_iter : int, default=0
+        Jacobi refinement steps (healpy's ``iter``); each costs one synthesis
+        and one adjoint synthesis and reduces the quadrature error of the
+        HEALPix grid.
+    nthreads : int, optional
+        Threads for ducc0 (default: all cores).
+    rings : ndarray of bool, optional
+        :func:`occupied_rings` of the map (or of a mask that zeroes it): the
+        transform skips the rings known to be zero (same result, less work).
+        Only with ``n_iter=0``.
+    """
+    m = np.asarray(m, dtype=np.float64)
+    npix = m.size
+    nside = int(round(np.sqrt(npix / 12)))
+    geom = ring_geometry(nside)
+    nthreads = resolve_nthreads(nthreads)
+    scale = 4.0 * np.pi / npix
+    if rings is not None and n_iter:
+        raise ValueError("a ring subset only applies to the plain quadrature (n_iter=0)")
+    if _leg_bytes(nside, lmax) <= LEG_BUFFER_BYTES:
+        alm = ducc0.sht.experimental.adjoint_synthesis(
+            map=m.reshape(1, -1), lmax=lmax, spin=0, nthreads=nthreads, **_subset(geom, rings)
+        )
+    else:
+        alm = np.zeros((1, alm_size(lmax)), dtype=np.complex128)
+        for m0, m1 in _m_groups(lmax, lmax + 1):
+            start, stop = _m_block(lmax, m0, m1)
+            for part in _adjoint_parts(m, nside, lmax, m0, m1, nthreads, rings):
+                alm[0, start:stop] += part
+    alm *= scale
+    for _ in range(n_iter):
+        resid = m - ducc0.sht.experimental.synthesis(alm=alm, lmax=lmax, spin=0, nthreads=nthreads, **geom)[0]
+        corr = ducc0.sht.experimental.adjoint_synthesis(
+            map=resid.reshape(1, -1), lmax=lmax, spin=0, nthreads=nthreads, **geom
+        )
+        alm += scale * corr
+    return alm[0]
+
+
+def _leg_bytes(nside: int, lmax: int) -> int:
+    return (4 * int(nside) - 1) * (int(lmax) + 1) * 16
+
+
+def _m_block(lmax: int, m0: int, m1: int) -> tuple[int, int]:
+    """Slice ``[start, stop)`` of the coefficients with ``m0 <= m < m1`` in healpy's layout."""
+    start = m0 * (2 * lmax + 1 - m0) // 2 + m0
+    stop = (m1 - 1) * (2 * lmax + 1 - (m1 - 1)) // 2 + lmax + 1
+    return start, stop
+
+
+def _m_groups(lmax: int, n_m: int, budget: int | None = None):
+    """Consecutive ranges ``(m0, m1)`` of m up to ``n_m - 1`` whose coefficients fit in ``budget`` bytes each."""
+    budget = LEG_BUFFER_BYTES if budget is None else budget
+    m0 = 0
+    while m0 < n_m:
+        m1, size = m0, 0
+        while m1 < n_m and (m1 == m0 or size + 16 * (lmax + 1 - m1) <= budget):
+            size += 16 * (lmax + 1 - m1)
+            m1 += 1
+        yield m0, m1
+        m0 = m1
+
+
+def _ring_groups(nside: int, n_m: int):
+    """Groups of ring indices (north rings with their southern mirrors) whose Legendre buffer fits the budget."""
+    n_rings = 4 * int(nside) - 1
+    half = (n_rings + 1) // 2  # the northern rings and the equator
+    per_ring = 2 * 16 * n_m  # a ring and its mirror
+    step = max(1, LEG_BUFFER_BYTES // per_ring)
+    for a in range(0, half, step):
+        b = min(half, a + step)
+        north = np.arange(a, b)
+        south = n_rings - 1 - north
+        yield np.concatenate([north, south[south >= half][::-1]])
+
+
+def _adjoint_parts(m, nside, lmax, m0, m1, nthreads, occupied=None):
+    """The adjoint transform's coefficients with ``m0 <= m < m1`` (no area factor), one group of rings at a time."""
+    geom = ring_geometry(nside)
+    mval = np.arange(m0, m1, dtype=np.uintp)
+    start, _ = _m_block(lmax, m0, m1)
+    mstart = (np.arange(m0, m1) * (2 * lmax + 1 - np.arange(m0, m1)) // 2 - start).astype(np.uintp)
+    flat = m.reshape(1, -1)
+    for rings in _ring_groups(nside, m1):
+        if occupied is not None:
+            rings = rings[occupied[rings]]
+            if rings.size == 0:
+                continue
+        leg = ducc0.sht.experimental.map2leg(
+            map=flat, nphi=geom["nphi"][rings], phi0=geom["phi0"][rings], ringstart=geom["ringstart"][rings],
+            mmax=m1 - 1, nthreads=nthreads,
+        )
+        part = ducc0.sht.experimental.leg2alm(
+            leg=leg[:, :, m0:m1], lmax=lmax, theta=geom["theta"][rings], mval=mval,
+            mstart=mstart, nthreads=nthreads,
+        )
+        del leg
+        yield part[0]
+
+
+def map_spectra(maps, lmax: int, *, nthreads: int | None = None, rings=None) -> list:
+    """Auto- and cross-spectra of one or two RING maps (plain quadrature, no refinement), lean on memory.
+
+    Returns ``[C11]`` for one map and ``[C11, C22, C12]`` for two, each of
+    shape ``(lmax+1,)``; equal to ``alm2cl`` of ``map2alm(..., n_iter=0)``
+    to rounding.  When the transform is large the coefficients are made one
+    group of m at a time and reduced at once (see the module notes).
+    ``rings`` (from :func:`occupied_rings`) lets the transforms skip rings
+    that are zero in every map.
+    """
+    maps = [np.asarray(x, dtype=np.float64) for x in maps]
+    nside = int(round(np.sqrt(maps[0].size / 12)))
+    nthreads = resolve_nthreads(nthreads)
+    if _leg_bytes(nside, lmax) + 16 * alm_size(lmax) * len(maps) <= 2 * LEG_BUFFER_BYTES:
+        alms = [map2alm(x, lmax, nthreads=nthreads, rings=rings) for x in maps]
+        out = [alm2cl(a, lmax=lmax) for a in alms]
+        if len(alms) == 2:
+            out.append(alm2cl(alms[0], alms[1], lmax=lmax))
+        return out
+    scale = 4.0 * np.pi / maps[0].size
+    cls = [np.zeros(lmax + 1) for _ in range(1 if len(maps) == 1 else 3)]
+    for m0, m1 in _m_groups(lmax, lmax + 1):
+        start, stop = _m_block(lmax, m0, m1)
+        blocks = []
+        for x in maps:
+            acc = np.zeros(stop - start, dtype=np.complex128)
+            for part in _adjoint_parts(x, nside, lmax, m0, m1, nthreads, rings):
+                acc += part
+            acc *= scale
+            blocks.append(acc)
+        pairs = [(0, 0)] if len(maps) == 1 else [(0, 0), (1, 1), (0, 1)]
+        for cl, (i, j) in zip(cls, pairs):
+            a, b = blocks[i], blocks[j]
+            offset = 0
+            for mm in range(m0, m1):
+                n = lmax + 1 - mm
+                x, y = a[offset:offset + n], b[offset:offset + n]
+                p = x.real * y.real + x.imag * y.imag
+                if mm:
+                    p *= 2.0
+                cl[mm:] += p
+                offset += n
+    norm = 2.0 * np.arange(lmax + 1) + 1.0
+    return [cl / norm for cl in cls]
+
+
+def alm2cl(alm1, alm2=None, lmax: int | None = None) -> np.ndarray:
+    """Angular (cross-)power spectrum ``C_l = sum_m a1_lm a2*_lm / (2l+1)`` (real part)."""
+    alm1 = np.asarray(alm1)
+    if lmax is None:
+        lmax = int(round((np.sqrt(8 * alm1.size + 1) - 3) / 2))
+    if alm1.size != alm_size(lmax):
+        raise ValueError(f"alm has {alm1.size} coefficients, not the {alm_size(lmax)} of lmax={lmax}")
+    if alm2 is not None:
+        alm2 = np.asarray(alm2)
+        if alm2.size != alm1.size:
+            raise ValueError(f"the two alm have {alm1.size} and {alm2.size} coefficients")
+    # m-block by m-block (healpy's layout stores l = m..lmax of each m contiguously): no temporary
+    # larger than lmax + 1 values, where a vectorised sum would hold several coefficient-sized arrays
+    cl = np.zeros(lmax + 1)
+    start = 0
+    for m in range(lmax + 1):
+        stop = start + lmax + 1 - m
+        a = alm1[start:stop]
+        if alm2 is None:
+            p = a.real * a.real + a.imag * a.imag
+        else:
+            b = alm2[start:stop]
+            p = a.real * b.real + a.imag * b.imag
+        if m:
+            p *= 2.0  # the m < 0 half
+        cl[m:] += p
+        start = stop
+    return cl / (2.0 * np.arange(lmax + 1) + 1.0)
+
+
+def almxfl(alm, fl, lmax: int) -> np.ndarray:
+    """Multiply coefficients by a function of ell (a beam, a window, ...)."""
+    fl = np.asarray(fl, dtype=np.float64)
+    f = np.zeros(lmax + 1)
+    n = min(fl.size, lmax + 1)
+    f[:n] = fl[:n]
+    alm = np.asarray(alm)
+    out = np.empty(alm.shape, dtype=np.result_type(alm.dtype, np.float64))
+    start = 0
+    for m in range(lmax + 1):  # m-block by m-block: no coefficient-sized index or factor array
+        stop = start + lmax + 1 - m
+        np.multiply(alm[start:stop], f[m:], out=out[start:stop])
+        start = stop
+    return out
+
+
+def adjoint_sums(m, lmax: int, *, nthreads: int) -> np.ndarray:
+    """Coefficients ``sum_p m_p Y*_lm(n_p)`` up to ``lmax`` (healpy's layout) of a RING map: the adjoint synthesis.
+
+    Unlike :func:`map2alm` there is no quadrature weight: these are exact pixel sums.
+    """
+    nside = int(round(np.sqrt(m.size / 12)))
+    return ducc0.sht.experimental.adjoint_synthesis(
+        map=np.asarray(m).reshape(1, -1), lmax=lmax, spin=0, nthreads=nthreads, **ring_geometry(nside)
+    )[0]
+
+
+def synthesis_on_rings(alm, lmax: int, nside: int, r0: int, r1: int, *, nthreads: int) -> np.ndarray:
+    """The RING-map pixels of rings ``r0 .. r1-1`` synthesized from ``alm`` (shape (1, n), healpy's layout)."""
+    geom = ring_geometry(nside)
+    return ducc0.sht.experimental.synthesis(
+        alm=alm, lmax=lmax, spin=0, nthreads=nthreads, theta=geom["theta"][r0:r1], phi0=geom["phi0"][r0:r1],
+        nphi=geom["nphi"][r0:r1], ringstart=(geom["ringstart"][r0:r1] - geom["ringstart"][r0]),
+    )[0]
+

@@ -1,0 +1,156 @@
+"""The ``cmbtools`` command-line tool.
+
+Each subcommand lives in its own module under :mod:`cmbtools.cli` and
+provides ``HELP`` (one line), ``add_arguments(parser)`` and ``run(args) -> int``.
+Command modules import the heavy scientific modules inside ``run`` so that
+``cmbtools --help`` is fast.  This module only parses arguments and reports
+errors; it contains no physics.
+
+Error policy: any :class:`~cmbtools.exceptions.CmbtoolsError` (bad input, an
+output that exists, an ill-conditioned matrix, ...), any operating-system
+error on a file and running out of memory become one line on standard error
+(line breaks in a message are replaced by spaces) and exit status 2.  With
+``--debug`` (before or after the subcommand) the traceback is shown instead.  An unexpected exception is an
+internal error: one line, exit status 1.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+import warnings
+
+from cmbtools._version import __version__
+
+__all__ = ["main", "build_parser"]
+
+#: Subcommands, in the order ``--help`` lists them: (name, module under cmbtools.cli).
+COMMANDS = (
+    ("mask", "mask"), ("inspect", "inspect"),
+    ("physics", "physics"),
+    ("spectrum", "spectrum"),
+    ("validate", "validate"),
+    ("simulate", "simulate"),
+)
+
+
+def _one_line(text) -> str:
+    """``text`` with its line breaks replaced by spaces (error reports are one line)."""
+    return " ".join(part.strip() for part in str(text).splitlines() if part.strip())
+
+
+class _Parser(argparse.ArgumentParser):
+    """ArgumentParser whose usage errors are one line and exit status 2."""
+
+    def error(self, message):
+        self.exit(2, f"{self.prog}: error: {_one_line(message)} (see '{self.prog} --help')\n")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(
+        prog="cmbtools",
+        description="Angular power spectra of CMB temperature maps on the HEALPix sphere.",
+    )
+    parser.add_argument("--version", action="version", version=f"cmbtools {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show the full traceback on errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for name, module_name in COMMANDS:
+        module = importlib.import_module(f"cmbtools.cli.{module_name}")
+        p = sub.add_parser(name, help=module.HELP, description=getattr(module, "DESCRIPTION", module.HELP))
+        p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show the full traceback on errors")
+        module.add_arguments(p)
+        p.set_defaults(_run=module.run)
+    return parser
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    from cmbtools.exceptions import CmbtoolsWarning
+
+    kind = "warning" if issubclass(category, CmbtoolsWarning) else category.__name__
+    print(f"cmbtools: {kind}: {_one_line(message)}", file=sys.stderr if file is None else file)
+
+
+#: Options that name files a command reads, and options that name files it writes.
+_INPUT_OPTIONS = ("map", "map2", "mask", "mask2", "info", "from_mask", "from_map", "holes", "beam", "beam2", "theory",
+                  "noise_spectrum", "spectrum", "beam_file", "hits")
+_OUTPUT_OPTIONS = ("output", "fits", "figure", "table", "json", "write_spectrum", "operator_cache")
+
+
+def _refuse_inputs_as_outputs(args):
+    """An output that is one of the inputs is refused, even with --overwrite: inputs are never modified."""
+    import os
+
+    from cmbtools.exceptions import OutputPathError
+
+    inputs = [getattr(args, k) for k in _INPUT_OPTIONS if isinstance(getattr(args, k, None), str)]
+    inputs = [p for p in inputs if os.path.isfile(p)]
+    for key in _OUTPUT_OPTIONS:
+        out = getattr(args, key, None)
+        if not isinstance(out, str) or not os.path.exists(out):
+            continue
+        if key != "operator_cache" and not getattr(args, "overwrite", False):
+            continue  # refused later as an existing output, with the usual message
+        for p in inputs:
+            try:
+                same = os.path.samefile(out, p)
+            except OSError:
+                continue
+            if same:
+                raise OutputPathError(out, "is also an input of this command; cmbtools never writes over its inputs")
+
+
+def main(argv=None) -> int:
+    """Run the command line; return the exit status."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "command", None):
+        parser.print_help()
+        print("cmbtools: error: give a command, e.g. 'cmbtools mask --help'", file=sys.stderr)
+        return 2
+    from cmbtools.exceptions import CmbtoolsError
+
+    prog = f"cmbtools {args.command}"
+    debug = getattr(args, "debug", False)
+    old_show = warnings.showwarning
+    warnings.showwarning = _show_warning
+    try:
+        _refuse_inputs_as_outputs(args)
+        return int(args._run(args) or 0)
+    except CmbtoolsError as exc:
+        if debug:
+            raise
+        print(f"{prog}: error: {_one_line(exc)}", file=sys.stderr)
+        return 2
+    except OSError as exc:
+        if debug:
+            raise
+        where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
+        print(f"{prog}: error: {_one_line(f'{where}{exc.strerror or exc}')}", file=sys.stderr)
+        return 2
+    except MemoryError as exc:  # an allocation the memory estimates did not foresee
+        if debug:
+            raise
+        detail = f" ({_one_line(exc)})" if str(exc) else ""
+        print(f"{prog}: error: out of memory{detail}; lower nside/lmax or free some memory", file=sys.stderr)
+        return 2
+    except Warning as exc:  # a warning promoted to an error by the user's warning filters
+        if debug:
+            raise
+        print(f"{prog}: error: {_one_line(exc)} (a warning turned into an error by the warning filters)", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print(f"{prog}: interrupted", file=sys.stderr)
+        return 130
+    except Exception as exc:  # an internal error: say so in one line
+        if debug:
+            raise
+        print(f"{prog}: internal error: {type(exc).__name__}: {_one_line(exc)} (run with --debug for the traceback)",
+              file=sys.stderr)
+        return 1
+    finally:
+        warnings.showwarning = old_show
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,259 @@
+"""``cmbtools validate``: check the spectrum estimator end to end on simulated skies."""
+
+from __future__ import annotations
+
+import argparse
+
+from cmbtools.cli.common import MAX_SIMULATIONS, MAX_THREADS, add_force, add_overwrite, bounded_int, positive_float, positive_int
+
+HELP = "check the spectrum estimator on simulated skies with your mask, beam and noise (Monte Carlo)"
+DESCRIPTION = """\
+Check the spectrum estimator end to end on simulations made for your survey:
+Gaussian skies drawn from a spectrum (the built-in fiducial spectrum unless
+--spectrum is given), convolved with the beam and the HEALPix pixel window,
+plus noise (white at --noise-depth, shaped by a hits map, optionally with a
+1/f knee), are masked and measured exactly as 'cmbtools spectrum' would
+measure the real map.  The mean of the recovered bandpowers is compared with
+the input: the bias of each bin in units of its standard error, the ratio of
+the scatter over the simulations to the reported (analytic) error bars, and
+the transfer function (mean / expected) per bin.
+
+The simulations run in parallel: on all cores of this machine by default
+(--workers), or on a dask cluster (--scheduler, needs the 'dask' extra).  Each
+finished simulation is saved in the run directory at once, so an interrupted
+run continues where it stopped when the same command is run again (--restart
+starts over).  Simulation i always uses the same random numbers for a given
+--seed, whatever the number of workers.
+
+Outputs (by default in the run directory): summary.csv (one row per bin, a
+'# key: value' header with the settings), summary.json (the headline numbers
+nsims, max_abs_bias_sigma, median_error_ratio, ... and the per-bin columns)
+and validation.png (input against the mean recovered D_l with scatter bands,
+and the bias per bin).
+
+The memory of the estimator and of the simulations (one per local worker at
+a time) is estimated before they start; the command stops if it exceeds what
+the machine has available, and --force goes ahead anyway.
+
+examples:
+  cmbtools validate tern_mask.fits --beam-fwhm 25 --noise-depth 35 --hits tern_hits.fits \\
+      --sims 200 --seed 1 --run-dir tern_validation
+  cmbtools validate mask.fits --lmax 300 --bin-width 20 --spectrum model.csv --sims 500 \\
+      --scheduler tcp://10.0.0.5:8786 --run-dir big_run
+"""
+
+
+def add_arguments(parser):
+    parser.formatter_class = argparse.RawDescriptionHelpFormatter
+    parser.add_argument("mask", metavar="MASK", help="mask (weights in [0, 1]) as a HEALPix FITS file; sets nside")
+    parser.add_argument("--lmax", type=positive_int, metavar="N",
+                        help="largest multipole of the simulations, transforms and bins (default 3*nside-1)")
+    bins = parser.add_argument_group("bins")
+    bins.add_argument("--bin-width", type=positive_int, default=16, metavar="W",
+                      help="bins of W multipoles from --lmin to lmax (default 16)")
+    bins.add_argument("--lmin", type=positive_int, default=2, metavar="L", help="first multipole of the first bin (default 2)")
+    bins.add_argument("--bin-weighting", choices=("dl", "cl"), default="dl",
+                      help="average D_l (default) or C_l inside each bin")
+    beam = parser.add_argument_group("beam (default: none)").add_mutually_exclusive_group()
+    beam.add_argument("--beam-fwhm", type=positive_float, metavar="ARCMIN", help="Gaussian beam, FWHM in arcmin")
+    beam.add_argument("--beam", metavar="FILE", help="beam table (columns ell,b_ell)")
+    parser.add_argument("--no-pixel-window", action="store_true", help="neither simulate nor deconvolve the pixel window")
+    parser.add_argument("--keep-monopole-dipole", action="store_true",
+                        help="do not fit and remove the monopole and dipole before the transform")
+    parser.add_argument("--fast-coupling", action="store_true",
+                        help="approximate the mode-coupling matrix (faster at large lmax; exact when lmax > 2 nside, where the approximation fails)")
+    noise = parser.add_argument_group("noise (default: none)")
+    noise.add_argument("--noise-depth", type=positive_float, metavar="UK_ARCMIN",
+                       help="white-noise depth in uK-arcmin (the rms over observed pixels with --hits)")
+    noise.add_argument("--hits", metavar="FILE", help="hits map (HEALPix FITS): noise standard deviation ~ 1/sqrt(hits)")
+    noise.add_argument("--noise-knee", type=positive_float, metavar="ELL",
+                       help="knee multipole of correlated noise N_l = N_white (1 + (ELL/l)^SLOPE)")
+    noise.add_argument("--noise-slope", type=positive_float, metavar="SLOPE", help="slope of the correlated noise")
+    parser.add_argument("--spectrum", metavar="FILE",
+                        help="input sky spectrum table (columns ell and cl or dl; default: the built-in fiducial spectrum)")
+    sims = parser.add_argument_group("simulations")
+    sims.add_argument("--sims", type=bounded_int(MAX_SIMULATIONS), default=100, metavar="N", help="number of simulations (default 100)")
+    sims.add_argument("--seed", type=positive_int, metavar="S",
+                      help="master seed (default: the one recorded in the run directory, else a fresh one, printed)")
+    where = sims.add_mutually_exclusive_group()
+    where.add_argument("--workers", type=bounded_int(MAX_THREADS), default=0, metavar="N",
+                       help="local worker processes (default 0: one per core)")
+    where.add_argument("--scheduler", metavar="ADDRESS", help="run on the dask cluster whose scheduler is at ADDRESS")
+    sims.add_argument("--threads", type=bounded_int(MAX_THREADS), default=0, metavar="N",
+                      help="transform threads per local worker (default: cores / workers)")
+    sims.add_argument("--run-dir", default="validation_run", metavar="DIR",
+                      help="directory of the run's simulations and outputs (default ./validation_run); "
+                           "running the same command again resumes")
+    sims.add_argument("--restart", action="store_true",
+                      help="delete the simulations already in the run directory and start again")
+    sims.add_argument("--no-progress", action="store_true", help="no progress bar")
+    out = parser.add_argument_group("outputs (default: in the run directory)")
+    out.add_argument("--table", metavar="FILE.csv", help="per-bin table (default RUN_DIR/summary.csv)")
+    out.add_argument("--json", metavar="FILE.json", help="summary as JSON (default RUN_DIR/summary.json)")
+    out.add_argument("--figure", metavar="FIG.png", help="figure, PNG or PDF (default RUN_DIR/validation.png)")
+    out.add_argument("--unit", choices=("uK", "K"), default="uK", help="unit of the table's spectra: uK^2 (default) or K^2")
+    add_overwrite(parser)
+    add_force(parser)
+
+
+def _dask_client(address):
+    from cmbtools.exceptions import InvalidInputError
+
+    try:
+        import distributed
+    except ImportError:
+        raise InvalidInputError(
+            "--scheduler needs the optional dask extra (pip install 'cmbtools[dask]')."
+        ) from None
+    try:
+        return distributed.Client(address, timeout="20s")
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise InvalidInputError(f"Cannot connect to the dask scheduler at {address!r}: {exc}") from None
+
+
+def run(args) -> int:
+    import os
+    from pathlib import Path
+
+    import numpy as np
+
+    from cmbtools import maps
+    from cmbtools import spectrum as sp
+    from cmbtools._core.files import check_output_path, sha256_file
+    from cmbtools.simulate import NoiseModel, validate_estimator
+    from cmbtools._core.checks import resolve_nthreads
+    from cmbtools.exceptions import InvalidInputError, OutputPathError
+
+    # 1. outputs first: nothing is computed for a run that could not be written
+    run_dir = Path(args.run_dir)
+    if run_dir.exists() and not run_dir.is_dir():
+        raise OutputPathError(run_dir, "exists and is not a directory")
+    parent = run_dir.parent if str(run_dir.parent) else Path(".")
+    if not parent.is_dir():
+        raise OutputPathError(run_dir, f"directory {str(parent)!r} does not exist")
+    outputs = []
+    seen = {}
+    for what, given, default in (("table", args.table, "summary.csv"), ("JSON summary", args.json, "summary.json"),
+                                 ("figure", args.figure, "validation.png")):
+        # files inside the run directory belong to the run and are rewritten on every run
+        path = Path(given) if given is not None else run_dir / default
+        overwrite = args.overwrite or given is None
+        if given is not None:
+            check_output_path(path, overwrite=overwrite)
+        key = os.path.abspath(path)
+        if key in seen:
+            raise InvalidInputError(f"The {what} and the {seen[key]} would both be written to {str(path)!r}.")
+        seen[key] = what
+        outputs.append((what, path, overwrite))
+    if Path(outputs[2][1]).suffix.lower() not in (".png", ".pdf"):
+        raise InvalidInputError(f"The figure file must end in .png or .pdf. Got {str(outputs[2][1])!r} instead.")
+    if args.hits is not None and args.noise_depth is None:
+        raise InvalidInputError("--hits needs --noise-depth (the depth that the hits map shapes).")
+    if (args.noise_knee is None) != (args.noise_slope is None):
+        raise InvalidInputError("--noise-knee and --noise-slope must be given together.")
+    if args.noise_knee is not None and args.noise_depth is None:
+        raise InvalidInputError("--noise-knee needs --noise-depth (the white level of the noise).")
+    if args.sims < 2:
+        raise InvalidInputError(f"--sims must be at least 2 to measure a scatter. Got {args.sims} instead.")
+
+    # 2. inputs
+    mask = maps.read_mask(args.mask, force=args.force)
+    nside = int(round(np.sqrt(mask.size / 12)))
+    lmax = 3 * nside - 1 if args.lmax is None else args.lmax
+    if args.lmin > lmax:
+        raise InvalidInputError(f"--lmin ({args.lmin}) must not exceed lmax ({lmax}).")
+    beam = float(args.beam_fwhm) if args.beam_fwhm is not None else None
+    if args.beam is not None:
+        beam = sp.read_beam(args.beam, lmax=lmax)
+    noise = None
+    if args.noise_depth is not None:
+        hits = None
+        if args.hits is not None:
+            hits, _info = maps.read_map(args.hits, unit="K", force=args.force)
+        noise = NoiseModel(depth_uk_arcmin=args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
+    if args.spectrum is not None:
+        from cmbtools._core.tables import read_spectrum_table
+
+        cl = np.asarray(read_spectrum_table(args.spectrum), dtype=np.float64)
+        if cl.size < lmax + 1:
+            raise InvalidInputError(
+                f"The spectrum table {args.spectrum!r} stops at ell={cl.size - 1}; the simulations need ell up to {lmax} "
+                f"(use --lmax {cl.size - 1} or a longer table)."
+            )
+        spectrum_text = f"{args.spectrum} (sha256 {sha256_file(args.spectrum)[:16]}...)"
+    else:
+        from cmbtools.simulate.theory_spectrum import fiducial_cl
+
+        cl = fiducial_cl(lmax)
+        spectrum_text = "built-in fiducial spectrum"
+
+    binning = sp.Binning.uniform(args.lmin, lmax, args.bin_width, weighting=args.bin_weighting)
+    est = sp.SpectrumEstimator(
+        mask, binning, lmax=lmax, beam=beam, pixel_window=not args.no_pixel_window,
+        remove_monopole_dipole=not args.keep_monopole_dipole, coupling="fast" if args.fast_coupling else "exact",
+        force=args.force,
+    )
+
+    # 3. the simulations
+    client = None
+    if args.scheduler is not None:
+        client = _dask_client(args.scheduler)
+        n_workers = len(client.scheduler_info(n_workers=-1).get("workers", {}))
+        where_text = f"the dask cluster at {args.scheduler} ({n_workers} workers)"
+    else:
+        n_workers = args.workers or resolve_nthreads(None)
+        where_text = f"{n_workers} local worker process{'es' if n_workers != 1 else ''}"
+    try:
+        result = validate_estimator(
+            est, cl, n_sims=args.sims, seed=args.seed, noise=noise, run_dir=run_dir, executor=client,
+            workers=None if client is not None else n_workers, threads_per_worker=args.threads or None,
+            progress=False if args.no_progress else None, restart=args.restart, force=args.force,
+        )
+    finally:
+        if client is not None:
+            client.close()
+
+    # 4. outputs
+    meta = dict(result.metadata)
+    meta.update({"mask_file": str(args.mask), "mask_file_sha256": sha256_file(args.mask), "input_spectrum": spectrum_text,
+                 "beam": f"Gaussian FWHM {args.beam_fwhm:g} arcmin" if args.beam_fwhm is not None
+                 else (f"table {args.beam}" if args.beam is not None else "none"),
+                 "pixel_window": "no" if args.no_pixel_window else "yes"})
+    if args.hits is not None:
+        meta["hits_file"] = str(args.hits)
+    import dataclasses
+
+    result = dataclasses.replace(result, metadata=meta)
+    written = []
+    for what, path, overwrite in outputs:
+        if what == "table":
+            written.append(result.write_csv(path, overwrite=overwrite, unit=args.unit))
+        elif what == "JSON summary":
+            written.append(result.write_json(path, overwrite=overwrite))
+        else:
+            written.append(result.plot(path, overwrite=overwrite))
+
+    s = result.summary()
+    # a null run (zero spectrum, no noise) has no scatter: its ratios are not numbers (None in the summary)
+    worst = int(np.argmax(np.where(np.isfinite(result.bias_sigma), np.abs(result.bias_sigma), -1.0)))
+
+    def num(key, spec):
+        return "n/a" if s[key] is None else format(s[key], spec)
+
+    ran = result.n_sims - int(meta.get("n_resumed", 0))
+    print(f"validated the spectrum estimator on {result.n_sims} simulations (seed {result.seed}) on {where_text}")
+    if meta.get("n_resumed"):
+        print(f"  resumed {meta['n_resumed']} finished simulations from {run_dir}; ran {ran}")
+    print(f"  nside {nside}, lmax {lmax}, {binning.n_bins} bins of {args.bin_width} multipoles from ell {args.lmin}; "
+          f"f_sky {est.f_sky:.3f}, f_sky_eff {est.f_sky_eff:.3f}")
+    noise_text = "none" if noise is None else (
+        f"{args.noise_depth:g} uK-arcmin" + (" shaped by the hits map" if args.hits else "")
+        + (f", knee at ell {args.noise_knee:g} (slope {args.noise_slope:g})" if args.noise_knee else ""))
+    print(f"  input: {spectrum_text}; beam: {meta['beam']}; noise: {noise_text}")
+    print(f"  bias: max |bias| {num('max_abs_bias_sigma', '.2f')} sigma (ell {int(result.ell_min[worst])}-"
+          f"{int(result.ell_max[worst])}), rms {num('rms_bias_sigma', '.2f')} sigma over {s['n_bins']} bins")
+    print(f"  error bars: scatter / analytic error = {num('median_error_ratio', '.3f')} (median; "
+          f"{num('min_error_ratio', '.3f')} to {num('max_error_ratio', '.3f')})")
+    print(f"  transfer (mean / expected): median {num('median_transfer', '.4f')}")
+    print("  wrote " + ", ".join(str(p) for p in written))
+    return 0

@@ -1,0 +1,330 @@
+"""Fitting and removing the monopole and dipole of a (masked) map.
+
+The model is ``T(n) = a + d . n`` with ``n`` the unit vector of a pixel
+centre.  The four parameters come from weighted least squares over the pixels
+that have mask weight > 0 and are not missing; the weight of a pixel is its
+mask value.  The normal equations are accumulated in chunks of pixels (so
+memory stays small at high nside), with the directions centred on their
+weighted mean so that small patches keep full precision; the condition
+number of the 4x4 normal matrix tells whether the kept sky constrains all
+four parameters.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from cmbtools._core.checks import UNSEEN, as_map, check_mask, check_same_nside, missing_pixels
+from cmbtools.exceptions import IllConditionedError, InvalidInputError
+
+__all__ = ["DipoleFit", "fit_monopole_dipole", "remove_monopole_dipole"]
+
+#: Normal matrices with a larger 2-norm condition number are refused: the
+#: smallest singular value of the weighted design matrix is then below 1e-6 of
+#: the largest, i.e. some combination of monopole and dipole changes the model
+#: by less than a millionth of its size and the data cannot pin it down.
+MAX_CONDITION = 1e12
+
+_CHUNK = 1 << 20
+_MODEL_BLOCK = 1 << 22
+
+
+def _pixel_vectors(nside, pix):
+    import healpy as hp
+
+    return np.stack(hp.pix2vec(nside, pix), axis=-1)
+
+
+@dataclass(frozen=True, eq=False)
+class DipoleFit:
+    """Monopole and dipole of a map, from :func:`fit_monopole_dipole`.
+
+    Attributes
+    ----------
+    monopole : float
+        The constant term, in the map's unit (K_CMB).
+    dipole_vector : ndarray of shape (3,)
+        ``d`` in ``T(n) = monopole + d . n`` (Cartesian, in the map's coordinate system).
+    amplitude : float
+        ``|d|``, the dipole's peak value.
+    lon_deg, lat_deg : float
+        Direction of ``d`` (longitude in [0, 360), latitude in [-90, 90]) in
+        the map's coordinate system; NaN when the amplitude is exactly zero.
+    n_pixels_used : int
+        Pixels with weight > 0 that are not missing.
+    condition_number : float
+        2-norm condition number of the 4x4 normal matrix.
+    """
+
+    monopole: float
+    dipole_vector: np.ndarray
+    amplitude: float
+    lon_deg: float
+    lat_deg: float
+    n_pixels_used: int = 0
+    condition_number: float = 1.0
+
+    def __post_init__(self):
+        v = np.array(self.dipole_vector, dtype=np.float64)
+        if v.shape != (3,):
+            raise InvalidInputError(f"DipoleFit.dipole_vector must have shape (3,), got {v.shape}")
+        v.setflags(write=False)
+        object.__setattr__(self, "dipole_vector", v)
+
+    def evaluate(self, nside):
+        """The fitted ``monopole + d . n`` as a RING map of ``nside``."""
+        npix = 12 * int(nside) ** 2
+        out = np.empty(npix)
+        for start in range(0, npix, _CHUNK):
+            pix = np.arange(start, min(start + _CHUNK, npix))
+            out[pix] = self.monopole + _pixel_vectors(nside, pix) @ self.dipole_vector
+        return out
+
+
+def _used_weights(m, mask):
+    """Weights of the pixels that take part in the fit (0 for missing pixels)."""
+    if mask is None:
+        w = np.ones(m.size)
+    else:
+        w = check_mask(mask, "mask").copy()
+        check_same_nside(m, w, "map", "mask")
+    w[missing_pixels(m)] = 0.0
+    return w
+
+
+def _condition_of_fit(mean_n, cov, n_pixels):
+    """Condition number of the normal matrix of the model (1, n) per unit weight; refuse it above MAX_CONDITION."""
+    normal = np.empty((4, 4))
+    normal[0, 0] = 1.0
+    normal[0, 1:] = normal[1:, 0] = mean_n
+    normal[1:, 1:] = cov + np.outer(mean_n, mean_n)
+    cond = float(np.linalg.cond(normal))
+    if not np.isfinite(cond) or cond > MAX_CONDITION:
+        raise IllConditionedError(
+            f"The unmasked sky ({n_pixels} pixels) cannot separate the monopole from the dipole: "
+            f"the normal matrix has condition number {cond:.3g} (limit {MAX_CONDITION:.0e}). "
+            f"Use a larger sky area or fit the monopole alone.",
+            cond,
+        )
+    return cond
+
+
+def fit_monopole_dipole(m, mask=None):
+    """Weighted least-squares monopole and dipole of a map over its unmasked pixels.
+
+    Parameters
+    ----------
+    m : array_like of shape (12*nside**2,)
+        RING map (K_CMB); missing pixels are left out automatically.
+    mask : array_like of shape (12*nside**2,), optional
+        Weights in [0, 1]; pixels with weight 0 are left out, the others
+        weigh by their value.  Default: every valid pixel with weight 1.
+
+    Returns
+    -------
+    DipoleFit
+        Monopole, dipole vector, amplitude and direction (degrees, in the
+        map's coordinate system).
+
+    Raises
+    ------
+    IllConditionedError
+        If fewer than 4 pixels are usable, or the kept sky is too small or
+        too degenerate to separate monopole and dipole (condition number of
+        the normal matrix above 1e12).
+    InvalidInputError, ResolutionMismatchError
+        For malformed maps or masks.
+    """
+    import healpy as hp
+
+    a = as_map(m, "map")
+    nside = int(round(np.sqrt(a.size / 12)))
+    w = _used_weights(a, mask)
+    used = np.flatnonzero(w > 0)
+    if used.size < 4:
+        raise IllConditionedError(
+            f"Only {used.size} pixels are unmasked and valid; a monopole and dipole fit needs at least 4.",
+            np.inf,
+        )
+    # Two passes over the pixels: weighted means first, then centred second moments.  Solving
+    # for the dipole with centred directions keeps full precision even on small patches, where
+    # the monopole and the dipole component along the patch axis are nearly degenerate.
+    total = 0.0
+    sum_n = np.zeros(3)
+    sum_m = 0.0
+    for start in range(0, used.size, _CHUNK):
+        pix = used[start:start + _CHUNK]
+        total += float(w[pix].sum())
+        sum_n += w[pix] @ _pixel_vectors(nside, pix)
+        sum_m += float(w[pix] @ a[pix])
+    mean_n, mean_m = sum_n / total, sum_m / total
+    cov = np.zeros((3, 3))
+    cross = np.zeros(3)
+    for start in range(0, used.size, _CHUNK):
+        pix = used[start:start + _CHUNK]
+        dn = _pixel_vectors(nside, pix) - mean_n
+        wdn = dn * w[pix, None]
+        cov += wdn.T @ dn
+        cross += wdn.T @ (a[pix] - mean_m)
+    cov /= total
+    cross /= total
+    cond = _condition_of_fit(mean_n, cov, used.size)
+    d = np.linalg.solve(cov, cross)
+    sol = np.concatenate([[mean_m - float(d @ mean_n)], d])
+    d = sol[1:]
+    amp = float(np.linalg.norm(d))
+    if amp > 0:
+        lon, lat = hp.vec2ang(d / amp, lonlat=True)
+        lon, lat = float(lon[0]) % 360.0, float(lat[0])
+    else:
+        lon = lat = float("nan")
+    return DipoleFit(
+        monopole=float(sol[0]), dipole_vector=d, amplitude=amp, lon_deg=lon, lat_deg=lat,
+        n_pixels_used=int(used.size), condition_number=cond,
+    )
+
+
+def remove_monopole_dipole(m, mask=None):
+    """Subtract the fitted monopole and dipole from every valid pixel of a map.
+
+    The fit uses only the unmasked valid pixels (see
+    :func:`fit_monopole_dipole`); the subtraction applies to the whole map.
+    The input is not modified; missing pixels stay UNSEEN.
+
+    Returns
+    -------
+    clean : ndarray of shape (12*nside**2,)
+        A new float64 map.
+    fit : DipoleFit
+        What was removed.
+    """
+    a = as_map(m, "map")
+    fit = fit_monopole_dipole(a, mask)
+    nside = int(round(np.sqrt(a.size / 12)))
+    bad = missing_pixels(a)
+    clean = a - fit.evaluate(nside)
+    clean[bad] = UNSEEN
+    return clean, fit
+
+
+# ----------------------------------------------------------------------------- fast path for full-sky RING maps
+
+# Pixel sums of products of (1, x, y, z) from the adjoint transform at lmax 2, which is exactly
+# A_lm = sum_p g_p Y*_lm(n_p) (no quadrature weights).  With healpy's Y_lm conventions:
+#   Y00 = 1/sqrt(4 pi); Y10 = sqrt(3/4pi) z; Y11 = -sqrt(3/8pi) (x + iy)
+#   Y20 = sqrt(5/16pi) (3z^2 - 1); Y21 = -sqrt(15/8pi) z (x + iy); Y22 = sqrt(15/32pi) (x + iy)^2
+_S0 = np.sqrt(4 * np.pi)
+_S10 = np.sqrt(4 * np.pi / 3)
+_S11 = np.sqrt(8 * np.pi / 3)
+_S20 = np.sqrt(16 * np.pi / 5)
+_S21 = np.sqrt(8 * np.pi / 15)
+_S22 = np.sqrt(32 * np.pi / 15)
+
+#: Smallest eigenvalue of the weighted covariance of pixel directions for the harmonic path.  Below
+#: it (caps narrower than about 5 degrees) the harmonic sums would lose more than ~1e-11 of the
+#: result to cancellation, and the centred pixel sums of :func:`fit_monopole_dipole` are used.
+_SMALL_PATCH_SPREAD = 1e-6
+
+
+def _harmonic_sums(g, lmax, nthreads):
+    """Coefficients ``sum_p g_p Y*_lm(n_p)`` up to ``lmax`` (healpy's layout) of a RING map."""
+    from cmbtools._core import sht as _sht
+
+    return _sht.adjoint_sums(g, lmax, nthreads=nthreads)
+
+
+def _first_moments(a):
+    """``(sum g, sum g x, sum g y, sum g z)`` from the lmax >= 1 sums ``a`` (layout: a00, a10, [a20], a11, ...)."""
+    lmax = int(round((np.sqrt(8 * a.size + 1) - 3) / 2))
+    a00, a10, a11 = a[0].real, a[1].real, a[lmax + 1]
+    return np.array([_S0 * a00, -_S11 * a11.real, _S11 * a11.imag, _S10 * a10])
+
+
+def _second_moments(a):
+    """3x3 ``sum g n n^T`` from the lmax-2 sums ``a`` of a map g."""
+    # layout for lmax 2: a00 a10 a20 | a11 a21 | a22
+    total = _S0 * a[0].real
+    zz = (_S20 * a[2].real + total) / 3.0
+    zx, zy = -_S21 * a[4].real, _S21 * a[4].imag
+    xx_minus_yy, xy = _S22 * a[5].real, -0.5 * _S22 * a[5].imag
+    xx = 0.5 * (total - zz + xx_minus_yy)
+    yy = 0.5 * (total - zz - xx_minus_yy)
+    return np.array([[xx, xy, zx], [xy, yy, zy], [zx, zy, zz]])
+
+
+def weight_sums(w, *, nthreads=None):
+    """The lmax-2 harmonic sums of a weight map that :func:`masked_without_monopole_dipole` needs (reusable)."""
+    from cmbtools._core.checks import resolve_nthreads
+
+    return _harmonic_sums(np.asarray(w, dtype=np.float64), 2, resolve_nthreads(nthreads))
+
+
+def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None):
+    """``w * (m - a - d . n)`` for a full RING map ``m`` and weights ``w``, by two harmonic sums.
+
+    The same weighted least-squares fit as :func:`fit_monopole_dipole` with
+    weights ``w`` (every pixel of ``m`` must be finite; pixels with ``w = 0``
+    do not take part), but the pixel sums of the normal equations come from
+    the adjoint spherical-harmonic transform at lmax 2 (which is exactly
+    ``sum_p g_p Y*_lm(n_p)``) and the fitted model is synthesized at lmax 1:
+    a few passes over the map instead of pixel-centre vectors for every
+    pixel.  This is the estimator's path; it returns a new array.
+    ``sums_of_weights`` (from :func:`weight_sums` of the same ``w``) saves one
+    transform per call.
+
+    Raises
+    ------
+    IllConditionedError
+        Under the same condition as :func:`fit_monopole_dipole`.
+    """
+    from cmbtools._core import sht as _sht
+    from cmbtools._core.checks import resolve_nthreads
+
+    nthreads = resolve_nthreads(nthreads)
+    nside = int(round(np.sqrt(m.size / 12)))
+    a_w = _harmonic_sums(w, 2, nthreads) if sums_of_weights is None else sums_of_weights
+    first = _first_moments(a_w)
+    total = first[0]
+    mean_n = first[1:] / total if total > 0 else np.zeros(3)
+    cov = _second_moments(a_w) / total - np.outer(mean_n, mean_n) if total > 0 else np.zeros((3, 3))
+    if not total > 0 or np.linalg.eigvalsh(cov)[0] < _SMALL_PATCH_SPREAD:
+        # small patch: the centred sums lose digits to cancellation; take the pixel path
+        clean, _ = remove_monopole_dipole(m, w)
+        clean *= w
+        return clean
+    n_used = int(np.count_nonzero(w))
+    # centre the map on its weighted mean in pixel space (exact), so that only the fluctuations enter
+    # the harmonic sums; the mean is added back to the monopole below
+    offset = float(np.dot(w, m)) / float(w.sum())
+    wm = m - offset
+    wm *= w
+    a_wm = _harmonic_sums(wm, 1, nthreads)
+    sums_m = _first_moments(a_wm)
+    mean_m = sums_m[0] / total
+    cross = sums_m[1:] / total - mean_n * mean_m
+    _condition_of_fit(mean_n, cov, n_used)
+    d = np.linalg.solve(cov, cross)
+    mono = mean_m - float(d @ mean_n)
+    # the model a + d.n as coefficients up to lmax 1 (layout a00, a10, a11)
+    alm = np.zeros((1, 3), dtype=np.complex128)
+    alm[0, 0] = mono * _S0
+    alm[0, 1] = d[2] * _S10
+    alm[0, 2] = (-d[0] + 1j * d[1]) * (0.5 * _S11)  # a_11 Y_11 + a_1-1 Y_1-1 = dx x + dy y
+    # synthesize the model ring block by ring block (about 2**22 pixels, 32 MB, each: fewer calls cost
+    # less) and subtract it in place, so that no second map-sized array is alive
+    geom = _sht.ring_geometry(nside)
+    starts = geom["ringstart"].astype(np.int64)
+    n_rings = starts.size
+    bounds = np.append(starts, m.size)
+    r0 = 0
+    while r0 < n_rings:
+        r1 = int(np.searchsorted(bounds, bounds[r0] + _MODEL_BLOCK, side="right")) - 1
+        r1 = min(n_rings, max(r1, r0 + 1))
+        p0, p1 = int(bounds[r0]), int(bounds[r1])
+        block = _sht.synthesis_on_rings(alm, 1, nside, r0, r1, nthreads=nthreads)
+        block *= w[p0:p1]
+        wm[p0:p1] -= block
+        r0 = r1
+    return wm

@@ -1,0 +1,253 @@
+"""Gaussian random skies: coefficients, maps with beam, pixel window, monopole and dipole.
+
+Every function takes ``rng`` (see :mod:`cmbtools.simulate.random_streams`);
+:func:`gaussian_sky` draws only the coefficients of :func:`gaussian_alm`
+(part of the reproducibility contract).
+"""
+
+from __future__ import annotations
+
+import numbers
+from dataclasses import dataclass
+from functools import cached_property
+
+import numpy as np
+
+from cmbtools._core import sht as _sht
+from cmbtools._core.checks import check_cl, check_lmax, check_nside, check_positive
+from cmbtools._core.memory import check_memory, estimate_dipole_map_bytes, estimate_sky_bytes
+from cmbtools.exceptions import InvalidInputError
+from cmbtools.simulate.random_streams import resolve_rng
+
+__all__ = ["gaussian_alm", "gaussian_sky", "Dipole", "dipole_map"]
+
+
+def gaussian_alm(cl, lmax, *, rng=None) -> np.ndarray:
+    """Draw the harmonic coefficients of a statistically isotropic Gaussian sky.
+
+    Parameters
+    ----------
+    cl : array_like of shape (>= lmax+1,)
+        Power spectrum C_l in K^2, indexed by ell from 0 (extra entries are ignored).
+    lmax : int
+        Largest multipole.
+    rng : Generator, SeedSequence, int or None, optional
+        Random source (see the module notes for the order of the draws).
+
+    Returns
+    -------
+    alm : ndarray of complex128, shape (alm_size(lmax),)
+        Coefficients in healpy's layout: ``a_l0`` real with variance ``C_l``,
+        ``a_lm`` (m > 0) with real and imaginary parts each of variance ``C_l / 2``.
+    """
+    lmax = check_lmax(lmax)
+    cl = check_cl(cl, "cl", lmax=lmax)[: lmax + 1]
+    gen = resolve_rng(rng)
+    size = _sht.alm_size(lmax)
+    draws = gen.standard_normal((2, size))
+    amp = np.sqrt(0.5 * cl)[_sht.alm_ell(lmax)]
+    alm = np.empty(size, dtype=np.complex128)
+    alm.real = draws[0] * amp
+    alm.imag = draws[1] * amp
+    # m = 0 coefficients are real with the full variance C_l.
+    alm.real[: lmax + 1] = draws[0, : lmax + 1] * np.sqrt(cl)
+    alm.imag[: lmax + 1] = 0.0
+    return alm
+
+
+def _beam_factor(beam, lmax) -> np.ndarray | None:
+    """B_l up to lmax from None, a FWHM in arcmin, or an array."""
+    if beam is None:
+        return None
+    if isinstance(beam, numbers.Real) and not isinstance(beam, bool):
+        from cmbtools.spectrum.beams import gaussian_beam
+
+        fwhm = check_positive(beam, "beam", allow_zero=True)
+        return np.asarray(gaussian_beam(fwhm, lmax), dtype=np.float64)[: lmax + 1]
+    try:
+        b = np.asarray(beam, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InvalidInputError(
+            f"The 'beam' parameter must be None, a FWHM in arcmin or an array B_l. Got {beam!r} instead."
+        ) from None
+    if b.ndim != 1 or b.size < lmax + 1:
+        raise InvalidInputError(
+            f"The 'beam' array must be 1-d and extend to ell={lmax}. Got shape {b.shape} instead."
+        )
+    if not np.all(np.isfinite(b)):
+        raise InvalidInputError("The 'beam' array has non-finite values.")
+    return b[: lmax + 1]
+
+
+@dataclass(frozen=True)
+class Dipole:
+    """A dipole given by its amplitude and direction.
+
+    Parameters
+    ----------
+    amplitude_k : float
+        Amplitude in K (the map gains ``amplitude_k * cos(angle to the direction)``).
+    lon_deg, lat_deg : float
+        Direction in the map's own coordinates (longitude, latitude in degrees).
+    """
+
+    amplitude_k: float
+    lon_deg: float
+    lat_deg: float
+
+    def __post_init__(self):
+        for name in ("amplitude_k", "lon_deg", "lat_deg"):
+            try:
+                v = float(getattr(self, name))
+            except (TypeError, ValueError):
+                raise InvalidInputError(f"The {name!r} parameter must be a number. Got {getattr(self, name)!r} instead.") from None
+            if not np.isfinite(v):
+                raise InvalidInputError(f"The {name!r} parameter must be finite. Got {v!r} instead.")
+            object.__setattr__(self, name, v)
+        if not -90.0 <= self.lat_deg <= 90.0:
+            raise InvalidInputError(f"The 'lat_deg' parameter must be in [-90, 90]. Got {self.lat_deg!r} instead.")
+
+    @cached_property
+    def vector(self) -> np.ndarray:
+        """The dipole as a Cartesian 3-vector in K."""
+        lon, lat = np.radians(self.lon_deg), np.radians(self.lat_deg)
+        v = self.amplitude_k * np.array([np.cos(lat) * np.cos(lon), np.cos(lat) * np.sin(lon), np.sin(lat)])
+        v.setflags(write=False)
+        return v
+
+
+def _dipole_vector(dipole) -> np.ndarray:
+    if isinstance(dipole, Dipole):
+        return np.asarray(dipole.vector)
+    try:
+        v = np.asarray(dipole, dtype=np.float64)
+    except (TypeError, ValueError):
+        v = None
+    if v is None or v.shape != (3,) or not np.all(np.isfinite(v)):
+        raise InvalidInputError(
+            "The 'dipole' parameter must be a Cartesian 3-vector in K or a "
+            f"cmbtools.simulate.Dipole(amplitude_k, lon_deg, lat_deg). Got {dipole!r} instead."
+        )
+    return v
+
+
+def dipole_map(nside, dipole, *, force=False) -> np.ndarray:
+    """A RING map of ``d . n`` for a dipole ``d`` (3-vector in K or :class:`Dipole`).
+
+    ``force=True`` goes ahead (with a warning) when the map and its temporaries
+    (about six maps) would not fit in the memory available; otherwise that
+    raises :class:`~cmbtools.exceptions.MemoryLimitError` before allocating.
+    """
+    nside = check_nside(nside)
+    v = _dipole_vector(dipole)
+    check_memory(estimate_dipole_map_bytes(nside), f"A dipole map at nside {nside}", force=force)
+    return _dipole_map(nside, v)
+
+
+def _dipole_map(nside, v) -> np.ndarray:
+    """``v . n`` on the RING grid (checked inputs; no memory check)."""
+    import healpy as hp
+
+    x, y, z = hp.pix2vec(nside, np.arange(12 * nside * nside))
+    return v[0] * x + v[1] * y + v[2] * z
+
+
+def gaussian_sky(
+    cl,
+    nside,
+    *,
+    lmax=None,
+    beam=None,
+    pixel_window=True,
+    monopole=0.0,
+    dipole=None,
+    rng=None,
+    nthreads=None,
+    force=False,
+) -> np.ndarray:
+    """Simulate a Gaussian CMB temperature map as an instrument would see it.
+
+    The coefficients of :func:`gaussian_alm` are multiplied by the beam and the
+    pixel window and synthesized on the HEALPix grid; then an optional monopole
+    and dipole are added in pixel space.
+
+    Parameters
+    ----------
+    cl : array_like
+        Sky power spectrum C_l in K^2, indexed by ell from 0.
+    nside : int
+        HEALPix resolution of the output.
+    lmax : int, optional
+        Largest multipole simulated; default ``min(3*nside - 1, len(cl) - 1)``;
+        at most ``4*nside - 1``.
+    beam : None, float or array_like, optional
+        None (no beam), a Gaussian beam FWHM in arcmin, or the beam transfer B_l.
+    pixel_window : bool, default=True
+        Multiply by the HEALPix pixel window of ``nside``, computed by cmbtools
+        itself (:func:`cmbtools.spectrum.pixel_windows.pixel_window`; no download).
+    monopole : float, default=0
+        Constant added to every pixel, in K.
+    dipole : array_like of shape (3,) or Dipole, optional
+        Dipole added in pixel space: a Cartesian vector in K, or a
+        :class:`Dipole` (amplitude in K, longitude and latitude in degrees).
+    rng : Generator, SeedSequence, int or None, optional
+        Random source; use :func:`simulation_rng` for sets of simulations.
+    nthreads : int, optional
+        Threads for the transform (default: all cores).
+    force : bool, default=False
+        Go ahead (with a :class:`~cmbtools.exceptions.CmbtoolsWarning`) even
+        when the memory estimate exceeds what the machine has available.
+
+    Returns
+    -------
+    m : ndarray of float64, shape (12*nside**2,)
+        The map in K_CMB, RING ordering.
+
+    Raises
+    ------
+    MemoryLimitError
+        If the map, its coefficients and the transform would not fit in
+        memory (estimated before allocating; unless ``force``).
+    """
+    nside = check_nside(nside)
+    cl = check_cl(cl, "cl")
+    if lmax is None:
+        lmax = min(3 * nside - 1, cl.size - 1)
+    lmax = check_lmax(lmax, nside)
+    if cl.size < lmax + 1:
+        raise InvalidInputError(f"The 'cl' must extend to ell={lmax}. Got ell up to {cl.size - 1} instead.")
+    try:
+        monopole = float(monopole)
+    except (TypeError, ValueError):
+        raise InvalidInputError(f"The 'monopole' parameter must be a number in K. Got {monopole!r} instead.") from None
+    if not np.isfinite(monopole):
+        raise InvalidInputError(f"The 'monopole' parameter must be finite. Got {monopole!r} instead.")
+    if not isinstance(pixel_window, (bool, np.bool_)):
+        raise InvalidInputError(f"The 'pixel_window' parameter must be True or False. Got {pixel_window!r} instead.")
+    dip = None if dipole is None else _dipole_vector(dipole)
+    check_memory(
+        estimate_sky_bytes(nside, lmax, dip is not None), f"A simulated sky at nside {nside} with lmax {lmax}", force=force
+    )
+    b = _beam_factor(beam, lmax)
+    return _gaussian_sky(cl, nside, lmax, b, pixel_window, monopole, dip, rng, nthreads)
+
+
+def _gaussian_sky(cl, nside, lmax, b, pixel_window, monopole, dip, rng, nthreads) -> np.ndarray:
+    """:func:`gaussian_sky` on checked inputs (``b``: B_l or None; ``dip``: a 3-vector or None); no memory check."""
+
+    transfer = np.ones(lmax + 1)
+    if b is not None:
+        transfer *= b
+    if pixel_window:
+        from cmbtools.spectrum.pixel_windows import pixel_window as _pixel_window
+
+        transfer *= np.asarray(_pixel_window(nside, lmax), dtype=np.float64)[: lmax + 1]
+
+    alm = gaussian_alm(cl, lmax, rng=rng)
+    alm = _sht.almxfl(alm, transfer, lmax)
+    m = _sht.alm2map(alm, nside, lmax, nthreads=nthreads)
+    if monopole:
+        m += monopole
+    if dip is not None:
+        m += _dipole_map(nside, dip)
+    return m

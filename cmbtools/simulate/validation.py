@@ -1,0 +1,288 @@
+"""The Monte Carlo validation of the spectrum estimator: simulate skies, measure them, compare bin by bin.
+
+:func:`validate_estimator` runs :func:`cmbtools.simulate.engine.run_simulations`
+with :func:`_simulate_and_estimate` (one sky, its noise, the estimator applied)
+and summarises the runs in a :class:`~cmbtools.simulate.ValidationResult`;
+:func:`validate_pipeline` also builds the estimator.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+
+import numpy as np
+
+from cmbtools._core.checks import check_int
+from cmbtools.exceptions import InvalidInputError
+from cmbtools.simulate.engine import MAX_SIMULATIONS, _function_name, run_simulations
+from cmbtools.simulate.validation_result import ValidationResult
+
+__all__ = ["validate_estimator", "validate_pipeline"]
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class _ValidationSetup:
+    """Everything a validation simulation needs (sent to each worker once)."""
+
+    estimator: object
+    cl: np.ndarray
+    sky_beam: np.ndarray
+    noise: object
+    noise_cl: np.ndarray | None
+    monopole: float
+    dipole: object
+    sky_filter: object
+    record_pseudo: bool
+
+
+def _validation_memory(estimator, noise, with_dipole, with_filter) -> int:
+    """Peak bytes of one :func:`_simulate_and_estimate` (the phases run one after the other; the largest wins).
+
+    The optional pseudo-spectrum is one more measurement of the same size.
+    """
+    from cmbtools._core.memory import estimate_alm_bytes, estimate_map_bytes, estimate_sky_bytes
+    from cmbtools.simulate.noise import _noise_bytes
+
+    nside, lmax = int(estimator.nside), int(estimator.lmax)
+    one = estimate_map_bytes(nside)
+    alm = estimate_alm_bytes(lmax)
+    # a measurement: the filled and the masked copies of the map, the coefficients and the larger of
+    # the transform's ring buffer and the temporaries of the spectrum
+    measure = 3 * one + alm + max(16 * (4 * nside - 1) * (lmax + 1), 3 * alm)
+    phases = [estimate_sky_bytes(nside, lmax, with_dipole), one + measure]
+    if with_filter:  # the sky, the filtered sky and its float64 copy
+        phases.append(3 * one)
+    if noise is not None:  # the sky while its noise is drawn; then the sky, the noise and their sum
+        phases += [one + _noise_bytes(noise, nside, lmax), 3 * one]
+    return max(phases)
+
+
+def _simulate_and_estimate(index, rng, setup):
+    """One validation simulation: sky (+ filter) (+ noise) -> bandpowers."""
+    from cmbtools.simulate.noise import _noise_map
+    from cmbtools.simulate.skies import _beam_factor, _dipole_vector, _gaussian_sky
+
+    # the memory of the whole run was checked once by validate_estimator: the private builders check nothing
+    est = setup.estimator
+    lmax = est.lmax
+    dip = None if setup.dipole is None else _dipole_vector(setup.dipole)
+    sky = _gaussian_sky(setup.cl, est.nside, lmax, _beam_factor(setup.sky_beam, lmax), False, float(setup.monopole),
+                        dip, rng, None)
+    if setup.sky_filter is not None:
+        filtered = np.asarray(setup.sky_filter(sky), dtype=np.float64)
+        if filtered.shape != sky.shape:
+            raise InvalidInputError(
+                f"The 'sky_filter' must return a map of shape {sky.shape}. Got shape {filtered.shape} instead."
+            )
+        sky = filtered
+    out = {}
+    if setup.record_pseudo:
+        out["pseudo_cl"] = est.pseudo_spectrum(sky)
+    if setup.noise is not None:
+        sky = sky + _noise_map(setup.noise, est.nside, 3 * est.nside - 1, rng, None)
+    bp = est.estimate(sky, noise_cl=setup.noise_cl)
+    out["cl"] = bp.cl
+    out["cl_err"] = bp.cl_err
+    return out
+
+
+def validate_estimator(
+    estimator,
+    cl=None,
+    *,
+    n_sims=100,
+    seed=None,
+    noise=None,
+    monopole=0.0,
+    dipole=None,
+    sky_filter=None,
+    record_pseudo_spectra=False,
+    run_dir=None,
+    executor=None,
+    workers=None,
+    threads_per_worker=None,
+    progress=None,
+    restart=False,
+    max_restarts=3,
+    force=False,
+) -> ValidationResult:
+    """Check a spectrum estimator on simulated skies: bias, error bars and transfer per bin.
+
+    Each simulation draws a Gaussian sky from ``cl``, convolves it with the
+    estimator's own beam and pixel window, adds the optional monopole and
+    dipole, applies the optional ``sky_filter``, adds noise drawn from
+    ``noise``, and measures the bandpowers with ``estimator`` (subtracting the
+    model noise spectrum :func:`cmbtools.simulate.noise_spectrum`).  The mean
+    over simulations is compared with ``estimator.expected_bandpowers(cl)``.
+    Simulation ``i`` draws its sky and then its noise from
+    ``simulation_rng(seed, i)``.
+
+    Parameters
+    ----------
+    estimator : SpectrumEstimator
+        The estimator to check (auto-spectra).  Build it with ``nthreads=None``
+        so that each worker uses its share of the cores.
+    cl : array_like of shape (>= lmax+1,), optional
+        Input sky spectrum C_l in K^2 from ell = 0; default: the built-in
+        fiducial spectrum :func:`cmbtools.simulate.fiducial_cl`.
+    n_sims : int, default=100
+        Number of simulations (>= 2).
+    seed : int, optional
+        Master seed (default: the one recorded in ``run_dir``, else fresh).
+    noise : NoiseModel, optional
+        Instrument noise added after the beam; its hits map (if any) must be
+        positive wherever the mask is.
+    monopole : float, default=0
+        Constant (K) added to every simulated sky.
+    dipole : array_like of shape (3,) or Dipole, optional
+        Dipole added to every simulated sky (see :func:`cmbtools.simulate.gaussian_sky`).
+    sky_filter : callable, optional
+        ``sky_filter(map) -> map`` applied to the sky before noise is added:
+        a stand-in for processing the estimator does not know about.  The
+        per-bin ``transfer`` of the result then measures its effect, and
+        ``record_pseudo_spectra`` lets :func:`transfer_from_pseudo_spectrum`
+        measure it per multipole.  Must be picklable for process workers.
+    record_pseudo_spectra : bool, default=False
+        Also record the pseudo-spectrum of each masked sky before noise (one
+        more transform per simulation); the result's ``mean_pseudo_cl``.
+    run_dir, executor, workers, threads_per_worker, progress, restart, max_restarts
+        As in :func:`run_simulations`.
+    force : bool, default=False
+        Run even when the memory estimate (one simulated sky, its noise and
+        its measurement per worker, times the workers that run at once)
+        exceeds what the machine has available: warn instead of raising
+        :class:`~cmbtools.exceptions.MemoryLimitError`.
+
+    Returns
+    -------
+    ValidationResult
+
+    See Also
+    --------
+    validate_pipeline : builds the estimator from a mask and bins, then calls this.
+    run_simulations : the engine, for any per-simulation function.
+    """
+    from cmbtools.simulate.noise import NoiseModel, noise_spectrum
+    from cmbtools._core.checks import check_cl
+
+    for attr in ("estimate", "expected_bandpowers", "pseudo_spectrum", "mask", "beam", "pixel_window", "nside", "lmax"):
+        if not hasattr(estimator, attr):
+            raise InvalidInputError(
+                f"The 'estimator' parameter must be a cmbtools.spectrum.SpectrumEstimator. Got {type(estimator).__name__} instead."
+            )
+    lmax, nside = int(estimator.lmax), int(estimator.nside)
+    n_sims = check_int(n_sims, "n_sims", minimum=2, maximum=MAX_SIMULATIONS)
+    if cl is None:
+        from cmbtools.simulate.theory_spectrum import fiducial_cl
+
+        cl = fiducial_cl(lmax)
+        cl_source = "built-in fiducial spectrum"
+    else:
+        cl_source = "user spectrum"
+    cl = check_cl(cl, "cl", lmax=lmax)[: lmax + 1].copy()
+    cl.setflags(write=False)
+    noise_cl = None
+    if noise is not None:
+        if not isinstance(noise, NoiseModel):
+            raise InvalidInputError(
+                f"The 'noise' parameter must be a cmbtools.simulate.NoiseModel or None. Got {type(noise).__name__} instead."
+            )
+        if noise.hits is not None:
+            hits = np.asarray(noise.hits)
+            if hits.size != estimator.mask.size:
+                noise_map_nside = int(round(math.sqrt(hits.size / 12)))
+                from cmbtools.exceptions import ResolutionMismatchError
+
+                raise ResolutionMismatchError(
+                    f"The noise model's hits map has nside {noise_map_nside} but the estimator's mask has nside {nside}.",
+                    noise_map_nside, nside,
+                )
+            uncovered = int(np.count_nonzero((np.asarray(estimator.mask) > 0) & ~(hits > 0)))
+            if uncovered:
+                raise InvalidInputError(
+                    f"The mask is non-zero in {uncovered} pixels that the noise model's hits map does not cover "
+                    "(hits <= 0); zero the mask there (e.g. multiply it by hits > 0) and build the estimator again."
+                )
+        noise_cl = noise_spectrum(noise, lmax, nside)
+    if sky_filter is not None and not callable(sky_filter):
+        raise InvalidInputError(f"The 'sky_filter' parameter must be a callable or None. Got {sky_filter!r} instead.")
+    sky_beam = np.asarray(estimator.beam, dtype=np.float64)[: lmax + 1] * np.asarray(estimator.pixel_window, dtype=np.float64)[: lmax + 1]
+    setup = _ValidationSetup(
+        estimator=estimator, cl=cl, sky_beam=sky_beam, noise=noise, noise_cl=noise_cl,
+        monopole=float(monopole), dipole=None if dipole is None else dipole, sky_filter=sky_filter,
+        record_pseudo=bool(record_pseudo_spectra),
+    )
+    sims = run_simulations(
+        _simulate_and_estimate, n_sims, seed=seed, context=setup, run_dir=run_dir, executor=executor,
+        workers=workers, threads_per_worker=threads_per_worker, progress=progress, restart=restart,
+        max_restarts=max_restarts, description="validation",
+        memory_per_simulation=_validation_memory(estimator, noise, dipole is not None, sky_filter is not None),
+        force=force,
+    )
+    binning = estimator.binning
+    metadata = {
+        "nside": nside,
+        "lmax": lmax,
+        "n_bins": int(binning.n_bins),
+        "f_sky": float(estimator.f_sky) if hasattr(estimator, "f_sky") else "",
+        "f_sky_eff": float(estimator.f_sky_eff) if hasattr(estimator, "f_sky_eff") else "",
+        "input_spectrum": cl_source,
+        "noise": "none" if noise is None else repr(noise),
+        "monopole_K": float(monopole),
+        "dipole": "none" if dipole is None else repr(dipole),
+        "sky_filter": "none" if sky_filter is None else _function_name(sky_filter),
+        "estimator_key": getattr(estimator, "cache_key", ""),
+        "n_resumed": sims.n_resumed,
+        "run_dir": "" if sims.run_dir is None else str(sims.run_dir),
+    }
+    return ValidationResult.from_samples(
+        sims["cl"], sims["cl_err"], estimator.expected_bandpowers(cl),
+        ell_min=binning.ell_min, ell_max=binning.ell_max, ell_eff=binning.ell_eff, dl_factor=binning.dl_factor,
+        seed=sims.seed, mean_pseudo_cl=sims["pseudo_cl"].mean(axis=0) if record_pseudo_spectra else None,
+        metadata=metadata,
+    )
+
+
+def validate_pipeline(mask, binning, cl=None, *, beam=None, noise=None, pixel_window=True, n_sims=100, seed=None,
+                      estimator_options=None, force=False, **run_options) -> ValidationResult:
+    """Build a spectrum estimator and check it on simulated skies, in one call.
+
+    Equivalent to ``validate_estimator(SpectrumEstimator(mask, binning,
+    beam=beam, pixel_window=pixel_window, **estimator_options), cl,
+    noise=noise, n_sims=n_sims, seed=seed, **run_options)``.
+
+    Parameters
+    ----------
+    mask : ndarray of shape (12*nside**2,)
+        Weights in [0, 1], RING.
+    binning : Binning
+        Bins of the bandpowers.
+    cl : array_like, optional
+        Input sky spectrum (K^2); default: the built-in fiducial spectrum.
+    beam : None, float or ndarray, optional
+        Beam (Gaussian FWHM in arcmin, or a table B_l) of both the simulated
+        skies and the estimator.
+    noise : NoiseModel, optional
+    pixel_window : bool, default=True
+    n_sims : int, default=100
+    seed : int, optional
+    estimator_options : dict, optional
+        More keyword arguments of :class:`~cmbtools.spectrum.SpectrumEstimator`
+        (``lmax``, ``coupling``, ``remove_monopole_dipole``, ...).
+    force : bool, default=False
+        Go ahead even when the memory estimate of the estimator or of the
+        simulations exceeds what the machine has available (both steps).
+    **run_options
+        Keyword arguments of :func:`validate_estimator` (``run_dir``,
+        ``executor``, ``workers``, ``progress``, ``monopole``, ...).
+
+    Returns
+    -------
+    ValidationResult
+    """
+    from cmbtools.spectrum.estimator import SpectrumEstimator
+
+    options = dict(estimator_options or {})
+    options.setdefault("force", force)
+    est = SpectrumEstimator(mask, binning, beam=beam, pixel_window=pixel_window, **options)
+    return validate_estimator(est, cl, noise=noise, n_sims=n_sims, seed=seed, force=force, **run_options)

@@ -1,0 +1,333 @@
+"""Groups of multipoles (bins) and the matrices that average a spectrum over them.
+
+A :class:`Binning` is a frozen value object: a list of bins, each an inclusive
+range of multipoles ``ell_min[b] <= ell <= ell_max[b]``, plus the weighting used
+inside a bin.  Bins are sorted and do not overlap; gaps between bins are
+allowed (multipoles in no bin are left out of the bandpowers).
+
+Two weightings are offered.  With ``weighting="dl"`` (the default) a bandpower
+is the plain average of ``D_l = l(l+1) C_l / 2 pi`` over the bin and the
+spectrum is modelled as flat in ``D_l`` inside the bin; with ``"cl"`` it is the
+plain average of ``C_l`` and the model is flat in ``C_l``.  In matrix form
+(Hivon et al. 2002, ApJ 567, 2, section 2.2) the averaging operator is ``P``
+(shape ``(n_bins, lmax+1)``) and the piecewise-flat model is ``Q`` (shape
+``(lmax+1, n_bins)``), with ``P @ Q`` the identity.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+
+import numpy as np
+
+from cmbtools._core.checks import check_int
+from cmbtools.exceptions import InvalidInputError
+
+__all__ = ["Binning"]
+
+_WEIGHTINGS = ("dl", "cl")
+
+
+def _int_array(values, name):
+    try:
+        a = np.asarray(values)
+    except (TypeError, ValueError):
+        raise InvalidInputError(f"The {name!r} must be a 1-d array of integers.") from None
+    if a.ndim != 1 or a.size == 0:
+        raise InvalidInputError(f"The {name!r} must be a non-empty 1-d array of integers. Got shape {a.shape} instead.")
+    if a.dtype.kind == "f":
+        # whole numbers that fit in int64 (larger ones would wrap around when converted)
+        if not np.all(np.isfinite(a)) or not np.all(a == np.round(a)) or not np.all(np.abs(a) <= 2**62):
+            raise InvalidInputError(f"The {name!r} must contain whole numbers. Got {a!r} instead.")
+    elif a.dtype.kind not in "iu":
+        raise InvalidInputError(f"The {name!r} must be a 1-d array of integers. Got dtype {a.dtype} instead.")
+    out = a.astype(np.int64)
+    out.setflags(write=False)
+    return out
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class Binning:
+    """Bins of multipoles for bandpowers.
+
+    Parameters
+    ----------
+    ell_min, ell_max : array_like of int, shape (n_bins,)
+        First and last multipole of every bin (both inclusive).  Bins must be
+        sorted, non-empty and must not overlap.
+    weighting : {'dl', 'cl'}, default='dl'
+        ``'dl'``: a bandpower is the average of ``l(l+1) C_l / 2 pi`` over the
+        bin (flat-``D_l`` model inside the bin); ``'cl'``: the average of ``C_l``.
+
+    Attributes
+    ----------
+    n_bins : int
+        Number of bins.
+    ell_eff : ndarray of shape (n_bins,)
+        Representative multipole of each bin: the mean of its multipoles.
+    lmax : int
+        Largest binned multipole (``ell_max[-1]``).
+
+    Examples
+    --------
+    >>> from cmbtools.spectrum import Binning
+    >>> b = Binning.uniform(lmin=2, lmax=47, width=16)
+    >>> b.n_bins, b.ell_min.tolist(), b.ell_max.tolist()
+    (3, [2, 18, 34], [17, 33, 47])
+    >>> b.ell_eff.tolist()
+    [9.5, 25.5, 40.5]
+    """
+
+    ell_min: np.ndarray
+    ell_max: np.ndarray
+    weighting: str = "dl"
+
+    def __post_init__(self):
+        lo = _int_array(self.ell_min, "ell_min")
+        hi = _int_array(self.ell_max, "ell_max")
+        if lo.shape != hi.shape:
+            raise InvalidInputError(
+                f"The 'ell_min' and 'ell_max' arrays must have the same length. Got {lo.size} and {hi.size} instead."
+            )
+        if np.any(lo < 0):
+            raise InvalidInputError(f"The 'ell_min' values must be >= 0. Got {int(lo.min())} instead.")
+        if np.any(hi < lo):
+            b = int(np.argmax(hi < lo))
+            raise InvalidInputError(
+                f"Bin {b} is empty: ell_max={int(hi[b])} is smaller than ell_min={int(lo[b])}."
+            )
+        if lo.size > 1 and np.any(lo[1:] <= hi[:-1]):
+            b = int(np.argmax(lo[1:] <= hi[:-1]))
+            raise InvalidInputError(
+                f"Bins {b} and {b + 1} overlap or are not sorted: [{int(lo[b])}, {int(hi[b])}] and "
+                f"[{int(lo[b + 1])}, {int(hi[b + 1])}]."
+            )
+        if self.weighting not in _WEIGHTINGS:
+            raise InvalidInputError(f"The 'weighting' parameter must be 'dl' or 'cl'. Got {self.weighting!r} instead.")
+        if self.weighting == "dl" and lo[0] == 0 and hi[0] == 0:
+            raise InvalidInputError(
+                "A bin holding only ell=0 has D_0 = 0 under the 'dl' weighting; use weighting='cl' "
+                "or start the first bin at ell >= 1."
+            )
+        object.__setattr__(self, "ell_min", lo)
+        object.__setattr__(self, "ell_max", hi)
+
+    # ------------------------------------------------------------------ constructors
+    @classmethod
+    def uniform(cls, lmin: int = 2, lmax: int | None = None, width: int = 16, *, weighting: str = "dl") -> "Binning":
+        """Bins of ``width`` multipoles from ``lmin`` up to ``lmax``.
+
+        The last bin ends at ``lmax`` and may be narrower than ``width``
+        (it is kept when it has at least half the width, otherwise merged into
+        the bin before it).
+
+        Parameters
+        ----------
+        lmin : int, default=2
+            First multipole of the first bin.
+        lmax : int
+            Last multipole of the last bin (inclusive).
+        width : int, default=16
+            Number of multipoles per bin.
+        weighting : {'dl', 'cl'}, default='dl'
+        """
+        if lmax is None:
+            raise InvalidInputError("The 'lmax' parameter of Binning.uniform is required (last multipole of the last bin).")
+        lmin = check_int(lmin, "lmin", minimum=0)
+        lmax = check_int(lmax, "lmax", minimum=0)
+        if lmin > lmax:
+            raise InvalidInputError(f"The first multipole lmin={lmin} is above the last, lmax={lmax}.")
+        width = check_int(width, "width", minimum=1)
+        starts = np.arange(lmin, lmax + 1, width)
+        ends = np.minimum(starts + width - 1, lmax)
+        if starts.size > 1 and (ends[-1] - starts[-1] + 1) * 2 < width:
+            starts = starts[:-1]
+            ends = np.append(ends[:-2], lmax)
+        return cls(starts, ends, weighting)
+
+    @classmethod
+    def from_edges(cls, edges, *, weighting: str = "dl") -> "Binning":
+        """Contiguous bins from their edges: bin ``b`` is ``edges[b] <= ell < edges[b+1]``.
+
+        Parameters
+        ----------
+        edges : array_like of int, shape (n_bins + 1,)
+            Strictly increasing; the last value is one past the last multipole.
+        weighting : {'dl', 'cl'}, default='dl'
+
+        Examples
+        --------
+        >>> Binning.from_edges([2, 10, 30, 61]).ell_max.tolist()
+        [9, 29, 60]
+        """
+        e = _int_array(edges, "edges")
+        if e.size < 2:
+            raise InvalidInputError(f"The 'edges' must have at least two values (one bin). Got {e.tolist()} instead.")
+        if np.any(np.diff(e) <= 0):
+            raise InvalidInputError(f"The 'edges' must be strictly increasing. Got {e.tolist()} instead.")
+        return cls(e[:-1], e[1:] - 1, weighting)
+
+    @classmethod
+    def log_spaced(cls, lmin: int, lmax: int, n_bins: int, *, weighting: str = "dl") -> "Binning":
+        """About ``n_bins`` bins evenly spaced in ``log(ell)`` from ``lmin`` to ``lmax``.
+
+        Edges are rounded to whole multipoles; at low ``ell`` where rounding
+        would give empty bins, bins are one multipole wide, so the result may
+        have fewer than ``n_bins`` bins.
+
+        Parameters
+        ----------
+        lmin : int
+            First multipole (>= 1).
+        lmax : int
+            Last multipole (inclusive).
+        n_bins : int
+            Requested number of bins.
+        weighting : {'dl', 'cl'}, default='dl'
+        """
+        lmin = check_int(lmin, "lmin", minimum=1)
+        lmax = check_int(lmax, "lmax", minimum=1)
+        if lmin > lmax:
+            raise InvalidInputError(f"The first multipole lmin={lmin} is above the last, lmax={lmax}.")
+        n_bins = check_int(n_bins, "n_bins", minimum=1, maximum=lmax - lmin + 1)
+        raw = np.geomspace(lmin, lmax + 1, n_bins + 1)
+        edges = np.unique(np.round(raw).astype(np.int64))
+        edges[0], edges[-1] = lmin, lmax + 1
+        edges = np.unique(edges)
+        return cls.from_edges(edges, weighting=weighting)
+
+    # ------------------------------------------------------------------ derived values
+    @property
+    def n_bins(self) -> int:
+        return int(self.ell_min.size)
+
+    @property
+    def lmin(self) -> int:
+        """Smallest binned multipole."""
+        return int(self.ell_min[0])
+
+    @property
+    def lmax(self) -> int:
+        """Largest binned multipole."""
+        return int(self.ell_max[-1])
+
+    @functools.cached_property
+    def n_ell(self) -> np.ndarray:
+        """Number of multipoles in every bin."""
+        n = self.ell_max - self.ell_min + 1
+        n.setflags(write=False)
+        return n
+
+    @functools.cached_property
+    def ell_eff(self) -> np.ndarray:
+        """Mean multipole of every bin (float)."""
+        e = 0.5 * (self.ell_min + self.ell_max).astype(np.float64)
+        e.setflags(write=False)
+        return e
+
+    @functools.cached_property
+    def dl_factor(self) -> np.ndarray:
+        """``ell_eff (ell_eff + 1) / 2 pi``: converts the C_l column to the D_l column."""
+        f = self.ell_eff * (self.ell_eff + 1.0) / (2.0 * np.pi)
+        f.setflags(write=False)
+        return f
+
+    @functools.cached_property
+    def bin_index(self) -> np.ndarray:
+        """For ``ell = 0..lmax``: the bin containing it, or -1."""
+        idx = np.full(self.lmax + 1, -1, dtype=np.int64)
+        for b, (lo, hi) in enumerate(zip(self.ell_min, self.ell_max)):
+            idx[lo : hi + 1] = b
+        idx.setflags(write=False)
+        return idx
+
+    def averaging_weights(self, lmax: int | None = None) -> np.ndarray:
+        """``P[bin(l), l]`` for ``l = 0..lmax`` (zero outside the bins): the non-zeros of :meth:`averaging_matrix`."""
+        lmax = self.lmax if lmax is None else check_int(lmax, "lmax", minimum=self.lmax)
+        ell = np.arange(lmax + 1, dtype=np.float64)
+        w = ell * (ell + 1.0) / (2.0 * np.pi) if self.weighting == "dl" else np.ones(lmax + 1)
+        out = np.zeros(lmax + 1)
+        idx = self.bin_index
+        sel = np.nonzero(idx >= 0)[0]
+        out[sel] = w[sel] / self.n_ell[idx[sel]]
+        return out
+
+    def model_weights(self, lmax: int | None = None) -> np.ndarray:
+        """``Q[l, bin(l)]`` for ``l = 0..lmax`` (zero outside the bins): the non-zeros of :meth:`model_matrix`."""
+        lmax = self.lmax if lmax is None else check_int(lmax, "lmax", minimum=self.lmax)
+        ell = np.arange(lmax + 1, dtype=np.float64)
+        if self.weighting == "dl":
+            w = np.zeros(lmax + 1)
+            w[1:] = 2.0 * np.pi / (ell[1:] * (ell[1:] + 1.0))
+        else:
+            w = np.ones(lmax + 1)
+        out = np.zeros(lmax + 1)
+        sel = np.nonzero(self.bin_index >= 0)[0]
+        out[sel] = w[sel]
+        return out
+
+    def averaging_matrix(self, lmax: int | None = None) -> np.ndarray:
+        """The operator ``P`` of shape ``(n_bins, lmax+1)``: bandpowers = ``P @ C_l``.
+
+        For ``'dl'`` weighting ``P[b, l] = l(l+1) / (2 pi n_b)``, for ``'cl'``
+        ``P[b, l] = 1 / n_b``, on the multipoles of bin ``b``; zero elsewhere.
+        """
+        w = self.averaging_weights(lmax)
+        p = np.zeros((self.n_bins, w.size))
+        sel = np.nonzero(self.bin_index >= 0)[0]
+        p[self.bin_index[sel], sel] = w[sel]
+        return p
+
+    def model_matrix(self, lmax: int | None = None) -> np.ndarray:
+        """The operator ``Q`` of shape ``(lmax+1, n_bins)``: the piecewise-flat spectrum of bandpowers.
+
+        For ``'dl'`` weighting ``Q[l, b] = 2 pi / (l(l+1))`` on the multipoles of
+        bin ``b`` (zero at ``l = 0``), for ``'cl'`` ``Q[l, b] = 1``.
+        """
+        w = self.model_weights(lmax)
+        q = np.zeros((w.size, self.n_bins))
+        sel = np.nonzero(self.bin_index >= 0)[0]
+        q[sel, self.bin_index[sel]] = w[sel]
+        return q
+
+    def bin_spectrum(self, cl) -> np.ndarray:
+        """Average a per-ell spectrum ``C_l`` (length >= lmax+1) into bins; returns the C_l bandpowers.
+
+        With ``'dl'`` weighting the average is taken over ``D_l`` and converted
+        back to ``C_l`` at ``ell_eff``, the same convention as the estimator's
+        ``cl`` column.
+        """
+        cl = np.asarray(cl, dtype=np.float64)
+        if cl.ndim != 1 or cl.size < self.lmax + 1:
+            raise InvalidInputError(
+                f"The spectrum to bin must be 1-d and extend to ell={self.lmax}. Got shape {cl.shape} instead."
+            )
+        binned = self.averaging_matrix() @ cl[: self.lmax + 1]
+        return binned / self.dl_factor if self.weighting == "dl" else binned
+
+    def as_dict(self) -> dict:
+        """A description for file headers: weighting, n_bins and the bin limits as text."""
+        return {
+            "bins_weighting": self.weighting,
+            "bins_count": self.n_bins,
+            "bins_ell_min": " ".join(map(str, self.ell_min.tolist())),
+            "bins_ell_max": " ".join(map(str, self.ell_max.tolist())),
+        }
+
+    # ------------------------------------------------------------------ value semantics
+    def _key(self):
+        return (self.ell_min.tobytes(), self.ell_max.tobytes(), self.weighting)
+
+    def __eq__(self, other):
+        if not isinstance(other, Binning):
+            return NotImplemented
+        return self._key() == other._key()
+
+    def __hash__(self):
+        return hash(self._key())
+
+    def __repr__(self):
+        return (
+            f"Binning(n_bins={self.n_bins}, ell {self.lmin}..{self.lmax}, weighting={self.weighting!r})"
+        )

@@ -1,0 +1,104 @@
+"""The one-call form of the estimator, and the one rule for missing pixels inside a mask.
+
+:func:`estimate_spectrum` builds a :class:`~cmbtools.spectrum.SpectrumEstimator`
+and applies it once; unlike a prebuilt estimator it accepts missing pixels
+inside the mask, which :func:`drop_missing_pixels` leaves out.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+
+from cmbtools._core.checks import as_map, check_mask, check_same_nside, missing_pixels
+from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
+from cmbtools.spectrum.estimator import SpectrumEstimator
+
+__all__ = ["estimate_spectrum"]
+
+
+def estimate_spectrum(map1, mask, binning, *, map2=None, mask2=None, noise_cl=None, noise_maps=None, **estimator_kwargs):
+    """Bandpowers of a map (or the cross-spectrum of two maps) in one call.
+
+    Builds a :class:`SpectrumEstimator` and applies it once.  Unlike a
+    prebuilt estimator, missing pixels (UNSEEN/NaN/inf) inside the mask are
+    allowed: the effective mask becomes ``mask * (pixel valid)`` and a
+    :class:`~cmbtools.exceptions.CmbtoolsWarning` says how many pixels were
+    dropped.  To analyse many maps with the same mask, build the estimator
+    once instead.
+
+    Parameters
+    ----------
+    map1 : ndarray of shape (12*nside**2,)
+        RING map, K_CMB.
+    mask : ndarray of shape (12*nside**2,)
+        Weights of map 1.
+    binning : Binning
+    map2, mask2 : ndarray of shape (12*nside**2,), optional
+        Second map for a cross-spectrum, and its mask (default ``mask``).
+    noise_cl, noise_maps : optional
+        Noise bias of an auto-spectrum (see :meth:`SpectrumEstimator.estimate`).
+    **estimator_kwargs
+        Any keyword of :class:`SpectrumEstimator` (lmax, beam, beam2,
+        pixel_window, transfer, coupling, nthreads, ...).
+
+    Returns
+    -------
+    Bandpowers
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from cmbtools.spectrum import Binning, estimate_spectrum
+    >>> rng = np.random.default_rng(3)
+    >>> m = rng.standard_normal(12 * 16**2) * 1e-5
+    >>> mask = np.ones(m.size); mask[:768] = 0.0
+    >>> m[1000] = np.nan            # a missing pixel inside the mask
+    >>> import warnings
+    >>> with warnings.catch_warnings(record=True) as caught:
+    ...     warnings.simplefilter("always")
+    ...     bp = estimate_spectrum(m, mask, Binning.uniform(2, 47, 8), pixel_window=False, nthreads=1)
+    >>> "1 missing pixel" in str(caught[0].message)
+    True
+    """
+    a1 = as_map(map1, "map1")
+    w1 = check_mask(mask, "mask")
+    check_same_nside(a1, w1, "map1", "mask")
+    w1 = drop_missing_pixels(a1, w1, "map1", "mask")
+    if map2 is not None:
+        a2 = as_map(map2, "map2")
+        w2 = check_mask(mask if mask2 is None else mask2, "mask2")
+        check_same_nside(a2, w2, "map2", "mask2")
+        w2 = drop_missing_pixels(a2, w2, "map2", "mask2")
+    else:
+        a2 = None
+        w2 = None if mask2 is None else check_mask(mask2, "mask2")
+    est = SpectrumEstimator(w1, binning, mask2=w2, **estimator_kwargs)
+    return est.estimate(a1, a2, noise_cl=noise_cl, noise_maps=noise_maps)
+
+
+def drop_missing_pixels(m, w, map_name, mask_name, *, stacklevel=3):
+    """The mask ``w`` set to zero where the map ``m`` has missing pixels (UNSEEN/NaN/inf), with a warning.
+
+    The one rule for missing pixels inside a mask, used by
+    :func:`estimate_spectrum` and the ``spectrum`` command.
+
+    Raises
+    ------
+    InvalidInputError
+        If every pixel of the map inside the mask is missing.
+    """
+    inside = missing_pixels(m) & (w > 0)
+    n = int(inside.sum())
+    if n:
+        warnings.warn(
+            f"The {map_name!r} has {n} missing pixel{'s' if n != 1 else ''} inside the mask ({mask_name!r}; "
+            f"UNSEEN/NaN/inf); they are left out (the mask is set to zero there).",
+            CmbtoolsWarning,
+            stacklevel=stacklevel,
+        )
+        w = np.where(inside, 0.0, w)
+        if not np.any(w > 0):
+            raise InvalidInputError(f"Every pixel of {map_name!r} inside the {mask_name!r} is missing.")
+    return w

@@ -1,0 +1,277 @@
+"""The settings of a spectrum estimator: checked once, frozen, carrying the cache key.
+
+:func:`resolve_settings` holds the one signature of the estimator's settings
+(mask, binning, lmax, second mask, beams, pixel window, transfer functions,
+monopole/dipole removal, coupling mode and its fast-mode settings, refinement
+iterations, covariance, condition-number limit); :class:`SpectrumEstimator`
+and :meth:`SpectrumEstimator.load_or_build` pass their keywords through it.
+The result, :class:`EstimatorSettings`, is what the estimator is built from
+and what :mod:`cmbtools.spectrum.storage` writes and reads back.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import warnings
+
+import numpy as np
+
+from cmbtools._core import files as _io
+from cmbtools._core.checks import (
+    check_cl,
+    check_int,
+    check_lmax,
+    check_mask,
+    check_positive,
+    check_same_nside,
+    nside_from_npix,
+)
+from cmbtools._version import __version__
+from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
+from cmbtools.spectrum import coupling as _coupling
+from cmbtools.spectrum.binning import Binning
+
+__all__ = ["EstimatorSettings", "resolve_settings", "MAX_CONDITION_NUMBER"]
+
+#: Largest accepted 2-norm condition number of the binned coupling matrix (with
+#: the beam, pixel window and transfer function divided out).  For masks of
+#: sky fraction >= 0.2 with a few degrees of apodization and bins of >= 5
+#: multipoles it stays below ~10; it passes 1e3 only when bins are so narrow
+#: that neighbouring bandpowers can no longer be told apart on the masked sky,
+#: where the inversion amplifies the noise of each bandpower by about the
+#: condition number (common practice: treat such a binning as a mistake).
+MAX_CONDITION_NUMBER = 1.0e3
+
+_FILE_FORMAT = "cmbtools-spectrum-estimator-1"
+_COUPLING_MODES = ("exact", "fast")
+
+
+
+
+def _beam_array(beam, lmax, name):
+    """B_l for ell = 0..lmax from None, a FWHM in arcmin or an array; and a description."""
+    from cmbtools.spectrum.beams import gaussian_beam
+
+    if beam is None:
+        return np.ones(lmax + 1), "none"
+    if np.ndim(beam) == 0:
+        fwhm = check_positive(beam, f"{name} (FWHM in arcmin)", allow_zero=True)
+        return gaussian_beam(fwhm, lmax), f"gaussian fwhm_arcmin={fwhm:g}"
+    b = check_cl(beam, name, lmax=lmax, allow_negative=True)[: lmax + 1].copy()
+    if abs(b[0] - 1.0) > 1e-3:
+        warnings.warn(
+            f"The {name!r} has B_0 = {b[0]:.6g}, not 1; it is used as given (not renormalised).",
+            CmbtoolsWarning,
+            stacklevel=4,
+        )
+    return b, f"table sha256={_io.sha256_arrays(b)[:16]}"
+
+
+def _window_array(pixel_window, nside, lmax, nthreads):
+    if pixel_window is True:
+        from cmbtools.spectrum.pixel_windows import pixel_window as _pw
+
+        return np.asarray(_pw(nside, lmax, nthreads=nthreads), dtype=np.float64)[: lmax + 1].copy(), f"healpix nside={nside}"
+    if pixel_window is False or pixel_window is None:
+        return np.ones(lmax + 1), "none"
+    w = check_cl(pixel_window, "pixel_window", lmax=lmax, allow_negative=True)[: lmax + 1].copy()
+    return w, f"table sha256={_io.sha256_arrays(w)[:16]}"
+
+
+def _transfer_array(transfer, lmax, name):
+    if transfer is None:
+        return np.ones(lmax + 1), "none"
+    t = check_cl(transfer, name, lmax=lmax)[: lmax + 1].copy()
+    return t, f"table sha256={_io.sha256_arrays(t)[:16]}"
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class EstimatorSettings:
+    """Everything a :class:`~cmbtools.spectrum.SpectrumEstimator` is built from, checked and normalised once.
+
+    Frozen; built by :func:`resolve_settings` (which holds the one signature of the
+    estimator's settings) or read back by :mod:`cmbtools.spectrum.storage`.
+    :attr:`cache_key` identifies the inputs (the hash an estimator cache is checked against).
+    """
+
+    mask1: np.ndarray
+    mask2: np.ndarray | None
+    binning: Binning
+    nside: int
+    lmax: int
+    beam1: np.ndarray
+    beam2: np.ndarray
+    pixwin: np.ndarray
+    transfer1: np.ndarray
+    transfer2: np.ndarray
+    remove_monopole_dipole: bool
+    coupling: str
+    fast: tuple | None
+    n_iter: int
+    covariance: bool
+    max_condition_number: float
+    descriptions: dict
+    mask1_sha256: str
+    mask2_sha256: str | None
+
+    @property
+    def cache_key(self) -> str:
+        return _io.sha256_arrays(
+            _FILE_FORMAT,
+            __version__,
+            self.mask1_sha256,
+            self.mask2_sha256,
+            self.binning.ell_min,
+            self.binning.ell_max,
+            self.binning.weighting,
+            self.nside,
+            self.lmax,
+            self.beam1,
+            self.beam2,
+            self.pixwin,
+            self.transfer1,
+            self.transfer2,
+            bool(self.remove_monopole_dipole),
+            self.coupling,
+            None if self.fast is None else tuple(int(v) for v in self.fast),
+            int(self.n_iter),
+            bool(self.covariance),
+            float(self.max_condition_number),
+        )
+
+
+def resolve_settings(
+    mask,
+    binning,
+    *,
+    lmax=None,
+    mask2=None,
+    beam=None,
+    beam2=None,
+    pixel_window=True,
+    transfer=None,
+    transfer2=None,
+    remove_monopole_dipole=True,
+    coupling="exact",
+    fast_l_exact=None,
+    fast_l_toeplitz=None,
+    fast_band=None,
+    n_iter=0,
+    nthreads=None,
+    covariance=False,
+    max_condition_number=MAX_CONDITION_NUMBER,
+) -> EstimatorSettings:
+    """Check and normalise the settings of a spectrum estimator (see :class:`~cmbtools.spectrum.SpectrumEstimator`)."""
+    w1 = check_mask(mask, "mask").copy()
+    nside = nside_from_npix(w1.size, "mask")
+    w2 = None
+    if mask2 is not None:
+        w2 = check_mask(mask2, "mask2").copy()
+        check_same_nside(w1, w2, "mask", "mask2")
+        if np.array_equal(w1, w2):
+            w2 = None
+    if not isinstance(binning, Binning):
+        raise InvalidInputError(
+            f"The 'binning' parameter must be a cmbtools.spectrum.Binning. Got {type(binning).__name__} instead."
+        )
+    lmax = 3 * nside - 1 if lmax is None else check_lmax(lmax, nside)
+    if lmax > 3 * nside - 1:
+        warnings.warn(
+            f"lmax={lmax} is above 3*nside-1={3 * nside - 1}: the HEALPix grid of nside {nside} does not "
+            f"resolve these multipoles well (aliasing); the highest bandpowers may be biased.",
+            CmbtoolsWarning,
+            stacklevel=3,
+        )
+    if binning.lmax > lmax:
+        raise InvalidInputError(
+            f"The binning reaches ell={binning.lmax} but lmax is {lmax}; end the bins at or below lmax "
+            f"(or raise lmax, up to {4 * nside - 1} at nside {nside})."
+        )
+    if not isinstance(remove_monopole_dipole, (bool, np.bool_)):
+        raise InvalidInputError(
+            f"The 'remove_monopole_dipole' parameter must be True or False. Got {remove_monopole_dipole!r} instead."
+        )
+    if remove_monopole_dipole and binning.lmin < 2:
+        warnings.warn(
+            f"The first bin starts at ell={binning.lmin} but the monopole and dipole are removed: "
+            f"bandpowers at ell < 2 carry no signal (start the bins at ell=2 or keep the monopole and dipole).",
+            CmbtoolsWarning,
+            stacklevel=3,
+        )
+    if coupling not in _COUPLING_MODES:
+        raise InvalidInputError(f"The 'coupling' parameter must be 'exact' or 'fast'. Got {coupling!r} instead.")
+    fast = None
+    explicit = fast_l_exact is not None or fast_l_toeplitz is not None or fast_band is not None
+    if coupling == "fast" and not explicit and lmax > _coupling.fast_lmax_limit(nside):
+        pass  # the banded form cannot represent the grid's aliasing up there: the exact matrix it is
+    elif coupling == "fast":
+        if lmax > _coupling.fast_lmax_limit(nside):
+            warnings.warn(
+                f"The fast coupling approximation with lmax={lmax} above 2*nside={2 * nside} misses the "
+                f"HEALPix grid's aliasing: the highest bandpowers may be off by several percent "
+                f"(leave the fast_* settings unset to get the exact matrix there).",
+                CmbtoolsWarning,
+                stacklevel=3,
+            )
+        d_exact, d_toep, d_band = _coupling.default_fast_settings(lmax)
+        l_exact = d_exact if fast_l_exact is None else check_int(fast_l_exact, "fast_l_exact", minimum=0, maximum=lmax)
+        l_toep = (
+            max(d_toep, l_exact)
+            if fast_l_toeplitz is None
+            else check_int(fast_l_toeplitz, "fast_l_toeplitz", minimum=l_exact, maximum=lmax)
+        )
+        band = d_band if fast_band is None else check_int(fast_band, "fast_band", minimum=1)
+        fast = (l_exact, l_toep, band)
+    elif fast_l_exact is not None or fast_l_toeplitz is not None or fast_band is not None:
+        raise InvalidInputError(
+            "The 'fast_l_exact', 'fast_l_toeplitz' and 'fast_band' parameters only apply with coupling='fast'."
+        )
+    n_iter = check_int(n_iter, "n_iter", minimum=0, maximum=20)
+    if not isinstance(covariance, (bool, np.bool_)):
+        raise InvalidInputError(f"The 'covariance' parameter must be True or False. Got {covariance!r} instead.")
+    max_cond = check_positive(max_condition_number, "max_condition_number")
+    if max_cond < 1:
+        raise InvalidInputError(f"The 'max_condition_number' parameter must be >= 1. Got {max_condition_number!r} instead.")
+
+    b1, d_b1 = _beam_array(beam, lmax, "beam")
+    if beam2 is None:
+        b2, d_b2 = b1, d_b1
+    else:
+        b2, d_b2 = _beam_array(beam2, lmax, "beam2")
+    pw, d_pw = _window_array(pixel_window, nside, lmax, nthreads)
+    t1, d_t1 = _transfer_array(transfer, lmax, "transfer")
+    if transfer2 is None:
+        t2, d_t2 = t1, d_t1
+    else:
+        t2, d_t2 = _transfer_array(transfer2, lmax, "transfer2")
+    for a in (w1, w2, b1, b2, pw, t1, t2):
+        if a is not None:
+            a.setflags(write=False)
+    descriptions = {
+        "beam": d_b1,
+        "beam2": d_b2,
+        "pixel_window": d_pw,
+        "transfer": d_t1,
+        "transfer2": d_t2,
+    }
+    return EstimatorSettings(
+        mask1=w1,
+        mask2=w2,
+        binning=binning,
+        nside=nside,
+        lmax=lmax,
+        beam1=b1,
+        beam2=b2,
+        pixwin=pw,
+        transfer1=t1,
+        transfer2=t2,
+        remove_monopole_dipole=bool(remove_monopole_dipole),
+        coupling=coupling,
+        fast=fast,
+        n_iter=n_iter,
+        covariance=bool(covariance),
+        max_condition_number=max_cond,
+        descriptions=descriptions,
+        mask1_sha256=_io.sha256_arrays(w1),
+        mask2_sha256=None if w2 is None else _io.sha256_arrays(w2),
+    )

@@ -1,0 +1,68 @@
+"""scripts/benchmark.py runs and reports every figure of every workload (not the timings themselves).
+
+Speed targets are checked by running the script on a quiet machine (see the
+README's performance section), never as timed unit tests.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import subprocess
+import sys
+from pathlib import Path
+
+SCRIPT = Path(__file__).resolve().parents[2] / "scripts" / "benchmark.py"
+
+EXPECTED = {
+    "W1": {
+        "nside", "lmax", "f_sky", "n_bins", "repeats", "anafast_s", "first_call_exact_s", "first_call_fast_s",
+        "first_call_exact_ratio", "first_call_fast_ratio", "reuse_s", "reuse_ratio", "coupling_s",
+        "bare_kernel_s", "coupling_ratio", "fast_max_rel_diff_all_bins", "fast_max_rel_diff_below_2nside",
+        "banded_max_rel_diff_all_bins", "banded_max_rel_diff_below_2nside", "first_call_banded_s",
+        "pixel_window_first_computation_s",
+    },
+    "W2": {
+        "nside", "lmax", "repeats", "simulation_s", "bare_synthesis_analysis_s", "simulation_ratio",
+        "simulation_without_monopole_dipole_removal_s", "simulation_without_monopole_dipole_removal_ratio",
+        "random_numbers_s", "random_numbers_ratio",
+    },
+    "W3": {
+        "nside", "lmax", "f_sky", "repeats", "anafast_s", "first_call_fast_s", "first_call_fast_ratio",
+        "peak_rss_gb", "rss_with_inputs_loaded_gb", "first_call_fast_in_child_s", "pixel_window_first_computation_s",
+    },
+    "W4": {"n_redshifts", "n_astropy", "cmbtools_s", "astropy_s", "astropy_scaled_s", "ratio", "max_rel_diff"},
+}
+TARGETS = {
+    "W1.first_call_exact_ratio", "W1.first_call_fast_ratio", "W1.reuse_ratio", "W1.coupling_ratio",
+    "W1.fast_max_rel_diff_all_bins", "W2.simulation_ratio", "W3.first_call_fast_ratio", "W3.peak_rss_gb",
+    "W4.ratio", "W4.max_rel_diff",
+}
+
+
+def test_quick_run_prints_every_figure(tmp_path):
+    env_home = {"CMBTOOLS_CACHE_DIR": str(tmp_path / "cache")}
+    import os
+
+    res = subprocess.run(
+        [sys.executable, str(SCRIPT), "--quick", "--threads", "1"],
+        capture_output=True, text=True, timeout=300, env={**os.environ, **env_home},
+    )
+    assert res.returncode == 0, res.stderr[-2000:]
+    report = json.loads(res.stdout)
+    assert set(report) == {"machine", "quick", "W1", "W2", "W3", "W4", "targets"}
+    assert report["quick"] is True
+    assert report["machine"]["threads"] == 1
+    for name, keys in EXPECTED.items():
+        assert set(report[name]) == keys, name
+        for key, value in report[name].items():
+            assert isinstance(value, (int, float)) and math.isfinite(value) and value >= 0, (name, key, value)
+    assert set(report["targets"]) == TARGETS
+    for key, entry in report["targets"].items():
+        name, figure = key.split(".")
+        assert entry["value"] == report[name][figure]
+        assert entry["met"] == (entry["value"] <= entry["target"])
+    # accuracy figures are real comparisons even at the tiny sizes: distances agree with astropy
+    # far better than the target, and the fast approximation equals the exact matrix where exact
+    assert report["W4"]["max_rel_diff"] < 1e-6
+    assert report["W1"]["lmax"] == 3 * report["W1"]["nside"] - 1
