@@ -35,10 +35,19 @@ class InvalidInputError(CmbtoolsError, ValueError):
 class InputFileError(CmbtoolsError, ValueError):
     """An input file is missing, unreadable or not in the expected format.
 
+    Parameters
+    ----------
+    path : str or path-like
+        The file concerned.
+    problem : str
+        What is wrong with it; the message is ``"<path>: <problem>"``.
+
     Attributes
     ----------
     path : str
         The file concerned.
+    problem : str
+        What is wrong with it.
     """
 
     def __init__(self, path, problem):
@@ -49,6 +58,13 @@ class InputFileError(CmbtoolsError, ValueError):
 
 class ResolutionMismatchError(InvalidInputError):
     """Two maps (or a map and a mask) have different nside.
+
+    Parameters
+    ----------
+    message : str
+        The error message.
+    nside_a, nside_b : int
+        The two resolutions.
 
     Attributes
     ----------
@@ -65,6 +81,13 @@ class ResolutionMismatchError(InvalidInputError):
 class IllConditionedError(CmbtoolsError, ValueError):
     """A matrix that must be inverted is singular or too ill-conditioned.
 
+    Parameters
+    ----------
+    message : str
+        The error message.
+    condition_number : float
+        The 2-norm condition number of the matrix (``inf`` when singular).
+
     Attributes
     ----------
     condition_number : float
@@ -77,7 +100,18 @@ class IllConditionedError(CmbtoolsError, ValueError):
 
 
 class OutputExistsError(CmbtoolsError, FileExistsError):
-    """An output file exists and overwriting was not allowed."""
+    """An output file exists and overwriting was not allowed.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The existing file.
+
+    Attributes
+    ----------
+    path : str
+        The existing file.
+    """
 
     def __init__(self, path):
         self.path = str(path)
@@ -85,7 +119,22 @@ class OutputExistsError(CmbtoolsError, FileExistsError):
 
 
 class OutputPathError(CmbtoolsError, OSError):
-    """An output path cannot be written (missing or read-only directory, ...)."""
+    """An output path cannot be written (missing or read-only directory, ...).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The output path.
+    problem : str
+        Why it cannot be written; the message is ``"<path>: <problem>"``.
+
+    Attributes
+    ----------
+    path : str
+        The output path.
+    problem : str
+        Why it cannot be written.
+    """
 
     def __init__(self, path, problem):
         self.path = str(path)
@@ -99,6 +148,13 @@ class CacheError(CmbtoolsError, ValueError):
 
 class MemoryLimitError(CmbtoolsError, MemoryError):
     """A computation would need more memory than the machine has.
+
+    Parameters
+    ----------
+    message : str
+        The error message (what, how much, how to go ahead anyway).
+    required_bytes, available_bytes : int
+        The estimate and what the machine offers.
 
     Attributes
     ----------
@@ -117,6 +173,13 @@ class WorkerLostError(CmbtoolsError, RuntimeError):
 
     The simulations finished before the failure are saved in the run
     directory; running the same call again resumes from them.
+
+    Parameters
+    ----------
+    message : str
+        The error message.
+    n_finished, n_sims : int
+        Simulations saved so far and simulations requested.
 
     Attributes
     ----------

@@ -119,6 +119,16 @@ def missing_pixels(m) -> np.ndarray:
 
     Values within a relative 1e-5 of the UNSEEN sentinel count as missing, as
     in healpy, so float32 files are handled too.
+
+    Parameters
+    ----------
+    m : array_like
+        Map values.
+
+    Returns
+    -------
+    ndarray of bool
+        True where the pixel is missing, shaped like ``m``.
     """
     m = np.asarray(m)
     if m.ndim != 1 or m.size <= _CHUNK:

@@ -227,6 +227,18 @@ def gaussian_beam_window(fwhm_arcmin, lmax):
 
     ``sigma = FWHM / sqrt(8 ln 2)`` (common practice; the flat-sky Gaussian
     beam's transform, accurate for FWHM well below a radian).
+
+    Parameters
+    ----------
+    fwhm_arcmin : float
+        Full width at half maximum of the beam, arcmin (>= 0).
+    lmax : int
+        Largest multipole.
+
+    Returns
+    -------
+    ndarray of shape (lmax+1,)
+        B_l for ell = 0..lmax.
     """
     fwhm = check_positive(fwhm_arcmin, "fwhm_arcmin")
     lmax = check_lmax(lmax)

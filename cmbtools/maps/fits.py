@@ -54,6 +54,18 @@ def normalize_coord(coord, name="coord"):
 
     Accepts the single letters and the spelled-out names (galactic, equatorial
     or celestial, ecliptic), in any case.
+
+    Parameters
+    ----------
+    coord : str or None
+        A coordinate-system name or letter.
+    name : str, default='coord'
+        The parameter name for the error message.
+
+    Returns
+    -------
+    str or None
+        'G', 'C' or 'E' (None for None).
     """
     if coord is None:
         return None
@@ -78,6 +90,18 @@ def unit_scale(unit, *, source="unit"):
     Recognised: K, mK, uK (also uK written with the micro sign, muK, microK),
     each optionally tagged as CMB / thermodynamic (``K_CMB``, ``KCMB``,
     ``K (CMB)``, ``uK_CMB``, ``K_thermo`` ...), case-insensitive.
+
+    Parameters
+    ----------
+    unit : str
+        The unit of the values.
+    source : str, default='unit'
+        What the unit came from, for the error message.
+
+    Returns
+    -------
+    float
+        Multiply values in ``unit`` by this to get K_CMB.
 
     Raises
     ------
@@ -118,7 +142,7 @@ def unit_scale(unit, *, source="unit"):
 class MapInfo:
     """What :func:`read_map` learnt about a map file.
 
-    Attributes
+    Parameters
     ----------
     path : str
         The file read.
@@ -625,6 +649,28 @@ def write_mask(path, mask, *, coord=None, nest=False, overwrite=False, extra_hea
 
     Parameters are as for :func:`write_map`; the mask is checked with the
     same rules as :func:`read_mask` before anything is written.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Destination.
+    mask : array_like of shape (12*nside**2,)
+        RING mask, weights in [0, 1].
+    coord : {'G', 'C', 'E'}, optional
+        Coordinate system recorded in ``COORDSYS``.
+    nest : bool, default=False
+        Write in NESTED ordering instead of RING.
+    overwrite : bool, default=False
+        Replace an existing file.
+    extra_header : dict or list of (key, value[, comment]), optional
+        Additional header cards (the HEALPix keywords cannot be overridden).
+    dtype : {None, 'float32', 'float64'}, optional
+        Data type in the file (default float64).
+
+    Returns
+    -------
+    pathlib.Path
+        The file written.
     """
     w = check_mask(mask, "mask")
     return write_map(path, w, unit=None, coord=coord, nest=nest, overwrite=overwrite,

@@ -56,7 +56,7 @@ __all__ = [
 class MaskMoments:
     """Sky fraction and weight moments of a mask.
 
-    Attributes
+    Parameters
     ----------
     f_sky : float
         ``mean(w)`` over the whole sphere, the weighted sky fraction.
@@ -255,6 +255,11 @@ def read_positions_csv(path):
     ignored).  Blank lines and lines starting with ``#`` are skipped; an empty
     ``radius_deg`` cell means "use the default radius".
 
+    Parameters
+    ----------
+    path : str or path-like
+        The CSV file.
+
     Returns
     -------
     ndarray of shape (n, 3)
@@ -415,7 +420,18 @@ def threshold_mask(m, threshold, *, keep="below"):
 
 
 def combine_masks(*masks):
-    """Product of several masks of the same nside (a pixel is kept only where all keep it)."""
+    """Product of several masks of the same nside (a pixel is kept only where all keep it).
+
+    Parameters
+    ----------
+    *masks : array_like of shape (12*nside**2,)
+        Masks (weights in [0, 1]) of one nside, RING.
+
+    Returns
+    -------
+    ndarray of shape (12*nside**2,)
+        The product of the masks.
+    """
     if not masks:
         raise InvalidInputError("combine_masks needs at least one mask.")
     out = check_mask(masks[0], "mask 0").copy()
@@ -486,6 +502,11 @@ def taper_profile(distance_deg, width_deg):
         Angular distance to the nearest masked pixel, degrees (>= 0).
     width_deg : float
         Apodization width, degrees.
+
+    Returns
+    -------
+    ndarray or float
+        The taper weight in [0, 1], shaped like ``distance_deg``.
     """
     d = np.radians(np.asarray(distance_deg, dtype=np.float64))
     width = math.radians(check_positive(width_deg, "width_deg"))

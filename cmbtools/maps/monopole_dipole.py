@@ -41,7 +41,7 @@ def _pixel_vectors(nside, pix):
 class DipoleFit:
     """Monopole and dipole of a map, from :func:`fit_monopole_dipole`.
 
-    Attributes
+    Parameters
     ----------
     monopole : float
         The constant term, in the map's unit (K_CMB).
@@ -74,7 +74,18 @@ class DipoleFit:
         object.__setattr__(self, "dipole_vector", v)
 
     def evaluate(self, nside):
-        """The fitted ``monopole + d . n`` as a RING map of ``nside``."""
+        """The fitted ``monopole + d . n`` as a RING map of ``nside``.
+
+        Parameters
+        ----------
+        nside : int
+            Resolution of the map.
+
+        Returns
+        -------
+        ndarray of shape (12*nside**2,)
+            The model in the map's unit (K_CMB), RING ordering.
+        """
         npix = 12 * int(nside) ** 2
         out = np.empty(npix)
         for start in range(0, npix, _CHUNK):
@@ -192,6 +203,13 @@ def remove_monopole_dipole(m, mask=None):
     The fit uses only the unmasked valid pixels (see
     :func:`fit_monopole_dipole`); the subtraction applies to the whole map.
     The input is not modified; missing pixels stay UNSEEN.
+
+    Parameters
+    ----------
+    m : array_like of shape (12*nside**2,)
+        RING map in K_CMB; missing pixels (UNSEEN, NaN, inf) take no part.
+    mask : array_like of shape (12*nside**2,), optional
+        Weights in [0, 1] of the fit (default: every valid pixel, weight 1).
 
     Returns
     -------

@@ -110,7 +110,24 @@ class Bandpass:
         return float(trapezoid(f * t, f) / trapezoid(t, f))
 
     def conversion_factor(self, source, target, *, t0_k=None, reference_ghz=None, spectral_index=-1.0) -> float:
-        """Band-averaged conversion factor; see :func:`bandpass_conversion_factor`."""
+        """Band-averaged conversion factor; see :func:`bandpass_conversion_factor`.
+
+        Parameters
+        ----------
+        source, target : str
+            Units of the signal and of the result (see :data:`SIGNAL_UNITS`).
+        t0_k : float, optional
+            Present CMB temperature in K (default :data:`DEFAULT_CMB_TEMPERATURE_K`).
+        reference_ghz : float, optional
+            Reference frequency of an intensity unit (default: the band's transmission-weighted mean).
+        spectral_index : float, default=-1.0
+            Spectral index of an intensity unit.
+
+        Returns
+        -------
+        float
+            The factor F such that X [source] = X F [target].
+        """
         return bandpass_conversion_factor(
             self, source, target, t0_k=t0_k, reference_ghz=reference_ghz, spectral_index=spectral_index
         )

@@ -435,12 +435,34 @@ class DistanceTable:
         return _out(self._dh * self._transverse(x, zz))
 
     def angular_diameter_distance(self, z, /):
-        """Angular-diameter distance D_A = D_M / (1 + z), in Mpc."""
+        """Angular-diameter distance D_A = D_M / (1 + z), in Mpc.
+
+        Parameters
+        ----------
+        z : float, array_like or Quantity
+            Redshifts in [0, z_max].
+
+        Returns
+        -------
+        float or ndarray
+            Distance in Mpc, shaped like ``z``.
+        """
         x, zz = self._x(z)
         return _out(self._dh * self._transverse(x, zz) / (1.0 + zz))
 
     def luminosity_distance(self, z, /):
-        """Luminosity distance D_L = (1 + z) D_M, in Mpc."""
+        """Luminosity distance D_L = (1 + z) D_M, in Mpc.
+
+        Parameters
+        ----------
+        z : float, array_like or Quantity
+            Redshifts in [0, z_max].
+
+        Returns
+        -------
+        float or ndarray
+            Distance in Mpc, shaped like ``z``.
+        """
         x, zz = self._x(z)
         return _out(self._dh * self._transverse(x, zz) * (1.0 + zz))
 
@@ -452,27 +474,81 @@ class DistanceTable:
         a = 1 / (1 + z) times the comoving radial distance.  In a flat universe it
         equals the angular-diameter distance D_M / (1 + z); in a curved one
         D_A differs from it because D_M != D_C.
+
+        Parameters
+        ----------
+        z : float, array_like or Quantity
+            Redshifts in [0, z_max].
+
+        Returns
+        -------
+        float or ndarray
+            Distance in Mpc, shaped like ``z``.
         """
         x, zz = self._x(z)
         return _out(self._dh * x / (1.0 + zz))
 
     def lookback_time(self, z, /):
-        """Lookback time t_H int_0^z dz' / ((1 + z') E(z')), in Gyr."""
+        """Lookback time t_H int_0^z dz' / ((1 + z') E(z')), in Gyr.
+
+        Parameters
+        ----------
+        z : float, array_like or Quantity
+            Redshifts in [0, z_max].
+
+        Returns
+        -------
+        float or ndarray
+            Time in Gyr, shaped like ``z``.
+        """
         index, t, _ = self._locate(z)
         return _out(self._th * _evaluate(self._cl, index, t))
 
     def age(self, z, /):
-        """Age of the universe at redshift z, t_H int_z^inf dz' / ((1 + z') E(z')), in Gyr."""
+        """Age of the universe at redshift z, t_H int_z^inf dz' / ((1 + z') E(z')), in Gyr.
+
+        Parameters
+        ----------
+        z : float, array_like or Quantity
+            Redshifts in [0, z_max].
+
+        Returns
+        -------
+        float or ndarray
+            Age in Gyr, shaped like ``z``.
+        """
         index, t, _ = self._locate(z)
         return _out(self._th * _evaluate(self._ca, index, t))
 
     def conformal_time(self, z, /):
-        """Conformal time since the big bang, eta = int dt / a = t_H int_z^inf dz' / E(z'), in Gyr."""
+        """Conformal time since the big bang, eta = int dt / a = t_H int_z^inf dz' / E(z'), in Gyr.
+
+        Parameters
+        ----------
+        z : float, array_like or Quantity
+            Redshifts in [0, z_max].
+
+        Returns
+        -------
+        float or ndarray
+            Conformal time in Gyr, shaped like ``z``.
+        """
         index, t, _ = self._locate(z)
         return _out(self._th * _evaluate(self._cc, index, t))
 
     def particle_horizon(self, z, /):
-        """Comoving particle horizon at redshift z, c eta = D_H int_z^inf dz' / E(z'), in Mpc."""
+        """Comoving particle horizon at redshift z, c eta = D_H int_z^inf dz' / E(z'), in Mpc.
+
+        Parameters
+        ----------
+        z : float, array_like or Quantity
+            Redshifts in [0, z_max].
+
+        Returns
+        -------
+        float or ndarray
+            Comoving distance in Mpc, shaped like ``z``.
+        """
         index, t, _ = self._locate(z)
         return _out(self._dh * _evaluate(self._cc, index, t))
 
@@ -526,6 +602,18 @@ def comoving_distance(z, cosmo=None):
 def transverse_comoving_distance(z, cosmo=None):
     """Transverse comoving distance D_M in Mpc (one call; see :class:`DistanceTable`).
 
+    Parameters
+    ----------
+    z : float, array_like or Quantity
+        Redshifts >= 0.
+    cosmo : astropy.cosmology.FLRW, optional
+        Default ``astropy.cosmology.Planck18``.
+
+    Returns
+    -------
+    float or ndarray
+        Distance in Mpc, shaped like ``z``.
+
     See Also
     --------
     DistanceTable.transverse_comoving_distance
@@ -535,6 +623,18 @@ def transverse_comoving_distance(z, cosmo=None):
 
 def angular_diameter_distance(z, cosmo=None):
     """Angular-diameter distance D_M / (1 + z) in Mpc (one call; see :class:`DistanceTable`).
+
+    Parameters
+    ----------
+    z : float, array_like or Quantity
+        Redshifts >= 0.
+    cosmo : astropy.cosmology.FLRW, optional
+        Default ``astropy.cosmology.Planck18``.
+
+    Returns
+    -------
+    float or ndarray
+        Distance in Mpc, shaped like ``z``.
 
     See Also
     --------
@@ -546,6 +646,18 @@ def angular_diameter_distance(z, cosmo=None):
 def luminosity_distance(z, cosmo=None):
     """Luminosity distance (1 + z) D_M in Mpc (one call; see :class:`DistanceTable`).
 
+    Parameters
+    ----------
+    z : float, array_like or Quantity
+        Redshifts >= 0.
+    cosmo : astropy.cosmology.FLRW, optional
+        Default ``astropy.cosmology.Planck18``.
+
+    Returns
+    -------
+    float or ndarray
+        Distance in Mpc, shaped like ``z``.
+
     See Also
     --------
     DistanceTable.luminosity_distance
@@ -555,6 +667,18 @@ def luminosity_distance(z, cosmo=None):
 
 def lookback_time(z, cosmo=None):
     """Lookback time in Gyr (one call; see :class:`DistanceTable`).
+
+    Parameters
+    ----------
+    z : float, array_like or Quantity
+        Redshifts >= 0.
+    cosmo : astropy.cosmology.FLRW, optional
+        Default ``astropy.cosmology.Planck18``.
+
+    Returns
+    -------
+    float or ndarray
+        Time in Gyr, shaped like ``z``.
 
     See Also
     --------
@@ -566,6 +690,18 @@ def lookback_time(z, cosmo=None):
 def age(z, cosmo=None):
     """Age of the universe at redshift z in Gyr (one call; see :class:`DistanceTable`).
 
+    Parameters
+    ----------
+    z : float, array_like or Quantity
+        Redshifts >= 0.
+    cosmo : astropy.cosmology.FLRW, optional
+        Default ``astropy.cosmology.Planck18``.
+
+    Returns
+    -------
+    float or ndarray
+        Age in Gyr, shaped like ``z``.
+
     See Also
     --------
     DistanceTable.age
@@ -575,6 +711,18 @@ def age(z, cosmo=None):
 
 def conformal_time(z, cosmo=None):
     """Conformal time since the big bang in Gyr (one call; see :class:`DistanceTable`).
+
+    Parameters
+    ----------
+    z : float, array_like or Quantity
+        Redshifts >= 0.
+    cosmo : astropy.cosmology.FLRW, optional
+        Default ``astropy.cosmology.Planck18``.
+
+    Returns
+    -------
+    float or ndarray
+        Conformal time in Gyr, shaped like ``z``.
 
     See Also
     --------
@@ -586,6 +734,18 @@ def conformal_time(z, cosmo=None):
 def particle_horizon(z, cosmo=None):
     """Comoving particle horizon c * conformal time in Mpc (one call; see :class:`DistanceTable`).
 
+    Parameters
+    ----------
+    z : float, array_like or Quantity
+        Redshifts >= 0.
+    cosmo : astropy.cosmology.FLRW, optional
+        Default ``astropy.cosmology.Planck18``.
+
+    Returns
+    -------
+    float or ndarray
+        Comoving distance in Mpc, shaped like ``z``.
+
     See Also
     --------
     DistanceTable.particle_horizon
@@ -595,6 +755,18 @@ def particle_horizon(z, cosmo=None):
 
 def proper_distance_at_emission(z, cosmo=None):
     """Proper distance at emission D_C / (1 + z) in Mpc (one call; see :class:`DistanceTable`).
+
+    Parameters
+    ----------
+    z : float, array_like or Quantity
+        Redshifts >= 0.
+    cosmo : astropy.cosmology.FLRW, optional
+        Default ``astropy.cosmology.Planck18``.
+
+    Returns
+    -------
+    float or ndarray
+        Distance in Mpc, shaped like ``z``.
 
     See Also
     --------

@@ -110,6 +110,16 @@ def hu_sugiyama_last_scattering_redshift(cosmo=None):
     g1 = 0.0783 w_b^-0.238 / (1 + 39.5 w_b^0.763), g2 = 0.560 / (1 + 21.1 w_b^1.81),
     where w_b = Omega_b h^2 and w_m = Omega_m h^2 (massive neutrinos counted as matter).
     The paper quotes an accuracy of about 1 % for 0.0025 < w_b < 0.25.
+
+    Parameters
+    ----------
+    cosmo : astropy.cosmology.FLRW, optional
+        Default ``astropy.cosmology.Planck18``; its Omega_b h^2 and Omega_m h^2 enter the fit.
+
+    Returns
+    -------
+    float
+        The redshift z* of last scattering.
     """
     cosmo = resolve_cosmology(cosmo)
     wb, wm = _omega_h2(cosmo)
@@ -123,6 +133,16 @@ def eisenstein_hu_drag_redshift(cosmo=None):
 
     z_d = 1291 w_m^0.251 / (1 + 0.659 w_m^0.828) [1 + b1 w_b^b2] with
     b1 = 0.313 w_m^-0.419 [1 + 0.607 w_m^0.674], b2 = 0.238 w_m^0.223.
+
+    Parameters
+    ----------
+    cosmo : astropy.cosmology.FLRW, optional
+        Default ``astropy.cosmology.Planck18``; its Omega_b h^2 and Omega_m h^2 enter the fit.
+
+    Returns
+    -------
+    float
+        The baryon-drag redshift z_d.
     """
     cosmo = resolve_cosmology(cosmo)
     wb, wm = _omega_h2(cosmo)
@@ -138,7 +158,7 @@ def eisenstein_hu_drag_redshift(cosmo=None):
 class LastScattering:
     """Characteristic numbers of recombination and last scattering for one cosmology.
 
-    Attributes
+    Parameters
     ----------
     z_star : float
         Redshift of the peak of the visibility function (recombination only).
@@ -207,7 +227,13 @@ class LastScattering:
     tau_reionization: float
 
     def to_dict(self) -> dict:
-        """The fields as a plain dict (JSON-ready: floats and None)."""
+        """The fields as a plain dict (JSON-ready: floats and None).
+
+        Returns
+        -------
+        dict
+            Field name to float (or None where a quantity is not defined).
+        """
         return {k: (None if v is None else float(v)) for k, v in dataclasses.asdict(self).items()}
 
 

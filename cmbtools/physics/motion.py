@@ -213,7 +213,22 @@ class ObserverMotion:
 
     @classmethod
     def from_dipole(cls, amplitude_k, lon_deg, lat_deg, *, t0_k=None) -> "ObserverMotion":
-        """Motion from a fitted dipole given as amplitude (K) and direction (degrees)."""
+        """Motion from a fitted dipole given as amplitude (K) and direction (degrees).
+
+        Parameters
+        ----------
+        amplitude_k : float
+            Dipole amplitude in K (>= 0).
+        lon_deg, lat_deg : float
+            Direction of the dipole maximum, in degrees; lat in [-90, 90].
+        t0_k : float, optional
+            Present CMB temperature in K (default :data:`DEFAULT_CMB_TEMPERATURE_K`).
+
+        Returns
+        -------
+        ObserverMotion
+            The motion that produces this dipole.
+        """
         t0 = _scalar_temperature(t0_k)
         amp = _values(amplitude_k, "amplitude_k", u.K, minimum=0.0, allow_equal=True)
         if amp.ndim != 0:
@@ -222,7 +237,20 @@ class ObserverMotion:
 
     @classmethod
     def from_dipole_vector(cls, vector_k, *, t0_k=None) -> "ObserverMotion":
-        """Motion from a fitted dipole vector d (K) of m = m0 + d . n (Cartesian, the map's frame)."""
+        """Motion from a fitted dipole vector d (K) of m = m0 + d . n (Cartesian, the map's frame).
+
+        Parameters
+        ----------
+        vector_k : array_like of shape (3,)
+            The dipole vector d in K (Cartesian, in the map's frame).
+        t0_k : float, optional
+            Present CMB temperature in K (default :data:`DEFAULT_CMB_TEMPERATURE_K`).
+
+        Returns
+        -------
+        ObserverMotion
+            The motion that produces this dipole.
+        """
         d = _values(vector_k, "vector_k", u.K, minimum=None)
         if d.shape != (3,):
             raise InvalidInputError(f"The 'vector_k' parameter must have shape (3,). Got shape {d.shape} instead.")

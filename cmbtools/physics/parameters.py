@@ -115,7 +115,18 @@ class CosmologyExtras:
             object.__setattr__(self, name, _check_number(getattr(self, name), name, **kw))
 
     def replace(self, **changes) -> "CosmologyExtras":
-        """Return a copy with some fields changed (validated like the original)."""
+        """Return a copy with some fields changed (validated like the original).
+
+        Parameters
+        ----------
+        **changes
+            New values of fields, by name.
+
+        Returns
+        -------
+        CosmologyExtras
+            The copy.
+        """
         unknown = set(changes) - {f.name for f in dataclasses.fields(self)}
         if unknown:
             raise InvalidInputError(
@@ -125,7 +136,13 @@ class CosmologyExtras:
         return dataclasses.replace(self, **changes)
 
     def to_dict(self) -> dict:
-        """The fields as a plain dict of floats."""
+        """The fields as a plain dict of floats.
+
+        Returns
+        -------
+        dict
+            Field name to float.
+        """
         return dataclasses.asdict(self)
 
     @property
@@ -140,7 +157,13 @@ class CosmologyExtras:
 
 
 def default_cosmology():
-    """The fiducial expansion history: astropy's bundled ``Planck18`` realization."""
+    """The fiducial expansion history: astropy's bundled ``Planck18`` realization.
+
+    Returns
+    -------
+    astropy.cosmology.FLRW
+        ``astropy.cosmology.Planck18``.
+    """
     from astropy.cosmology import Planck18
 
     return Planck18

@@ -477,26 +477,81 @@ class IonizationHistory:
         return float(out) if out.ndim == 0 else out
 
     def free_electron_fraction(self, z):
-        """x_e = n_e / n_H at redshift(s) ``z`` (exceeds 1 while helium is ionized)."""
+        """x_e = n_e / n_H at redshift(s) ``z`` (exceeds 1 while helium is ionized).
+
+        Parameters
+        ----------
+        z : float or array_like
+            Redshift(s) >= 0.
+
+        Returns
+        -------
+        float or ndarray
+            The free-electron fraction n_e / n_H, shaped like ``z``.
+        """
         return self._lookup(z, self._xe)
 
     def hydrogen_ionized_fraction(self, z):
-        """Ionized fraction of hydrogen n_p / n_H at redshift(s) ``z`` (without reionization)."""
+        """Ionized fraction of hydrogen n_p / n_H at redshift(s) ``z`` (without reionization).
+
+        Parameters
+        ----------
+        z : float or array_like
+            Redshift(s) >= 0.
+
+        Returns
+        -------
+        float or ndarray
+            The ionized fraction of hydrogen, in [0, 1], shaped like ``z``.
+        """
         return self._lookup(z, self._xp)
 
     def matter_temperature(self, z):
-        """Temperature of baryons and electrons T_m(z) in K."""
+        """Temperature of baryons and electrons T_m(z) in K.
+
+        Parameters
+        ----------
+        z : float or array_like
+            Redshift(s) >= 0.
+
+        Returns
+        -------
+        float or ndarray
+            The matter temperature in K, shaped like ``z``.
+        """
         return self._lookup(z, self._tm)
 
     def _table_lookup(self, z, table):
         return self._lookup(z, table, log=False)
 
     def optical_depth(self, z):
-        """Thomson optical depth tau(z) from today to redshift(s) ``z``."""
+        """Thomson optical depth tau(z) from today to redshift(s) ``z``.
+
+        Parameters
+        ----------
+        z : float or array_like
+            Redshift(s) >= 0.
+
+        Returns
+        -------
+        float or ndarray
+            The Thomson optical depth (dimensionless), shaped like ``z``.
+        """
         return self._table_lookup(z, self._tau)
 
     def optical_depth_derivative(self, z):
-        """dtau/dz = n_e sigma_T c / ((1 + z) H(z)) at redshift(s) ``z``."""
+        """dtau/dz = n_e sigma_T c / ((1 + z) H(z)) at redshift(s) ``z``.
+
+        Parameters
+        ----------
+        z : float or array_like
+            Redshift(s) >= 0.
+
+        Returns
+        -------
+        float or ndarray
+            dtau/dz (dimensionless), shaped like ``z``.
+        """
         return self._lookup(z, self._dtau)
 
     def visibility(self, z):
@@ -506,6 +561,16 @@ class IonizationHistory:
         conformal time eta) that a CMB photon last scattered at redshift z.  Its
         integral over eta from the top of the table to today is 1 - exp(-tau(z_top)),
         which is 1 to double precision.  Its maximum is z*.
+
+        Parameters
+        ----------
+        z : float or array_like
+            Redshift(s) >= 0.
+
+        Returns
+        -------
+        float or ndarray
+            The visibility in Mpc^-1, shaped like ``z``.
         """
         return self._table_lookup(z, self._g_eta)
 
@@ -515,16 +580,43 @@ class IonizationHistory:
         Its integral over z from 0 to the top of the table is 1 - exp(-tau(z_top)).
         It peaks about 10 lower in redshift than :meth:`visibility`, because
         d eta / dz = -c / H(z) varies across the last-scattering shell.
+
+        Parameters
+        ----------
+        z : float or array_like
+            Redshift(s) >= 0.
+
+        Returns
+        -------
+        float or ndarray
+            The visibility per unit redshift (dimensionless), shaped like ``z``.
         """
         return self._table_lookup(z, self._dtau * np.exp(-self._tau))
 
     def drag_optical_depth(self, z):
-        """Baryon-drag optical depth tau_d(z) = int_0^z (dtau/dz') / R(z') dz'."""
+        """Baryon-drag optical depth tau_d(z) = int_0^z (dtau/dz') / R(z') dz'.
+
+        Parameters
+        ----------
+        z : float or array_like
+            Redshift(s) >= 0.
+
+        Returns
+        -------
+        float or ndarray
+            The baryon-drag optical depth (dimensionless), shaped like ``z``.
+        """
         return self._table_lookup(z, self._tau_drag)
 
     # -- characteristic redshifts
     def visibility_peak(self) -> float:
-        """Redshift z* of the maximum of the visibility function (in conformal time)."""
+        """Redshift z* of the maximum of the visibility function (in conformal time).
+
+        Returns
+        -------
+        float
+            The redshift z*.
+        """
         g = self._g_eta
         above = self.redshift > 100.0
         j = int(np.argmax(g[above]))
@@ -540,11 +632,28 @@ class IonizationHistory:
         return _parabola_peak(self.redshift[i - 1 : i + 2], g[i - 1 : i + 2])
 
     def redshift_at_optical_depth(self, value=1.0) -> float:
-        """Redshift where the Thomson optical depth reaches ``value`` (default 1)."""
+        """Redshift where the Thomson optical depth reaches ``value`` (default 1).
+
+        Parameters
+        ----------
+        value : float, default=1.0
+            The optical depth to reach (> 0).
+
+        Returns
+        -------
+        float
+            The redshift.
+        """
         return _crossing(self.redshift, self._tau, value, "optical depth")
 
     def drag_redshift(self) -> float:
-        """Redshift z_drag where the baryon-drag optical depth reaches 1."""
+        """Redshift z_drag where the baryon-drag optical depth reaches 1.
+
+        Returns
+        -------
+        float
+            The redshift z_drag.
+        """
         return _crossing(self.redshift, self._tau_drag, 1.0, "baryon-drag optical depth")
 
 

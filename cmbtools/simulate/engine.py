@@ -483,7 +483,7 @@ def _check_run_memory(context, per_simulation, n_sims, executor, client, workers
 class SimulationSet:
     """The stacked results of :func:`run_simulations`.
 
-    Attributes
+    Parameters
     ----------
     n_sims : int
         Number of simulations.

@@ -51,7 +51,18 @@ ARCMIN_IN_RAD = math.pi / (180.0 * 60.0)
 
 
 def depth_to_white_noise(depth_uk_arcmin) -> float:
-    """White-noise power N_white in K^2 of a map depth in uK-arcmin: ``(depth in K rad)^2``."""
+    """White-noise power N_white in K^2 of a map depth in uK-arcmin: ``(depth in K rad)^2``.
+
+    Parameters
+    ----------
+    depth_uk_arcmin : float
+        Map depth in uK-arcmin (> 0).
+
+    Returns
+    -------
+    float
+        N_white in K^2.
+    """
     d = check_positive(depth_uk_arcmin, "depth_uk_arcmin", allow_zero=True)
     sigma = d * 1e-6 * ARCMIN_IN_RAD
     if sigma * sigma == math.inf:  # (float ** 2 would raise OverflowError instead)
@@ -161,10 +172,17 @@ def noise_spectrum(model, lmax, nside=None) -> np.ndarray:
     Parameters
     ----------
     model : NoiseModel
+        The noise.
     lmax : int
+        Largest multipole.
     nside : int, optional
         If given, checked against the hits map's nside and used to bound
         ``lmax <= 4*nside - 1``.
+
+    Returns
+    -------
+    ndarray of shape (lmax+1,)
+        N_l in K^2.
     """
     model = _check_model(model)
     if nside is not None:
@@ -211,9 +229,11 @@ def noise_map(model, nside, *, rng=None, lmax=None, nthreads=None, force=False) 
     Parameters
     ----------
     model : NoiseModel
+        The noise to draw.
     nside : int
         Resolution (must match the hits map).
     rng : Generator, SeedSequence, int or None, optional
+        Random source; use :func:`simulation_rng` for sets of simulations.
     lmax : int, optional
         Largest multipole of the correlated part (default ``3*nside - 1``).
     nthreads : int, optional
@@ -270,5 +290,24 @@ def white_noise_map(nside, depth_uk_arcmin, *, rng=None, hits=None, force=False)
     """White noise of a given depth in uK-arcmin (optionally shaped by a hits map), K_CMB, RING.
 
     Equivalent to ``noise_map(NoiseModel(depth_uk_arcmin, hits=hits), nside, rng=rng, force=force)``.
+
+    Parameters
+    ----------
+    nside : int
+        Resolution (must match the hits map).
+    depth_uk_arcmin : float
+        Map depth in uK-arcmin (> 0).
+    rng : Generator, SeedSequence, int or None, optional
+        Random source; use :func:`simulation_rng` for sets of simulations.
+    hits : array_like of shape (12*nside**2,), optional
+        Hits map shaping the per-pixel depth (see :class:`NoiseModel`).
+    force : bool, default=False
+        Go ahead (with a warning) even when the memory estimate exceeds what
+        the machine has available.
+
+    Returns
+    -------
+    ndarray of float64, shape (12*nside**2,)
+        Noise in K_CMB, RING.
     """
     return noise_map(NoiseModel(depth_uk_arcmin, hits=hits), nside, rng=rng, force=force)

@@ -64,6 +64,11 @@ def simulation_seed_sequence(seed, index) -> np.random.SeedSequence:
         Master seed of the set (>= 0), recorded in output headers as ``CMBSEED``.
     index : int
         Simulation number (>= 0), recorded as ``CMBSIMID``.
+
+    Returns
+    -------
+    numpy.random.SeedSequence
+        The seed sequence of the simulation.
     """
     return np.random.SeedSequence(_check_seed(seed), spawn_key=(check_int(index, "index", minimum=0),))
 
@@ -74,6 +79,18 @@ def simulation_rng(seed, index) -> np.random.Generator:
     Simulation ``i`` depends only on ``(seed, i)``, so any worker can produce
     any simulation and the results do not depend on the number of workers or
     the order of the work.
+
+    Parameters
+    ----------
+    seed : int
+        Master seed of the set (>= 0).
+    index : int
+        Simulation number (>= 0).
+
+    Returns
+    -------
+    numpy.random.Generator
+        ``default_rng(SeedSequence(seed, spawn_key=(index,)))``.
 
     Examples
     --------
@@ -86,7 +103,20 @@ def simulation_rng(seed, index) -> np.random.Generator:
 
 
 def simulation_rngs(seed, n) -> list:
-    """Generators of simulations ``0 .. n-1`` (see :func:`simulation_rng`)."""
+    """Generators of simulations ``0 .. n-1`` (see :func:`simulation_rng`).
+
+    Parameters
+    ----------
+    seed : int
+        Master seed of the set (>= 0).
+    n : int
+        Number of simulations.
+
+    Returns
+    -------
+    list of numpy.random.Generator
+        ``[simulation_rng(seed, i) for i in range(n)]``.
+    """
     n = check_int(n, "n", minimum=0)
     seed = _check_seed(seed)
     return [simulation_rng(seed, i) for i in range(n)]

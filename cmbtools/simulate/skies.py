@@ -137,6 +137,20 @@ def dipole_map(nside, dipole, *, force=False) -> np.ndarray:
     ``force=True`` goes ahead (with a warning) when the map and its temporaries
     (about six maps) would not fit in the memory available; otherwise that
     raises :class:`~cmbtools.exceptions.MemoryLimitError` before allocating.
+
+    Parameters
+    ----------
+    nside : int
+        Resolution of the map.
+    dipole : array_like of shape (3,) or Dipole
+        The dipole: a Cartesian vector in K or a :class:`Dipole`.
+    force : bool, default=False
+        Go ahead even when the memory estimate exceeds what the machine has available.
+
+    Returns
+    -------
+    ndarray of shape (12*nside**2,)
+        The map in K, RING.
     """
     nside = check_nside(nside)
     v = _dipole_vector(dipole)

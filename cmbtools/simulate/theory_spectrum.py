@@ -493,6 +493,20 @@ def fiducial_dl(lmax, *, cosmo=None, extras=None) -> np.ndarray:
     """The fiducial D_l = l(l+1) C_l / 2 pi in K^2 for l = 0..lmax (D_0 = D_1 = 0).
 
     See :func:`fiducial_cl` and the module notes for the model.
+
+    Parameters
+    ----------
+    lmax : int
+        Largest multipole (at most :data:`FIDUCIAL_LMAX_LIMIT`).
+    cosmo : astropy.cosmology.FLRW, optional
+        Expansion history (default ``Planck18``).
+    extras : CosmologyExtras, optional
+        What astropy lacks (default ``CosmologyExtras()``).
+
+    Returns
+    -------
+    ndarray of shape (lmax+1,)
+        D_l in K^2.
     """
     lmax = check_lmax(lmax)
     if lmax > FIDUCIAL_LMAX_LIMIT:

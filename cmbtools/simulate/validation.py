@@ -263,9 +263,14 @@ def validate_pipeline(mask, binning, cl=None, *, beam=None, noise=None, pixel_wi
         Beam (Gaussian FWHM in arcmin, or a table B_l) of both the simulated
         skies and the estimator.
     noise : NoiseModel, optional
+        Instrument noise added to the simulated skies (default: none).
     pixel_window : bool, default=True
+        Include the HEALPix pixel window, in the estimator and (with the
+        beam) in the simulated skies.
     n_sims : int, default=100
+        Number of simulations (>= 2).
     seed : int, optional
+        Master seed of the simulations.
     estimator_options : dict, optional
         More keyword arguments of :class:`~cmbtools.spectrum.SpectrumEstimator`
         (``lmax``, ``coupling``, ``remove_monopole_dipole``, ...).

@@ -65,7 +65,7 @@ class ValidationResult:
     from bandpowers you simulated yourself with :meth:`from_samples`.  All
     spectra are ``C_l`` bandpowers in K^2.
 
-    Attributes
+    Parameters
     ----------
     n_sims : int
         Number of simulations (>= 2).
@@ -160,11 +160,20 @@ class ValidationResult:
         expected : array_like of shape (n_bins,)
             The expected bandpowers (``SpectrumEstimator.expected_bandpowers`` of the input).
         ell_min, ell_max, ell_eff : array_like of shape (n_bins,)
+            First and last multipole of each bin, and its effective multipole.
         dl_factor : array_like of shape (n_bins,), optional
             ``D_l / C_l`` of each bin (default ``ell_eff (ell_eff + 1) / 2 pi``).
         seed : int, default=0
+            Master seed of the simulations (recorded).
         mean_pseudo_cl : array_like, optional
+            Mean pseudo-spectrum of the simulated skies, if recorded.
         metadata : dict, optional
+            Settings of the run (str or number values).
+
+        Returns
+        -------
+        ValidationResult
+            The per-bin statistics.
         """
         x = np.array(samples, dtype=np.float64)
         if x.ndim != 2 or x.shape[0] < 2:
@@ -209,6 +218,11 @@ class ValidationResult:
         ``max_abs_bias_sigma`` exceeds 3 with probability about
         ``1 - 0.9973**n_bins`` (for example 8% for 30 bins): judge it with the
         number of bins in mind.  ``rms_bias_sigma`` should be near 1.
+
+        Returns
+        -------
+        dict
+            Field name to int or float (None for a number that is not finite).
         """
         def f(v):
             v = float(v)
@@ -242,6 +256,20 @@ class ValidationResult:
         Columns: ``ell_min, ell_max, ell_eff, expected, mean, std,
         analytic_error, bias_sigma, error_ratio, transfer``; the power columns
         are in ``unit``^2 (``'uK'`` default, or ``'K'``).  Written atomically.
+
+        Parameters
+        ----------
+        path : str or path-like
+            Output file, written atomically.
+        overwrite : bool, default=False
+            Replace an existing file.
+        unit : {'uK', 'K'}, default='uK'
+            Power columns in uK^2 or K^2.
+
+        Returns
+        -------
+        pathlib.Path
+            The file written.
         """
         scale = power_unit_scale(unit)
         rows = []
@@ -255,7 +283,20 @@ class ValidationResult:
                                 overwrite=overwrite)
 
     def write_json(self, path, *, overwrite=False) -> Path:
-        """Write :meth:`summary`, the settings and the per-bin columns (C_l in K^2) as JSON, atomically."""
+        """Write :meth:`summary`, the settings and the per-bin columns (C_l in K^2) as JSON, atomically.
+
+        Parameters
+        ----------
+        path : str or path-like
+            Output file, written atomically.
+        overwrite : bool, default=False
+            Replace an existing file.
+
+        Returns
+        -------
+        pathlib.Path
+            The file written.
+        """
         out = check_output_path(path, overwrite=overwrite)
 
         def clean(a):
@@ -287,7 +328,14 @@ class ValidationResult:
         path : str or path-like
             ``.png`` or ``.pdf``; written atomically.
         overwrite : bool, default=False
+            Replace an existing file.
         title : str, optional
+            Figure title (default: the number of simulations and the headline numbers).
+
+        Returns
+        -------
+        pathlib.Path
+            The file written.
         """
         out, fmt = check_figure_path(path, overwrite)
         fig, ax, bx = new_figure(6.0, height_ratios=(3, 1.4))

@@ -68,7 +68,7 @@ def _clean_value(key, value):
 class Bandpowers:
     """Binned angular power spectrum with errors and a record of how it was measured.
 
-    Attributes
+    Parameters
     ----------
     ell_min, ell_max : ndarray of int, shape (n_bins,)
         Bin limits (inclusive).
@@ -131,13 +131,30 @@ class Bandpowers:
         return int(self.cl.size)
 
     def with_metadata(self, **items) -> "Bandpowers":
-        """A copy with ``items`` added to (or replacing entries of) the metadata."""
+        """A copy with ``items`` added to (or replacing entries of) the metadata.
+
+        Parameters
+        ----------
+        **items
+            Metadata entries (str or number values).
+
+        Returns
+        -------
+        Bandpowers
+            The copy.
+        """
         meta = dict(self.metadata)
         meta.update(items)
         return dataclasses.replace(self, metadata=meta)
 
     def binning(self) -> Binning:
-        """The :class:`Binning` of these bandpowers (weighting from the metadata, default 'dl')."""
+        """The :class:`Binning` of these bandpowers (weighting from the metadata, default 'dl').
+
+        Returns
+        -------
+        Binning
+            The bins.
+        """
         return Binning(self.ell_min, self.ell_max, str(self.metadata.get("bins_weighting", "dl")))
 
     # ------------------------------------------------------------------ CSV
@@ -169,6 +186,16 @@ class Bandpowers:
     @classmethod
     def read_csv(cls, path) -> "Bandpowers":
         """Read a table written by :meth:`write_csv` (values converted back to K^2).
+
+        Parameters
+        ----------
+        path : str or path-like
+            The CSV table.
+
+        Returns
+        -------
+        Bandpowers
+            The bandpowers (no covariance: the CSV table does not hold it).
 
         Raises
         ------
@@ -205,7 +232,9 @@ class Bandpowers:
         path : str or path-like
             Output file, written atomically.
         overwrite : bool, default=False
+            Replace an existing file.
         unit : {'uK', 'K'}, default='uK'
+            Spectra in uK^2 or K^2 (the covariance in that unit squared).
 
         Returns
         -------
@@ -250,6 +279,7 @@ class Bandpowers:
             curve and averaged over the bins the same way as the bandpowers
             (flat bin average, no bandpower windows).
         overwrite : bool, default=False
+            Replace an existing file.
         title : str, optional
             Figure title (default: the ``spectrum`` kind and lmax from the metadata).
 

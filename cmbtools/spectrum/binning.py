@@ -243,7 +243,18 @@ class Binning:
         return idx
 
     def averaging_weights(self, lmax: int | None = None) -> np.ndarray:
-        """``P[bin(l), l]`` for ``l = 0..lmax`` (zero outside the bins): the non-zeros of :meth:`averaging_matrix`."""
+        """``P[bin(l), l]`` for ``l = 0..lmax`` (zero outside the bins): the non-zeros of :meth:`averaging_matrix`.
+
+        Parameters
+        ----------
+        lmax : int, optional
+            Largest multipole (>= the last bin's ``ell_max``, which is the default).
+
+        Returns
+        -------
+        ndarray of shape (lmax+1,)
+            The weight of each multipole in its bin's average.
+        """
         lmax = self.lmax if lmax is None else check_int(lmax, "lmax", minimum=self.lmax)
         ell = np.arange(lmax + 1, dtype=np.float64)
         w = ell * (ell + 1.0) / (2.0 * np.pi) if self.weighting == "dl" else np.ones(lmax + 1)
@@ -254,7 +265,18 @@ class Binning:
         return out
 
     def model_weights(self, lmax: int | None = None) -> np.ndarray:
-        """``Q[l, bin(l)]`` for ``l = 0..lmax`` (zero outside the bins): the non-zeros of :meth:`model_matrix`."""
+        """``Q[l, bin(l)]`` for ``l = 0..lmax`` (zero outside the bins): the non-zeros of :meth:`model_matrix`.
+
+        Parameters
+        ----------
+        lmax : int, optional
+            Largest multipole (>= the last bin's ``ell_max``, which is the default).
+
+        Returns
+        -------
+        ndarray of shape (lmax+1,)
+            The value of each multipole's model for a unit bandpower.
+        """
         lmax = self.lmax if lmax is None else check_int(lmax, "lmax", minimum=self.lmax)
         ell = np.arange(lmax + 1, dtype=np.float64)
         if self.weighting == "dl":
@@ -272,6 +294,16 @@ class Binning:
 
         For ``'dl'`` weighting ``P[b, l] = l(l+1) / (2 pi n_b)``, for ``'cl'``
         ``P[b, l] = 1 / n_b``, on the multipoles of bin ``b``; zero elsewhere.
+
+        Parameters
+        ----------
+        lmax : int, optional
+            Largest multipole (>= the last bin's ``ell_max``, which is the default).
+
+        Returns
+        -------
+        ndarray of shape (n_bins, lmax+1)
+            The matrix ``P``.
         """
         w = self.averaging_weights(lmax)
         p = np.zeros((self.n_bins, w.size))
@@ -284,6 +316,16 @@ class Binning:
 
         For ``'dl'`` weighting ``Q[l, b] = 2 pi / (l(l+1))`` on the multipoles of
         bin ``b`` (zero at ``l = 0``), for ``'cl'`` ``Q[l, b] = 1``.
+
+        Parameters
+        ----------
+        lmax : int, optional
+            Largest multipole (>= the last bin's ``ell_max``, which is the default).
+
+        Returns
+        -------
+        ndarray of shape (lmax+1, n_bins)
+            The matrix ``Q``.
         """
         w = self.model_weights(lmax)
         q = np.zeros((w.size, self.n_bins))
@@ -297,6 +339,16 @@ class Binning:
         With ``'dl'`` weighting the average is taken over ``D_l`` and converted
         back to ``C_l`` at ``ell_eff``, the same convention as the estimator's
         ``cl`` column.
+
+        Parameters
+        ----------
+        cl : array_like of shape (>= lmax+1,)
+            C_l from ell = 0 (any unit; K^2 for the library's spectra).
+
+        Returns
+        -------
+        ndarray of shape (n_bins,)
+            The C_l bandpowers, in the unit of ``cl``.
         """
         cl = np.asarray(cl, dtype=np.float64)
         if cl.ndim != 1 or cl.size < self.lmax + 1:
@@ -307,7 +359,13 @@ class Binning:
         return binned / self.dl_factor if self.weighting == "dl" else binned
 
     def as_dict(self) -> dict:
-        """A description for file headers: weighting, n_bins and the bin limits as text."""
+        """A description for file headers: weighting, n_bins and the bin limits as text.
+
+        Returns
+        -------
+        dict
+            ``bins_weighting``, ``bins_count`` and the bin limits (``bins_ell_min``, ``bins_ell_max``) as text.
+        """
         return {
             "bins_weighting": self.weighting,
             "bins_count": self.n_bins,

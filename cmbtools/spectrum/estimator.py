@@ -437,7 +437,20 @@ class SpectrumEstimator:
         return _sht.map2alm(masked, self.lmax, nthreads=self._nthreads, rings=rings)
 
     def pseudo_spectrum(self, map1, map2=None) -> np.ndarray:
-        """Pseudo-Cl (ell = 0..lmax, K^2) of the masked map(s), after the monopole/dipole removal."""
+        """Pseudo-Cl (ell = 0..lmax, K^2) of the masked map(s), after the monopole/dipole removal.
+
+        Parameters
+        ----------
+        map1 : ndarray of shape (12*nside**2,)
+            RING map in K_CMB.
+        map2 : ndarray of shape (12*nside**2,), optional
+            Second map (through ``mask2``): the cross pseudo-spectrum.
+
+        Returns
+        -------
+        ndarray of shape (lmax+1,)
+            The pseudo-spectrum in K^2.
+        """
         a1 = self._alm(self._prepare(map1, "map1", self.mask))
         if map2 is None:
             return _sht.alm2cl(a1, lmax=self.lmax)
@@ -630,12 +643,36 @@ class SpectrumEstimator:
         the :attr:`cache_key`, the cmbtools version and a SHA-256 checksum of
         its contents.  Written atomically; an existing file is only replaced
         with ``overwrite=True``.
+
+        Parameters
+        ----------
+        path : str or path-like
+            The ``.npz`` file.
+        overwrite : bool, default=False
+            Replace an existing file.
+
+        Returns
+        -------
+        pathlib.Path
+            The file written.
         """
         return save_estimator(self, path, overwrite=overwrite)
 
     @classmethod
     def load(cls, path, *, nthreads=None) -> "SpectrumEstimator":
         """Read an estimator written by :meth:`save`.
+
+        Parameters
+        ----------
+        path : str or path-like
+            The ``.npz`` file.
+        nthreads : int, optional
+            Threads of the loaded estimator (default: all cores, or ``$CMBTOOLS_NUM_THREADS``).
+
+        Returns
+        -------
+        SpectrumEstimator
+            The estimator, ready to apply.
 
         Raises
         ------

@@ -35,6 +35,7 @@ def estimate_spectrum(map1, mask, binning, *, map2=None, mask2=None, noise_cl=No
     mask : ndarray of shape (12*nside**2,)
         Weights of map 1.
     binning : Binning
+        The bins of the bandpowers.
     map2, mask2 : ndarray of shape (12*nside**2,), optional
         Second map for a cross-spectrum, and its mask (default ``mask``).
     noise_cl, noise_maps : optional
