@@ -50,6 +50,8 @@ def _validation_memory(estimator, noise, with_dipole, with_filter) -> int:
     # the transform's ring buffer and the temporaries of the spectrum
     measure = 3 * one + alm + max(16 * (4 * nside - 1) * (lmax + 1), 3 * alm)
     phases = [estimate_sky_bytes(nside, lmax, with_dipole), one + measure]
+    if estimator.remove_monopole_dipole:  # the four sets of coefficients of the removal in harmonic space, kept
+        phases = [p + 4 * alm for p in phases]
     if with_filter:  # the sky, the filtered sky and its float64 copy
         phases.append(3 * one)
     if noise is not None:  # the sky while its noise is drawn; then the sky, the noise and their sum
@@ -65,9 +67,14 @@ def _simulate_and_estimate(index, rng, setup):
     # the memory of the whole run was checked once by validate_estimator: the private builders check nothing
     est = setup.estimator
     lmax = est.lmax
+    # many maps go through this estimator: it removes their monopole and dipole in harmonic space
+    est._keep_removal_coefficients()
+    # pixels on rings the mask does not touch never reach the bandpowers: they are not simulated (the
+    # pixels that are have their full-sky values); a sky filter sees the whole sky
+    rings = est._occupied_rings() if setup.sky_filter is None else None
     dip = None if setup.dipole is None else _dipole_vector(setup.dipole)
     sky = _gaussian_sky(setup.cl, est.nside, lmax, _beam_factor(setup.sky_beam, lmax), False, float(setup.monopole),
-                        dip, rng, None)
+                        dip, rng, None, rings=rings)
     if setup.sky_filter is not None:
         filtered = np.asarray(setup.sky_filter(sky), dtype=np.float64)
         if filtered.shape != sky.shape:
@@ -79,7 +86,11 @@ def _simulate_and_estimate(index, rng, setup):
     if setup.record_pseudo:
         out["pseudo_cl"] = est.pseudo_spectrum(sky)
     if setup.noise is not None:
-        sky = sky + _noise_map(setup.noise, est.nside, 3 * est.nside - 1, rng, None)
+        noise = _noise_map(setup.noise, est.nside, 3 * est.nside - 1, rng, None, rings=rings)
+        if setup.sky_filter is None:
+            sky += noise  # our own map
+        else:
+            sky = sky + noise
     bp = est.estimate(sky, noise_cl=setup.noise_cl)
     out["cl"] = bp.cl
     out["cl_err"] = bp.cl_err
