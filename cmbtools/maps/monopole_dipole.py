@@ -420,5 +420,6 @@ def subtract_fitted_coefficients(alm, coefficients, sums_of_weights, n_used, npi
     _condition_of_fit(mean_n, cov, n_used)
     d = np.linalg.solve(cov, cross)
     mono = mean_m - float(d @ mean_n)
-    alm -= np.dot(np.array([mono, d[0], d[1], d[2]], dtype=np.complex128), coefficients)  # one pass (BLAS)
+    # real factors: one real matrix-vector product over the interleaved real and imaginary parts
+    alm.view(np.float64)[...] -= np.array([mono, d[0], d[1], d[2]]) @ coefficients.view(np.float64)
     return alm
