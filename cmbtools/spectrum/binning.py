@@ -411,19 +411,12 @@ def read_bin_edges(path) -> np.ndarray:
     InputFileError
         If the file is missing, not UTF-8 text, or holds something that is not a number.
     """
-    from cmbtools._core.tables import read_text_table
-    from cmbtools.exceptions import InputFileError
+    from cmbtools._core.tables import number_cell, read_text_table
 
     table = read_text_table(path, what="a list of bin edges", inline_comments=True, header=False,
                             separator="per-line")
     values = []
     for number, cells in table.rows:
         for cell in (x for c in cells for x in c.split()):
-            try:
-                values.append(float(cell))
-            except ValueError:
-                raise InputFileError(
-                    table.path, f"line {number}: {cell!r} is not a number (bin edges are whole numbers separated by "
-                                f"commas or spaces)"
-                ) from None
+            values.append(number_cell(table.path, cell, f"line {number}:"))
     return np.array(values, dtype=np.float64)
