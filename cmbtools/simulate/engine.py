@@ -376,8 +376,8 @@ def _approx_nbytes(obj, seen=None, depth=0) -> int:
     return sum(_approx_nbytes(x, seen, depth + 1) for x in items)
 
 
-def _check_run_memory(context, per_simulation, n_sims, executor, client, workers, force):
-    """Refuse a run whose workers together would need more memory than the machine has, before any starts.
+def _run_memory(context, per_simulation, n_sims, executor, client, workers):
+    """``(bytes, what)`` the workers of a run need together (None on dask), for the check before any starts.
 
     Local pool: every worker process holds the pickled job and its unpickled
     copy (twice the context) plus one simulation; the parent holds one more
@@ -385,7 +385,7 @@ def _check_run_memory(context, per_simulation, n_sims, executor, client, workers
     workers (threads share the context).  dask workers run on their own hosts
     under dask's own memory limits and are not checked.
     """
-    from cmbtools._core.memory import check_memory, format_bytes
+    from cmbtools._core.memory import format_bytes
 
     if client is not None:
         return None
@@ -400,9 +400,7 @@ def _check_run_memory(context, per_simulation, n_sims, executor, client, workers
         shared = 0 if isinstance(executor, cf.ThreadPoolExecutor) else _approx_nbytes(context)
         need = n * (shared + per_sim)
         where = f"{n} concurrent task{'s' if n != 1 else ''}"
-    return check_memory(
-        need, f"Running {n_sims} simulations on {where} (about {format_bytes(need / n)} each)", force=force
-    )
+    return need, f"Running {n_sims} simulations on {where} (about {format_bytes(need / n)} each)"
 
 
 # --------------------------------------------------------------------------- public: generic runs
@@ -587,7 +585,11 @@ def run_simulations(
         threads_per_worker = check_int(threads_per_worker, "threads_per_worker", minimum=1)
     if memory_per_simulation is not None:
         memory_per_simulation = check_int(memory_per_simulation, "memory_per_simulation", minimum=0)
-    _check_run_memory(context, memory_per_simulation, n_sims, executor, client, workers, force)
+    need = _run_memory(context, memory_per_simulation, n_sims, executor, client, workers)
+    if need is not None:
+        from cmbtools._core.memory import check_memory
+
+        check_memory(*need, force=force)
 
     job = _Job(simulate_one, context)
     identity = _inputs_hash(simulate_one, context, input_hash)
