@@ -786,7 +786,7 @@ class SpectrumEstimator:
         CacheError
             If ``path`` holds a file that is not a ``.npz`` archive.
         """
-        return load_or_build(cls, path, mask, binning, force=force, **kwargs)
+        return load_or_build(cls, path, mask, binning, lambda: cls(mask, binning, force=force, **kwargs), **kwargs)
 
     def __repr__(self):
         return (
