@@ -420,6 +420,11 @@ def subtract_fitted_coefficients(alm, coefficients, sums_of_weights, n_used, npi
     _condition_of_fit(mean_n, cov, n_used)
     d = np.linalg.solve(cov, cross)
     mono = mean_m - float(d @ mean_n)
-    # real factors: one real matrix-vector product over the interleaved real and imaginary parts
-    alm.view(np.float64)[...] -= np.array([mono, d[0], d[1], d[2]]) @ coefficients.view(np.float64)
+    # real factors, applied to the interleaved real and imaginary parts with plain ufuncs (no BLAS: its
+    # threads would compete with the other workers of a Monte Carlo pool)
+    flat = alm.view(np.float64)
+    tmp = np.empty_like(flat)
+    for factor, c in zip((mono, d[0], d[1], d[2]), coefficients):
+        np.multiply(c.view(np.float64), factor, out=tmp)
+        flat -= tmp
     return alm
