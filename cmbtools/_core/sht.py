@@ -335,14 +335,15 @@ def almxfl(alm, fl, lmax: int) -> np.ndarray:
     return out
 
 
-def adjoint_sums(m, lmax: int, *, nthreads: int) -> np.ndarray:
+def adjoint_sums(m, lmax: int, *, nthreads: int, rings=None) -> np.ndarray:
     """Coefficients ``sum_p m_p Y*_lm(n_p)`` up to ``lmax`` (healpy's layout) of a RING map: the adjoint synthesis.
 
-    Unlike :func:`map2alm` there is no quadrature weight: these are exact pixel sums.
+    Unlike :func:`map2alm` there is no quadrature weight: these are exact pixel sums.  ``rings`` (see
+    :func:`occupied_rings`) skips the rings known to be zero.
     """
     nside = int(round(np.sqrt(m.size / 12)))
     return ducc0.sht.experimental.adjoint_synthesis(
-        map=np.asarray(m).reshape(1, -1), lmax=lmax, spin=0, nthreads=nthreads, **ring_geometry(nside)
+        map=np.asarray(m).reshape(1, -1), lmax=lmax, spin=0, nthreads=nthreads, **_subset(ring_geometry(nside), rings)
     )[0]
 
 

@@ -246,11 +246,11 @@ _S22 = np.sqrt(32 * np.pi / 15)
 _SMALL_PATCH_SPREAD = 1e-6
 
 
-def _harmonic_sums(g, lmax, nthreads):
-    """Coefficients ``sum_p g_p Y*_lm(n_p)`` up to ``lmax`` (healpy's layout) of a RING map."""
+def _harmonic_sums(g, lmax, nthreads, rings=None):
+    """Coefficients ``sum_p g_p Y*_lm(n_p)`` up to ``lmax`` (healpy's layout) of a RING map (``rings``: the non-zero ones)."""
     from cmbtools._core import sht as _sht
 
-    return _sht.adjoint_sums(g, lmax, nthreads=nthreads)
+    return _sht.adjoint_sums(g, lmax, nthreads=nthreads, rings=rings)
 
 
 def _first_moments(a):
@@ -272,14 +272,26 @@ def _second_moments(a):
     return np.array([[xx, xy, zx], [xy, yy, zy], [zx, zy, zz]])
 
 
-def weight_sums(w, *, nthreads=None):
-    """The lmax-2 harmonic sums of a weight map that :func:`masked_without_monopole_dipole` needs (reusable)."""
+def weight_sums(w, *, nthreads=None, rings=None):
+    """The lmax-2 harmonic sums of a weight map that :func:`masked_without_monopole_dipole` needs (reusable).
+
+    ``rings`` (:func:`cmbtools._core.sht.occupied_rings` of ``w``) skips the rings where ``w`` is zero.
+    """
     from cmbtools._core.checks import resolve_nthreads
 
-    return _harmonic_sums(np.asarray(w, dtype=np.float64), 2, resolve_nthreads(nthreads))
+    return _harmonic_sums(np.asarray(w, dtype=np.float64), 2, resolve_nthreads(nthreads), rings)
 
 
-def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None):
+def _ring_runs(n_rings, rings):
+    """``(first, stop)`` of every run of consecutive rings marked in ``rings`` (all rings when None)."""
+    if rings is None:
+        return [(0, n_rings)]
+    marked = np.concatenate([[0], np.asarray(rings, dtype=np.int8), [0]])
+    edges = np.flatnonzero(np.diff(marked))
+    return list(zip(edges[0::2].tolist(), edges[1::2].tolist()))
+
+
+def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None, rings=None):
     """``w * (m - a - d . n)`` for a full RING map ``m`` and weights ``w``, by two harmonic sums.
 
     The same weighted least-squares fit as :func:`fit_monopole_dipole` with
@@ -290,7 +302,8 @@ def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None)
     a few passes over the map instead of pixel-centre vectors for every
     pixel.  This is the estimator's path; it returns a new array.
     ``sums_of_weights`` (from :func:`weight_sums` of the same ``w``) saves one
-    transform per call.
+    transform per call; ``rings`` (:func:`cmbtools._core.sht.occupied_rings`
+    of ``w``) lets the transforms skip the rings where ``w`` is zero (exact).
 
     Raises
     ------
@@ -302,7 +315,7 @@ def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None)
 
     nthreads = resolve_nthreads(nthreads)
     nside = int(round(np.sqrt(m.size / 12)))
-    a_w = _harmonic_sums(w, 2, nthreads) if sums_of_weights is None else sums_of_weights
+    a_w = _harmonic_sums(w, 2, nthreads, rings) if sums_of_weights is None else sums_of_weights
     first = _first_moments(a_w)
     total = first[0]
     mean_n = first[1:] / total if total > 0 else np.zeros(3)
@@ -315,10 +328,10 @@ def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None)
     n_used = int(np.count_nonzero(w))
     # centre the map on its weighted mean in pixel space (exact), so that only the fluctuations enter
     # the harmonic sums; the mean is added back to the monopole below
-    offset = float(np.dot(w, m)) / float(w.sum())
+    offset = float(np.dot(w, m)) / total  # (any value near the weighted mean does: it is added back)
     wm = m - offset
     wm *= w
-    a_wm = _harmonic_sums(wm, 1, nthreads)
+    a_wm = _harmonic_sums(wm, 1, nthreads, rings)
     sums_m = _first_moments(a_wm)
     mean_m = sums_m[0] / total
     cross = sums_m[1:] / total - mean_n * mean_m
@@ -336,15 +349,16 @@ def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None)
     starts = geom["ringstart"].astype(np.int64)
     n_rings = starts.size
     bounds = np.append(starts, m.size)
-    r0 = 0
-    while r0 < n_rings:
-        r1 = int(np.searchsorted(bounds, bounds[r0] + _MODEL_BLOCK, side="right")) - 1
-        r1 = min(n_rings, max(r1, r0 + 1))
-        p0, p1 = int(bounds[r0]), int(bounds[r1])
-        block = _sht.synthesis_on_rings(alm, 1, nside, r0, r1, nthreads=nthreads)
-        block *= w[p0:p1]
-        wm[p0:p1] -= block
-        r0 = r1
+    for first, stop in _ring_runs(n_rings, rings):  # (wm is 0 on the rings where w is)
+        r0 = first
+        while r0 < stop:
+            r1 = int(np.searchsorted(bounds, bounds[r0] + _MODEL_BLOCK, side="right")) - 1
+            r1 = min(stop, max(r1, r0 + 1))
+            p0, p1 = int(bounds[r0]), int(bounds[r1])
+            block = _sht.synthesis_on_rings(alm, 1, nside, r0, r1, nthreads=nthreads)
+            block *= w[p0:p1]
+            wm[p0:p1] -= block
+            r0 = r1
     return wm
 
 

@@ -398,8 +398,11 @@ class SpectrumEstimator:
             from cmbtools.maps.monopole_dipole import masked_without_monopole_dipole, weight_sums
 
             key = "_weight_sums2" if is_second else "_weight_sums1"
-            sums = self._cached(key, lambda: weight_sums(mask, nthreads=self._nthreads))
-            return masked_without_monopole_dipole(a, mask, nthreads=self._nthreads, sums_of_weights=sums)
+            rings = self._cached("_rings2" if is_second else "_rings1", lambda: _sht.occupied_rings(mask))
+            sums = self._cached(key, lambda: weight_sums(mask, nthreads=self._nthreads, rings=rings))
+            return masked_without_monopole_dipole(
+                a, mask, nthreads=self._nthreads, sums_of_weights=sums, rings=rings
+            )
         return a * mask
 
     @staticmethod
@@ -499,7 +502,8 @@ class SpectrumEstimator:
             return False
         from cmbtools.maps.monopole_dipole import harmonic_removal_applies, removal_coefficients, weight_sums
 
-        sums = self._cached("_weight_sums1", lambda: weight_sums(self.mask, nthreads=self._nthreads))
+        rings = self._cached("_rings1", lambda: _sht.occupied_rings(self.mask))
+        sums = self._cached("_weight_sums1", lambda: weight_sums(self.mask, nthreads=self._nthreads, rings=rings))
         if not harmonic_removal_applies(sums):
             return False
         self._cached("_n_used1", lambda: int(np.count_nonzero(self.mask)))

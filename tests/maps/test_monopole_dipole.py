@@ -263,3 +263,25 @@ def test_harmonic_path_in_ring_blocks_equals_one_block(monkeypatch):
     monkeypatch.setattr(dipole, "_MODEL_BLOCK", 1000)
     blocks = masked_without_monopole_dipole(m, w, nthreads=1)
     np.testing.assert_allclose(blocks, whole, rtol=0, atol=1e-15 * AMPLITUDE)  # rounding of the model
+
+
+@pytest.mark.parametrize("block", [None, 1000])
+def test_harmonic_path_on_occupied_rings_equals_all_rings(monkeypatch, block):
+    # the rings where the weights are zero add nothing to the sums and get nothing of the model: skipping
+    # them (in ring blocks or not) gives the same map
+    import cmbtools.maps.monopole_dipole as dipole
+    from cmbtools._core import sht as _sht
+
+    nside = 32
+    w = apodize_mask(latitude_cut_mask(nside, 20.0), 3.0)
+    rings = _sht.occupied_rings(w)
+    assert 0 < rings.sum() < rings.size
+    m = dipole_map(nside, monopole=MONOPOLE) + 1e-4 * np.random.default_rng(3).standard_normal(w.size)
+    whole = masked_without_monopole_dipole(m, w, nthreads=1)
+    if block:
+        monkeypatch.setattr(dipole, "_MODEL_BLOCK", block)
+    sums = dipole.weight_sums(w, nthreads=1, rings=rings)
+    np.testing.assert_allclose(sums, dipole.weight_sums(w, nthreads=1), rtol=0, atol=1e-12 * np.abs(sums).max())
+    skipped = masked_without_monopole_dipole(m, w, nthreads=1, sums_of_weights=sums, rings=rings)
+    np.testing.assert_allclose(skipped, whole, rtol=0, atol=1e-12 * np.abs(whole).max())
+    assert np.all(skipped[w == 0] == 0)
