@@ -141,6 +141,14 @@ class TextTable:
         return meta
 
 
+def number_cell(path, text, where) -> float:
+    """``float(text)``, or :class:`InputFileError` ``"<where> <text!r> is not a number"`` for the file ``path``."""
+    try:
+        return float(text)
+    except ValueError:
+        raise InputFileError(path, f"{where} {text.strip()!r} is not a number") from None
+
+
 def _split_cells(line, sep):
     if sep == ",":
         return [c.strip() for c in line.split(",")]
@@ -424,18 +432,12 @@ def _read_power_table(path, *, prefer) -> np.ndarray:
     for j, (number, cells) in enumerate(rows):
         if len(cells) != len(names):
             raise InputFileError(p, f"line {number}: {len(cells)} cells, but the header names {len(names)} columns")
-        try:
-            ell_value = float(cells[ell_col])
-        except ValueError:
-            raise InputFileError(p, f"line {number}: ell {cells[ell_col]!r} is not a number") from None
+        ell_value = number_cell(p, cells[ell_col], f"line {number}: ell")
         if not math.isfinite(ell_value) or ell_value != int(ell_value) or ell_value < 0:
             raise InputFileError(p, f"line {number}: ell {cells[ell_col]!r} is not a non-negative integer")
         if ell_value > LARGEST_ELL:
             raise InputFileError(p, f"line {number}: ell {cells[ell_col]!r} is above the largest ell, {LARGEST_ELL}")
-        try:
-            v = float(cells[col])
-        except ValueError:
-            raise InputFileError(p, f"line {number}: {names[col]} value {cells[col]!r} is not a number") from None
+        v = number_cell(p, cells[col], f"line {number}: {names[col]} value")
         if not math.isfinite(v):
             raise InputFileError(p, f"line {number}: {names[col]} value {cells[col]!r} is not finite")
         if v < 0:

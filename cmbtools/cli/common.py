@@ -122,30 +122,21 @@ def add_binning(parser):
 
 
 def bin_edges(text):
-    """The edges of --bin-edges: a list of numbers or a file of them."""
+    """The --bin-edges value: a file of edges (read by the library) or the edges themselves."""
     import numpy as np
     from pathlib import Path
 
     from cmbtools.exceptions import InvalidInputError
+    from cmbtools.spectrum.binning import read_bin_edges
 
-    p = Path(text)
-    if p.is_file():
-        from cmbtools._core.files import check_input_file
-
-        body = check_input_file(p).read_text(encoding="utf-8")
-        body = "\n".join(line.split("#", 1)[0] for line in body.splitlines())
-        source = f"file {str(p)!r}"
-    else:
-        body = text
-        source = "--bin-edges"
-    cells = body.replace(",", " ").split()
+    if Path(text).is_file():
+        return read_bin_edges(text)
     try:
-        values = [float(c) for c in cells]
+        return np.array([float(c) for c in text.replace(",", " ").split()])
     except ValueError:
         raise InvalidInputError(
-            f"The bin edges from {source} must be whole numbers separated by commas or spaces. Got {text!r}."
+            f"The bin edges from --bin-edges must be whole numbers separated by commas or spaces. Got {text!r}."
         ) from None
-    return np.array(values)
 
 
 def binning_from_args(args, lmax, f_sky):

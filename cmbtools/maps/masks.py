@@ -32,7 +32,7 @@ from cmbtools._core.checks import (
     resolve_nthreads,
 )
 from cmbtools._core.memory import check_memory, estimate_mask_bytes, estimate_regrade_bytes
-from cmbtools._core.tables import read_text_table
+from cmbtools._core.tables import number_cell, read_text_table
 from cmbtools.exceptions import InputFileError, InvalidInputError
 
 __all__ = [
@@ -294,10 +294,7 @@ def read_positions_csv(path):
             if i is None or (col == "radius_deg" and not row[i].strip()):
                 vals.append(float("nan"))
                 continue
-            try:
-                v = float(row[i])
-            except ValueError:
-                raise InputFileError(p, f"row {n}, column {col}: {row[i].strip()!r} is not a number") from None
+            v = number_cell(p, row[i], f"row {n}, column {col}:")
             if not math.isfinite(v):
                 raise InputFileError(p, f"row {n}, column {col}: {row[i].strip()!r} is not a finite number")
             vals.append(v)

@@ -18,12 +18,12 @@ from scipy.interpolate import CubicSpline
 from cmbtools.physics.parameters import CosmologyExtras, resolve_cosmology, resolve_extras
 from cmbtools.exceptions import InvalidInputError
 from cmbtools.physics import recombination as _recombination
+from cmbtools.physics.ionization_history import IonizationHistory
 from cmbtools.physics.recombination import (
     _C,
     _HBAR,
     _K,
     _MPC,
-    IonizationHistory,
     _as_redshift,
     _background,
     _cosmo_key,

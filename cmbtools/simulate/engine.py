@@ -69,9 +69,6 @@ from __future__ import annotations
 import concurrent.futures as cf
 import contextlib
 import dataclasses
-import functools
-import hashlib
-import inspect
 import os
 import pickle
 import types
@@ -81,14 +78,12 @@ from pathlib import Path
 
 import numpy as np
 
-from cmbtools._core.files import sha256_arrays
 from cmbtools._core.checks import check_int, resolve_nthreads
-from cmbtools._version import __version__
 from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError, WorkerLostError
 from cmbtools.simulate.run_directory import (
-    RUN_FORMAT,
-    RUN_FORMAT_VERSION,
     _clean_result,
+    _function_name,
+    _inputs_hash,
     _prepare_run_dir,
     _read_record,
     _Store,
@@ -100,72 +95,6 @@ __all__ = [
 ]
 
 _THREADS_ENV = "CMBTOOLS_NUM_THREADS"
-
-
-# --------------------------------------------------------------------------- hashing of inputs
-
-
-def _hash_update(h, obj, depth=0):
-    """Feed a description of ``obj`` into the hash ``h`` (arrays by content, objects by their parts)."""
-    if depth > 50:
-        raise InvalidInputError("The simulation context is nested too deeply to be hashed; pass input_hash=.")
-    if obj is None or isinstance(obj, (bool, int, float, complex, str, bytes)):
-        h.update(f"{type(obj).__name__}:{obj!r};".encode())
-    elif isinstance(obj, (np.ndarray, np.generic)):
-        h.update(sha256_arrays(np.asarray(obj)).encode())
-    elif isinstance(obj, Path):
-        h.update(f"path:{obj};".encode())
-    elif isinstance(obj, (list, tuple)):
-        h.update(f"{type(obj).__name__}[{len(obj)}](".encode())
-        for item in obj:
-            _hash_update(h, item, depth + 1)
-        h.update(b")")
-    elif isinstance(obj, dict):
-        h.update(f"dict[{len(obj)}](".encode())
-        for key in sorted(obj, key=repr):
-            _hash_update(h, key, depth + 1)
-            _hash_update(h, obj[key], depth + 1)
-        h.update(b")")
-    elif isinstance(obj, functools.partial):
-        h.update(b"partial(")
-        _hash_update(h, (obj.func, obj.args, obj.keywords), depth + 1)
-        h.update(b")")
-    elif inspect.ismethod(obj):
-        h.update(b"method(")
-        _hash_update(h, (obj.__func__, obj.__self__), depth + 1)
-        h.update(b")")
-    elif isinstance(getattr(obj, "cache_key", None), str):
-        # Objects that hash their own inputs (the spectrum estimator) say so.
-        h.update(f"{type(obj).__module__}.{type(obj).__qualname__}:{obj.cache_key};".encode())
-    elif isinstance(obj, type) or callable(obj) and hasattr(obj, "__qualname__"):
-        h.update(f"callable:{getattr(obj, '__module__', '?')}.{obj.__qualname__};".encode())
-    elif dataclasses.is_dataclass(obj):
-        h.update(f"{type(obj).__module__}.{type(obj).__qualname__}(".encode())
-        for f in dataclasses.fields(obj):
-            _hash_update(h, f.name, depth + 1)
-            _hash_update(h, getattr(obj, f.name), depth + 1)
-        h.update(b")")
-    elif hasattr(obj, "__dict__"):
-        cls = type(obj)
-        lazy = {n for n in dir(cls) if isinstance(getattr(cls, n, None), functools.cached_property)}
-        state = {k: v for k, v in vars(obj).items() if k not in lazy}
-        h.update(f"{cls.__module__}.{cls.__qualname__}".encode())
-        _hash_update(h, state, depth + 1)
-    else:
-        h.update(hashlib.sha256(pickle.dumps(obj, protocol=4)).hexdigest().encode())
-
-
-def _inputs_hash(function, context, extra) -> str:
-    h = hashlib.sha256()
-    _hash_update(h, (RUN_FORMAT, RUN_FORMAT_VERSION, __version__))
-    _hash_update(h, function)
-    _hash_update(h, context)
-    _hash_update(h, extra)
-    return h.hexdigest()
-
-
-def _function_name(function) -> str:
-    return f"{getattr(function, '__module__', '?')}.{getattr(function, '__qualname__', type(function).__name__)}"
 
 
 # --------------------------------------------------------------------------- what runs in the workers
@@ -495,8 +424,8 @@ def _approx_nbytes(obj, seen=None, depth=0) -> int:
     return sum(_approx_nbytes(x, seen, depth + 1) for x in items)
 
 
-def _check_run_memory(context, per_simulation, n_sims, executor, client, workers, force):
-    """Refuse a run whose workers together would need more memory than the machine has, before any starts.
+def _run_memory(context, per_simulation, n_sims, executor, client, workers):
+    """``(bytes, what)`` the workers of a run need together (None on dask), for the check before any starts.
 
     Local pool: every worker process holds the pickled job and its unpickled
     copy (twice the context) plus one simulation; the parent holds one more
@@ -504,7 +433,7 @@ def _check_run_memory(context, per_simulation, n_sims, executor, client, workers
     workers (threads share the context).  dask workers run on their own hosts
     under dask's own memory limits and are not checked.
     """
-    from cmbtools._core.memory import check_memory, format_bytes
+    from cmbtools._core.memory import format_bytes
 
     if client is not None:
         return None
@@ -519,9 +448,7 @@ def _check_run_memory(context, per_simulation, n_sims, executor, client, workers
         shared = 0 if isinstance(executor, cf.ThreadPoolExecutor) else _approx_nbytes(context)
         need = n * (shared + per_sim)
         where = f"{n} concurrent task{'s' if n != 1 else ''}"
-    return check_memory(
-        need, f"Running {n_sims} simulations on {where} (about {format_bytes(need / n)} each)", force=force
-    )
+    return need, f"Running {n_sims} simulations on {where} (about {format_bytes(need / n)} each)"
 
 
 # --------------------------------------------------------------------------- public: generic runs
@@ -706,7 +633,11 @@ def run_simulations(
         threads_per_worker = check_int(threads_per_worker, "threads_per_worker", minimum=1)
     if memory_per_simulation is not None:
         memory_per_simulation = check_int(memory_per_simulation, "memory_per_simulation", minimum=0)
-    _check_run_memory(context, memory_per_simulation, n_sims, executor, client, workers, force)
+    need = _run_memory(context, memory_per_simulation, n_sims, executor, client, workers)
+    if need is not None:
+        from cmbtools._core.memory import check_memory
+
+        check_memory(*need, force=force)
 
     job = _Job(simulate_one, context)
     identity = _inputs_hash(simulate_one, context, input_hash)

@@ -1,8 +1,10 @@
 """The run directory of a Monte Carlo run: its manifest and one checksummed record per simulation.
 
-The store is kept apart from the execution (:mod:`cmbtools.simulate.engine`):
-the engine hands each finished result to a :class:`_Store`, which keeps it in
-memory and, with a run directory, writes it to disk.  Layout: ``run.json``
+The identity of a run (:func:`_inputs_hash` of its function, context and
+settings) and its store are kept apart from the execution
+(:mod:`cmbtools.simulate.engine`): the engine hands each finished result to a
+:class:`_Store`, which keeps it in memory and, with a run directory, writes it
+to disk.  Layout: ``run.json``
 (format, cmbtools version, hash of the inputs, seed, number of simulations,
 function name), then ``sim_NNNNNN.npz`` per simulation, written atomically by
 the parent process with ``allow_pickle=False`` data, the index, the input hash
@@ -12,9 +14,14 @@ and a SHA-256 checksum of the arrays.  Nothing is ever pickled to disk.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import datetime
+import functools
+import hashlib
+import inspect
 import json
 import os
+import pickle
 import re
 from pathlib import Path
 
@@ -226,3 +233,68 @@ def _clean_result(out, index) -> dict:
         clean[key] = a
     return clean
 
+
+# --------------------------------------------------------------------------- the identity of a run's inputs
+
+
+def _hash_update(h, obj, depth=0):
+    """Feed a description of ``obj`` into the hash ``h`` (arrays by content, objects by their parts)."""
+    if depth > 50:
+        raise InvalidInputError("The simulation context is nested too deeply to be hashed; pass input_hash=.")
+    if obj is None or isinstance(obj, (bool, int, float, complex, str, bytes)):
+        h.update(f"{type(obj).__name__}:{obj!r};".encode())
+    elif isinstance(obj, (np.ndarray, np.generic)):
+        h.update(sha256_arrays(np.asarray(obj)).encode())
+    elif isinstance(obj, Path):
+        h.update(f"path:{obj};".encode())
+    elif isinstance(obj, (list, tuple)):
+        h.update(f"{type(obj).__name__}[{len(obj)}](".encode())
+        for item in obj:
+            _hash_update(h, item, depth + 1)
+        h.update(b")")
+    elif isinstance(obj, dict):
+        h.update(f"dict[{len(obj)}](".encode())
+        for key in sorted(obj, key=repr):
+            _hash_update(h, key, depth + 1)
+            _hash_update(h, obj[key], depth + 1)
+        h.update(b")")
+    elif isinstance(obj, functools.partial):
+        h.update(b"partial(")
+        _hash_update(h, (obj.func, obj.args, obj.keywords), depth + 1)
+        h.update(b")")
+    elif inspect.ismethod(obj):
+        h.update(b"method(")
+        _hash_update(h, (obj.__func__, obj.__self__), depth + 1)
+        h.update(b")")
+    elif isinstance(getattr(obj, "cache_key", None), str):
+        # Objects that hash their own inputs (the spectrum estimator) say so.
+        h.update(f"{type(obj).__module__}.{type(obj).__qualname__}:{obj.cache_key};".encode())
+    elif isinstance(obj, type) or callable(obj) and hasattr(obj, "__qualname__"):
+        h.update(f"callable:{getattr(obj, '__module__', '?')}.{obj.__qualname__};".encode())
+    elif dataclasses.is_dataclass(obj):
+        h.update(f"{type(obj).__module__}.{type(obj).__qualname__}(".encode())
+        for f in dataclasses.fields(obj):
+            _hash_update(h, f.name, depth + 1)
+            _hash_update(h, getattr(obj, f.name), depth + 1)
+        h.update(b")")
+    elif hasattr(obj, "__dict__"):
+        cls = type(obj)
+        lazy = {n for n in dir(cls) if isinstance(getattr(cls, n, None), functools.cached_property)}
+        state = {k: v for k, v in vars(obj).items() if k not in lazy}
+        h.update(f"{cls.__module__}.{cls.__qualname__}".encode())
+        _hash_update(h, state, depth + 1)
+    else:
+        h.update(hashlib.sha256(pickle.dumps(obj, protocol=4)).hexdigest().encode())
+
+
+def _inputs_hash(function, context, extra) -> str:
+    h = hashlib.sha256()
+    _hash_update(h, (RUN_FORMAT, RUN_FORMAT_VERSION, __version__))
+    _hash_update(h, function)
+    _hash_update(h, context)
+    _hash_update(h, extra)
+    return h.hexdigest()
+
+
+def _function_name(function) -> str:
+    return f"{getattr(function, '__module__', '?')}.{getattr(function, '__qualname__', type(function).__name__)}"

@@ -135,7 +135,7 @@ class _Model:
     """The background, ionization history and perturbation solution of one cosmology."""
 
     def __init__(self, cosmo, extras):
-        from cmbtools.physics.recombination import IonizationHistory
+        from cmbtools.physics.ionization_history import IonizationHistory
 
         self.t0 = float(cosmo.Tcmb0.to_value("K"))
         self.h0 = float(cosmo.H0.to_value("km/(s Mpc)")) / _C_KM_S  # Mpc^-1

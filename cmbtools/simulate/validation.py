@@ -16,7 +16,8 @@ import numpy as np
 
 from cmbtools._core.checks import check_int
 from cmbtools.exceptions import InvalidInputError
-from cmbtools.simulate.engine import MAX_SIMULATIONS, _function_name, run_simulations
+from cmbtools.simulate.engine import MAX_SIMULATIONS, run_simulations
+from cmbtools.simulate.run_directory import _function_name
 from cmbtools.simulate.validation_result import ValidationResult
 
 __all__ = ["validate_estimator", "validate_pipeline"]

@@ -33,7 +33,7 @@ from pathlib import Path
 import numpy as np
 
 from cmbtools._core import files as _io
-from cmbtools._core.tables import read_text_table, write_text_table
+from cmbtools._core.tables import number_cell, read_text_table, write_text_table
 from cmbtools._core.checks import check_lmax, check_positive
 from cmbtools._version import __version__
 from cmbtools.exceptions import CmbtoolsWarning, InputFileError, InvalidInputError
@@ -156,10 +156,7 @@ def _read_text_table(p: Path):
             )
         values = []
         for name, i in (("ell", i_ell), ("b_ell", i_beam)):
-            try:
-                values.append(float(cells[i]))
-            except ValueError:
-                raise InputFileError(p, f"line {lineno}: the {name} cell {cells[i]!r} is not a number") from None
+            values.append(number_cell(p, cells[i], f"line {lineno}: the {name} cell"))
         ells.append(values[0])
         beams.append(values[1])
         where.append(f"line {lineno}")

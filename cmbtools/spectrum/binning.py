@@ -410,3 +410,34 @@ class Binning:
         return (
             f"Binning(n_bins={self.n_bins}, ell {self.lmin}..{self.lmax}, weighting={self.weighting!r})"
         )
+
+
+def read_bin_edges(path) -> np.ndarray:
+    """Read bin edges from a text file: numbers separated by commas or white space, ``#`` starting a comment.
+
+    The result goes to :meth:`Binning.from_edges` (which checks the values).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The text file.
+
+    Returns
+    -------
+    ndarray of float64
+        The numbers in the order of the file.
+
+    Raises
+    ------
+    InputFileError
+        If the file is missing, not UTF-8 text, or holds something that is not a number.
+    """
+    from cmbtools._core.tables import number_cell, read_text_table
+
+    table = read_text_table(path, what="a list of bin edges", inline_comments=True, header=False,
+                            separator="per-line")
+    values = []
+    for number, cells in table.rows:
+        for cell in (x for c in cells for x in c.split()):
+            values.append(number_cell(table.path, cell, f"line {number}:"))
+    return np.array(values, dtype=np.float64)

@@ -33,13 +33,12 @@ from cmbtools._core.checks import (
     nside_from_npix,
 )
 from cmbtools._core.memory import check_memory, estimate_estimator_bytes
-from cmbtools._version import __version__
 from cmbtools.exceptions import CmbtoolsError, InvalidInputError
 from cmbtools.spectrum import coupling as _coupling
 from cmbtools.spectrum.binning import Binning
 from cmbtools.spectrum.errors import bandpower_covariance, mode_counts
 from cmbtools.spectrum.operator import build_operator
-from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, resolve_settings
+from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, bandpower_record, resolve_settings
 from cmbtools.spectrum.storage import load_estimator, load_or_build, save_estimator
 
 __all__ = ["SpectrumEstimator", "MAX_CONDITION_NUMBER"]
@@ -605,40 +604,10 @@ class SpectrumEstimator:
         return bandpower_covariance(ainv, g, c12, c11, c22, cross=cross)
 
     def _metadata(self, cross, has_noise_cl, has_noise_maps) -> dict:
-        inp = self._inputs
-        b = self.binning
-        meta = {
-            "software": f"cmbtools {__version__}",
-            "spectrum": "cross" if cross else "auto",
-            "nside": inp.nside,
-            "lmax": inp.lmax,
-            "mask_sha256": inp.mask1_sha256,
-            "f_sky": round(self.f_sky, 6),
-            "f_sky_eff": round(self.f_sky_eff_cross if cross else self.f_sky_eff, 6),
-        }
-        if cross:
-            meta["mask2_sha256"] = inp.mask1_sha256 if inp.mask2_sha256 is None else inp.mask2_sha256
-        meta.update(b.as_dict())
-        meta["beam"] = inp.descriptions["beam"]
-        if cross:
-            meta["beam2"] = inp.descriptions["beam2"]
-        meta["pixel_window"] = inp.descriptions["pixel_window"]
-        meta["transfer"] = inp.descriptions["transfer"]
-        if cross:
-            meta["transfer2"] = inp.descriptions["transfer2"]
-        meta["monopole_dipole_removed"] = "yes" if inp.remove_monopole_dipole else "no"
-        if inp.fast is not None:
-            meta["coupling"] = "fast l_exact={} l_toeplitz={} band={}".format(*inp.fast)
-        elif inp.coupling == "fast":
-            meta["coupling"] = "fast (exact matrix: lmax above 2 nside)"
-        else:
-            meta["coupling"] = inp.coupling
-        meta["n_iter"] = inp.n_iter
-        meta["condition_number"] = float(f"{self.condition_number:.6g}")
-        meta["errors"] = "Knox formula with f_sky_eff = w2^2/w4"
-        meta["noise_bias_subtracted"] = "no"
-        meta["estimator_key"] = inp.cache_key
-        return meta
+        return bandpower_record(
+            self._inputs, cross=cross, f_sky=self.f_sky,
+            f_sky_eff=self.f_sky_eff_cross if cross else self.f_sky_eff, condition_number=self.condition_number,
+        )
 
     # ------------------------------------------------------------------ persistence (cmbtools.spectrum.storage)
     def save(self, path, *, overwrite=False) -> Path:
@@ -715,7 +684,7 @@ class SpectrumEstimator:
         CacheError
             If ``path`` holds a file that is not a ``.npz`` archive.
         """
-        return load_or_build(cls, path, mask, binning, force=force, **kwargs)
+        return load_or_build(cls, path, mask, binning, lambda: cls(mask, binning, force=force, **kwargs), **kwargs)
 
     def __repr__(self):
         return (

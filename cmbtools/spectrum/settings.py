@@ -31,7 +31,7 @@ from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
 from cmbtools.spectrum import coupling as _coupling
 from cmbtools.spectrum.binning import Binning
 
-__all__ = ["EstimatorSettings", "resolve_settings", "MAX_CONDITION_NUMBER"]
+__all__ = ["EstimatorSettings", "resolve_settings", "bandpower_record", "MAX_CONDITION_NUMBER"]
 
 #: Largest accepted 2-norm condition number of the binned coupling matrix (with
 #: the beam, pixel window and transfer function divided out).  For masks of
@@ -275,3 +275,57 @@ def resolve_settings(
         mask1_sha256=_io.sha256_arrays(w1),
         mask2_sha256=None if w2 is None else _io.sha256_arrays(w2),
     )
+
+
+def bandpower_record(inp, *, cross, f_sky, f_sky_eff, condition_number) -> dict:
+    """The record of how bandpowers were measured (the metadata of :class:`~cmbtools.spectrum.Bandpowers`).
+
+    Parameters
+    ----------
+    inp : EstimatorSettings
+        The estimator's settings.
+    cross : bool
+        A cross-spectrum (else an auto-spectrum).
+    f_sky, f_sky_eff : float
+        Sky fraction of the mask and the effective one of the spectrum.
+    condition_number : float
+        Condition number of the binned coupling matrix.
+
+    Returns
+    -------
+    dict
+        Key to str or number, in the order the table headers show them.
+    """
+    b = inp.binning
+    meta = {
+        "software": f"cmbtools {__version__}",
+        "spectrum": "cross" if cross else "auto",
+        "nside": inp.nside,
+        "lmax": inp.lmax,
+        "mask_sha256": inp.mask1_sha256,
+        "f_sky": round(f_sky, 6),
+        "f_sky_eff": round(f_sky_eff, 6),
+    }
+    if cross:
+        meta["mask2_sha256"] = inp.mask1_sha256 if inp.mask2_sha256 is None else inp.mask2_sha256
+    meta.update(b.as_dict())
+    meta["beam"] = inp.descriptions["beam"]
+    if cross:
+        meta["beam2"] = inp.descriptions["beam2"]
+    meta["pixel_window"] = inp.descriptions["pixel_window"]
+    meta["transfer"] = inp.descriptions["transfer"]
+    if cross:
+        meta["transfer2"] = inp.descriptions["transfer2"]
+    meta["monopole_dipole_removed"] = "yes" if inp.remove_monopole_dipole else "no"
+    if inp.fast is not None:
+        meta["coupling"] = "fast l_exact={} l_toeplitz={} band={}".format(*inp.fast)
+    elif inp.coupling == "fast":
+        meta["coupling"] = "fast (exact matrix: lmax above 2 nside)"
+    else:
+        meta["coupling"] = inp.coupling
+    meta["n_iter"] = inp.n_iter
+    meta["condition_number"] = float(f"{condition_number:.6g}")
+    meta["errors"] = "Knox formula with f_sky_eff = w2^2/w4"
+    meta["noise_bias_subtracted"] = "no"
+    meta["estimator_key"] = inp.cache_key
+    return meta

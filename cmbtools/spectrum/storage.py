@@ -137,8 +137,8 @@ def load_estimator(cls, path, *, nthreads=None):
     return obj
 
 
-def load_or_build(cls, path, mask, binning, *, force=False, **kwargs):
-    """See :meth:`~cmbtools.spectrum.SpectrumEstimator.load_or_build`."""
+def load_or_build(cls, path, mask, binning, build, **kwargs):
+    """See :meth:`~cmbtools.spectrum.SpectrumEstimator.load_or_build`; ``build()`` makes a new estimator."""
     p = Path(path)
     nthreads = kwargs.get("nthreads")
     if p.exists():
@@ -151,7 +151,7 @@ def load_or_build(cls, path, mask, binning, *, force=False, **kwargs):
         try:
             est = cls.load(p, nthreads=nthreads)
         except CacheError as exc:
-            warnings.warn(f"{exc}; rebuilding it.", CmbtoolsWarning, stacklevel=2)
+            warnings.warn(f"{exc}; rebuilding it.", CmbtoolsWarning, stacklevel=3)
         else:
             if est.cache_key == key:
                 return est
@@ -159,11 +159,11 @@ def load_or_build(cls, path, mask, binning, *, force=False, **kwargs):
                 f"{p}: the cached estimator was built from other inputs (stale: key "
                 f"{est.cache_key[:12]}..., expected {key[:12]}...); rebuilding it.",
                 CmbtoolsWarning,
-                stacklevel=2,
+                stacklevel=3,
             )
     else:
         _io.check_output_path(p)
-    est = cls(mask, binning, force=force, **kwargs)
+    est = build()
     est.save(p, overwrite=True)
     return est
 

@@ -105,3 +105,19 @@ def test_value_semantics_and_immutability():
     with pytest.raises(AttributeError):
         a.weighting = "cl"
     assert pickle.loads(pickle.dumps(a)) == a
+
+
+def test_bin_edges_are_read_from_a_text_file(tmp_path):
+    from cmbtools.exceptions import InputFileError
+    from cmbtools.spectrum.binning import read_bin_edges
+
+    path = tmp_path / "edges.txt"
+    path.write_bytes("\ufeff# bin edges of the Tern field\n2 10, 20\n\n30,45  # last\n".encode("utf-8"))
+    edges = read_bin_edges(path)
+    np.testing.assert_array_equal(edges, [2.0, 10.0, 20.0, 30.0, 45.0])
+    b = Binning.from_edges(edges)
+    np.testing.assert_array_equal(b.ell_min, [2, 10, 20, 30])
+    bad = tmp_path / "bad.txt"
+    bad.write_text("2 10\n20 twenty\n")
+    with pytest.raises(InputFileError, match="line 2: 'twenty' is not a number"):
+        read_bin_edges(bad)
