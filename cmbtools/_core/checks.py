@@ -164,9 +164,9 @@ def as_map(m, name="map", *, allow_missing=True) -> np.ndarray:
 def check_mask(mask, name="mask") -> np.ndarray:
     """Return a float64 mask after checking values are finite, in [0, 1] and not all zero."""
     w = as_map(mask, name)
-    if not np.all(np.isfinite(w)):
+    lo, hi = float(w.min()), float(w.max())  # NaN propagates: no map-sized temporary when all is well
+    if not (np.isfinite(lo) and np.isfinite(hi)):
         raise InvalidInputError(f"The {name!r} has {int((~np.isfinite(w)).sum())} NaN or infinite values.")
-    lo, hi = float(w.min()), float(w.max())
     if lo < 0 or hi > 1:
         raise InvalidInputError(f"The {name!r} must have values in [0, 1]. Got values in [{lo:g}, {hi:g}] instead.")
     if hi == 0:

@@ -392,7 +392,7 @@ def estimate_estimator_bytes(nside, lmax, *, n_bins, mask_lmax, cross=False, ref
     leg = _sht._leg_bytes(nside, lw)  # ducc0's buffer of Legendre coefficients
     if refine:  # full coefficients of every mask, plus a synthesized map, the residual and the correction
         transform = n_masks * alm + leg + estimate_map_bytes(nside, 2) + alm
-    elif leg + n_masks * alm <= 2 * _sht.LEG_BUFFER_BYTES:  # one call per mask (see sht.map_spectra)
+    elif leg + n_masks * alm <= _sht.ONE_CALL_BYTES:  # one call per mask (see sht.map_spectra)
         transform = n_masks * alm + leg
     else:  # split: one group of m per mask, its partial sum and one group of rings' buffer
         transform = (n_masks + 2) * _sht.LEG_BUFFER_BYTES

@@ -12,15 +12,21 @@ rounding for the same ``n_iter``).
 Memory.  ducc0's one-call adjoint transform holds a buffer of Legendre
 coefficients of ``n_rings x (lmax+1)`` complex values (805 MB at nside 2048,
 lmax 6143; 1.6 GB for the mask transform to 2 lmax), on top of the result.
-When that buffer would exceed :data:`LEG_BUFFER_BYTES`, the transform runs in
-pieces through ducc0's two halves (``map2leg``, ``leg2alm``): groups of rings
-(each with its north-south mirror, so ducc0 keeps its symmetry speed-up),
-and groups of m whose partial coefficients are added into the result.
-:func:`map_spectra` goes one step further for power spectra: it loops over
-groups of m outermost and keeps only one group's coefficients, so a mask
-spectrum to ``2 lmax`` never holds its full set of coefficients (1.2 GB at
-nside 2048).  The pieces add up the same sums in another order (differences
-at the 1e-15 level).
+When that buffer and the result together would exceed
+:data:`ONE_CALL_BYTES` (768 MB: nside 1024 with lmax 3071, and its mask
+spectrum to 2 lmax, still run in one call, the fastest way), the transform
+runs in pieces through ducc0's two halves (``map2leg``, ``leg2alm``): groups
+of rings (each with its north-south mirror, so ducc0 keeps its symmetry
+speed-up), and groups of m whose partial coefficients are added into the
+result, each piece at most :data:`LEG_BUFFER_BYTES` (32 MB) and freed as soon
+as it is added.  :func:`map_spectra` goes one step further for power spectra:
+it loops over groups of m outermost and keeps only one group's coefficients,
+so a mask spectrum to ``2 lmax`` never holds its full set of coefficients
+(1.2 GB at nside 2048).  Every group of m transforms its rings again (ducc0's
+ring FFTs): small pieces cost time (about 10% of a first call at nside 2048)
+and save memory (the first call there peaks under 2 GB with its map and mask
+loaded).  The pieces add up the same sums in another order (differences at
+the 1e-15 level).
 """
 
 from __future__ import annotations
@@ -32,10 +38,15 @@ import ducc0
 
 from cmbtools._core.checks import resolve_nthreads
 
-__all__ = ["ring_geometry", "occupied_rings", "adjoint_sums", "synthesis_on_rings", "map2alm", "map_spectra", "alm2map", "alm2cl", "almxfl", "alm_size", "alm_ell"]
+__all__ = ["ring_geometry", "occupied_rings", "ring_pixel_ranges", "adjoint_sums", "synthesis_on_rings", "map2alm", "map_spectra", "alm2map", "alm2cl", "almxfl", "alm_size", "alm_ell"]
 
-#: Largest buffer of Legendre coefficients (bytes) a transform holds at once; above it the transform is split.
-LEG_BUFFER_BYTES = 128 * 2**20
+#: Largest work buffer (bytes: ducc0's Legendre coefficients plus the result) of a transform run in one
+#: call; larger transforms run in pieces (see the module notes).
+ONE_CALL_BYTES = 768 * 2**20
+
+#: Largest buffer of Legendre coefficients (bytes), and largest group of coefficients, of one piece of a
+#: split transform.
+LEG_BUFFER_BYTES = 32 * 2**20
 
 
 @functools.lru_cache(maxsize=16)
@@ -70,18 +81,31 @@ def _m_weights(lmax: int) -> np.ndarray:
     return w
 
 
-def alm2map(alm, nside: int, lmax: int, *, nthreads: int | None = None) -> np.ndarray:
-    """Synthesize a RING-ordered map of ``nside`` from coefficients up to ``lmax``."""
+def alm2map(alm, nside: int, lmax: int, *, nthreads: int | None = None, rings=None) -> np.ndarray:
+    """Synthesize a RING-ordered map of ``nside`` from coefficients up to ``lmax``.
+
+    ``rings`` (boolean over the rings, e.g. :func:`occupied_rings` of a mask)
+    synthesizes only those rings and leaves the other pixels at 0: less work
+    for a map that will be multiplied by that mask.
+    """
     geom = ring_geometry(nside)
-    alm = np.asarray(alm)
-    out = ducc0.sht.experimental.synthesis(
-        alm=alm.reshape(1, -1),
-        lmax=lmax,
-        spin=0,
-        nthreads=resolve_nthreads(nthreads),
-        **geom,
-    )
+    alm = np.asarray(alm).reshape(1, -1)
+    nthreads = resolve_nthreads(nthreads)
+    if rings is None:
+        return ducc0.sht.experimental.synthesis(alm=alm, lmax=lmax, spin=0, nthreads=nthreads, **geom)[0]
+    out = np.zeros((1, 12 * int(nside) ** 2))
+    if np.any(rings):
+        ducc0.sht.experimental.synthesis(alm=alm, lmax=lmax, spin=0, nthreads=nthreads, map=out, **_subset(geom, rings))
     return out[0]
+
+
+def ring_pixel_ranges(nside: int, rings) -> tuple[np.ndarray, np.ndarray]:
+    """First and one-past-last pixel of every ring marked true in ``rings`` (RING ordering)."""
+    geom = ring_geometry(nside)
+    starts = geom["ringstart"].astype(np.int64)
+    stops = starts + geom["nphi"].astype(np.int64)
+    rings = np.asarray(rings, dtype=bool)
+    return starts[rings], stops[rings]
 
 
 def occupied_rings(m) -> np.ndarray:
@@ -134,7 +158,7 @@ def map2alm(m, lmax: int, *, n_iter: int = 0, nthreads: int | None = None, rings
     scale = 4.0 * np.pi / npix
     if rings is not None and n_iter:
         raise ValueError("a ring subset only applies to the plain quadrature (n_iter=0)")
-    if _leg_bytes(nside, lmax) <= LEG_BUFFER_BYTES:
+    if _leg_bytes(nside, lmax) + 16 * alm_size(lmax) <= ONE_CALL_BYTES:
         alm = ducc0.sht.experimental.adjoint_synthesis(
             map=m.reshape(1, -1), lmax=lmax, spin=0, nthreads=nthreads, **_subset(geom, rings)
         )
@@ -142,8 +166,7 @@ def map2alm(m, lmax: int, *, n_iter: int = 0, nthreads: int | None = None, rings
         alm = np.zeros((1, alm_size(lmax)), dtype=np.complex128)
         for m0, m1 in _m_groups(lmax, lmax + 1):
             start, stop = _m_block(lmax, m0, m1)
-            for part in _adjoint_parts(m, nside, lmax, m0, m1, nthreads, rings):
-                alm[0, start:stop] += part
+            _adjoint_add(alm[0, start:stop], m, nside, lmax, m0, m1, nthreads, rings)
     alm *= scale
     for _ in range(n_iter):
         resid = m - ducc0.sht.experimental.synthesis(alm=alm, lmax=lmax, spin=0, nthreads=nthreads, **geom)[0]
@@ -191,8 +214,13 @@ def _ring_groups(nside: int, n_m: int):
         yield np.concatenate([north, south[south >= half][::-1]])
 
 
-def _adjoint_parts(m, nside, lmax, m0, m1, nthreads, occupied=None):
-    """The adjoint transform's coefficients with ``m0 <= m < m1`` (no area factor), one group of rings at a time."""
+def _adjoint_add(acc, m, nside, lmax, m0, m1, nthreads, occupied=None):
+    """Add the adjoint transform's coefficients with ``m0 <= m < m1`` (no area factor) into ``acc``.
+
+    One group of rings at a time; the Legendre buffer is freed before the
+    piece of coefficients is added, and the piece right after, so at most one
+    of each is alive besides ``acc``.
+    """
     geom = ring_geometry(nside)
     mval = np.arange(m0, m1, dtype=np.uintp)
     start, _ = _m_block(lmax, m0, m1)
@@ -212,7 +240,8 @@ def _adjoint_parts(m, nside, lmax, m0, m1, nthreads, occupied=None):
             mstart=mstart, nthreads=nthreads,
         )
         del leg
-        yield part[0]
+        acc += part[0]
+        del part
 
 
 def map_spectra(maps, lmax: int, *, nthreads: int | None = None, rings=None) -> list:
@@ -228,7 +257,7 @@ def map_spectra(maps, lmax: int, *, nthreads: int | None = None, rings=None) -> 
     maps = [np.asarray(x, dtype=np.float64) for x in maps]
     nside = int(round(np.sqrt(maps[0].size / 12)))
     nthreads = resolve_nthreads(nthreads)
-    if _leg_bytes(nside, lmax) + 16 * alm_size(lmax) * len(maps) <= 2 * LEG_BUFFER_BYTES:
+    if _leg_bytes(nside, lmax) + 16 * alm_size(lmax) * len(maps) <= ONE_CALL_BYTES:
         alms = [map2alm(x, lmax, nthreads=nthreads, rings=rings) for x in maps]
         out = [alm2cl(a, lmax=lmax) for a in alms]
         if len(alms) == 2:
@@ -241,8 +270,7 @@ def map_spectra(maps, lmax: int, *, nthreads: int | None = None, rings=None) -> 
         blocks = []
         for x in maps:
             acc = np.zeros(stop - start, dtype=np.complex128)
-            for part in _adjoint_parts(x, nside, lmax, m0, m1, nthreads, rings):
-                acc += part
+            _adjoint_add(acc, x, nside, lmax, m0, m1, nthreads, rings)
             acc *= scale
             blocks.append(acc)
         pairs = [(0, 0)] if len(maps) == 1 else [(0, 0), (1, 1), (0, 1)]

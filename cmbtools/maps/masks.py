@@ -107,11 +107,16 @@ def mask_moments(mask):
     """
     w = check_mask(mask, "mask")
     nside = int(round(math.sqrt(w.size / 12)))
-    w2 = float(np.mean(w * w))
-    w4 = float(np.mean((w * w) ** 2))
+    # sums in blocks of pixels: no map-sized temporary (w >= 0 is checked, so non-zero means used)
+    w2 = float(np.dot(w, w)) / w.size
+    w4 = 0.0
+    for start in range(0, w.size, 1 << 20):
+        sq = w[start:start + (1 << 20)] ** 2
+        w4 += float(np.dot(sq, sq))
+    w4 /= w.size
     return MaskMoments(
         f_sky=float(np.mean(w)), w2=w2, w4=w4, f_sky_eff=w2 * w2 / w4,
-        n_pixels_used=int(np.count_nonzero(w > 0)), nside=nside,
+        n_pixels_used=int(np.count_nonzero(w)), nside=nside,
     )
 
 

@@ -346,3 +346,80 @@ def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None)
         wm[p0:p1] -= block
         r0 = r1
     return wm
+
+
+# ----------------------------------------------------------------------------- removal in harmonic space
+# For an estimator applied to many maps (a Monte Carlo run): the coefficients of w (a + d . n) are
+# a A_w + d . A_wn, with A_w, A_wx, A_wy, A_wz the coefficients of the weight map times 1, x, y, z,
+# computed once.  The fit's pixel sums sum_p w m (1, x, y, z) are the l <= 1 coefficients of the
+# masked map's own transform.  So one transform of w m gives both the fit and, after subtracting
+# the fitted combination of the four stored transforms, the coefficients of w (m - a - d . n): no
+# low-multipole transforms and no pixel passes per map.  Equal to masked_without_monopole_dipole
+# followed by the transform, to rounding.
+
+
+def removal_coefficients(w, lmax, *, nthreads=None, rings=None) -> np.ndarray:
+    """Coefficients (plain quadrature, ``map2alm``) of ``w``, ``w x``, ``w y``, ``w z`` up to ``lmax``.
+
+    Returns an array of shape ``(4, alm_size(lmax))`` (read-only) for
+    :func:`subtract_fitted_coefficients`; ``rings`` as in
+    :func:`cmbtools._core.sht.map2alm` (those of ``w``).
+    """
+    from cmbtools._core import sht as _sht
+    from cmbtools._core.checks import resolve_nthreads
+
+    nthreads = resolve_nthreads(nthreads)
+    w = np.asarray(w, dtype=np.float64)
+    nside = int(round(np.sqrt(w.size / 12)))
+    out = np.empty((4, _sht.alm_size(lmax)), dtype=np.complex128)
+    out[0] = _sht.map2alm(w, lmax, nthreads=nthreads, rings=rings)
+    g = np.empty_like(w)
+    for k in range(3):
+        for start in range(0, w.size, _CHUNK):
+            pix = np.arange(start, min(start + _CHUNK, w.size))
+            g[pix] = _pixel_vectors(nside, pix)[:, k] * w[pix]
+        out[k + 1] = _sht.map2alm(g, lmax, nthreads=nthreads, rings=rings)
+    out.setflags(write=False)
+    return out
+
+
+def harmonic_removal_applies(sums_of_weights) -> bool:
+    """Whether the weights spread enough over the sphere for the harmonic path (as in masked_without_monopole_dipole)."""
+    first = _first_moments(sums_of_weights)
+    total = first[0]
+    if not total > 0:
+        return False
+    mean_n = first[1:] / total
+    cov = _second_moments(sums_of_weights) / total - np.outer(mean_n, mean_n)
+    return bool(np.linalg.eigvalsh(cov)[0] >= _SMALL_PATCH_SPREAD)
+
+
+def subtract_fitted_coefficients(alm, coefficients, sums_of_weights, n_used, npix) -> np.ndarray:
+    """In place: coefficients of ``w m`` (from ``map2alm``) become those of ``w (m - a - d . n)``.
+
+    ``a`` and ``d`` are the weighted least-squares fit of
+    :func:`fit_monopole_dipole` (weights ``w``), from the l <= 1 coefficients
+    of ``alm`` itself and the lmax-2 sums of the weights (:func:`weight_sums`);
+    ``coefficients`` from :func:`removal_coefficients` of the same ``w`` and
+    lmax; ``n_used`` the number of pixels with ``w > 0`` (for the error
+    message).  Returns ``alm``.
+
+    Raises
+    ------
+    IllConditionedError
+        Under the same condition as :func:`fit_monopole_dipole`.
+    """
+    scale = 4.0 * np.pi / npix  # map2alm's pixel area: the sums are alm / scale
+    first = _first_moments(sums_of_weights)
+    total = first[0]
+    mean_n = first[1:] / total
+    cov = _second_moments(sums_of_weights) / total - np.outer(mean_n, mean_n)
+    sums_m = _first_moments(alm) / scale
+    mean_m = sums_m[0] / total
+    cross = sums_m[1:] / total - mean_n * mean_m
+    _condition_of_fit(mean_n, cov, n_used)
+    d = np.linalg.solve(cov, cross)
+    mono = mean_m - float(d @ mean_n)
+    # real factors: one real matrix-vector product over the interleaved real and imaginary parts
+    alm.view(np.float64)[...] -= np.array([mono, d[0], d[1], d[2]]) @ coefficients.view(np.float64)
+    return alm

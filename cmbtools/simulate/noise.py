@@ -15,9 +15,10 @@ the depth is then the root-mean-square pixel depth of the observed region, and
 from the observed region with uniform weights.  Unobserved pixels are set to
 the HEALPix UNSEEN sentinel.
 
-Random draws (part of the reproducibility contract): :func:`noise_map` draws
-``12 nside^2`` standard normals for the white part (RING order), then, only
-with a knee, the coefficients of the correlated part as
+Random draws (part of the reproducibility contract, stated in
+:mod:`cmbtools.simulate.random_streams`): :func:`noise_map` draws one set of
+``12 nside^2`` standard normals from block streams for the white part (RING
+order), then, only with a knee, the coefficients of the correlated part as
 :func:`~cmbtools.simulate.gaussian_alm` does.
 """
 
@@ -38,10 +39,11 @@ from cmbtools._core.checks import (
     check_positive,
     missing_pixels,
     nside_from_npix,
+    resolve_nthreads,
 )
 from cmbtools._core.memory import check_memory, estimate_noise_bytes
 from cmbtools.exceptions import InvalidInputError
-from cmbtools.simulate.random_streams import resolve_rng
+from cmbtools.simulate.random_streams import block_normals, blocks_of_pixels, resolve_rng
 from cmbtools.simulate.skies import gaussian_alm
 
 __all__ = ["depth_to_white_noise", "NoiseModel", "noise_map", "white_noise_map", "noise_spectrum"]
@@ -237,7 +239,8 @@ def noise_map(model, nside, *, rng=None, lmax=None, nthreads=None, force=False) 
     lmax : int, optional
         Largest multipole of the correlated part (default ``3*nside - 1``).
     nthreads : int, optional
-        Threads for the transform of the correlated part.
+        Threads for the random numbers and the transform of the correlated
+        part (default: all cores); the noise does not depend on it.
     force : bool, default=False
         Go ahead (with a :class:`~cmbtools.exceptions.CmbtoolsWarning`) even
         when the memory estimate exceeds what the machine has available.
@@ -268,21 +271,38 @@ def _noise_bytes(model, nside, lmax) -> int:
     )
 
 
-def _noise_map(model, nside, lmax, rng, nthreads) -> np.ndarray:
-    """:func:`noise_map` on checked inputs; no memory check."""
+def _noise_map(model, nside, lmax, rng, nthreads, rings=None) -> np.ndarray:
+    """:func:`noise_map` on checked inputs; no memory check.
+
+    ``rings`` (boolean over the rings): only the blocks of random numbers
+    that hold pixels of those rings are drawn and the correlated part is
+    synthesized on them only; their pixels get the values of the full map,
+    the others 0 (UNSEEN where unobserved).
+    """
     gen = resolve_rng(rng)
     npix = 12 * nside * nside
     sigma = math.sqrt(model.white_noise * npix / (4.0 * math.pi))
-    n = gen.standard_normal(npix) * sigma
+    r = model.relative_sigma if model.ell_knee is None else None  # with a knee: applied to the sum
+
+    def scale(start, stop, values):  # while the block is in the cache
+        values *= sigma
+        if r is not None:
+            values *= r[start:stop]
+
+    n, blocks = None, None
+    if rings is not None:
+        blocks = blocks_of_pixels(*_sht.ring_pixel_ranges(nside, rings), npix)
+        n = np.zeros(npix)
+    n = block_normals(gen, npix, out=n, transform=scale, nthreads=resolve_nthreads(nthreads), blocks=blocks)
     if model.ell_knee is not None:
         red = noise_spectrum(model, lmax) - model.white_noise
         red[0] = 0.0
-        alm = gaussian_alm(red, lmax, rng=gen)
-        n += _sht.alm2map(alm, nside, lmax, nthreads=nthreads)
+        alm = gaussian_alm(red, lmax, rng=gen, nthreads=nthreads)
+        n += _sht.alm2map(alm, nside, lmax, nthreads=nthreads, rings=rings)
+        if model.hits is not None:
+            n *= model.relative_sigma
     if model.hits is not None:
-        r = model.relative_sigma
-        n *= r
-        n[r == 0] = UNSEEN
+        n[model.relative_sigma == 0] = UNSEEN
     return n
 
 

@@ -1,12 +1,14 @@
 """Gaussian random skies: coefficients, maps with beam, pixel window, monopole and dipole.
 
-Every function takes ``rng`` (see :mod:`cmbtools.simulate.random_streams`);
-:func:`gaussian_sky` draws only the coefficients of :func:`gaussian_alm`
-(part of the reproducibility contract).
+Every function takes ``rng`` (see :mod:`cmbtools.simulate.random_streams`,
+which states the reproducibility contract: block streams, drawn on several
+threads); :func:`gaussian_sky` draws only the coefficients of
+:func:`gaussian_alm`, with the beam and pixel window applied as they are drawn.
 """
 
 from __future__ import annotations
 
+import math
 import numbers
 from dataclasses import dataclass
 from functools import cached_property
@@ -14,15 +16,15 @@ from functools import cached_property
 import numpy as np
 
 from cmbtools._core import sht as _sht
-from cmbtools._core.checks import check_cl, check_lmax, check_nside, check_positive
+from cmbtools._core.checks import check_cl, check_lmax, check_nside, check_positive, resolve_nthreads
 from cmbtools._core.memory import check_memory, estimate_dipole_map_bytes, estimate_sky_bytes
 from cmbtools.exceptions import InvalidInputError
-from cmbtools.simulate.random_streams import resolve_rng
+from cmbtools.simulate.random_streams import block_normals, resolve_rng
 
 __all__ = ["gaussian_alm", "gaussian_sky", "Dipole", "dipole_map"]
 
 
-def gaussian_alm(cl, lmax, *, rng=None) -> np.ndarray:
+def gaussian_alm(cl, lmax, *, rng=None, nthreads=None) -> np.ndarray:
     """Draw the harmonic coefficients of a statistically isotropic Gaussian sky.
 
     Parameters
@@ -32,7 +34,10 @@ def gaussian_alm(cl, lmax, *, rng=None) -> np.ndarray:
     lmax : int
         Largest multipole.
     rng : Generator, SeedSequence, int or None, optional
-        Random source (see the module notes for the order of the draws).
+        Random source (see :mod:`cmbtools.simulate.random_streams` for the draws).
+    nthreads : int, optional
+        Threads that draw the random numbers (default: all cores); the
+        coefficients do not depend on it.
 
     Returns
     -------
@@ -42,15 +47,27 @@ def gaussian_alm(cl, lmax, *, rng=None) -> np.ndarray:
     """
     lmax = check_lmax(lmax)
     cl = check_cl(cl, "cl", lmax=lmax)[: lmax + 1]
-    gen = resolve_rng(rng)
+    return _gaussian_alm(cl, lmax, rng, nthreads)
+
+
+def _gaussian_alm(cl, lmax, rng, nthreads, factor=None) -> np.ndarray:
+    """:func:`gaussian_alm` of checked inputs, the coefficients times ``factor`` (a function of ell) as drawn."""
+    source = resolve_rng(rng)
     size = _sht.alm_size(lmax)
-    draws = gen.standard_normal((2, size))
-    amp = np.sqrt(0.5 * cl)[_sht.alm_ell(lmax)]
+    amp = np.sqrt(0.5 * cl)
+    if factor is not None:
+        amp *= factor
+    ell = _sht.alm_ell(lmax)
     alm = np.empty(size, dtype=np.complex128)
-    alm.real = draws[0] * amp
-    alm.imag = draws[1] * amp
-    # m = 0 coefficients are real with the full variance C_l.
-    alm.real[: lmax + 1] = draws[0, : lmax + 1] * np.sqrt(cl)
+    pairs = alm.view(np.float64)  # the real and imaginary part of each coefficient, interleaved
+
+    def scale(start, stop, values):  # a block holds whole coefficients (BLOCK_SIZE is even)
+        parts = values.reshape(-1, 2)
+        parts *= np.take(amp, ell[start // 2: stop // 2])[:, None]
+
+    block_normals(source, 2 * size, out=pairs, transform=scale, nthreads=resolve_nthreads(nthreads))
+    # m = 0 coefficients are real with the full variance C_l (their imaginary draws are not used)
+    alm.real[: lmax + 1] *= math.sqrt(2.0)
     alm.imag[: lmax + 1] = 0.0
     return alm
 
@@ -207,7 +224,7 @@ def gaussian_sky(
     rng : Generator, SeedSequence, int or None, optional
         Random source; use :func:`simulation_rng` for sets of simulations.
     nthreads : int, optional
-        Threads for the transform (default: all cores).
+        Threads for the random numbers and the transform (default: all cores).
     force : bool, default=False
         Go ahead (with a :class:`~cmbtools.exceptions.CmbtoolsWarning`) even
         when the memory estimate exceeds what the machine has available.
@@ -246,8 +263,13 @@ def gaussian_sky(
     return _gaussian_sky(cl, nside, lmax, b, pixel_window, monopole, dip, rng, nthreads)
 
 
-def _gaussian_sky(cl, nside, lmax, b, pixel_window, monopole, dip, rng, nthreads) -> np.ndarray:
-    """:func:`gaussian_sky` on checked inputs (``b``: B_l or None; ``dip``: a 3-vector or None); no memory check."""
+def _gaussian_sky(cl, nside, lmax, b, pixel_window, monopole, dip, rng, nthreads, rings=None) -> np.ndarray:
+    """:func:`gaussian_sky` on checked inputs (``b``: B_l or None; ``dip``: a 3-vector or None); no memory check.
+
+    ``rings`` (boolean over the rings): synthesize only those and leave the
+    other pixels at 0 before the monopole and dipole are added (for a sky
+    that a mask touching only those rings will weight).
+    """
 
     transfer = np.ones(lmax + 1)
     if b is not None:
@@ -257,9 +279,8 @@ def _gaussian_sky(cl, nside, lmax, b, pixel_window, monopole, dip, rng, nthreads
 
         transfer *= np.asarray(_pixel_window(nside, lmax), dtype=np.float64)[: lmax + 1]
 
-    alm = gaussian_alm(cl, lmax, rng=rng)
-    alm = _sht.almxfl(alm, transfer, lmax)
-    m = _sht.alm2map(alm, nside, lmax, nthreads=nthreads)
+    alm = _gaussian_alm(np.asarray(cl, dtype=np.float64)[: lmax + 1], lmax, rng, nthreads, transfer)
+    m = _sht.alm2map(alm, nside, lmax, nthreads=nthreads, rings=rings)
     if monopole:
         m += monopole
     if dip is not None:

@@ -54,6 +54,8 @@ def _validation_memory(estimator, noise, with_dipole, with_filter) -> int:
     # the transform's ring buffer and the temporaries of the spectrum
     measure = 3 * one + alm + max(16 * (4 * nside - 1) * (lmax + 1), 3 * alm)
     phases = [estimate_sky_bytes(nside, lmax, with_dipole), one + measure]
+    if estimator.remove_monopole_dipole:  # the four sets of coefficients of the removal in harmonic space, kept
+        phases = [p + 4 * alm for p in phases]
     if with_filter:  # the sky, the filtered sky and its float64 copy
         phases.append(3 * one)
     if noise is not None:  # the sky while its noise is drawn; then the sky, the noise and their sum
@@ -69,12 +71,17 @@ def _simulate_and_estimate(index, rng, setup):
     # the memory of the whole run was checked once by validate_estimator: the private builders check nothing
     est = setup.estimator
     lmax = est.lmax
+    # many maps go through this estimator: it removes their monopole and dipole in harmonic space
+    est._keep_removal_coefficients()
+    # pixels on rings the mask does not touch never reach the bandpowers: they are not simulated (the
+    # pixels that are have their full-sky values); a sky filter sees the whole sky
+    rings = est._occupied_rings() if setup.sky_filter is None else None
     dip = None if setup.dipole is None else _dipole_vector(setup.dipole)
     rng_sky2 = copy.deepcopy(rng) if setup.cross and setup.sky_beam2 is not None else None
     sky = _gaussian_sky(setup.cl, est.nside, lmax, _beam_factor(setup.sky_beam, lmax), False, float(setup.monopole),
-                        dip, rng, None)
+                        dip, rng, None, rings=rings)
     if setup.cross:
-        return _simulate_and_estimate_cross(sky, rng, rng_sky2, dip, setup)
+        return _simulate_and_estimate_cross(sky, rng, rng_sky2, dip, setup, rings)
     if setup.sky_filter is not None:
         filtered = np.asarray(setup.sky_filter(sky), dtype=np.float64)
         if filtered.shape != sky.shape:
@@ -86,14 +93,18 @@ def _simulate_and_estimate(index, rng, setup):
     if setup.record_pseudo:
         out["pseudo_cl"] = est.pseudo_spectrum(sky)
     if setup.noise is not None:
-        sky = sky + _noise_map(setup.noise, est.nside, 3 * est.nside - 1, rng, None)
+        noise = _noise_map(setup.noise, est.nside, 3 * est.nside - 1, rng, None, rings=rings)
+        if setup.sky_filter is None:
+            sky += noise  # our own map
+        else:
+            sky = sky + noise
     bp = est.estimate(sky, noise_cl=setup.noise_cl)
     out["cl"] = bp.cl
     out["cl_err"] = bp.cl_err
     return out
 
 
-def _simulate_and_estimate_cross(sky, rng, rng_sky2, dip, setup):
+def _simulate_and_estimate_cross(sky, rng, rng_sky2, dip, setup, rings):
     """The cross-spectrum of two splits: one sky (seen through each split's beam), independent noise in each.
 
     The second split's sky repeats the first one's draws (a copy of the generator taken before them) with its
@@ -107,13 +118,13 @@ def _simulate_and_estimate_cross(sky, rng, rng_sky2, dip, setup):
     sky2 = sky
     if rng_sky2 is not None:
         sky2 = _gaussian_sky(setup.cl, est.nside, lmax, _beam_factor(setup.sky_beam2, lmax), False,
-                             float(setup.monopole), dip, rng_sky2, None)
+                             float(setup.monopole), dip, rng_sky2, None, rings=rings)
     out = {}
     if setup.record_pseudo:
         out["pseudo_cl"] = est.pseudo_spectrum(sky, sky2)
     if setup.noise is not None:
-        sky = sky + _noise_map(setup.noise, est.nside, 3 * est.nside - 1, rng, None)
-        sky2 = sky2 + _noise_map(setup.noise, est.nside, 3 * est.nside - 1, rng, None)
+        sky = sky + _noise_map(setup.noise, est.nside, 3 * est.nside - 1, rng, None, rings=rings)
+        sky2 = sky2 + _noise_map(setup.noise, est.nside, 3 * est.nside - 1, rng, None, rings=rings)
     bp = est.estimate(sky, sky2)
     out["cl"] = bp.cl
     out["cl_err"] = bp.cl_err

@@ -247,6 +247,7 @@ class SpectrumEstimator:
         # worker's budget ($CMBTOOLS_NUM_THREADS, set by the Monte Carlo engine), never oversubscribes
         state = dict(self.__dict__)
         state["_nthreads"] = None
+        state.pop("_removal_coefficients", None)  # large: rebuilt where it is wanted
         return state
 
     def __setstate__(self, state):
@@ -397,8 +398,23 @@ class SpectrumEstimator:
     # ------------------------------------------------------------------ applying
     def _prepare(self, m, name, mask, is_second=False):
         """Check a map against the mask, fill missing pixels outside it, remove monopole/dipole, apply the mask."""
+        a = self._checked_map(m, name, mask, is_second)
+        if self.remove_monopole_dipole:
+            from cmbtools.maps.monopole_dipole import masked_without_monopole_dipole, weight_sums
+
+            key = "_weight_sums2" if is_second else "_weight_sums1"
+            sums = self._cached(key, lambda: weight_sums(mask, nthreads=self._nthreads))
+            return masked_without_monopole_dipole(a, mask, nthreads=self._nthreads, sums_of_weights=sums)
+        return a * mask
+
+    @staticmethod
+    def _checked_map(m, name, mask, is_second=False):
+        """The map as float64, missing pixels outside the mask set to 0; refuse missing or too large values inside."""
         a = as_map(m, name)
         check_same_nside(a, mask, name, "mask2" if is_second else "mask")
+        lo, hi = float(a.min()), float(a.max())  # (NaN propagates) two passes, no map-sized temporary
+        if -_LARGEST_PLAIN_VALUE <= lo and hi <= _LARGEST_PLAIN_VALUE:
+            return a  # no missing pixel, no value too large: nothing else to look at
         bad = missing_pixels(a)
         if bad.any():
             inside = bad & (mask > 0)
@@ -416,13 +432,7 @@ class SpectrumEstimator:
                 f"The {name!r} has values up to {peak:.3g} inside the mask; the transforms square and sum them, "
                 f"which overflows double precision beyond {_LARGEST_MAP_VALUE:g} (K). Check the map's unit."
             )
-        if self.remove_monopole_dipole:
-            from cmbtools.maps.monopole_dipole import masked_without_monopole_dipole, weight_sums
-
-            key = "_weight_sums2" if is_second else "_weight_sums1"
-            sums = self._cached(key, lambda: weight_sums(mask, nthreads=self._nthreads))
-            return masked_without_monopole_dipole(a, mask, nthreads=self._nthreads, sums_of_weights=sums)
-        return a * mask
+        return a
 
     def _cached(self, key, make):
         """A small derived quantity of the masks, computed on first use and kept."""
@@ -440,6 +450,70 @@ class SpectrumEstimator:
         rings = self._cached("_rings2" if is_second else "_rings1", lambda: _sht.occupied_rings(mask))
         return _sht.map2alm(masked, self.lmax, nthreads=self._nthreads, rings=rings)
 
+    # -- one map's pseudo-spectrum: lean on memory for large maps, cheap for the many maps of a Monte Carlo run
+    def _occupied_rings(self):
+        """Rings where the mask (or, with two masks, either one) is non-zero (read-only, kept)."""
+        rings = self._cached("_rings1", lambda: _sht.occupied_rings(self.mask))
+        if self._inputs.mask2 is not None:
+            rings = rings | self._cached("_rings2", lambda: _sht.occupied_rings(self.mask2))
+        return rings
+
+    def _auto_spectrum(self, masked):
+        """Pseudo-Cl of one prepared map; a large transform never holds all its coefficients (sht.map_spectra)."""
+        if self._inputs.n_iter:
+            return _sht.alm2cl(self._alm(masked), lmax=self.lmax)
+        rings = self._cached("_rings1", lambda: _sht.occupied_rings(self.mask))
+        return _sht.map_spectra([masked], self.lmax, nthreads=self._nthreads, rings=rings)[0]
+
+    def _map_auto_spectrum(self, m, name):
+        """Pseudo-Cl of one map through ``mask``: ``_prepare`` then ``_auto_spectrum``, or the harmonic removal.
+
+        Once :meth:`_keep_removal_coefficients` has stored the transforms of
+        the mask times ``1, x, y, z`` (the Monte Carlo validation does, for the
+        many maps of a run), the monopole and dipole are fitted and removed
+        after one transform of the masked map
+        (:func:`cmbtools.maps.monopole_dipole.subtract_fitted_coefficients`):
+        the same pseudo-Cl to rounding, without the low-multipole transforms
+        and the pixel passes of the removal in map space.
+        """
+        coefficients = self.__dict__.get("_removal_coefficients")
+        if coefficients is None:
+            return self._auto_spectrum(self._prepare(m, name, self.mask))
+        from cmbtools.maps.monopole_dipole import subtract_fitted_coefficients
+
+        masked = self._checked_map(m, name, self.mask) * self.mask
+        alm = _sht.map2alm(masked, self.lmax, nthreads=self._nthreads, rings=self._occupied_rings())
+        del masked
+        subtract_fitted_coefficients(alm, coefficients, self._weight_sums1, self._n_used1, self.mask.size)
+        return _sht.alm2cl(alm, lmax=self.lmax)
+
+    def _keep_removal_coefficients(self) -> bool:
+        """Store what the harmonic removal of :meth:`_map_auto_spectrum` needs; return whether it is on.
+
+        For an estimator applied to many maps (costs four transforms once, and
+        four sets of coefficients of memory, which are not pickled).  Only
+        with the monopole/dipole removal, the plain quadrature, one mask
+        spread over enough of the sphere, and coefficients that fit four times
+        in :data:`cmbtools._core.sht.ONE_CALL_BYTES`.
+        """
+        if "_removal_coefficients" in self.__dict__:
+            return True
+        if not self.remove_monopole_dipole or self._inputs.n_iter or self._inputs.mask2 is not None:
+            return False
+        if 4 * 16 * _sht.alm_size(self.lmax) > _sht.ONE_CALL_BYTES:
+            return False
+        from cmbtools.maps.monopole_dipole import harmonic_removal_applies, removal_coefficients, weight_sums
+
+        sums = self._cached("_weight_sums1", lambda: weight_sums(self.mask, nthreads=self._nthreads))
+        if not harmonic_removal_applies(sums):
+            return False
+        self._cached("_n_used1", lambda: int(np.count_nonzero(self.mask)))
+        self._cached(
+            "_removal_coefficients",
+            lambda: removal_coefficients(self.mask, self.lmax, nthreads=self._nthreads, rings=self._occupied_rings()),
+        )
+        return True
+
     def pseudo_spectrum(self, map1, map2=None) -> np.ndarray:
         """Pseudo-Cl (ell = 0..lmax, K^2) of the masked map(s), after the monopole/dipole removal.
 
@@ -455,9 +529,9 @@ class SpectrumEstimator:
         ndarray of shape (lmax+1,)
             The pseudo-spectrum in K^2.
         """
-        a1 = self._alm(self._prepare(map1, "map1", self.mask))
         if map2 is None:
-            return _sht.alm2cl(a1, lmax=self.lmax)
+            return self._map_auto_spectrum(map1, "map1")
+        a1 = self._alm(self._prepare(map1, "map1", self.mask))
         a2 = self._alm(self._prepare(map2, "map2", self.mask2, True), True)
         return _sht.alm2cl(a1, a2, lmax=self.lmax)
 
@@ -505,8 +579,11 @@ class SpectrumEstimator:
         if noise_cl is not None and noise_maps is not None:
             raise InvalidInputError("Give either 'noise_cl' or 'noise_maps', not both.")
         lmax = self.lmax
-        a1 = self._alm(self._prepare(map1, "map1", self.mask))
-        pseudo11 = _sht.alm2cl(a1, lmax=lmax)
+        if cross:
+            a1 = self._alm(self._prepare(map1, "map1", self.mask))
+            pseudo11 = _sht.alm2cl(a1, lmax=lmax)
+        else:
+            pseudo11 = self._map_auto_spectrum(map1, "map1")
         pm11, f11, ainv11 = self._pair(False)
         total11 = ainv11 @ self._bin_pseudo(pseudo11)
         noise_b = None
@@ -531,8 +608,7 @@ class SpectrumEstimator:
                 acc = np.zeros(lmax + 1)
                 count = 0
                 for i, nm in enumerate(noise_maps):
-                    an = self._alm(self._prepare(nm, f"noise_maps[{i}]", self.mask))
-                    acc += _sht.alm2cl(an, lmax=lmax)
+                    acc += self._map_auto_spectrum(nm, f"noise_maps[{i}]")
                     count += 1
                 if count == 0:
                     raise InvalidInputError("The 'noise_maps' parameter is empty; give at least one noise map.")
@@ -706,3 +782,7 @@ SpectrumEstimator.__init__.__signature__ = _constructor_signature()
 
 #: Largest |map value| (K) the estimator accepts: squares summed over up to 12 * 2**58 pixels stay finite.
 _LARGEST_MAP_VALUE = 1e100
+
+#: A map whose values all lie within +-this has no missing pixel (UNSEEN is -1.6375e30) and no value above
+#: _LARGEST_MAP_VALUE: the per-pixel checks are skipped.
+_LARGEST_PLAIN_VALUE = 1e29

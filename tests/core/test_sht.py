@@ -85,7 +85,8 @@ def test_split_transforms_equal_the_one_call_transform(monkeypatch, nside):
     lmax = 6 * nside - 2  # a mask spectrum's 2 lmax
     direct = [_sht.map2alm(x, lmax, nthreads=1) for x in (a, b)]
     spectra = [_sht.alm2cl(direct[0]), _sht.alm2cl(direct[1]), _sht.alm2cl(direct[0], direct[1])]
-    monkeypatch.setattr(_sht, "LEG_BUFFER_BYTES", 8_000)  # a few rings and m per piece
+    monkeypatch.setattr(_sht, "ONE_CALL_BYTES", 16_000)  # split ...
+    monkeypatch.setattr(_sht, "LEG_BUFFER_BYTES", 8_000)  # ... into a few rings and m per piece
     assert len(list(_sht._ring_groups(nside, lmax + 1))) >= 3
     assert len(list(_sht._m_groups(lmax, lmax + 1))) >= 3
     split = _sht.map2alm(a, lmax, nthreads=1)
@@ -138,8 +139,31 @@ def test_transforms_that_skip_empty_rings_equal_the_full_transform(monkeypatch):
     full = _sht.map2alm(m, lmax, nthreads=1)
     np.testing.assert_allclose(_sht.map2alm(m, lmax, nthreads=1, rings=occupied), full, rtol=0,
                                atol=1e-14 * np.abs(full).max())
-    monkeypatch.setattr(_sht, "LEG_BUFFER_BYTES", 8_000)  # and through the split transform
+    monkeypatch.setattr(_sht, "ONE_CALL_BYTES", 16_000)  # and through the split transform
+    monkeypatch.setattr(_sht, "LEG_BUFFER_BYTES", 8_000)
     np.testing.assert_allclose(_sht.map2alm(m, lmax, nthreads=1, rings=occupied), full, rtol=0,
                                atol=1e-14 * np.abs(full).max())
     with pytest.raises(ValueError, match="n_iter=0"):
         _sht.map2alm(m, lmax, n_iter=1, rings=occupied)
+
+
+def test_synthesis_on_occupied_rings_only():
+    # the rings asked for get the full synthesis' pixels exactly; every other pixel is 0
+    nside, lmax = 16, 47
+    theta = hp.pix2ang(nside, np.arange(12 * nside**2))[0]
+    w = (np.abs(np.cos(theta)) > 0.3).astype(float)
+    rings = _sht.occupied_rings(w)
+    rng = np.random.default_rng(3)
+    n = _sht.alm_size(lmax)
+    alm = rng.standard_normal(n) + 1j * rng.standard_normal(n)
+    alm[: lmax + 1] = alm[: lmax + 1].real
+    full = _sht.alm2map(alm, nside, lmax, nthreads=1)
+    part = _sht.alm2map(alm, nside, lmax, nthreads=1, rings=rings)
+    starts, stops = _sht.ring_pixel_ranges(nside, rings)
+    inside = np.zeros(w.size, dtype=bool)
+    for a, b in zip(starts, stops):
+        inside[a:b] = True
+    np.testing.assert_array_equal(inside, w > 0)  # a latitude cut: the occupied rings are its pixels
+    np.testing.assert_allclose(part[inside], full[inside], rtol=0, atol=1e-13 * np.abs(full).max())
+    assert np.all(part[~inside] == 0)
+    assert np.all(_sht.alm2map(alm, nside, lmax, rings=np.zeros_like(rings)) == 0)
