@@ -47,7 +47,7 @@ def _clean(key, value):
 class PolarizedBandpowers:
     """TT, TE, TB, EE, EB, BB bandpowers with errors, covariance and a record of the inputs.
 
-    Attributes
+    Parameters
     ----------
     ell_min, ell_max : ndarray of int, shape (n_bins,)
         Bin limits (inclusive), the same for the six spectra.
