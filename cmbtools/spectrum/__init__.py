@@ -40,6 +40,8 @@ from cmbtools.spectrum.binning import Binning
 from cmbtools.spectrum.estimator import MAX_CONDITION_NUMBER, SpectrumEstimator
 from cmbtools.spectrum.one_call import estimate_spectrum
 from cmbtools.spectrum.pixel_windows import pixel_window
+from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator, estimate_polarized_spectra
+from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
 
 __all__ = [
     "Binning",
@@ -51,4 +53,8 @@ __all__ = [
     "read_beam",
     "write_beam",
     "pixel_window",
+    "PolarizedSpectrumEstimator",
+    "PolarizedBandpowers",
+    "estimate_polarized_spectra",
+    "SPECTRA",
 ]
