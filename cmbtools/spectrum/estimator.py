@@ -394,6 +394,8 @@ class SpectrumEstimator:
     def _prepare(self, m, name, mask, is_second=False):
         """Check a map against the mask, fill missing pixels outside it, remove monopole/dipole, apply the mask."""
         a = self._checked_map(m, name, mask, is_second)
+        if self._inputs.templates:
+            return self._template_deprojection(is_second).project(a, nthreads=self._nthreads)
         if self.remove_monopole_dipole:
             from cmbtools.maps.monopole_dipole import masked_without_monopole_dipole, weight_sums
 
@@ -401,6 +403,16 @@ class SpectrumEstimator:
             sums = self._cached(key, lambda: weight_sums(mask, nthreads=self._nthreads))
             return masked_without_monopole_dipole(a, mask, nthreads=self._nthreads, sums_of_weights=sums)
         return a * mask
+
+    def _template_deprojection(self, is_second=False):
+        """The :class:`~cmbtools.spectrum.deprojection.TemplateDeprojection` of map 1 or map 2 (built once)."""
+        key = "_deprojection2" if is_second and self._inputs.mask2 is not None else "_deprojection1"
+        from cmbtools.spectrum.deprojection import TemplateDeprojection
+
+        mask = self.mask2 if key == "_deprojection2" else self.mask
+        inp = self._inputs
+        return self._cached(key, lambda: TemplateDeprojection(
+            mask, inp.templates, monopole_dipole=inp.remove_monopole_dipole, nthreads=self._nthreads))
 
     @staticmethod
     def _checked_map(m, name, mask, is_second=False):
@@ -494,6 +506,8 @@ class SpectrumEstimator:
         if "_removal_coefficients" in self.__dict__:
             return True
         if not self.remove_monopole_dipole or self._inputs.n_iter or self._inputs.mask2 is not None:
+            return False
+        if self._inputs.templates:
             return False
         if 4 * 16 * _sht.alm_size(self.lmax) > _sht.ONE_CALL_BYTES:
             return False
