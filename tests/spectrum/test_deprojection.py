@@ -80,3 +80,61 @@ def test_template_maps_are_checked():
         TemplateDeprojection(w, [2.0 * np.ones(w.size)])  # a second monopole
     with pytest.raises(InvalidInputError, match="list of maps"):
         SpectrumEstimator(w, Binning.uniform(2, 11, 5), templates=np.ones(w.size), pixel_window=False, nthreads=1)
+
+
+def _cos_taper(dist_deg, width):
+    return 0.5 - 0.5 * np.cos(np.pi * np.clip(dist_deg / width, 0.0, 1.0))
+
+
+def _cap_with_holes(nside):
+    """A 50-degree cap with 15 one-degree holes, every edge tapered by 3 degrees (like the demo survey's mask)."""
+    vec = np.array(hp.pix2vec(nside, np.arange(12 * nside**2))).T
+    centre = hp.ang2vec(250.0, -55.0, lonlat=True)
+    w = _cos_taper(50.0 - np.degrees(np.arccos(np.clip(vec @ centre, -1, 1))), 3.0)
+    rng = np.random.default_rng(5)
+    for _ in range(15):
+        while True:
+            v = rng.standard_normal(3)
+            v /= np.linalg.norm(v)
+            if np.degrees(np.arccos(v @ centre)) < 45.0:
+                break
+        d = np.degrees(np.arccos(np.clip(vec @ v, -1, 1)))
+        w *= np.where(d < 1.0, 0.0, _cos_taper(d - 1.0, 3.0))
+    return w, vec
+
+
+@pytest.mark.slow
+def test_every_bin_unbiased_on_pixelised_skies_with_monopole_dipole_and_power_above_lmax():
+    # 300 skies with power to 4 nside - 1, a beam of two pixels, synthesized at 2 nside (with that grid's
+    # pixel window) and averaged into the pixels (healpy.ud_grade), a 100 uK monopole and a 3 mK dipole,
+    # inhomogeneous white noise; a tapered cap with holes.  Every reported bin (to 2 nside) is within 3
+    # standard errors of the mean of the binned input spectrum; without the deprojection-bias
+    # correction the first bin is not (it comes out near 0.81 of the input).
+    nside, n_sims = 64, 300
+    lmax, sky_lmax = 3 * nside - 1, 4 * nside - 1
+    w, vec = _cap_with_holes(nside)
+    fwhm = 2 * np.degrees(np.sqrt(4 * np.pi / w.size)) * 60
+    cl = fiducial_cl(sky_lmax)
+    bins = Binning.uniform(2, 2 * nside, 16)
+    sigma = 2e-6 / np.sqrt(0.25 + 0.75 * np.clip(vec @ hp.ang2vec(250.0, -55.0, lonlat=True), 0, 1))
+    noise_cl = np.full(lmax + 1, np.mean(sigma[w > 0] ** 2) * 4 * np.pi / w.size)
+    kwargs = dict(beam=fwhm, guess_cl=cl, sky_lmax=sky_lmax, nthreads=1)
+    est = SpectrumEstimator(w, bins, **kwargs)
+    plain = SpectrumEstimator(w, bins, correct_deprojection_bias=False, **kwargs)
+    fine = gaussian_beam(fwhm, sky_lmax) * pixel_window(2 * nside, sky_lmax)
+    dipole = 3e-3 * hp.ang2vec(30.0, 40.0, lonlat=True)
+    out, out_plain = [], []
+    for i in range(n_sims):
+        rng = np.random.default_rng([11, i])
+        alm = _sht.almxfl(gaussian_alm(cl, sky_lmax, rng=rng), fine, sky_lmax)
+        m = hp.ud_grade(_sht.alm2map(alm, 2 * nside, sky_lmax, nthreads=1), nside)
+        m += 100e-6 + vec @ dipole + sigma * rng.standard_normal(m.size)
+        out.append(est.estimate(m, noise_cl=noise_cl).cl)
+        out_plain.append(plain.estimate(m, noise_cl=noise_cl).cl)
+    truth = bins.bin_spectrum(cl)
+    for values, corrected in ((np.array(out), True), (np.array(out_plain), False)):
+        z = (values.mean(0) - truth) / (values.std(0, ddof=1) / np.sqrt(n_sims))
+        if corrected:
+            assert np.all(np.abs(z) < 3.0), z
+        else:
+            assert z[0] < -3.0, z
