@@ -62,7 +62,7 @@ def test_quick_run_prints_every_figure(tmp_path):
     )
     assert res.returncode == 0, res.stderr[-2000:]
     report = json.loads(res.stdout)
-    assert set(report) == {"machine", "quick", "W1", "W2", "W3", "W4", "targets"}
+    assert set(report) == {"machine", "quick", "W1", "W2", "W3", "W4", "W5", "targets"}
     assert report["quick"] is True
     assert report["machine"]["threads"] == 1
     profile = report["W2"].pop("profile")
