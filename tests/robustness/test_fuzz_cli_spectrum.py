@@ -197,7 +197,7 @@ _NUMBER = st.one_of(
     st.integers(min_value=-10**6, max_value=10**6).map(str),
     st.sampled_from(["0", "-0", "1e-300", "1e308", "1e999", "nan", "inf", "-inf", "abc", "", " 5 ", "1_0", "0x10"]),
 )
-# no huge counts: --count and --sims have no upper bound yet, and a list of 2**70 indices fills the memory
+# no huge counts: --sims is bounded but large, and a list of 2**70 indices fills the memory
 _BAD_INT = st.sampled_from(["-1", "abc", "", "1.5", "1e3", "0x10", "-0", "2 ", "+3"])
 _EXTREME = st.sampled_from(["1e300", "1e-300", "5e-324", "1.7976931348623157e308", "1e-30", "1e30"])
 
@@ -495,7 +495,7 @@ _TOKENS = st.one_of(
                      "--sims", "--lmax", "--seed", "--output-dir", "--run-dir", "--write-spectrum",
                      "--spectrum", "--beam", "--noise-depth", "--overwrite", "--no-progress", "--fiducial",
                      INPUTS["map16"], INPUTS["mask16"], INPUTS["cl"], INPUTS["beam"], "--", "-"]),
-    _ANY_TEXT.filter(lambda t: _at_most(t, 16)),  # no "--count 99999" from random text
+    _ANY_TEXT.filter(lambda t: _at_most(t, 16)),  # no "--sims 99999" from random text
 )
 
 
