@@ -32,14 +32,14 @@ Examples
 True
 """
 
-from __future__ import annotations
-
 from cmbtools.spectrum.bandpowers import Bandpowers
-from cmbtools.spectrum.beams import gaussian_beam, read_beam, write_beam
+from cmbtools.spectrum.beams import GaussianBeam, gaussian_beam, read_beam, write_beam
 from cmbtools.spectrum.binning import Binning
 from cmbtools.spectrum.estimator import MAX_CONDITION_NUMBER, SpectrumEstimator
 from cmbtools.spectrum.one_call import estimate_spectrum
 from cmbtools.spectrum.pixel_windows import pixel_window
+from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator, estimate_polarized_spectra
+from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
 
 __all__ = [
     "Binning",
@@ -47,8 +47,13 @@ __all__ = [
     "Bandpowers",
     "estimate_spectrum",
     "MAX_CONDITION_NUMBER",
+    "GaussianBeam",
     "gaussian_beam",
     "read_beam",
     "write_beam",
     "pixel_window",
+    "PolarizedSpectrumEstimator",
+    "PolarizedBandpowers",
+    "estimate_polarized_spectra",
+    "SPECTRA",
 ]

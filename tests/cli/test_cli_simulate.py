@@ -11,7 +11,7 @@ import pytest
 from astropy.io import fits
 
 from cmbtools.cli import main
-from cmbtools.maps import read_map, read_mask, write_map
+from cmbtools.maps import read_sky_map, read_mask, write_sky_map
 from cmbtools.simulate import (
     Dipole,
     NoiseModel,
@@ -39,14 +39,14 @@ def test_maps_match_the_library_and_record_the_seed(tmp_path, table, capsys):
     path, cl = table
     out = tmp_path / "sims"
     common = ["simulate", "--spectrum", str(path), "--nside", "16", "--lmax", "40", "--beam-fwhm", "120",
-              "--noise-depth", "300", "--knee-ell", "10", "--knee-slope", "2", "--monopole-uk", "50",
+              "--noise-depth", "300", "--noise-knee", "10", "--noise-slope", "2", "--monopole-uk", "50",
               "--dipole-uk", "80", "120", "-30", "--seed", "5", "--prefix", "sky", "--threads", "1"]
-    assert main(common + ["--count", "2", "--output-dir", str(out)]) == 0
+    assert main(common + ["--sims", "2", "--output-dir", str(out)]) == 0
     printed = capsys.readouterr().out
     assert "seed 5" in printed and "wrote" in printed
     model = NoiseModel(300.0, ell_knee=10.0, alpha=2.0)
     for i in range(2):
-        m, info = read_map(out / f"sky_{i:04d}.fits")
+        m, info = read_sky_map(out / f"sky_{i:04d}.fits")
         rng = simulation_rng(5, i)
         expected = gaussian_sky(cl, 16, lmax=40, beam=120.0, monopole=50 * 1e-6, dipole=Dipole(80 * 1e-6, 120.0, -30.0),
                                 rng=rng, nthreads=1)
@@ -56,8 +56,8 @@ def test_maps_match_the_library_and_record_the_seed(tmp_path, table, capsys):
         assert header["CMBSEED"] == 5 and header["CMBSIMID"] == i and header["CMBLMAX"] == 40
     # a later call for map 1 alone gives the same file content
     again = tmp_path / "again"
-    assert main(common + ["--count", "1", "--first-index", "1", "--output-dir", str(again)]) == 0
-    np.testing.assert_array_equal(read_map(again / "sky_0001.fits")[0], read_map(out / "sky_0001.fits")[0])
+    assert main(common + ["--sims", "1", "--first-index", "1", "--output-dir", str(again)]) == 0
+    np.testing.assert_array_equal(read_sky_map(again / "sky_0001.fits")[0], read_sky_map(out / "sky_0001.fits")[0])
 
 
 def test_no_overwrite_and_overwrite(tmp_path, table, capsys):
@@ -72,7 +72,7 @@ def test_no_overwrite_and_overwrite(tmp_path, table, capsys):
     assert len(err) == 1 and "output exists" in err[0] and "--overwrite" in err[0]
     assert (tmp_path / "sky_0000.fits").read_bytes() == first
     assert main(args + ["--overwrite"]) == 0
-    m, info = read_map(tmp_path / "sky_0000.fits")
+    m, info = read_sky_map(tmp_path / "sky_0000.fits")
     assert "32" in info.dtype_in_file
     assert fits.getheader(tmp_path / "sky_0000.fits", 1)["TFORM1"] == "E"
 
@@ -82,10 +82,10 @@ def test_hits_map_gives_partial_sky_files(tmp_path, table):
     hits = np.zeros(12 * 16**2)
     hits[:1000] = np.linspace(1.0, 5.0, 1000)
     hits_path = tmp_path / "hits.fits"
-    write_map(hits_path, np.where(hits > 0, hits, np.nan), unit=None, partial=True)
+    write_sky_map(hits_path, np.where(hits > 0, hits, np.nan), unit=None, observed_only=True)
     assert main(["simulate", "--spectrum", str(path), "--nside", "16", "--noise-depth", "100", "--hits",
                  str(hits_path), "--seed", "3", "--output-dir", str(tmp_path), "--threads", "1"]) == 0
-    m, info = read_map(tmp_path / "sky_0000.fits")
+    m, info = read_sky_map(tmp_path / "sky_0000.fits")
     assert info.n_missing == 12 * 16**2 - 1000
     assert np.all(np.isfinite(m[:1000])) and np.all(np.abs(m[:1000]) < 1e-2)
 
@@ -93,9 +93,9 @@ def test_hits_map_gives_partial_sky_files(tmp_path, table):
 @pytest.mark.parametrize(
     "extra, message",
     [
-        (["--count", "1"], "--nside is required"),
-        (["--count", "0"], "nothing to do"),
-        (["--nside", "16", "--knee-ell", "20"], "together"),
+        (["--sims", "1"], "--nside is required"),
+        (["--sims", "0"], "nothing to do"),
+        (["--nside", "16", "--noise-knee", "20"], "together"),
         (["--nside", "16", "--hits", "x.fits"], "need --noise-depth"),
         (["--nside", "16", "--prefix", "a/b"], "--prefix"),
         (["--nside", "16", "--lmax", "100"], "'--lmax' parameter"),
@@ -120,7 +120,7 @@ def test_spectrum_longer_lmax_than_table(tmp_path, table, capsys):
 
 def test_write_fiducial_table_only(tmp_path, capsys):
     out = tmp_path / "fid.csv"
-    assert main(["simulate", "--write-spectrum", str(out), "--lmax", "300", "--count", "0"]) == 0
+    assert main(["simulate", "--write-spectrum", str(out), "--lmax", "300", "--sims", "0"]) == 0
     cl = read_spectrum_table(out)
     assert cl.shape == (301,) and cl[0] == 0 and cl[1] == 0
     ell = np.arange(301)
@@ -154,7 +154,7 @@ def test_demo_data_is_reproducible(tmp_path):
             if name == "tern_mask.fits":
                 a, b = read_mask(committed), read_mask(fresh)
             else:
-                a, b = read_map(committed, unit="K")[0], read_map(fresh, unit="K")[0]
+                a, b = read_sky_map(committed, unit="K")[0], read_sky_map(fresh, unit="K")[0]
             np.testing.assert_array_equal(np.isfinite(a) & (a > -1e30), np.isfinite(b) & (b > -1e30))
             np.testing.assert_allclose(a, b, rtol=2e-7, atol=1e-12)  # float32 precision
         else:

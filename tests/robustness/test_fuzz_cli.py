@@ -57,12 +57,12 @@ def _make_inputs():
     f = {}
     m8 = rng.normal(0.0, 1e-4, 768)
     m8[:10] = UNSEEN
-    f["map8"] = maps.write_map(_DIR / "map8.fits", m8, unit="uK_CMB", coord="G")
-    f["map16"] = maps.write_map(_DIR / "map16.fits", rng.normal(0.0, 1e-4, 3072), nest=True)
-    f["hits8"] = maps.write_map(_DIR / "hits8.fits", rng.integers(0, 20, 768).astype(float), unit=None)
+    f["map8"] = maps.write_sky_map(_DIR / "map8.fits", m8, unit="uK_CMB", coordinates="G")
+    f["map16"] = maps.write_sky_map(_DIR / "map16.fits", rng.normal(0.0, 1e-4, 3072), nested=True)
+    f["hits8"] = maps.write_sky_map(_DIR / "hits8.fits", rng.integers(0, 20, 768).astype(float), unit=None)
     f["mask8"] = maps.write_mask(_DIR / "mask8.fits", maps.cap_mask(8, 0.0, 30.0, 70.0))
     f["mask16"] = maps.write_mask(_DIR / "mask16.fits", maps.cap_mask(16, 90.0, -20.0, 50.0) * 0.7)
-    f["allmissing"] = maps.write_map(_DIR / "allmissing.fits", np.full(768, UNSEEN))
+    f["allmissing"] = maps.write_sky_map(_DIR / "allmissing.fits", np.full(768, UNSEEN))
     good = f["map8"].read_bytes()
     (_DIR / "cut.fits").write_bytes(good[: len(good) // 2])
     f["truncated"] = _DIR / "cut.fits"
@@ -135,7 +135,7 @@ def mask_argv(draw):
         "--holes": inputs("holes", "holes_bad", "missing", "map8"),
         "--hole-radius": st.one_of(st.sampled_from(["0.5", "2", "5"]), _NUMBER),
         "--from-map": inputs("hits8", "map8", "map16", "allmissing", "text", "missing"),
-        "--map-field": st.sampled_from(["0", "1", "-1", "x"]),
+        "--field": st.sampled_from(["0", "1", "-1", "x"]),
         "--threshold": st.one_of(st.sampled_from(["5", "0", "10.5", "-1e-4"]), _NUMBER),
         "--keep-where": st.sampled_from(["below", "above", "sideways"]),
         "--apodize": st.sampled_from(["cosine", "gaussian", "square"]),
@@ -166,7 +166,7 @@ def test_mask_command_exits_0_or_2(argv):
         # a success wrote a valid mask where it said
         target = argv[argv.index("-o") + 1]
         w = maps.read_mask(target)
-        assert f"written         {target}" in out
+        assert f"wrote           {target}" in out
         assert abs(float(out.split("f_sky")[1].split()[0]) - w.mean()) < 1e-6
 
 
