@@ -84,6 +84,7 @@ def _refuse_inputs_as_outputs(args):
     from cmbtools.exceptions import OutputPathError
 
     inputs = [getattr(args, k) for k in _INPUT_OPTIONS if isinstance(getattr(args, k, None), str)]
+    inputs += [v for v in (getattr(args, "template", None) or []) if isinstance(v, str)]
     inputs = [p for p in inputs if os.path.isfile(p)]
     for key in _OUTPUT_OPTIONS:
         out = getattr(args, key, None)

@@ -67,6 +67,13 @@ def add_arguments(parser):
     parser.add_argument("--keep-monopole-dipole", action="store_true",
                         help="do not fit and remove the monopole and dipole before the transform")
     add_noise_options(parser)
+    parser.add_argument("--template", metavar="FILE", action="append",
+                        help="template map (HEALPix FITS) fitted on the masked sky and removed with the monopole and "
+                             "dipole, its bias on the spectrum corrected; repeat for several")
+    parser.add_argument("--no-deprojection-correction", action="store_true",
+                        help="do not correct the bias that removing the monopole, dipole and templates causes")
+    parser.add_argument("--sky-lmax", type=positive_int, metavar="N",
+                        help="band limit of the sky whose power above the bins is modelled (default 4 nside - 1)")
     parser.add_argument("--fast-coupling", action="store_true",
                         help="approximate the mode-coupling matrix (faster at large lmax; exact when lmax > 2 nside, where the approximation fails)")
     parser.add_argument("--theory", metavar="FILE", help="theory spectrum to draw in the figure (columns ell and cl or dl)")
@@ -179,7 +186,21 @@ def run(args) -> int:
     if m2 is not None:
         w2 = drop_missing_pixels(m2, w2, args.map2, "mask2" if args.mask2 is not None else "mask", stacklevel=2)
 
+    templates = None
+    if args.template:
+        templates = []
+        for path in args.template:
+            t, _info = maps.read_sky_map(path, unit="K", force=args.force)
+            check_same_nside(t, w1, path, args.mask)
+            templates.append(t)
+    sky_lmax = max(lmax, 4 * nside - 1) if args.sky_lmax is None else args.sky_lmax
+    if sky_lmax < lmax or sky_lmax > 8 * nside:
+        raise InvalidInputError(f"--sky-lmax must be in [{lmax}, {8 * nside}] (lmax to 8 nside). Got {sky_lmax} instead.")
     kwargs = dict(
+        templates=templates,
+        sky_lmax=sky_lmax,
+        guess_cl=theory if theory is not None and theory.size > sky_lmax else None,
+        correct_deprojection_bias=not args.no_deprojection_correction,
         lmax=lmax,
         mask2=w2,
         beam=beam1,
