@@ -73,7 +73,9 @@ def add_arguments(parser):
     parser.add_argument("--no-deprojection-correction", action="store_true",
                         help="do not correct the bias that removing the monopole, dipole and templates causes")
     parser.add_argument("--sky-lmax", type=positive_int, metavar="N",
-                        help="band limit of the sky whose power above the bins is modelled (default 4 nside - 1)")
+                        help="band limit of the sky whose power above the bins is modelled from the guess spectrum "
+                             "(--theory, else the built-in fiducial one); real skies: 4 nside - 1 (default: lmax, "
+                             "a sky without power above lmax)")
     parser.add_argument("--fast-coupling", action="store_true",
                         help="approximate the mode-coupling matrix (faster at large lmax; exact when lmax > 2 nside, where the approximation fails)")
     parser.add_argument("--theory", metavar="FILE", help="theory spectrum to draw in the figure (columns ell and cl or dl)")
@@ -193,7 +195,7 @@ def run(args) -> int:
             t, _info = maps.read_sky_map(path, unit="K", force=args.force)
             check_same_nside(t, w1, path, args.mask)
             templates.append(t)
-    sky_lmax = max(lmax, 4 * nside - 1) if args.sky_lmax is None else args.sky_lmax
+    sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
     if sky_lmax < lmax or sky_lmax > 8 * nside:
         raise InvalidInputError(f"--sky-lmax must be in [{lmax}, {8 * nside}] (lmax to 8 nside). Got {sky_lmax} instead.")
     kwargs = dict(

@@ -65,7 +65,7 @@ def add_arguments(parser):
                         help="do not fit and remove the monopole and dipole before the transform")
     parser.add_argument("--sky-lmax", type=positive_int, metavar="N",
                         help="band limit of the simulated skies, whose power above the bins the estimator models "
-                             "(default 4 nside - 1)")
+                             "(real skies: 4 nside - 1; default: lmax)")
     parser.add_argument("--pixelise", action="store_true",
                         help="synthesize every sky at twice the nside and average it into the pixels, as a detector does")
     parser.add_argument("--monopole", type=float, metavar="UK",
@@ -210,7 +210,7 @@ def run(args) -> int:
         mask2 = maps.read_mask(args.mask2, force=args.force)
         check_same_nside(mask, mask2, args.mask, args.mask2)
     binning = binning_from_args(args, lmax, float(np.mean(mask)))
-    sky_lmax = max(lmax, 4 * nside - 1) if args.sky_lmax is None else args.sky_lmax
+    sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
     top = (8 if args.pixelise else 4) * nside - 1
     if cross:
         sky_lmax = lmax  # the split simulations of a cross-spectrum are band-limited at lmax

@@ -56,10 +56,13 @@ def test_validate_writes_outputs_matches_the_library_and_resumes(files, capsys, 
     assert set(doc) >= {"n_sims", "max_abs_bias_sigma", "median_error_ratio"}
 
     # the same run through the library, on threads: the same numbers
-    est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 8), lmax=LMAX, beam=30.0)
+    # (the command injects a 100 uK monopole and a 3 mK dipole and uses the input spectrum as the guess)
+    from cmbtools.simulate import Dipole
+
+    est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 8), lmax=LMAX, beam=30.0, guess_cl=_spectrum(LMAX))
     with ThreadPoolExecutor(2) as pool:
         ref = validate_estimator(est, _spectrum(LMAX), n_sims=6, seed=4, noise=NoiseModel(30.0), executor=pool,
-                                 progress=False)
+                                 progress=False, monopole=100e-6, dipole=Dipole(3e-3, 60.0, 30.0), sky_lmax=LMAX)
     np.testing.assert_allclose(doc["bins"]["mean"], ref.mean, rtol=1e-12)
     np.testing.assert_allclose(doc["bins"]["bias_sigma"], ref.bias_sigma, rtol=1e-9, atol=1e-12)
     assert doc["max_abs_bias_sigma"] == pytest.approx(ref.summary()["max_abs_bias_sigma"], rel=1e-9)
