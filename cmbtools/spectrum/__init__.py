@@ -37,6 +37,15 @@ from __future__ import annotations
 from cmbtools.spectrum.bandpowers import Bandpowers
 from cmbtools.spectrum.beams import gaussian_beam, read_beam, write_beam
 from cmbtools.spectrum.binning import Binning
+from cmbtools.spectrum.covariance import (
+    BandpowerCovariance,
+    GaussianCovariance,
+    PixelNoise,
+    hartlap_factor,
+    read_covariance,
+    simulated_covariance,
+    write_covariance,
+)
 from cmbtools.spectrum.estimator import MAX_CONDITION_NUMBER, SpectrumEstimator
 from cmbtools.spectrum.one_call import estimate_spectrum
 from cmbtools.spectrum.pixel_windows import pixel_window
@@ -51,4 +60,11 @@ __all__ = [
     "read_beam",
     "write_beam",
     "pixel_window",
+    "PixelNoise",
+    "GaussianCovariance",
+    "BandpowerCovariance",
+    "simulated_covariance",
+    "hartlap_factor",
+    "write_covariance",
+    "read_covariance",
 ]
