@@ -32,6 +32,7 @@ __all__ = [
     "sha256_file",
     "sha256_arrays",
     "cache_dir",
+    "remove_stale_temporaries",
 ]
 
 
@@ -48,8 +49,16 @@ def check_input_file(path) -> Path:
     if "\x00" in str(path):
         raise InputFileError(repr(str(path)), "contains a NUL character, which no file name can hold")
     p = Path(path)
-    if not p.exists():
-        raise InputFileError(p, "no such file")
+    try:
+        os.stat(p)
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise InputFileError(p, "is a loop of symbolic links (a link that points back to itself)") from None
+        if p.is_symlink():
+            raise InputFileError(p, f"is a symbolic link to {os.readlink(p)!r}, which does not exist") from None
+        if exc.errno not in (errno.ENOENT, errno.ENOTDIR):
+            raise InputFileError(p, f"cannot be opened ({exc.strerror or exc})") from None
+        raise InputFileError(p, "no such file") from None
     if p.is_dir():
         raise InputFileError(p, "is a directory, expected a file")
     if not os.access(p, os.R_OK):
@@ -126,6 +135,7 @@ def atomic_output(path, *, overwrite: bool = False, suffix: str | None = None):
     final = check_output_path(path, overwrite=overwrite)
     parent = final.parent if str(final.parent) else Path(".")
     suffix = final.suffix if suffix is None else suffix
+    remove_stale_temporaries(final)
     fd, tmp_name = tempfile.mkstemp(prefix=f".{final.name}.", suffix=f".tmp{suffix}", dir=parent)
     os.close(fd)
     tmp = Path(tmp_name)
@@ -148,6 +158,31 @@ def atomic_output(path, *, overwrite: bool = False, suffix: str | None = None):
         with contextlib.suppress(FileNotFoundError):
             tmp.unlink()
         raise
+
+
+def remove_stale_temporaries(path) -> int:
+    """Delete the temporary files :func:`atomic_output` left beside ``path`` when a writer was killed.
+
+    Only names of cmbtools' own pattern for this destination are touched
+    (``.NAME.XXXXXXXX.tmpSUFFIX`` and the ``.probe`` files of
+    :func:`check_output_path`); returns how many were removed.
+    """
+    import re
+
+    final = Path(path)
+    parent = final.parent if str(final.parent) else Path(".")
+    pattern = re.compile(r"^\." + re.escape(final.name) + r"\.[A-Za-z0-9_]{8}\.(?:tmp.*|probe)$")
+    removed = 0
+    try:
+        names = os.listdir(parent)
+    except OSError:
+        return 0
+    for name in names:
+        if pattern.match(name):
+            with contextlib.suppress(OSError):
+                (parent / name).unlink()
+                removed += 1
+    return removed
 
 
 def _umask() -> int:

@@ -38,7 +38,8 @@ import ducc0
 
 from cmbtools._core.checks import resolve_nthreads
 
-__all__ = ["ring_geometry", "occupied_rings", "ring_pixel_ranges", "adjoint_sums", "synthesis_on_rings", "map2alm", "map_spectra", "alm2map", "alm2cl", "almxfl", "alm_size", "alm_ell"]
+__all__ = ["ring_geometry", "occupied_rings", "ring_pixel_ranges", "adjoint_sums", "synthesis_on_rings", "map2alm", "map_spectra", "alm2map", "alm2cl", "almxfl", "alm_size", "alm_ell",
+           "map2alm_spin", "alm2map_spin", "map2alm_spin2", "alm2map_spin2"]
 
 #: Largest work buffer (bytes: ducc0's Legendre coefficients plus the result) of a transform run in one
 #: call; larger transforms run in pieces (see the module notes).
@@ -354,3 +355,103 @@ def synthesis_on_rings(alm, lmax: int, nside: int, r0: int, r1: int, *, nthreads
         nphi=geom["nphi"][r0:r1], ringstart=(geom["ringstart"][r0:r1] - geom["ringstart"][r0]),
     )[0]
 
+
+
+# ----------------------------------------------------------------------------- spin-weighted fields
+# A spin-s field (s > 0) is a pair of real maps, the real and imaginary parts of sF (for s = 2: Q and U in
+# the HEALPix polarization convention), with gradient and curl coefficients G, C (for s = 2: E and B) in
+# healpy's layout and sign convention, sF = -sum (G + i C) sY_lm (healpy.map2alm(pol=True), ducc0).
+
+
+def _adjoint_add_spin(acc, maps, nside, lmax, m0, m1, nthreads, spin, occupied=None):
+    """:func:`_adjoint_add` for a pair of maps of spin ``spin``: adds into ``acc`` of shape (2, n)."""
+    geom = ring_geometry(nside)
+    mval = np.arange(m0, m1, dtype=np.uintp)
+    start, _ = _m_block(lmax, m0, m1)
+    mstart = (np.arange(m0, m1) * (2 * lmax + 1 - np.arange(m0, m1)) // 2 - start).astype(np.uintp)
+    for rings in _ring_groups(nside, 2 * m1):
+        if occupied is not None:
+            rings = rings[occupied[rings]]
+            if rings.size == 0:
+                continue
+        leg = ducc0.sht.experimental.map2leg(
+            map=maps, nphi=geom["nphi"][rings], phi0=geom["phi0"][rings], ringstart=geom["ringstart"][rings],
+            mmax=m1 - 1, nthreads=nthreads,
+        )
+        part = ducc0.sht.experimental.leg2alm(
+            leg=np.ascontiguousarray(leg[:, :, m0:m1]), lmax=lmax, theta=geom["theta"][rings], spin=spin,
+            mval=mval, mstart=mstart, nthreads=nthreads,
+        )
+        del leg
+        acc += part
+        del part
+
+
+def map2alm_spin(maps, spin: int, lmax: int, *, n_iter: int = 0, nthreads: int | None = None, rings=None):
+    """Gradient and curl coefficients of a spin-``spin`` field given as two real maps.
+
+    Parameters
+    ----------
+    maps : ndarray of shape (2, 12*nside**2)
+        Real and imaginary parts of the field (Q and U for spin 2), RING.
+    spin : int
+        The spin, >= 1.
+    lmax : int
+        Largest multipole.
+    n_iter : int, default=0
+        Jacobi refinement steps, as for :func:`map2alm`.
+    nthreads : int, optional
+        Threads for ducc0.
+    rings : ndarray of bool, optional
+        Rings known to be zero in both maps are skipped (``n_iter=0`` only).
+
+    Returns
+    -------
+    ndarray of shape (2, alm_size(lmax)), complex
+        G and C (E and B for spin 2), healpy's layout and signs.
+    """
+    maps = np.ascontiguousarray(np.asarray(maps, dtype=np.float64).reshape(2, -1))
+    npix = maps.shape[1]
+    nside = int(round(np.sqrt(npix / 12)))
+    geom = ring_geometry(nside)
+    nthreads = resolve_nthreads(nthreads)
+    scale = 4.0 * np.pi / npix
+    if rings is not None and n_iter:
+        raise ValueError("a ring subset only applies to the plain quadrature (n_iter=0)")
+    if 2 * (_leg_bytes(nside, lmax) + 16 * alm_size(lmax)) <= ONE_CALL_BYTES:
+        alm = ducc0.sht.experimental.adjoint_synthesis(
+            map=maps, lmax=lmax, spin=spin, nthreads=nthreads, **_subset(geom, rings)
+        )
+    else:
+        alm = np.zeros((2, alm_size(lmax)), dtype=np.complex128)
+        for m0, m1 in _m_groups(lmax, lmax + 1, LEG_BUFFER_BYTES // 2):
+            start, stop = _m_block(lmax, m0, m1)
+            _adjoint_add_spin(alm[:, start:stop], maps, nside, lmax, m0, m1, nthreads, spin, rings)
+    alm *= scale
+    for _ in range(n_iter):
+        resid = maps - ducc0.sht.experimental.synthesis(alm=alm, lmax=lmax, spin=spin, nthreads=nthreads, **geom)
+        alm += scale * ducc0.sht.experimental.adjoint_synthesis(
+            map=resid, lmax=lmax, spin=spin, nthreads=nthreads, **geom
+        )
+    return alm
+
+
+def alm2map_spin(alms, spin: int, nside: int, lmax: int, *, nthreads: int | None = None) -> np.ndarray:
+    """The two real maps, shape (2, 12 nside^2), of a spin-``spin`` field from its G and C coefficients."""
+    alms = np.ascontiguousarray(np.asarray(alms, dtype=np.complex128).reshape(2, -1))
+    return ducc0.sht.experimental.synthesis(
+        alm=alms, lmax=lmax, spin=spin, nthreads=resolve_nthreads(nthreads), **ring_geometry(nside)
+    )
+
+
+def map2alm_spin2(q, u, lmax: int, *, n_iter: int = 0, nthreads: int | None = None, rings=None):
+    """E and B coefficients of Stokes Q, U (HEALPix convention; == healpy.map2alm(pol=True)[1:] to rounding)."""
+    alm = map2alm_spin(np.stack([np.asarray(q, dtype=np.float64), np.asarray(u, dtype=np.float64)]), 2, lmax,
+                       n_iter=n_iter, nthreads=nthreads, rings=rings)
+    return alm[0], alm[1]
+
+
+def alm2map_spin2(alm_e, alm_b, nside: int, lmax: int, *, nthreads: int | None = None):
+    """Q and U maps (RING, HEALPix convention) of E and B coefficients (== healpy.alm2map(pol=True)[1:])."""
+    out = alm2map_spin(np.stack([np.asarray(alm_e), np.asarray(alm_b)]), 2, nside, lmax, nthreads=nthreads)
+    return out[0], out[1]

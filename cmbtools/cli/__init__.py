@@ -100,6 +100,18 @@ def _refuse_inputs_as_outputs(args):
                 raise OutputPathError(out, "is also an input of this command; cmbtools never writes over its inputs")
 
 
+def _silence_stdout():
+    """Point standard output at /dev/null, so that the interpreter's final flush does not fail again."""
+    import os
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError, AttributeError):
+        pass
+
+
 def main(argv=None) -> int:
     """Run the command line; return the exit status."""
     parser = build_parser()
@@ -116,12 +128,17 @@ def main(argv=None) -> int:
     warnings.showwarning = _show_warning
     try:
         _refuse_inputs_as_outputs(args)
-        return int(args._run(args) or 0)
+        status = int(args._run(args) or 0)
+        sys.stdout.flush()  # here, so that a closed pipe is reported below and not at exit
+        return status
     except CmbtoolsError as exc:
         if debug:
             raise
         print(f"{prog}: error: {_one_line(exc)}", file=sys.stderr)
         return 2
+    except BrokenPipeError:  # the reader went away (`cmbtools ... | head`): stop quietly, as Unix tools do
+        _silence_stdout()
+        return 128 + 13  # as a process stopped by SIGPIPE
     except OSError as exc:
         if debug:
             raise

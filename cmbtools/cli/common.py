@@ -5,8 +5,8 @@ from __future__ import annotations
 import argparse
 
 __all__ = [
-    "add_overwrite", "add_force", "add_threads", "positive_float", "positive_int", "finite_float", "bounded_int",
-    "MAX_THREADS", "MAX_SIMULATIONS",
+    "add_overwrite", "add_force", "add_threads", "positive_float", "positive_int", "non_negative_int", "finite_float",
+    "bounded_int", "add_binning", "binning_from_args", "bin_edges", "deprecated_alias", "MAX_THREADS", "MAX_SIMULATIONS",
 ]
 
 
@@ -40,7 +40,8 @@ def positive_float(text):
     return v
 
 
-def positive_int(text):
+def non_negative_int(text):
+    """An argparse type: a whole number >= 0 (seeds, indices, counts where 0 means 'the default')."""
     try:
         v = int(text)
     except ValueError:
@@ -50,10 +51,18 @@ def positive_int(text):
     return v
 
 
+def positive_int(text):
+    """An argparse type: a whole number >= 1 (widths, numbers of bins, nside, lmax)."""
+    v = non_negative_int(text)
+    if v < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number of at least 1, got {text!r}")
+    return v
+
+
 def bounded_int(maximum):
     """An argparse type: a whole number in [0, maximum] (a bound that keeps a typo from exhausting memory)."""
     def parse(text):
-        v = positive_int(text)
+        v = non_negative_int(text)
         if v > maximum:
             raise argparse.ArgumentTypeError(f"expected at most {maximum}, got {text!r}")
         return v
@@ -70,3 +79,91 @@ def finite_float(text):
     if v != v or v in (float("inf"), float("-inf")):
         raise argparse.ArgumentTypeError(f"expected a finite number, got {text!r}")
     return v
+
+
+class _DeprecatedAlias(argparse.Action):
+    """Store under the new option's name and warn that the old spelling goes away."""
+
+    def __init__(self, option_strings, dest, new_name=None, **kwargs):
+        self.new_name = new_name
+        super().__init__(option_strings, dest, **kwargs)
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        import sys
+
+        print(f"cmbtools: warning: {option_string} is deprecated and will be removed; use {self.new_name}",
+              file=sys.stderr)
+        setattr(namespace, self.dest, True if self.nargs == 0 else values)
+
+
+def deprecated_alias(parser, old, new, dest, **kwargs):
+    """Accept the option ``old`` as a hidden, deprecated spelling of ``new`` (same destination)."""
+    parser.add_argument(old, dest=dest, action=_DeprecatedAlias, new_name=new, help=argparse.SUPPRESS, **kwargs)
+
+
+# ----------------------------------------------------------------------------- bins (spectrum and validate)
+
+
+def add_binning(parser):
+    """The bin options shared by ``spectrum`` and ``validate``."""
+    bins = parser.add_argument_group("bins (one of; default --bin-width 16)")
+    choice = bins.add_mutually_exclusive_group()
+    choice.add_argument("--bin-width", type=positive_int, metavar="W", help="bins of W multipoles from --lmin to lmax")
+    choice.add_argument("--bin-edges", metavar="FILE_OR_LIST",
+                        help="bin edges: bin b is edge[b] <= ell < edge[b+1]; a comma-separated list or a file of numbers")
+    choice.add_argument("--log-bins", type=positive_int, metavar="N",
+                        help="about N bins evenly spaced in log(ell), none narrower than --min-bin-width")
+    bins.add_argument("--min-bin-width", type=positive_int, metavar="W",
+                      help="smallest width of --log-bins bins (default: 1/(2 f_sky) of the mask, at least 2)")
+    bins.add_argument("--lmin", type=non_negative_int, default=2, metavar="L",
+                      help="first multipole of the first bin (default 2)")
+    bins.add_argument("--bin-weighting", choices=("dl", "cl"), default="dl",
+                      help="average D_l (default) or C_l inside each bin")
+
+
+def bin_edges(text):
+    """The --bin-edges value: a file of edges (read by the library) or the edges themselves."""
+    import numpy as np
+    from pathlib import Path
+
+    from cmbtools.exceptions import InvalidInputError
+    from cmbtools.spectrum.binning import read_bin_edges
+
+    if Path(text).is_file():
+        return read_bin_edges(text)
+    try:
+        return np.array([float(c) for c in text.replace(",", " ").split()])
+    except ValueError:
+        raise InvalidInputError(
+            f"The bin edges from --bin-edges must be whole numbers separated by commas or spaces. Got {text!r}."
+        ) from None
+
+
+def binning_from_args(args, lmax, f_sky):
+    """The Binning the options of :func:`add_binning` ask for; ``f_sky`` sets the default smallest log-bin width."""
+    import math
+
+    from cmbtools.exceptions import InvalidInputError
+    from cmbtools.spectrum import Binning
+
+    if args.min_bin_width is not None and args.log_bins is None:
+        raise InvalidInputError("--min-bin-width applies to --log-bins only.")
+    if args.bin_edges is not None:
+        return Binning.from_edges(bin_edges(args.bin_edges), weighting=args.bin_weighting)
+    if args.log_bins is not None:
+        lmin = max(args.lmin, 1)
+        width = args.min_bin_width
+        if width is None:
+            width = max(2, math.ceil(0.5 / f_sky)) if f_sky > 0 else 2
+            width = min(width, max(1, lmax - lmin + 1))
+        return Binning.log_spaced(lmin, lmax, args.log_bins, min_width=width, weighting=args.bin_weighting)
+    return Binning.uniform(args.lmin, lmax, 16 if args.bin_width is None else args.bin_width,
+                           weighting=args.bin_weighting)
+
+
+def describe_binning(binning) -> str:
+    """'16 bins of 22-24 multipoles (ell 2-383), Dl weighting'."""
+    widths = sorted(set(binning.n_ell.tolist()))
+    width_text = f"{widths[0]}" if len(widths) == 1 else f"{widths[0]}-{widths[-1]}"
+    return (f"{binning.n_bins} bins of {width_text} multipoles (ell {binning.lmin}-{binning.lmax}), "
+            f"{binning.weighting.upper()[0]}{binning.weighting[1:]} weighting")

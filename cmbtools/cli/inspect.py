@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from cmbtools.cli.common import add_force, add_overwrite, positive_int
+from cmbtools.cli.common import add_force, add_overwrite, non_negative_int
 
 HELP = "describe a map: resolution, unit, missing pixels, monopole, dipole, range"
 DESCRIPTION = """\
@@ -12,7 +12,8 @@ Describe a HEALPix map file: nside, ordering, unit and coordinate system found
 in the file, the number of missing pixels, the monopole and dipole (weighted
 least squares over the valid pixels, or over those a mask keeps), and the
 minimum, maximum and rms of the pixels used.  Temperatures are printed in
-uK_CMB.  Optionally draws a Mollweide view to a PNG file.
+uK_CMB.  Optionally draws the map (monopole and dipole removed) to a PNG or PDF file: the
+whole sky and a close-up of the observed patch, with a labelled colour bar.
 
 examples:
   cmbtools inspect map.fits
@@ -26,41 +27,13 @@ def add_arguments(parser):
     parser.formatter_class = argparse.RawDescriptionHelpFormatter
     parser.add_argument("map", metavar="MAP", help="HEALPix FITS map")
     parser.add_argument("--mask", metavar="MASK", help="use only the pixels this mask keeps (weighted by it)")
-    parser.add_argument("--field", type=positive_int, default=0, metavar="N", help="map column to read (default 0)")
+    parser.add_argument("--field", type=non_negative_int, default=0, metavar="N",
+                        help="map column to read, numbered from 0 (default 0)")
     parser.add_argument("--unit", metavar="UNIT",
                         help="unit of the values in the file, overriding its header (K, mK, uK, K_CMB, ...)")
-    parser.add_argument("--figure", metavar="PNG", help="write a Mollweide view of the map to this file")
+    parser.add_argument("--figure", metavar="PNG", help="draw the map (whole sky and a close-up of the observed patch) to this PNG or PDF file")
     add_overwrite(parser)
     add_force(parser)
-
-
-def _mollweide(path, m, used, title, overwrite):
-    import warnings
-
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import healpy as hp
-    import matplotlib.pyplot as plt
-    import numpy as np
-
-    from cmbtools._core.files import atomic_output
-    from cmbtools._core.checks import UNSEEN
-
-    shown = np.where(used, m * 1e6, UNSEEN)
-    limit = float(np.max(np.abs(m[used]))) * 1e6 if used.any() else 1.0
-    with warnings.catch_warnings():
-        # healpy's mollview calls colormap setters that matplotlib plans to deprecate;
-        # the notice concerns healpy, not the user
-        warnings.filterwarnings("ignore", message="The set_(over|under|bad) function", category=PendingDeprecationWarning)
-        hp.mollview(shown, title=title, unit="uK_CMB", cmap="RdBu_r", xsize=1200, min=-limit, max=limit)
-    fig = plt.gcf()
-    try:
-        hp.graticule(dpar=30, dmer=60, alpha=0.4)
-        with atomic_output(path, overwrite=overwrite) as tmp:
-            fig.savefig(tmp, dpi=110)
-    finally:
-        plt.close(fig)
 
 
 def run(args) -> int:
@@ -108,6 +81,7 @@ def run(args) -> int:
         return 0
     f_sky = float(weights.mean())
     print(f"{'pixels used':<18}{int(used.sum())} (f_sky {f_sky:.4f}{', weighted by the mask' if args.mask else ''})")
+    fit = None
     try:
         fit = maps.fit_monopole_dipole(m, weights)
     except IllConditionedError as exc:
@@ -123,6 +97,19 @@ def run(args) -> int:
     print(f"{'min / max':<18}{v.min():.4f} / {v.max():.4f} uK_CMB")
     print(f"{'rms':<18}{float(np.sqrt(np.mean(v * v))):.4f} uK_CMB (std {float(v.std()):.4f})")
     if args.figure is not None:
-        _mollweide(args.figure, m, used, Path(info.path).name, args.overwrite)
+        from cmbtools.maps.sky_view import draw_sky_view
+
+        where = "the pixels the mask keeps" if args.mask else "the valid pixels"
+        if fit is not None:
+            shown = m - fit.evaluate(info.nside)
+            caption = (f"Removed before drawing: the monopole ({fit.monopole * 1e6:.2f} uK) and the dipole "
+                       f"({fit.amplitude * 1e6:.2f} uK) fitted on {where}. ")
+        else:
+            shown = m
+            caption = "Nothing removed: the monopole and dipole are not constrained by the pixels used. "
+        caption += "Light grey: " + ("pixels the mask leaves out or that are missing." if args.mask
+                                     else "missing pixels.")
+        draw_sky_view(args.figure, shown, used, title=f"{Path(info.path).name}: nside {info.nside}",
+                      caption=caption, overwrite=args.overwrite)
         print(f"{'figure':<18}{args.figure}")
     return 0

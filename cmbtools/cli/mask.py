@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from cmbtools.cli.common import finite_float, add_force, add_overwrite, positive_float, positive_int
+from cmbtools.cli.common import add_force, add_overwrite, deprecated_alias, finite_float, non_negative_int, positive_float, positive_int
 
 HELP = "build a mask (caps, latitude cut, holes, thresholds, apodization) or describe one"
 DESCRIPTION = """\
@@ -73,8 +73,9 @@ def add_arguments(parser):
     build.add_argument("--hole-radius", type=positive_float, metavar="DEG",
                        help="radius of the holes, for rows of --holes without radius_deg")
     build.add_argument("--from-map", metavar="MAP", help="keep the pixels of MAP on one side of --threshold")
-    build.add_argument("--map-field", type=positive_int, default=0, metavar="N",
-                       help="column of --from-map to use (default 0)")
+    build.add_argument("--field", type=non_negative_int, default=0, metavar="N",
+                       help="column of --from-map to use, numbered from 0 (default 0)")
+    deprecated_alias(build, "--map-field", "--field", "field", type=non_negative_int)
     build.add_argument("--threshold", type=finite_float, metavar="X",
                        help="threshold for --from-map, in the units stored in that file")
     build.add_argument("--keep-where", choices=["below", "above"], default="below",
@@ -146,7 +147,7 @@ def run(args) -> int:
     if args.from_map is not None:
         from cmbtools.maps.fits import read_map_values
 
-        values = read_map_values(args.from_map, field=args.map_field, force=args.force)
+        values = read_map_values(args.from_map, field=args.field, force=args.force)
         sources.append(("--from-map", maps.threshold_mask(values, args.threshold, keep=args.keep_where)))
     if nside is None:
         if not sources:
@@ -196,7 +197,7 @@ def run(args) -> int:
     maps.write_mask(args.output, w, coord=args.coord, overwrite=args.overwrite, extra_header=extra)
     for note in notes:
         print(f"{'resolution':<16}{note}")
-    print(f"{'written':<16}{args.output}")
+    print(f"{'wrote':<16}{args.output}")
     _print_moments(maps.mask_moments(w))
     return 0
 

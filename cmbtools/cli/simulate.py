@@ -6,7 +6,8 @@ import argparse
 import contextlib
 
 from cmbtools.cli.common import (
-    MAX_SIMULATIONS, add_force, add_overwrite, add_threads, bounded_int, finite_float, positive_float, positive_int,
+    MAX_SIMULATIONS, add_force, add_overwrite, add_threads, bounded_int, deprecated_alias, finite_float,
+    non_negative_int, positive_float, positive_int,
 )
 
 HELP = "write simulated Gaussian CMB maps with beam, pixel window and noise"
@@ -24,10 +25,10 @@ noise would need more memory than the machine has available, the command
 stops before computing anything; --force goes ahead anyway.
 
 examples:
-  cmbtools simulate --nside 128 --beam-fwhm 25 --noise-depth 35 --seed 1 --count 10 \\
+  cmbtools simulate --nside 128 --beam-fwhm 25 --noise-depth 35 --seed 1 --sims 10 \\
                     --output-dir sims --prefix sky
   cmbtools simulate --spectrum my_cl.csv --nside 64 --seed 7 --output-dir sims
-  cmbtools simulate --write-spectrum fiducial_cl.csv --lmax 2000 --count 0
+  cmbtools simulate --write-spectrum fiducial_cl.csv --lmax 2000 --sims 0
 """
 
 
@@ -41,11 +42,12 @@ def add_arguments(parser):
                         help="draw from this spectrum table (columns ell and cl/dl, see cmbtools.simulate)")
     sky.add_argument("--nside", type=positive_int, metavar="N", help="HEALPix resolution of the maps")
     sky.add_argument("--lmax", type=positive_int, metavar="L",
-                     help="largest multipole simulated (default 3*nside-1; with --count 0, the length "
+                     help="largest multipole simulated (default 3*nside-1; with --sims 0, the length "
                           "of the --write-spectrum table, default 2500)")
     beam = sky.add_mutually_exclusive_group()
     beam.add_argument("--beam-fwhm", type=positive_float, metavar="ARCMIN", help="Gaussian beam FWHM in arcmin")
-    beam.add_argument("--beam-file", metavar="TABLE", help="beam transfer table B_l (columns ell, b_ell)")
+    beam.add_argument("--beam", metavar="FILE", help="beam table B_l (columns ell,b_ell)")
+    deprecated_alias(beam, "--beam-file", "--beam", "beam")
     sky.add_argument("--no-pixel-window", action="store_true", help="do not apply the HEALPix pixel window")
     sky.add_argument("--monopole-uk", type=finite_float, default=0.0, metavar="UK", help="add a constant, in uK")
     sky.add_argument("--dipole-uk", type=finite_float, nargs=3, metavar=("AMPLITUDE", "LON", "LAT"),
@@ -57,14 +59,21 @@ def add_arguments(parser):
     noise.add_argument("--hits", metavar="MAP",
                        help="hits map (FITS): noise sigma ~ 1/sqrt(hits), the depth is the rms over observed "
                             "pixels; unobserved pixels are written as missing")
-    noise.add_argument("--knee-ell", type=positive_float, metavar="L", help="knee multipole of 1/f noise")
-    noise.add_argument("--knee-slope", type=positive_float, metavar="ALPHA",
-                       help="slope of 1/f noise: N_l = N_white (1 + (knee/l)^ALPHA)")
+    noise.add_argument("--noise-knee", type=positive_float, metavar="ELL",
+                       help="knee multipole of correlated noise N_l = N_white (1 + (ELL/l)^SLOPE)")
+    noise.add_argument("--noise-slope", type=positive_float, metavar="SLOPE", help="slope of the correlated noise")
+    deprecated_alias(noise, "--knee-ell", "--noise-knee", "noise_knee", type=positive_float)
+    deprecated_alias(noise, "--knee-slope", "--noise-slope", "noise_slope", type=positive_float)
+    noise.add_argument("--splits", type=positive_int, metavar="K",
+                       help="write K split maps per simulation: the same sky, each with its own independent noise "
+                            "(PREFIX_IIII_split1.fits ...), for cross-spectra free of noise bias")
 
     run = parser.add_argument_group("run and output")
-    run.add_argument("--seed", type=positive_int, metavar="S",
+    run.add_argument("--seed", type=non_negative_int, metavar="S",
                      help="master seed (default: drawn at random and printed)")
-    run.add_argument("--count", type=bounded_int(MAX_SIMULATIONS), default=1, metavar="N", help="number of maps (default 1)")
+    run.add_argument("--sims", type=bounded_int(MAX_SIMULATIONS), default=1, metavar="N",
+                     help="number of simulations (default 1)")
+    deprecated_alias(run, "--count", "--sims", "sims", type=bounded_int(MAX_SIMULATIONS))
     run.add_argument("--first-index", type=bounded_int(10**9), default=0, metavar="I",
                      help="index of the first map (default 0); map i is sky_{i:04d}.fits")
     run.add_argument("--output-dir", default=".", metavar="DIR", help="directory for the maps (default: .)")
@@ -73,6 +82,9 @@ def add_arguments(parser):
     run.add_argument("--float32", action="store_true", help="write single-precision maps (half the size)")
     run.add_argument("--write-spectrum", metavar="TABLE",
                      help="also write the input spectrum (fiducial or --spectrum) as a table")
+    run.add_argument("--write-noise-spectrum", metavar="TABLE",
+                     help="also write the noise spectrum N_l of the noise options (white level and knee, as observed; "
+                          "what 'cmbtools spectrum --noise-spectrum' subtracts) as a spectrum table")
     add_threads(run)
     add_overwrite(parser)
     add_force(parser)
@@ -85,13 +97,28 @@ def _check_map_memory(args, nside, lmax):
     sum, then the copies made to write it and to report its rms; with hits,
     the hits map and the noise model's copy are held throughout.
     """
-    from cmbtools._core.memory import check_memory, estimate_simulated_maps_bytes
+    from cmbtools._core.memory import check_memory, estimate_map_bytes, estimate_simulated_maps_bytes
 
     need = estimate_simulated_maps_bytes(
         nside, lmax, with_dipole=args.dipole_uk is not None, with_noise=args.noise_depth is not None,
-        correlated_noise=args.knee_ell is not None, with_hits=args.hits is not None,
+        correlated_noise=args.noise_knee is not None, with_hits=args.hits is not None,
     )
+    if args.splits:  # the sky and every split are kept until the split maps are written
+        need += estimate_map_bytes(nside, args.splits)
     check_memory(need, f"Simulating maps at nside {nside} with lmax {lmax}", force=args.force)
+
+
+def _remove_stale_temporaries(out_dir, prefix):
+    """Delete temporary map files of this prefix that a killed run left behind (hidden, cmbtools' own naming)."""
+    import contextlib
+    import os
+    import re
+
+    pattern = re.compile(r"^\." + re.escape(prefix) + r"_\d{4,}(?:_split\d+)?\.fits\.[A-Za-z0-9_]{8}\.(?:tmp\.fits|probe)$")
+    for name in os.listdir(out_dir):
+        if pattern.match(name):
+            with contextlib.suppress(OSError):
+                (out_dir / name).unlink()
 
 
 def run(args) -> int:
@@ -107,6 +134,7 @@ def run(args) -> int:
 
 def _run(args, created) -> int:
     import math
+    import os
     import re
     import warnings
     from pathlib import Path
@@ -118,14 +146,17 @@ def _run(args, created) -> int:
     from cmbtools._core.checks import check_lmax, check_nside, missing_pixels
     from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
 
-    if args.count > 0 and args.nside is None:
-        raise InvalidInputError("--nside is required to simulate maps (or pass --count 0 with --write-spectrum)")
-    if args.count == 0 and args.write_spectrum is None:
-        raise InvalidInputError("nothing to do: --count is 0 and --write-spectrum is not given")
-    if (args.knee_ell is None) != (args.knee_slope is None):
-        raise InvalidInputError("--knee-ell and --knee-slope must be given together")
-    if args.noise_depth is None and (args.hits is not None or args.knee_ell is not None):
-        raise InvalidInputError("--hits and --knee-ell need --noise-depth")
+    if args.sims > 0 and args.nside is None:
+        raise InvalidInputError("--nside is required to simulate maps (or pass --sims 0 with --write-spectrum)")
+    if args.sims == 0 and args.write_spectrum is None and args.write_noise_spectrum is None:
+        raise InvalidInputError("nothing to do: --sims is 0 and neither --write-spectrum nor --write-noise-spectrum "
+                                "is given")
+    if args.write_noise_spectrum is not None and args.noise_depth is None:
+        raise InvalidInputError("--write-noise-spectrum needs --noise-depth (the noise it describes)")
+    if (args.noise_knee is None) != (args.noise_slope is None):
+        raise InvalidInputError("--noise-knee and --noise-slope must be given together")
+    if args.noise_depth is None and (args.hits is not None or args.noise_knee is not None or args.splits):
+        raise InvalidInputError("--hits, --noise-knee and --splits need --noise-depth")
     if not re.fullmatch(r"[A-Za-z0-9._+-]+", args.prefix):
         raise InvalidInputError(f"--prefix must be a plain file-name part (letters, digits, . _ + -). Got {args.prefix!r}.")
     nside = None if args.nside is None else check_nside(args.nside, "--nside")
@@ -138,26 +169,48 @@ def _run(args, created) -> int:
     # check every input and output before any work
     if args.spectrum is not None:
         check_input_file(args.spectrum)
-    if args.beam_file is not None:
-        check_input_file(args.beam_file)
+    if args.beam is not None:
+        check_input_file(args.beam)
     if args.hits is not None:
         check_input_file(args.hits)
-    if args.count > 0:  # before the output directory is created
+    if args.sims > 0:  # before the output directory is created
         _check_map_memory(args, nside, lmax)
     outputs = []
-    if args.count > 0:
+    if args.sims > 0:
         out_dir = Path(args.output_dir)
         if not out_dir.exists():
             if not out_dir.parent.exists():
                 raise InvalidInputError(f"--output-dir {str(out_dir)!r}: its parent directory does not exist")
             out_dir.mkdir()
             created.append(out_dir)
-        outputs = [out_dir / f"{args.prefix}_{i:04d}.fits" for i in range(args.first_index, args.first_index + args.count)]
-        for p in outputs:
-            check_output_path(p, overwrite=args.overwrite)
+        names = [f"{args.prefix}_{i:04d}" for i in range(args.first_index, args.first_index + args.sims)]
+        if args.splits:
+            outputs = [[out_dir / f"{n}_split{k}.fits" for k in range(1, args.splits + 1)] for n in names]
+        else:
+            outputs = [[out_dir / f"{n}.fits"] for n in names]
+        for group in outputs:
+            for p in group:
+                check_output_path(p, overwrite=args.overwrite)
+        _remove_stale_temporaries(out_dir, args.prefix)
     if args.write_spectrum is not None:
         check_output_path(args.write_spectrum, overwrite=args.overwrite)
+    if args.write_noise_spectrum is not None:
+        check_output_path(args.write_noise_spectrum, overwrite=args.overwrite)
+        if args.write_spectrum is not None and os.path.abspath(args.write_spectrum) == os.path.abspath(
+                args.write_noise_spectrum):
+            raise InvalidInputError("--write-spectrum and --write-noise-spectrum name the same file")
 
+    noise = None
+    if args.noise_depth is not None:
+        hits = None
+        if args.hits is not None:
+            from cmbtools.maps import read_map
+
+            # hits are relative weights with no unit: read the values as they are
+            hits, _ = read_map(args.hits, unit="K", force=args.force)
+        noise = simulate.NoiseModel(args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
+        if noise.nside is not None and nside is not None and noise.nside != nside:
+            raise InvalidInputError(f"--hits has nside {noise.nside} but --nside is {nside}")
     if args.spectrum is not None:
         cl = simulate.read_spectrum_table(args.spectrum)
         if cl.size < lmax + 1:
@@ -174,28 +227,25 @@ def _run(args, created) -> int:
         simulate.write_spectrum_table(args.write_spectrum, cl, overwrite=args.overwrite,
                                       header={"source": source})
         print(f"wrote {args.write_spectrum} (ell 0..{lmax})")
-    if args.count == 0:
+    if args.write_noise_spectrum is not None:
+        nl = simulate.noise_spectrum(noise, lmax, nside)
+        knee = f", knee {args.noise_knee:g}, slope {args.noise_slope:g}" if args.noise_knee else ""
+        simulate.write_spectrum_table(args.write_noise_spectrum, nl, overwrite=args.overwrite,
+                                      header={"source": f"noise model: {args.noise_depth:g} uK-arcmin{knee}"
+                                              + (f", hits {args.hits}" if args.hits else ""),
+                                              "meaning": "noise spectrum N_l as observed (not beam-deconvolved)"})
+        print(f"wrote {args.write_noise_spectrum} (noise spectrum, ell 0..{lmax})")
+    if args.sims == 0:
         return 0
 
     if args.beam_fwhm is not None:
         beam, beam_text = args.beam_fwhm, f"Gaussian {args.beam_fwhm:g} arcmin"
-    elif args.beam_file is not None:
+    elif args.beam is not None:
         from cmbtools.spectrum.beams import read_beam
 
-        beam, beam_text = read_beam(args.beam_file, lmax=lmax), f"table {args.beam_file}"
+        beam, beam_text = read_beam(args.beam, lmax=lmax), f"table {args.beam}"
     else:
         beam, beam_text = None, "none"
-    noise = None
-    if args.noise_depth is not None:
-        hits = None
-        if args.hits is not None:
-            from cmbtools.maps import read_map
-
-            # hits are relative weights with no unit: read the values as they are
-            hits, _ = read_map(args.hits, unit="K", force=args.force)
-        noise = simulate.NoiseModel(args.noise_depth, hits=hits, ell_knee=args.knee_ell, alpha=args.knee_slope)
-        if noise.nside is not None and noise.nside != nside:
-            raise InvalidInputError(f"--hits has nside {noise.nside} but --nside is {nside}")
     dipole = None
     if args.dipole_uk is not None:
         amp, lon, lat = args.dipole_uk
@@ -205,30 +255,49 @@ def _run(args, created) -> int:
 
     from cmbtools.maps import write_map
 
-    print(f"simulating {args.count} map(s): nside {nside}, lmax {lmax}, seed {seed}, spectrum: {source}")
+    print(f"simulating {args.sims} map(s): nside {nside}, lmax {lmax}, seed {seed}, spectrum: {source}")
     print(f"  beam: {beam_text}; pixel window: {'no' if args.no_pixel_window else 'yes'}; "
-          f"noise: {'none' if noise is None else f'{args.noise_depth:g} uK-arcmin' + (' with hits' if noise.hits is not None else '') + (f', knee {args.knee_ell:g}, slope {args.knee_slope:g}' if args.knee_ell else '')}")
-    for i, path in zip(range(args.first_index, args.first_index + args.count), outputs):
+          f"noise: {'none' if noise is None else f'{args.noise_depth:g} uK-arcmin' + (' with hits' if noise.hits is not None else '') + (f', knee {args.noise_knee:g}, slope {args.noise_slope:g}' if args.noise_knee else '')}")
+    if args.splits:
+        print(f"  {args.splits} splits per simulation: the same sky, independent noise in each")
+    for i, group in zip(range(args.first_index, args.first_index + args.sims), outputs):
         rng = simulate.simulation_rng(seed, i)
         with warnings.catch_warnings():
             if args.force:  # the estimate above covers every map: warn once, not once per map
                 warnings.filterwarnings("ignore", message=".*would need about .* going ahead", category=CmbtoolsWarning)
-            m = simulate.gaussian_sky(cl, nside, lmax=lmax, beam=beam, pixel_window=not args.no_pixel_window,
-                                      monopole=monopole, dipole=dipole, rng=rng, nthreads=nthreads, force=args.force)
-            if noise is not None:
-                m = m + simulate.noise_map(noise, nside, rng=rng, nthreads=nthreads, force=args.force)
-        header = [
-            ("CMBSEED", seed, "master seed of the simulation set"),
-            ("CMBSIMID", i, "index of this simulation in the set"),
-            ("CMBLMAX", lmax, "largest multipole simulated"),
-            ("CMBBEAM", beam_text[:60], "beam"),
-            ("CMBPIXWN", not args.no_pixel_window, "pixel window applied"),
-            ("CMBNOISE", 0.0 if noise is None else float(args.noise_depth), "white-noise depth, uK-arcmin"),
-        ]
-        write_map(path, m, coord=args.coord, overwrite=args.overwrite, extra_header=header,
-                  dtype="float32" if args.float32 else None, partial=noise is not None and noise.hits is not None)
-        good = m[~missing_pixels(m)]  # the observed pixels
-        peak = float(np.max(np.abs(good), initial=0.0))
-        rms = peak * math.sqrt(float(np.mean((good / peak) ** 2))) if peak > 0 else 0.0  # no overflow in m**2
-        print(f"wrote {path}  (rms {rms * 1e6:.1f} uK)")
+            sky = simulate.gaussian_sky(cl, nside, lmax=lmax, beam=beam, pixel_window=not args.no_pixel_window,
+                                        monopole=monopole, dipole=dipole, rng=rng, nthreads=nthreads, force=args.force)
+            # split k's noise is the k-th draw after the sky: split 1 is the map a run without --splits writes
+            split_maps = []
+            for _path in group:
+                m = sky
+                if noise is not None:
+                    m = sky + simulate.noise_map(noise, nside, rng=rng, nthreads=nthreads, force=args.force)
+                split_maps.append(m)
+        for k, (path, m) in enumerate(zip(group, split_maps), start=1):
+            _write_one(path, m, i, k if args.splits else None, args, seed, lmax, beam_text, noise, write_map,
+                       missing_pixels)
     return 0
+
+
+def _write_one(path, m, i, split, args, seed, lmax, beam_text, noise, write_map, missing_pixels):
+    import math
+
+    import numpy as np
+
+    header = [
+        ("CMBSEED", seed, "master seed of the simulation set"),
+        ("CMBSIMID", i, "index of this simulation in the set"),
+        ("CMBLMAX", lmax, "largest multipole simulated"),
+        ("CMBBEAM", beam_text[:60], "beam"),
+        ("CMBPIXWN", not args.no_pixel_window, "pixel window applied"),
+        ("CMBNOISE", 0.0 if noise is None else float(args.noise_depth), "white-noise depth, uK-arcmin"),
+    ]
+    if split is not None:
+        header.append(("CMBSPLIT", split, "split number: same sky, independent noise"))
+    write_map(path, m, coord=args.coord, overwrite=args.overwrite, extra_header=header,
+              dtype="float32" if args.float32 else None, partial=noise is not None and noise.hits is not None)
+    good = m[~missing_pixels(m)]  # the observed pixels
+    peak = float(np.max(np.abs(good), initial=0.0))
+    rms = peak * math.sqrt(float(np.mean((good / peak) ** 2))) if peak > 0 else 0.0  # no overflow in m**2
+    print(f"wrote {path}  (rms {rms * 1e6:.1f} uK)")

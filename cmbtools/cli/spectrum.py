@@ -4,7 +4,11 @@ from __future__ import annotations
 
 import argparse
 
-from cmbtools.cli.common import add_force, add_overwrite, add_threads, positive_float, positive_int
+from cmbtools.cli.noise_bias import add_noise_options
+from cmbtools.cli.common import (
+    add_binning, add_force, add_overwrite, add_threads, binning_from_args, describe_binning, positive_float,
+    positive_int,
+)
 
 HELP = "measure the angular power spectrum of a masked map (pseudo-Cl with mode-coupling correction)"
 DESCRIPTION = """\
@@ -20,11 +24,14 @@ The table (CSV) records the inputs in '# key: value' header lines, then the
 columns ell_min,ell_max,ell_eff,cl,cl_err,dl,dl_err (uK^2 by default).
 
 Spectrum files are text tables with a header line naming the columns,
-separated by commas or spaces, '#' comments.  --theory: the spectrum-table
-format of cmbtools.simulate ('ell' and 'cl' or 'dl', unit as a column suffix
-such as cl_k2, dl_uk2 or in a '# unit: uK^2' comment; cl without a unit is
-K^2).  --noise-spectrum: 'ell' and 'nl' (or 'cl'), in K^2 unless a comment
-line says '# unit: uK^2'.
+separated by commas or spaces, '#' comments.  --theory: a spectrum table
+('ell' and 'cl' or 'dl', unit as a column suffix such as cl_k2, dl_uk2 or in
+a '# unit: uK^2' comment; cl without a unit is K^2), as 'cmbtools simulate
+--write-spectrum' writes.  Noise bias of an auto-spectrum: --noise-spectrum
+(a spectrum table of N_l as observed, e.g. from 'cmbtools simulate
+--write-noise-spectrum', or a noise bandpower table from
+--write-noise-spectrum), --noise-maps (noise-only maps) or --half-difference
+(two halves of the data whose mean is MAP).
 
 Before the mask transforms and the mode-coupling matrix are computed, their
 memory is estimated; the command stops if it exceeds what the machine has
@@ -34,6 +41,8 @@ examples:
   cmbtools spectrum tern_map.fits --mask tern_mask.fits --beam-fwhm 25 -o tern_spectrum.csv
   cmbtools spectrum half1.fits half2.fits --mask tern_mask.fits --beam-fwhm 25 \\
       --bin-width 20 -o cross.csv --figure cross.png
+  cmbtools spectrum tern_map.fits --mask tern_mask.fits --beam-fwhm 25 \\
+      --half-difference half1.fits half2.fits --write-noise-spectrum noise.csv -o auto.csv
 """
 
 
@@ -45,16 +54,7 @@ def add_arguments(parser):
     parser.add_argument("--mask2", metavar="MASK2", help="mask of MAP2 (default: the same as MAP's)")
     parser.add_argument("--lmax", type=positive_int, metavar="N",
                         help="largest multipole of the transforms (default 3*nside-1)")
-    bins = parser.add_argument_group("bins (one of; default --bin-width 16)")
-    choice = bins.add_mutually_exclusive_group()
-    choice.add_argument("--bin-width", type=positive_int, metavar="W", help="bins of W multipoles from --lmin to lmax")
-    choice.add_argument("--bin-edges", metavar="FILE_OR_LIST",
-                        help="bin edges: bin b is edge[b] <= ell < edge[b+1]; a comma-separated list or a file of numbers")
-    choice.add_argument("--log-bins", type=positive_int, metavar="N", help="about N bins evenly spaced in log(ell)")
-    bins.add_argument("--lmin", type=positive_int, default=2, metavar="L",
-                      help="first multipole of the first bin (default 2)")
-    bins.add_argument("--bin-weighting", choices=("dl", "cl"), default="dl",
-                      help="average D_l (default) or C_l inside each bin")
+    add_binning(parser)
     beam = parser.add_argument_group("beams (default: none)")
     b1 = beam.add_mutually_exclusive_group()
     b1.add_argument("--beam-fwhm", type=positive_float, metavar="ARCMIN", help="Gaussian beam of MAP, FWHM in arcmin")
@@ -66,8 +66,7 @@ def add_arguments(parser):
     parser.add_argument("--no-pixel-window", action="store_true", help="do not deconvolve the HEALPix pixel window")
     parser.add_argument("--keep-monopole-dipole", action="store_true",
                         help="do not fit and remove the monopole and dipole before the transform")
-    parser.add_argument("--noise-spectrum", metavar="FILE",
-                        help="noise spectrum N_l of MAP as observed (columns ell and nl or cl), subtracted from the auto-spectrum")
+    add_noise_options(parser)
     parser.add_argument("--fast-coupling", action="store_true",
                         help="approximate the mode-coupling matrix (faster at large lmax; exact when lmax > 2 nside, where the approximation fails)")
     parser.add_argument("--theory", metavar="FILE", help="theory spectrum to draw in the figure (columns ell and cl or dl)")
@@ -85,36 +84,35 @@ def add_arguments(parser):
 # ----------------------------------------------------------------------------- spectrum files
 
 
-def _bin_edges(text):
-    """The --bin-edges value: a file of edges (read by the library) or the edges themselves."""
-    import numpy as np
-    from pathlib import Path
-
-    from cmbtools.exceptions import InvalidInputError
-    from cmbtools.spectrum.binning import read_bin_edges
-
-    if Path(text).is_file():
-        return read_bin_edges(text)
-    try:
-        return np.array([float(c) for c in text.replace(",", " ").split()])
-    except ValueError:
-        raise InvalidInputError(
-            f"The bin edges from --bin-edges must be whole numbers separated by commas or spaces. Got {text!r}."
-        ) from None
-
-
 # ----------------------------------------------------------------------------- run
 
 
+def _file_identity(path):
+    """(device, inode, size, mtime) of a file, or None: tells whether a cache file was replaced."""
+    import os
+
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return (st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
+
+
 def run(args) -> int:
+    import contextlib
     import os
     from pathlib import Path
+
+    import numpy as np
 
     from cmbtools import maps
     from cmbtools import spectrum as sp
     from cmbtools._core.files import check_output_path, sha256_file
     from cmbtools._core.checks import check_same_nside
-    from cmbtools._core.tables import read_noise_spectrum_table, read_spectrum_table
+    from cmbtools._core.tables import read_spectrum_table
+    from cmbtools.cli.noise_bias import (
+        check_noise_options, noise_bias_table, read_noise_inputs, subtract_noise,
+    )
     from cmbtools.spectrum.one_call import drop_missing_pixels
     from cmbtools.exceptions import InvalidInputError
 
@@ -135,8 +133,13 @@ def run(args) -> int:
         check_output_path(args.operator_cache, overwrite=True)
     if args.map2 is None and (args.mask2 or args.beam2 or args.beam2_fwhm):
         raise InvalidInputError("--mask2, --beam2 and --beam2-fwhm need a second map (MAP2).")
-    if args.map2 is not None and args.noise_spectrum is not None:
-        raise InvalidInputError("--noise-spectrum applies to an auto-spectrum only; a cross-spectrum has no noise bias.")
+    check_noise_options(args)
+    if args.write_noise_spectrum is not None:
+        check_output_path(args.write_noise_spectrum, overwrite=args.overwrite)
+        key = os.path.abspath(args.write_noise_spectrum)
+        if key in seen:
+            raise InvalidInputError(f"The noise table and the {seen[key]} would both be written to "
+                                    f"{args.write_noise_spectrum!r}.")
 
     # 2. inputs
     m1, info1 = maps.read_map(args.map, force=args.force)
@@ -160,17 +163,16 @@ def run(args) -> int:
 
     beam1 = beam_of(args.beam_fwhm, args.beam)
     beam2 = beam_of(args.beam2_fwhm, args.beam2) if args.map2 is not None else None
-    noise_cl = None
-    if args.noise_spectrum is not None:
-        noise_cl = read_noise_spectrum_table(args.noise_spectrum)
+    noise_kind, noise_value = read_noise_inputs(args, nside, args.force)
     theory = read_spectrum_table(args.theory) if args.theory is not None else None
 
-    if args.bin_edges is not None:
-        binning = sp.Binning.from_edges(_bin_edges(args.bin_edges), weighting=args.bin_weighting)
-    elif args.log_bins is not None:
-        binning = sp.Binning.log_spaced(max(args.lmin, 1), lmax, args.log_bins, weighting=args.bin_weighting)
-    else:
-        binning = sp.Binning.uniform(args.lmin, lmax, args.bin_width or 16, weighting=args.bin_weighting)
+    binning = binning_from_args(args, lmax, float(np.mean(w1)))
+    if theory is not None and theory.size < binning.lmax + 1:
+        # the figure needs it: found now, before any work, not after the table is written
+        raise InvalidInputError(
+            f"The --theory table {args.theory!r} stops at ell={theory.size - 1}; the bins reach ell={binning.lmax} "
+            "(give a longer table, or a lower --lmax)."
+        )
 
     # missing pixels inside the mask: drop them from the mask (and say so), by the library's one rule
     w1 = drop_missing_pixels(m1, w1, args.map, "mask", stacklevel=2)
@@ -189,10 +191,20 @@ def run(args) -> int:
         force=args.force,
     )
     if args.operator_cache is not None:
+        cache_before = _file_identity(args.operator_cache)
         est = sp.SpectrumEstimator.load_or_build(args.operator_cache, w1, binning, **kwargs)
+        if cache_before is None:
+            cache_text = f"built and saved ({args.operator_cache})"
+        elif cache_before == _file_identity(args.operator_cache):
+            cache_text = f"reused ({args.operator_cache})"
+        else:
+            cache_text = f"rebuilt, the file held another estimator ({args.operator_cache})"
     else:
         est = sp.SpectrumEstimator(w1, binning, **kwargs)
-    bp = est.estimate(m1, m2, noise_cl=noise_cl)
+    if m2 is not None:
+        bp = est.estimate(m1, m2)
+    else:
+        bp, raw = subtract_noise(est, m1, noise_kind, noise_value, args)
 
     # 3. record the files
     meta = {"map": str(args.map), "map_sha256": info1.sha256, "mask_file": str(args.mask),
@@ -208,29 +220,48 @@ def run(args) -> int:
     if args.noise_spectrum is not None:
         meta["noise_spectrum_file"] = str(args.noise_spectrum)
         meta["noise_spectrum_file_sha256"] = sha256_file(args.noise_spectrum)
+    for i, path in enumerate(args.noise_maps or args.half_difference or (), start=1):
+        meta[f"noise_map{i}"] = str(path)
+        meta[f"noise_map{i}_sha256"] = sha256_file(path)
     if args.theory is not None:
         meta["theory_file"] = str(args.theory)
     bp = bp.with_metadata(**meta)
 
-    # 4. outputs
-    written = [bp.write_csv(args.output, overwrite=args.overwrite, unit=args.unit)]
-    if args.fits is not None:
-        written.append(bp.write_fits(args.fits, overwrite=args.overwrite, unit=args.unit))
-    if args.figure is not None:
-        written.append(bp.plot(args.figure, theory_cl=theory, overwrite=args.overwrite))
+    # 4. outputs: all of them or none (a failure removes the ones this run already wrote)
+    written = []
+    try:
+        written.append(bp.write_csv(args.output, overwrite=args.overwrite, unit=args.unit))
+        if args.fits is not None:
+            written.append(bp.write_fits(args.fits, overwrite=args.overwrite, unit=args.unit))
+        if args.figure is not None:
+            written.append(bp.plot(args.figure, theory_cl=theory, overwrite=args.overwrite))
+        if args.write_noise_spectrum is not None:
+            table = noise_bias_table(est, bp, raw, noise_kind, args)
+            written.append(table.write_csv(args.write_noise_spectrum, overwrite=args.overwrite, unit=args.unit))
+    except BaseException:
+        for p in written:
+            with contextlib.suppress(OSError):
+                os.unlink(p)
+        raise
 
     kind = "cross-spectrum" if m2 is not None else "auto-spectrum"
     what = f"{args.map} x {args.map2}" if m2 is not None else str(args.map)
     print(f"{kind} of {what}: nside {nside}, lmax {est.lmax}")
-    print(f"  sky fraction: f_sky {est.f_sky:.3f}, f_sky_eff {bp.metadata['f_sky_eff']:.3f}")
-    widths = sorted(set(binning.n_ell.tolist()))
-    width_text = f"{widths[0]}" if len(widths) == 1 else f"{widths[0]}-{widths[-1]}"
-    print(f"  {binning.n_bins} bins of {width_text} multipoles (ell {binning.lmin}-{binning.lmax}), "
-          f"{binning.weighting.upper()[0]}{binning.weighting[1:]} weighting")
+    if w2 is not None and args.mask2:
+        print(f"  sky fraction: mask 1 f_sky {est.f_sky:.3f}, mask 2 f_sky {float(np.mean(w2)):.3f}; "
+              f"cross-spectrum f_sky_eff {est.f_sky_eff_cross:.3f}")
+    else:
+        print(f"  sky fraction: f_sky {est.f_sky:.3f}, f_sky_eff {bp.metadata['f_sky_eff']:.3f}")
+    print(f"  {describe_binning(binning)}")
     print(f"  beam: {bp.metadata['beam']}; pixel window: {bp.metadata['pixel_window']}; "
           f"coupling: {bp.metadata['coupling']} (condition number {est.condition_number:.3g})")
-    if noise_cl is not None:
-        print(f"  noise bias subtracted: {args.noise_spectrum}")
+    if noise_kind is not None:
+        source = (args.noise_spectrum if args.noise_spectrum is not None else
+                  f"{len(args.noise_maps)} noise map(s)" if args.noise_maps else
+                  f"half-difference of {args.half_difference[0]} and {args.half_difference[1]}")
+        print(f"  noise bias subtracted: {source}")
+    if args.operator_cache is not None:
+        print(f"  operator cache: {cache_text}")
     for p in written:
         print(f"  wrote {p}")
     return 0

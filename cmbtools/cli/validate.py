@@ -4,7 +4,10 @@ from __future__ import annotations
 
 import argparse
 
-from cmbtools.cli.common import MAX_SIMULATIONS, MAX_THREADS, add_force, add_overwrite, bounded_int, positive_float, positive_int
+from cmbtools.cli.common import (
+    MAX_SIMULATIONS, MAX_THREADS, add_binning, add_force, add_overwrite, binning_from_args, bounded_int,
+    deprecated_alias, describe_binning, non_negative_int, positive_float, positive_int,
+)
 
 HELP = "check the spectrum estimator on simulated skies with your mask, beam and noise (Monte Carlo)"
 DESCRIPTION = """\
@@ -27,7 +30,7 @@ starts over).  Simulation i always uses the same random numbers for a given
 
 Outputs (by default in the run directory): summary.csv (one row per bin, a
 '# key: value' header with the settings), summary.json (the headline numbers
-nsims, max_abs_bias_sigma, median_error_ratio, ... and the per-bin columns)
+n_sims, max_abs_bias_sigma, median_error_ratio, ... and the per-bin columns)
 and validation.png (input against the mean recovered D_l with scatter bands,
 and the bias per bin).
 
@@ -48,12 +51,12 @@ def add_arguments(parser):
     parser.add_argument("mask", metavar="MASK", help="mask (weights in [0, 1]) as a HEALPix FITS file; sets nside")
     parser.add_argument("--lmax", type=positive_int, metavar="N",
                         help="largest multipole of the simulations, transforms and bins (default 3*nside-1)")
-    bins = parser.add_argument_group("bins")
-    bins.add_argument("--bin-width", type=positive_int, default=16, metavar="W",
-                      help="bins of W multipoles from --lmin to lmax (default 16)")
-    bins.add_argument("--lmin", type=positive_int, default=2, metavar="L", help="first multipole of the first bin (default 2)")
-    bins.add_argument("--bin-weighting", choices=("dl", "cl"), default="dl",
-                      help="average D_l (default) or C_l inside each bin")
+    parser.add_argument("--mask2", metavar="MASK2",
+                        help="mask of a second split: check the cross-spectrum of two splits (implies --cross)")
+    parser.add_argument("--cross", action="store_true",
+                        help="check the cross-spectrum of two splits of the same sky with independent noise "
+                             "(as 'cmbtools spectrum MAP MAP2' measures), instead of the auto-spectrum")
+    add_binning(parser)
     beam = parser.add_argument_group("beam (default: none)").add_mutually_exclusive_group()
     beam.add_argument("--beam-fwhm", type=positive_float, metavar="ARCMIN", help="Gaussian beam, FWHM in arcmin")
     beam.add_argument("--beam", metavar="FILE", help="beam table (columns ell,b_ell)")
@@ -73,7 +76,7 @@ def add_arguments(parser):
                         help="input sky spectrum table (columns ell and cl or dl; default: the built-in fiducial spectrum)")
     sims = parser.add_argument_group("simulations")
     sims.add_argument("--sims", type=bounded_int(MAX_SIMULATIONS), default=100, metavar="N", help="number of simulations (default 100)")
-    sims.add_argument("--seed", type=positive_int, metavar="S",
+    sims.add_argument("--seed", type=non_negative_int, metavar="S",
                       help="master seed (default: the one recorded in the run directory, else a fresh one, printed)")
     where = sims.add_mutually_exclusive_group()
     where.add_argument("--workers", type=bounded_int(MAX_THREADS), default=0, metavar="N",
@@ -89,7 +92,7 @@ def add_arguments(parser):
     sims.add_argument("--no-progress", action="store_true", help="no progress bar")
     out = parser.add_argument_group("outputs (default: in the run directory)")
     out.add_argument("--table", metavar="FILE.csv", help="per-bin table (default RUN_DIR/summary.csv)")
-    out.add_argument("--json", metavar="FILE.json", help="summary as JSON (default RUN_DIR/summary.json)")
+    out.add_argument("--json-file", metavar="FILE.json", help="summary as JSON (default RUN_DIR/summary.json)")
     out.add_argument("--figure", metavar="FIG.png", help="figure, PNG or PDF (default RUN_DIR/validation.png)")
     out.add_argument("--unit", choices=("uK", "K"), default="uK", help="unit of the table's spectra: uK^2 (default) or K^2")
     add_overwrite(parser)
@@ -131,9 +134,11 @@ def run(args) -> int:
     parent = run_dir.parent if str(run_dir.parent) else Path(".")
     if not parent.is_dir():
         raise OutputPathError(run_dir, f"directory {str(parent)!r} does not exist")
+    # the run directory (or, if it is to be made, its parent) must be writable: found now, not after the estimator
+    check_output_path(run_dir / "run.json" if run_dir.is_dir() else run_dir, overwrite=True)
     outputs = []
     seen = {}
-    for what, given, default in (("table", args.table, "summary.csv"), ("JSON summary", args.json, "summary.json"),
+    for what, given, default in (("table", args.table, "summary.csv"), ("JSON summary", args.json_file, "summary.json"),
                                  ("figure", args.figure, "validation.png")):
         # files inside the run directory belong to the run and are rewritten on every run
         path = Path(given) if given is not None else run_dir / default
@@ -187,9 +192,16 @@ def run(args) -> int:
         cl = fiducial_cl(lmax)
         spectrum_text = "built-in fiducial spectrum"
 
-    binning = sp.Binning.uniform(args.lmin, lmax, args.bin_width, weighting=args.bin_weighting)
+    cross = args.cross or args.mask2 is not None
+    mask2 = None
+    if args.mask2 is not None:
+        from cmbtools._core.checks import check_same_nside
+
+        mask2 = maps.read_mask(args.mask2, force=args.force)
+        check_same_nside(mask, mask2, args.mask, args.mask2)
+    binning = binning_from_args(args, lmax, float(np.mean(mask)))
     est = sp.SpectrumEstimator(
-        mask, binning, lmax=lmax, beam=beam, pixel_window=not args.no_pixel_window,
+        mask, binning, lmax=lmax, mask2=mask2, beam=beam, pixel_window=not args.no_pixel_window,
         remove_monopole_dipole=not args.keep_monopole_dipole, coupling="fast" if args.fast_coupling else "exact",
         force=args.force,
     )
@@ -207,7 +219,7 @@ def run(args) -> int:
         result = validate_estimator(
             est, cl, n_sims=args.sims, seed=args.seed, noise=noise, run_dir=run_dir, executor=client,
             workers=None if client is not None else n_workers, threads_per_worker=args.threads or None,
-            progress=False if args.no_progress else None, restart=args.restart, force=args.force,
+            progress=False if args.no_progress else None, restart=args.restart, force=args.force, cross=cross,
         )
     finally:
         if client is not None:
@@ -215,6 +227,8 @@ def run(args) -> int:
 
     # 4. outputs
     meta = dict(result.metadata)
+    if args.mask2 is not None:
+        meta.update({"mask2_file": str(args.mask2), "mask2_file_sha256": sha256_file(args.mask2)})
     meta.update({"mask_file": str(args.mask), "mask_file_sha256": sha256_file(args.mask), "input_spectrum": spectrum_text,
                  "beam": f"Gaussian FWHM {args.beam_fwhm:g} arcmin" if args.beam_fwhm is not None
                  else (f"table {args.beam}" if args.beam is not None else "none"),
@@ -244,8 +258,14 @@ def run(args) -> int:
     print(f"validated the spectrum estimator on {result.n_sims} simulations (seed {result.seed}) on {where_text}")
     if meta.get("n_resumed"):
         print(f"  resumed {meta['n_resumed']} finished simulations from {run_dir}; ran {ran}")
-    print(f"  nside {nside}, lmax {lmax}, {binning.n_bins} bins of {args.bin_width} multipoles from ell {args.lmin}; "
-          f"f_sky {est.f_sky:.3f}, f_sky_eff {est.f_sky_eff:.3f}")
+    if cross:
+        masks_text = (f"mask 1 f_sky {est.f_sky:.3f}, mask 2 f_sky {float(np.mean(mask2)):.3f}; "
+                      if mask2 is not None else f"f_sky {est.f_sky:.3f}, ")
+        sky_text = f"{masks_text}cross-spectrum of two splits, f_sky_eff {est.f_sky_eff_cross:.3f}"
+    else:
+        sky_text = f"f_sky {est.f_sky:.3f}, f_sky_eff {est.f_sky_eff:.3f}"
+    print(f"  nside {nside}, lmax {lmax}, {describe_binning(binning)}")
+    print(f"  sky fraction: {sky_text}")
     noise_text = "none" if noise is None else (
         f"{args.noise_depth:g} uK-arcmin" + (" shaped by the hits map" if args.hits else "")
         + (f", knee at ell {args.noise_knee:g} (slope {args.noise_slope:g})" if args.noise_knee else ""))

@@ -370,10 +370,13 @@ def _parse_table(p, hdul, field, ordering, memory_check):
         coord = normalize_coord(coord_raw) if coord_raw else None
     except InvalidInputError:
         coord = None
-    out[missing_pixels(out)] = UNSEEN
+    bad = missing_pixels(out)
+    # values stored in the file that are no number (a partial-sky file's unlisted pixels are not counted)
+    n_bad_values = int(np.count_nonzero(missing_pixels(values))) if is_partial else int(np.count_nonzero(bad))
+    out[bad] = UNSEEN
     facts = dict(
         path=str(p), nside=nside, ordering_in_file=ordering_in_file, unit_in_file=unit, coord=coord,
-        dtype_in_file=dtype_in_file, is_partial=is_partial, temptype=temptype,
+        dtype_in_file=dtype_in_file, is_partial=is_partial, temptype=temptype, n_bad_values=n_bad_values,
     )
     return out, facts
 
@@ -425,6 +428,7 @@ def read_map(path, *, field=0, unit=None, ordering=None, force=False):
     """
     m, facts = _read_table(path, field, ordering, _memory_check(force))
     temptype = facts.pop("temptype")
+    facts.pop("n_bad_values")
     if unit is not None:
         scale = unit_scale(unit, source="'unit' parameter")
     else:
@@ -457,8 +461,9 @@ def read_map(path, *, field=0, unit=None, ordering=None, force=False):
 def read_mask(path, *, field=0, ordering=None, force=False):
     """Read a mask (binary or weighted, values in [0, 1]) from a HEALPix FITS file.
 
-    Pixels missing from the file (UNSEEN, NaN or inf values, or pixels a
-    partial-sky file does not list) get weight 0.  Units are ignored.
+    Pixels missing from the file get weight 0: pixels a partial-sky file does
+    not list silently, stored values that are no number (UNSEEN, NaN or inf)
+    with a warning that gives their count.  Units are ignored.
 
     Parameters
     ----------
@@ -485,6 +490,14 @@ def read_mask(path, *, field=0, ordering=None, force=False):
         As for :func:`read_map`.
     """
     w, facts = _read_table(path, field, ordering, _memory_check(force))
+    n_stored = facts["n_bad_values"]
+    if n_stored > 0:
+        warnings.warn(
+            f"{facts['path']}: {n_stored} mask pixel{'s' if n_stored != 1 else ''} hold no number "
+            f"(NaN, inf or UNSEEN); they get weight 0",
+            CmbtoolsWarning,
+            stacklevel=2,
+        )
     w[missing_pixels(w)] = 0.0
     try:
         return check_mask(w, "mask")

@@ -67,6 +67,7 @@ asking for fewer uses the first ``n_sims``.  Nothing is ever pickled to disk.
 from __future__ import annotations
 
 import concurrent.futures as cf
+import contextlib
 import dataclasses
 import os
 import pickle
@@ -138,9 +139,18 @@ def _execute(job, index, seed) -> dict:
 _WORKER_JOB = None
 
 
-def _init_pool_worker(job_bytes, nthreads):
-    """ProcessPoolExecutor initializer: thread budget and the job, once per worker process."""
+def _init_pool_worker(job_bytes, nthreads, parent_pid):
+    """ProcessPoolExecutor initializer: thread budget and the job, once per worker process.
+
+    A worker leaves Ctrl-C to its parent (the terminal sends SIGINT to the whole
+    process group; the parent stops the run and reports it in one line) and
+    exits when its parent dies (see :func:`cmbtools.simulate.worker_processes.exit_with_parent`).
+    """
     global _WORKER_JOB
+    from cmbtools.simulate.worker_processes import exit_with_parent, ignore_interrupts
+
+    ignore_interrupts()
+    exit_with_parent(parent_pid)
     os.environ[_THREADS_ENV] = str(int(nthreads))
     _WORKER_JOB = pickle.loads(job_bytes)
 
@@ -242,9 +252,10 @@ def _run_local_pool(job, pending, seed, store, *, workers, threads_per_worker, m
             f"(a module-level function; no lambdas or local functions): {type(exc).__name__}: {exc}. "
             "Pass a thread pool as executor= to run unpicklable functions."
         ) from None
-    import multiprocessing
+    from cmbtools.simulate.worker_processes import dead_workers, main_module_needed, spawn_context
 
-    ctx = multiprocessing.get_context("spawn")
+    needs_main = main_module_needed(job_bytes)
+    ctx = spawn_context(import_main=needs_main)
     pending = sorted(pending)
     restarts = 0
     while pending:
@@ -252,20 +263,40 @@ def _run_local_pool(job, pending, seed, store, *, workers, threads_per_worker, m
             max_workers=max(1, min(workers, len(pending))),
             mp_context=ctx,
             initializer=_init_pool_worker,
-            initargs=(job_bytes, threads_per_worker),
+            initargs=(job_bytes, threads_per_worker, os.getpid()),
         )
         broken = None
+        n_before = len(store.done)
         try:
             futures = {pool.submit(_pool_task, i, seed): i for i in pending}
-            for fut in cf.as_completed(futures):
-                try:
-                    result = fut.result()
-                except cf.process.BrokenProcessPool as exc:
-                    broken = exc
-                    continue
-                store(futures[fut], result)
-        finally:
-            pool.shutdown(wait=True, cancel_futures=True)
+            waiting = set(futures)
+            while waiting:
+                # poll: a worker that dies while it starts can leave the pool waiting forever
+                done, waiting = cf.wait(waiting, timeout=0.5, return_when=cf.FIRST_COMPLETED)
+                for fut in done:
+                    try:
+                        result = fut.result()
+                    except cf.process.BrokenProcessPool as exc:
+                        broken = exc
+                        continue
+                    store(futures[fut], result)
+                if broken is None and waiting:
+                    dead = dead_workers(pool)
+                    if dead:
+                        broken = cf.process.BrokenProcessPool(dead)
+                if broken is not None:
+                    break
+            if broken is not None and needs_main and len(store.done) == n_before:
+                raise InvalidInputError(
+                    "The worker processes died while starting. They import the script that called "
+                    "run_simulations (its per-simulation function is defined there), so a script must call "
+                    "it under 'if __name__ == \"__main__\":', or pass "
+                    "executor=concurrent.futures.ThreadPoolExecutor()."
+                )
+        except BaseException:  # Ctrl-C, an error: the workers' current simulations are not waited for
+            _shutdown_pool(pool, True)
+            raise
+        _shutdown_pool(pool, broken is not None)
         pending = [i for i in pending if i not in store.done]
         if broken is not None and pending:
             restarts += 1
@@ -283,6 +314,23 @@ def _run_local_pool(job, pending, seed, store, *, workers, threads_per_worker, m
                 CmbtoolsWarning,
                 stacklevel=3,
             )
+
+
+def _shutdown_pool(pool, broken):
+    """Stop a local pool; a broken one (or an interrupted run) does not wait for its workers."""
+    processes = list((getattr(pool, "_processes", None) or {}).values())
+    interrupted = broken
+    try:
+        pool.shutdown(wait=not interrupted, cancel_futures=True)
+    except KeyboardInterrupt:  # a second Ctrl-C while waiting: stop at once
+        interrupted = True
+    if interrupted:
+        for proc in processes:
+            with contextlib.suppress(Exception):
+                proc.kill()
+        for proc in processes:
+            with contextlib.suppress(Exception):
+                proc.join(5)
 
 
 def _run_dask(client, job, pending, seed, store, *, max_restarts, n_sims):

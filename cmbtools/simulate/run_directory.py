@@ -133,6 +133,9 @@ def _prepare_run_dir(run_dir, *, input_hash, seed, n_sims, function_name, restar
         raise OutputPathError(run_dir, "the run directory is not writable")
     manifest_path = run_dir / MANIFEST_NAME
     records = _existing_records(run_dir)
+    if manifest_path.exists() and restart:
+        # a restart deletes the run whatever its manifest holds (even an unreadable one)
+        records = _delete_run(run_dir, records)
     if manifest_path.exists():
         manifest = _read_manifest(run_dir)
         if seed is None:

@@ -8,6 +8,7 @@ and summarises the runs in a :class:`~cmbtools.simulate.ValidationResult`;
 
 from __future__ import annotations
 
+import copy
 import dataclasses
 import math
 
@@ -34,6 +35,8 @@ class _ValidationSetup:
     dipole: object
     sky_filter: object
     record_pseudo: bool
+    cross: bool = False
+    sky_beam2: np.ndarray | None = None
 
 
 def _validation_memory(estimator, noise, with_dipole, with_filter) -> int:
@@ -74,8 +77,11 @@ def _simulate_and_estimate(index, rng, setup):
     # pixels that are have their full-sky values); a sky filter sees the whole sky
     rings = est._occupied_rings() if setup.sky_filter is None else None
     dip = None if setup.dipole is None else _dipole_vector(setup.dipole)
+    rng_sky2 = copy.deepcopy(rng) if setup.cross and setup.sky_beam2 is not None else None
     sky = _gaussian_sky(setup.cl, est.nside, lmax, _beam_factor(setup.sky_beam, lmax), False, float(setup.monopole),
                         dip, rng, None, rings=rings)
+    if setup.cross:
+        return _simulate_and_estimate_cross(sky, rng, rng_sky2, dip, setup, rings)
     if setup.sky_filter is not None:
         filtered = np.asarray(setup.sky_filter(sky), dtype=np.float64)
         if filtered.shape != sky.shape:
@@ -93,6 +99,33 @@ def _simulate_and_estimate(index, rng, setup):
         else:
             sky = sky + noise
     bp = est.estimate(sky, noise_cl=setup.noise_cl)
+    out["cl"] = bp.cl
+    out["cl_err"] = bp.cl_err
+    return out
+
+
+def _simulate_and_estimate_cross(sky, rng, rng_sky2, dip, setup, rings):
+    """The cross-spectrum of two splits: one sky (seen through each split's beam), independent noise in each.
+
+    The second split's sky repeats the first one's draws (a copy of the generator taken before them) with its
+    own beam; then the noise of split 1 and that of split 2 are drawn one after the other.
+    """
+    from cmbtools.simulate.noise import _noise_map
+    from cmbtools.simulate.skies import _beam_factor, _gaussian_sky
+
+    est = setup.estimator
+    lmax = est.lmax
+    sky2 = sky
+    if rng_sky2 is not None:
+        sky2 = _gaussian_sky(setup.cl, est.nside, lmax, _beam_factor(setup.sky_beam2, lmax), False,
+                             float(setup.monopole), dip, rng_sky2, None, rings=rings)
+    out = {}
+    if setup.record_pseudo:
+        out["pseudo_cl"] = est.pseudo_spectrum(sky, sky2)
+    if setup.noise is not None:
+        sky = sky + _noise_map(setup.noise, est.nside, 3 * est.nside - 1, rng, None, rings=rings)
+        sky2 = sky2 + _noise_map(setup.noise, est.nside, 3 * est.nside - 1, rng, None, rings=rings)
+    bp = est.estimate(sky, sky2)
     out["cl"] = bp.cl
     out["cl_err"] = bp.cl_err
     return out
@@ -117,6 +150,7 @@ def validate_estimator(
     restart=False,
     max_restarts=3,
     force=False,
+    cross=False,
 ) -> ValidationResult:
     """Check a spectrum estimator on simulated skies: bias, error bars and transfer per bin.
 
@@ -164,6 +198,13 @@ def validate_estimator(
         its measurement per worker, times the workers that run at once)
         exceeds what the machine has available: warn instead of raising
         :class:`~cmbtools.exceptions.MemoryLimitError`.
+    cross : bool, default=False
+        Check the cross-spectrum instead: each simulation makes two splits
+        of the same sky (each seen through its beam, ``beam`` and ``beam2``
+        of the estimator) with independent noise drawn from ``noise``, and
+        measures ``estimator.estimate(split1, split2)`` (masks ``mask`` and
+        ``mask2``), with no noise bias to subtract; the expectation is
+        ``estimator.expected_bandpowers(cl, cross=True)``.
 
     Returns
     -------
@@ -209,7 +250,10 @@ def validate_estimator(
                     f"The noise model's hits map has nside {noise_map_nside} but the estimator's mask has nside {nside}.",
                     noise_map_nside, nside,
                 )
-            uncovered = int(np.count_nonzero((np.asarray(estimator.mask) > 0) & ~(hits > 0)))
+            observed = np.asarray(estimator.mask) > 0
+            if cross:
+                observed |= np.asarray(getattr(estimator, "mask2", estimator.mask)) > 0
+            uncovered = int(np.count_nonzero(observed & ~(hits > 0)))
             if uncovered:
                 raise InvalidInputError(
                     f"The mask is non-zero in {uncovered} pixels that the noise model's hits map does not cover "
@@ -218,17 +262,28 @@ def validate_estimator(
         noise_cl = noise_spectrum(noise, lmax, nside)
     if sky_filter is not None and not callable(sky_filter):
         raise InvalidInputError(f"The 'sky_filter' parameter must be a callable or None. Got {sky_filter!r} instead.")
-    sky_beam = np.asarray(estimator.beam, dtype=np.float64)[: lmax + 1] * np.asarray(estimator.pixel_window, dtype=np.float64)[: lmax + 1]
+    if not isinstance(cross, (bool, np.bool_)):
+        raise InvalidInputError(f"The 'cross' parameter must be True or False. Got {cross!r} instead.")
+    pixwin = np.asarray(estimator.pixel_window, dtype=np.float64)[: lmax + 1]
+    sky_beam = np.asarray(estimator.beam, dtype=np.float64)[: lmax + 1] * pixwin
+    sky_beam2 = None
+    if cross:
+        if sky_filter is not None:
+            raise InvalidInputError("The 'sky_filter' parameter is not available with cross=True.")
+        b2 = np.asarray(getattr(estimator, "beam2", estimator.beam), dtype=np.float64)[: lmax + 1] * pixwin
+        sky_beam2 = None if np.array_equal(b2, sky_beam) else b2
+        noise_cl = None  # the noises of the two splits are independent: no bias
     setup = _ValidationSetup(
         estimator=estimator, cl=cl, sky_beam=sky_beam, noise=noise, noise_cl=noise_cl,
         monopole=float(monopole), dipole=None if dipole is None else dipole, sky_filter=sky_filter,
-        record_pseudo=bool(record_pseudo_spectra),
+        record_pseudo=bool(record_pseudo_spectra), cross=bool(cross), sky_beam2=sky_beam2,
     )
     sims = run_simulations(
         _simulate_and_estimate, n_sims, seed=seed, context=setup, run_dir=run_dir, executor=executor,
         workers=workers, threads_per_worker=threads_per_worker, progress=progress, restart=restart,
         max_restarts=max_restarts, description="validation",
-        memory_per_simulation=_validation_memory(estimator, noise, dipole is not None, sky_filter is not None),
+        memory_per_simulation=_validation_memory(estimator, noise, dipole is not None, sky_filter is not None)
+        * (2 if cross else 1),
         force=force,
     )
     binning = estimator.binning
@@ -237,7 +292,9 @@ def validate_estimator(
         "lmax": lmax,
         "n_bins": int(binning.n_bins),
         "f_sky": float(estimator.f_sky) if hasattr(estimator, "f_sky") else "",
-        "f_sky_eff": float(estimator.f_sky_eff) if hasattr(estimator, "f_sky_eff") else "",
+        "f_sky_eff": float(estimator.f_sky_eff_cross if cross else estimator.f_sky_eff)
+        if hasattr(estimator, "f_sky_eff") else "",
+        "spectrum_kind": "cross" if cross else "auto",
         "input_spectrum": cl_source,
         "noise": "none" if noise is None else repr(noise),
         "monopole_K": float(monopole),
@@ -248,7 +305,7 @@ def validate_estimator(
         "run_dir": "" if sims.run_dir is None else str(sims.run_dir),
     }
     return ValidationResult.from_samples(
-        sims["cl"], sims["cl_err"], estimator.expected_bandpowers(cl),
+        sims["cl"], sims["cl_err"], estimator.expected_bandpowers(cl, cross=bool(cross)),
         ell_min=binning.ell_min, ell_max=binning.ell_max, ell_eff=binning.ell_eff, dl_factor=binning.dl_factor,
         seed=sims.seed, mean_pseudo_cl=sims["pseudo_cl"].mean(axis=0) if record_pseudo_spectra else None,
         metadata=metadata,

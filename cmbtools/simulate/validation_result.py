@@ -210,7 +210,7 @@ class ValidationResult:
     def summary(self) -> dict:
         """The headline numbers, as a dict of plain Python numbers.
 
-        Keys: ``nsims``, ``n_bins``, ``seed``, ``max_abs_bias_sigma``,
+        Keys: ``n_sims``, ``n_bins``, ``seed``, ``max_abs_bias_sigma``,
         ``rms_bias_sigma``, ``median_error_ratio``, ``min_error_ratio``,
         ``max_error_ratio``, ``median_transfer``.
 
@@ -229,7 +229,7 @@ class ValidationResult:
             return v if math.isfinite(v) else None
 
         return {
-            "nsims": int(self.n_sims),
+            "n_sims": int(self.n_sims),
             "n_bins": self.n_bins,
             "seed": int(self.seed),
             "max_abs_bias_sigma": f(np.max(np.abs(self.bias_sigma))),
@@ -246,7 +246,7 @@ class ValidationResult:
             text = " ".join(str(value).splitlines())
             lines.append(f"# {key}: {text}")
         lines.append(f"# unit: {unit}^2 (columns expected, mean, std, analytic_error; C_l bandpowers)")
-        lines.append("# bias_sigma = (mean - expected) / (std / sqrt(nsims)); error_ratio = std / analytic_error;"
+        lines.append("# bias_sigma = (mean - expected) / (std / sqrt(n_sims)); error_ratio = std / analytic_error;"
                      " transfer = mean / expected")
         return lines
 

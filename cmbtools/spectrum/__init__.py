@@ -49,6 +49,8 @@ from cmbtools.spectrum.covariance import (
 from cmbtools.spectrum.estimator import MAX_CONDITION_NUMBER, SpectrumEstimator
 from cmbtools.spectrum.one_call import estimate_spectrum
 from cmbtools.spectrum.pixel_windows import pixel_window
+from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator, estimate_polarized_spectra
+from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
 
 __all__ = [
     "Binning",
@@ -67,4 +69,8 @@ __all__ = [
     "hartlap_factor",
     "write_covariance",
     "read_covariance",
+    "PolarizedSpectrumEstimator",
+    "PolarizedBandpowers",
+    "estimate_polarized_spectra",
+    "SPECTRA",
 ]

@@ -169,12 +169,18 @@ class Binning:
         return cls(e[:-1], e[1:] - 1, weighting)
 
     @classmethod
-    def log_spaced(cls, lmin: int, lmax: int, n_bins: int, *, weighting: str = "dl") -> "Binning":
-        """About ``n_bins`` bins evenly spaced in ``log(ell)`` from ``lmin`` to ``lmax``.
+    def log_spaced(cls, lmin: int, lmax: int, n_bins: int, *, min_width: int = 1,
+                   weighting: str = "dl") -> "Binning":
+        """About ``n_bins`` bins evenly spaced in ``log(ell)`` from ``lmin`` to ``lmax``, none narrower than ``min_width``.
 
-        Edges are rounded to whole multipoles; at low ``ell`` where rounding
-        would give empty bins, bins are one multipole wide, so the result may
-        have fewer than ``n_bins`` bins.
+        Edges are rounded to whole multipoles.  Where evenly spaced edges
+        would give bins narrower than ``min_width`` multipoles (at low
+        ``ell``), bins are ``min_width`` wide instead and the remaining range
+        is again split evenly in ``log(ell)``; a last bin narrower than
+        ``min_width`` joins the one before.  The result may therefore have
+        fewer than ``n_bins`` bins.  On a masked sky, multipoles closer than
+        about ``1 / f_sky`` are coupled, so bins narrower than that make the
+        binned coupling matrix ill-conditioned (common practice).
 
         Parameters
         ----------
@@ -184,18 +190,33 @@ class Binning:
             Last multipole (inclusive).
         n_bins : int
             Requested number of bins.
+        min_width : int, default=1
+            Smallest number of multipoles in a bin.
         weighting : {'dl', 'cl'}, default='dl'
+            Average D_l or C_l inside each bin.
+
+        Returns
+        -------
+        Binning
+            The bins.
         """
         lmin = check_int(lmin, "lmin", minimum=1)
         lmax = check_int(lmax, "lmax", minimum=1)
         if lmin > lmax:
             raise InvalidInputError(f"The first multipole lmin={lmin} is above the last, lmax={lmax}.")
         n_bins = check_int(n_bins, "n_bins", minimum=1, maximum=lmax - lmin + 1)
-        raw = np.geomspace(lmin, lmax + 1, n_bins + 1)
-        edges = np.unique(np.round(raw).astype(np.int64))
-        edges[0], edges[-1] = lmin, lmax + 1
-        edges = np.unique(edges)
-        return cls.from_edges(edges, weighting=weighting)
+        min_width = check_int(min_width, "min_width", minimum=1, maximum=lmax - lmin + 1)
+        stop = lmax + 1
+        edges = [lmin]
+        while edges[-1] < stop and len(edges) <= n_bins:
+            left = n_bins - (len(edges) - 1)  # bins still to place over [edges[-1], stop)
+            step = (stop / edges[-1]) ** (1.0 / left)
+            nxt = max(int(round(edges[-1] * step)), edges[-1] + min_width)
+            edges.append(min(nxt, stop))
+        edges[-1] = stop
+        if len(edges) > 2 and edges[-1] - edges[-2] < min_width:
+            del edges[-2]  # a narrow last bin joins the one before
+        return cls.from_edges(np.array(edges, dtype=np.int64), weighting=weighting)
 
     # ------------------------------------------------------------------ derived values
     @property

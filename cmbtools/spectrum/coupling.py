@@ -44,6 +44,8 @@ __all__ = [
     "coupling_matrix",
     "default_fast_settings",
     "fast_lmax_limit",
+    "coupling_matrices",
+    "pure_b_ratio",
 ]
 
 
@@ -187,3 +189,79 @@ def coupling_matrix(
     if scale_columns:
         m *= 2.0 * np.arange(lmax + 1, dtype=np.float64) + 1.0
     return m
+
+
+# ----------------------------------------------------------------------------- polarization
+# For weights w_a, w_b with cross-spectrum W_L, the pseudo-spectra of masked fields have expectations
+# (Kogut et al. 2003, ApJS 148, 161, eqs. 5-8 (from memory); the spin-2 extension of Hivon et al. 2002,
+# ApJ 567, 2, eq. A31), with L = l + l' + l'' and every sum over l'' (2 l'' + 1)/(4 pi) W_l'':
+# 
+#     M00_ll'  = (2l'+1) sum (l l' l''; 0 0 0)^2
+#     M02_ll'  = (2l'+1) sum (l l' l''; 0 0 0) (l l' l''; -2 2 0)
+#     M++_ll'  = (2l'+1) sum (l l' l''; -2 2 0)^2 (1 + (-1)^L) / 2
+#     M--_ll'  = (2l'+1) sum (l l' l''; -2 2 0)^2 (1 - (-1)^L) / 2
+# 
+#     <TT~> = M00 TT,  <TE~> = M02 TE,  <TB~> = M02 TB,
+#     <EE~> = M++ EE + M-- BB,  <BB~> = M-- EE + M++ BB,  <EB~> = M++ EB - M-- BE.
+# 
+# ducc0's kernel (optypes 0, 1, 2, 3) returns the sums without the (2l'+1) column factor (checked against
+# sympy's exact 3j symbols in the tests).
+
+#: ducc0 optype of each kernel kind; '+-' gives the ++ and -- pair.
+_OPTYPES = {"00": 0, "02": 1, "+-": 4}
+
+
+def coupling_matrices(requests, lmax: int, *, nthreads=None, lmax_columns=None):
+    """Several coupling matrices in one call of ducc0's kernel.
+
+    Parameters
+    ----------
+    requests : sequence of (kind, w_l)
+        ``kind`` is '00', '02' or '+-' (the latter gives the ++ and the -- matrices); ``w_l`` the
+        (cross-)power spectrum of the two weight maps from ell = 0 (values above what is needed ignored).
+    lmax : int
+        Rows ``l = 0..lmax``.
+    lmax_columns : int, optional
+        Columns ``l' = 0..lmax_columns`` (default lmax); the mask spectrum is needed to lmax + lmax_columns.
+
+    Returns
+    -------
+    list of ndarray of shape (lmax+1, lmax_columns+1)
+        One matrix per '00' / '02' request, two (++, --) per '+-' request, in order; columns scaled by
+        ``2 l' + 1``.
+    """
+    lc = lmax if lmax_columns is None else int(lmax_columns)
+    need = lmax + lc + 1
+    spec = np.zeros((len(requests), need))
+    optypes = []
+    n_out = 0
+    for i, (kind, w) in enumerate(requests):
+        w = np.asarray(w, dtype=np.float64)
+        n = min(need, w.size)
+        spec[i, :n] = w[:n]
+        optypes.append(_OPTYPES[kind])
+        n_out += 2 if kind == "+-" else 1
+    out = np.empty((n_out, lmax + 1, lc + 1), dtype=np.float64)
+    ducc0.misc.experimental.coupling_matrix_rect(spec, tuple(optypes), out, nthreads=resolve_nthreads(nthreads))
+    out *= (2.0 * np.arange(lc + 1) + 1.0)[None, None, :]
+    return list(out)
+
+
+def pure_b_ratio(lmax: int, lmax_columns=None) -> np.ndarray:
+    """``N_l / N_l'`` with ``N_l = sqrt((l-2)!/(l+2)!)`` (zero where l or l' < 2), shape (lmax+1, lmax_columns+1).
+
+    The purified B coefficients of a window w are ``sum_l'm' (N_l/N_l') B_l'm' int w Y*_lm Y_l'm'``
+    (Smith 2006, PRD 74, 083002; integrate the pure estimator by parts twice), so their couplings are the
+    spin-0 ones times this ratio (TB, B x E use the 0-0 / 0-2 kernels times the ratio, BB times its square).
+    """
+    lc = lmax if lmax_columns is None else int(lmax_columns)
+
+    def n_inv(l):
+        l = np.asarray(l, dtype=np.float64)
+        return np.sqrt(np.clip((l - 1) * l * (l + 1) * (l + 2), 0.0, None))  # 1 / N_l
+
+    rows = n_inv(np.arange(lmax + 1))
+    cols = n_inv(np.arange(lc + 1))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.where((rows[:, None] > 0) & (cols[None, :] > 0), cols[None, :] / rows[:, None], 0.0)
+    return r

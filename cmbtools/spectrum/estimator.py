@@ -156,10 +156,13 @@ class SpectrumEstimator:
     nside, lmax : int
     binning : Binning
     f_sky : float
-        Mean of the mask (weighted sky fraction).
+        Mean of mask 1 (its weighted sky fraction).
     f_sky_eff : float
-        ``w2**2 / w4`` of the mask (of ``sqrt(mask*mask2)`` for cross-spectra),
-        the sky fraction used by the Knox errors.
+        ``w2**2 / w4`` of mask 1: the sky fraction of the Knox errors of
+        auto-spectra of map 1.
+    f_sky_eff_cross : float
+        ``w2**2 / w4`` of ``sqrt(mask*mask2)``: the sky fraction of the Knox
+        errors of cross-spectra (equal to ``f_sky_eff`` with one mask).
     bandpower_windows : ndarray of shape (n_bins, lmax+1)
         ``E[cl] = bandpower_windows @ C_l`` for auto-spectra of map 1.
     condition_number : float
@@ -278,10 +281,12 @@ class SpectrumEstimator:
 
     @property
     def f_sky(self) -> float:
+        """Mean of mask 1 (its weighted sky fraction)."""
         return float(self._f_sky)
 
     @property
     def f_sky_eff(self) -> float:
+        """``w2**2/w4`` of mask 1: the sky fraction of auto-spectrum errors (cross-spectra: ``f_sky_eff_cross``)."""
         return float(self._f_sky_eff)
 
     @property

@@ -39,9 +39,9 @@ def test_maps_match_the_library_and_record_the_seed(tmp_path, table, capsys):
     path, cl = table
     out = tmp_path / "sims"
     common = ["simulate", "--spectrum", str(path), "--nside", "16", "--lmax", "40", "--beam-fwhm", "120",
-              "--noise-depth", "300", "--knee-ell", "10", "--knee-slope", "2", "--monopole-uk", "50",
+              "--noise-depth", "300", "--noise-knee", "10", "--noise-slope", "2", "--monopole-uk", "50",
               "--dipole-uk", "80", "120", "-30", "--seed", "5", "--prefix", "sky", "--threads", "1"]
-    assert main(common + ["--count", "2", "--output-dir", str(out)]) == 0
+    assert main(common + ["--sims", "2", "--output-dir", str(out)]) == 0
     printed = capsys.readouterr().out
     assert "seed 5" in printed and "wrote" in printed
     model = NoiseModel(300.0, ell_knee=10.0, alpha=2.0)
@@ -56,7 +56,7 @@ def test_maps_match_the_library_and_record_the_seed(tmp_path, table, capsys):
         assert header["CMBSEED"] == 5 and header["CMBSIMID"] == i and header["CMBLMAX"] == 40
     # a later call for map 1 alone gives the same file content
     again = tmp_path / "again"
-    assert main(common + ["--count", "1", "--first-index", "1", "--output-dir", str(again)]) == 0
+    assert main(common + ["--sims", "1", "--first-index", "1", "--output-dir", str(again)]) == 0
     np.testing.assert_array_equal(read_map(again / "sky_0001.fits")[0], read_map(out / "sky_0001.fits")[0])
 
 
@@ -93,9 +93,9 @@ def test_hits_map_gives_partial_sky_files(tmp_path, table):
 @pytest.mark.parametrize(
     "extra, message",
     [
-        (["--count", "1"], "--nside is required"),
-        (["--count", "0"], "nothing to do"),
-        (["--nside", "16", "--knee-ell", "20"], "together"),
+        (["--sims", "1"], "--nside is required"),
+        (["--sims", "0"], "nothing to do"),
+        (["--nside", "16", "--noise-knee", "20"], "together"),
         (["--nside", "16", "--hits", "x.fits"], "need --noise-depth"),
         (["--nside", "16", "--prefix", "a/b"], "--prefix"),
         (["--nside", "16", "--lmax", "100"], "'--lmax' parameter"),
@@ -120,7 +120,7 @@ def test_spectrum_longer_lmax_than_table(tmp_path, table, capsys):
 
 def test_write_fiducial_table_only(tmp_path, capsys):
     out = tmp_path / "fid.csv"
-    assert main(["simulate", "--write-spectrum", str(out), "--lmax", "300", "--count", "0"]) == 0
+    assert main(["simulate", "--write-spectrum", str(out), "--lmax", "300", "--sims", "0"]) == 0
     cl = read_spectrum_table(out)
     assert cl.shape == (301,) and cl[0] == 0 and cl[1] == 0
     ell = np.arange(301)

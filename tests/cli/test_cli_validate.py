@@ -52,8 +52,8 @@ def test_validate_writes_outputs_matches_the_library_and_resumes(files, capsys, 
         assert (run_dir / name).is_file()
     assert len(list(run_dir.glob("sim_*.npz"))) == 6
     doc = json.loads((run_dir / "summary.json").read_text())
-    assert doc["nsims"] == 6 and doc["seed"] == 4 and doc["settings"]["pixel_window"] == "yes"
-    assert set(doc) >= {"nsims", "max_abs_bias_sigma", "median_error_ratio"}
+    assert doc["n_sims"] == 6 and doc["seed"] == 4 and doc["settings"]["pixel_window"] == "yes"
+    assert set(doc) >= {"n_sims", "max_abs_bias_sigma", "median_error_ratio"}
 
     # the same run through the library, on threads: the same numbers
     est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 8), lmax=LMAX, beam=30.0)
@@ -75,7 +75,7 @@ def test_validate_writes_outputs_matches_the_library_and_resumes(files, capsys, 
     out = capsys.readouterr().out
     assert "resumed 6 finished simulations" in out and "ran 3" in out
     assert (run_dir / "sim_000003.npz").read_bytes() == before
-    assert json.loads((run_dir / "summary.json").read_text())["nsims"] == 9
+    assert json.loads((run_dir / "summary.json").read_text())["n_sims"] == 9
 
 
 def test_validate_refuses_another_run_unless_restarted(files, capsys, monkeypatch):

@@ -129,7 +129,11 @@ def test_unreadable_files_raise_input_file_error(files, key, fragment, reader):
 )
 def test_invalid_mask_files(files, key, fragment):
     with pytest.raises(InputFileError, match="is not a valid mask") as info:
-        maps.read_mask(files[key])
+        if key == "all_missing":
+            with pytest.warns(CmbtoolsWarning, match="hold no number"):
+                maps.read_mask(files[key])
+        else:
+            maps.read_mask(files[key])
     assert fragment in str(info.value)
 
 
@@ -140,7 +144,9 @@ def test_missing_values_in_a_mask_file_weigh_zero(tmp_path):
     w[:10] = np.nan
     w[10:20] = UNSEEN
     path = maps.write_map(tmp_path / "w.fits", w, unit=None)
-    got = maps.read_mask(path)
+    # never silent: the warning gives the count of pixels that hold no number
+    with pytest.warns(CmbtoolsWarning, match=r"20 mask pixels hold no number \(NaN, inf or UNSEEN\); they get weight 0"):
+        got = maps.read_mask(path)
     assert np.all(got[:20] == 0.0) and np.all(got[20:] == 1.0)
 
 
@@ -924,7 +930,7 @@ def test_simulate_cli_memory_refusal_and_force(tmp_path, capsys, monkeypatch):
     one_error_line(err, "cmbtools simulate: error: Simulating maps at nside 1048576 with lmax 3145727 would need about",
                    "TB but the machine has", "--force")
     assert not (tmp_path / "huge").exists()  # refused before the output directory is made
-    argv = ("simulate", "--nside", 16, "--seed", 3, "--count", 2, "--noise-depth", 30, "--dipole-uk", 100, 10, 20,
+    argv = ("simulate", "--nside", 16, "--seed", 3, "--sims", 2, "--noise-depth", 30, "--dipole-uk", 100, 10, 20,
             "--spectrum", _spectrum_file(tmp_path / "cl.csv"), "--no-pixel-window", "--threads", 1, "--output-dir")
     monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")
     code, out, err = run_cli(capsys, *argv, tmp_path / "forced")
@@ -972,7 +978,7 @@ def test_validate_cli_memory_refusal_and_force(tmp_path, capsys, monkeypatch):
     assert len(lines) == 2 and all(line.startswith("cmbtools: warning: ") and "going ahead" in line for line in lines)
     assert "Building the spectrum estimator at nside 16" in lines[0]
     assert "Running 2 simulations on 1 worker process" in lines[1]
-    assert json.loads((run_dir / "summary.json").read_text())["nsims"] == 2
+    assert json.loads((run_dir / "summary.json").read_text())["n_sims"] == 2
 
 
 # ----------------------------------------------------------------------------- paths, counts, inputs as outputs
@@ -996,7 +1002,7 @@ def test_file_names_with_a_nul_character_are_refused(tmp_path, capsys):
 @pytest.mark.parametrize(
     "argv",
     [
-        ["simulate", "--fiducial", "--nside", "16", "--count", "10000000", "--output-dir", "{tmp}/sims"],
+        ["simulate", "--fiducial", "--nside", "16", "--sims", "10000000", "--output-dir", "{tmp}/sims"],
         ["validate", "{mask}", "--sims", "2000000"],
         ["validate", "{mask}", "--threads", "100000"],
         ["spectrum", "{map}", "--mask", "{mask}", "--threads", "5000", "-o", "{tmp}/t.csv"],

@@ -135,7 +135,7 @@ def mask_argv(draw):
         "--holes": inputs("holes", "holes_bad", "missing", "map8"),
         "--hole-radius": st.one_of(st.sampled_from(["0.5", "2", "5"]), _NUMBER),
         "--from-map": inputs("hits8", "map8", "map16", "allmissing", "text", "missing"),
-        "--map-field": st.sampled_from(["0", "1", "-1", "x"]),
+        "--field": st.sampled_from(["0", "1", "-1", "x"]),
         "--threshold": st.one_of(st.sampled_from(["5", "0", "10.5", "-1e-4"]), _NUMBER),
         "--keep-where": st.sampled_from(["below", "above", "sideways"]),
         "--apodize": st.sampled_from(["cosine", "gaussian", "square"]),
@@ -166,7 +166,7 @@ def test_mask_command_exits_0_or_2(argv):
         # a success wrote a valid mask where it said
         target = argv[argv.index("-o") + 1]
         w = maps.read_mask(target)
-        assert f"written         {target}" in out
+        assert f"wrote           {target}" in out
         assert abs(float(out.split("f_sky")[1].split()[0]) - w.mean()) < 1e-6
 
 

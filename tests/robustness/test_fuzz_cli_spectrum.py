@@ -319,16 +319,17 @@ def simulate_argv(draw):
         "--nside": nside,
         "--lmax": lmax,
         "--beam-fwhm": number(0.1, 600.0),
-        "--beam-file": inputs("beam", "beam_short", "beam_bad", "missing", "map16"),
+        "--beam": inputs("beam", "beam_short", "beam_bad", "missing", "map16"),
         "--no-pixel-window": st.none(),
         "--monopole-uk": number(-1e3, 1e3, st.sampled_from(["1e300", "-1e300", "1e30", "-1e-300"])),
         "--dipole-uk": st.tuples(number(0, 5e3), number(-400, 400), number(-90, 90, st.sampled_from(["90", "-90"]))),
         "--noise-depth": number(0.1, 500.0),
         "--hits": inputs("hits16", "map16", "mask16", "map32", "text", "missing"),
-        "--knee-ell": number(1.0, 200.0),
-        "--knee-slope": number(0.5, 5.0),
+        "--noise-knee": number(1.0, 200.0),
+        "--noise-slope": number(0.5, 5.0),
+        "--splits": st.one_of(st.sampled_from(["1", "2", "3"]), _BAD_INT),
         "--seed": st.one_of(st.integers(0, 2**64).map(str), _BAD_INT),
-        "--count": st.one_of(st.sampled_from(["0", "1", "2", "3"]), _BAD_INT),
+        "--sims": st.one_of(st.sampled_from(["0", "1", "2", "3"]), _BAD_INT),
         "--first-index": st.one_of(st.sampled_from(["0", "5", "9999", str(10**18)]), _BAD_INT),
         "--output-dir": st.one_of(st.builds(lambda: str(_DIR / f"sims{next(_COUNTER)}")),
                                   st.sampled_from([str(_DIR / "no" / "such" / "dir"), INPUTS["map16"], "/proc/x",
@@ -408,7 +409,7 @@ def validate_argv(draw):
                                st.sampled_from([_OTHER_RUN, INPUTS["map16"], str(_DIR / "no" / "such" / "run")])),
         "--restart": st.none(),
         "--table": output_paths(".csv"),
-        "--json": output_paths(".json"),
+        "--json-file": output_paths(".json"),
         "--figure": output_paths(".png"),
         "--unit": st.sampled_from(["uK", "K", "nK"]),
         "--overwrite": st.none(),
@@ -431,12 +432,12 @@ def test_validate_command_exits_0_or_2(argv):
     check_cli_outcome(argv, code, out, err)
     if code == 0 and "--help" not in argv:
         assert out.startswith("validated the spectrum estimator on ")
-        json_path = argv[argv.index("--json") + 1] if "--json" in argv else None
+        json_path = argv[argv.index("--json-file") + 1] if "--json-file" in argv else None
         if json_path is None:
             run_dir = argv[argv.index("--run-dir") + 1] if "--run-dir" in argv else "validation_run"
             json_path = Path(run_dir, "summary.json")
         doc = json.loads(Path(_DIR, json_path).read_text())
-        assert doc["nsims"] >= 2 and doc["n_bins"] >= 1
+        assert doc["n_sims"] >= 2 and doc["n_bins"] >= 1
 
 
 # ---------------------------------------------------------------- legal but extreme numbers
@@ -444,7 +445,7 @@ def test_validate_command_exits_0_or_2(argv):
 _NUMERIC = {
     "spectrum": {"--beam-fwhm": (0.1, 600.0), "--beam2-fwhm": (0.1, 600.0)},
     "simulate": {"--beam-fwhm": (0.1, 600.0), "--monopole-uk": (-1e3, 1e3), "--noise-depth": (0.1, 500.0),
-                 "--knee-ell": (1.0, 200.0), "--knee-slope": (0.5, 5.0), "--dipole-uk": (0.0, 5e3)},
+                 "--noise-knee": (1.0, 200.0), "--noise-slope": (0.5, 5.0), "--dipole-uk": (0.0, 5e3)},
     "validate": {"--beam-fwhm": (0.1, 600.0), "--noise-depth": (0.1, 500.0), "--noise-knee": (1.0, 100.0),
                  "--noise-slope": (0.5, 4.0)},
 }
@@ -468,11 +469,9 @@ def extreme_argv(draw, command):
         value = draw(st.one_of(_small_float(lo, hi), _HUGE, _HUGE.map(lambda v: "-" + v) if lo < 0 else _HUGE))
         argv += [opt, value] + (["10", "20"] if opt == "--dipole-uk" else [])
     # the noise options need one another
-    if command == "simulate" and ("--knee-ell" in argv) != ("--knee-slope" in argv):
-        argv += ["--knee-slope", "2"] if "--knee-ell" in argv else ["--knee-ell", "50"]
-    if command == "validate" and ("--noise-knee" in argv) != ("--noise-slope" in argv):
+    if ("--noise-knee" in argv) != ("--noise-slope" in argv):
         argv += ["--noise-slope", "2"] if "--noise-knee" in argv else ["--noise-knee", "50"]
-    for knee in ("--knee-ell", "--noise-knee"):
+    for knee in ("--noise-knee",):
         if knee in argv and "--noise-depth" not in argv:
             argv += ["--noise-depth", "30"]
     if command == "simulate" and draw(st.booleans()):
@@ -493,7 +492,7 @@ def test_extreme_but_legal_numbers_exit_0_or_2(case):
 
 _TOKENS = st.one_of(
     st.sampled_from(["spectrum", "simulate", "validate", "--help", "--mask", "-o", "--nside", "16", "8", "2", "0",
-                     "--count", "--sims", "--lmax", "--seed", "--output-dir", "--run-dir", "--write-spectrum",
+                     "--sims", "--lmax", "--seed", "--output-dir", "--run-dir", "--write-spectrum",
                      "--spectrum", "--beam", "--noise-depth", "--overwrite", "--no-progress", "--fiducial",
                      INPUTS["map16"], INPUTS["mask16"], INPUTS["cl"], INPUTS["beam"], "--", "-"]),
     _ANY_TEXT.filter(lambda t: _at_most(t, 16)),  # no "--count 99999" from random text

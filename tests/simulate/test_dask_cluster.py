@@ -93,6 +93,6 @@ def test_cli_validate_on_the_cluster(client, tmp_path, capsys):
     assert main(common + ["--workers", "2", "--run-dir", str(tmp_path / "local")]) == 0
     on_dask = json.loads((tmp_path / "dask" / "summary.json").read_text())
     local = json.loads((tmp_path / "local" / "summary.json").read_text())
-    assert on_dask["nsims"] == local["nsims"] == 5
+    assert on_dask["n_sims"] == local["n_sims"] == 5
     np.testing.assert_allclose(on_dask["bins"]["mean"], local["bins"]["mean"], rtol=1e-12)
     assert on_dask["max_abs_bias_sigma"] == pytest.approx(local["max_abs_bias_sigma"], rel=1e-9)

@@ -159,7 +159,7 @@ def test_statistics_are_the_textbook_estimators():
     # D_l factor defaults to l(l+1)/2pi at ell_eff (common practice)
     np.testing.assert_allclose(r.dl_factor, np.array([5.5, 13.5, 21.5, 29.5]) * [6.5, 14.5, 22.5, 30.5] / (2 * np.pi))
     s = r.summary()
-    assert s["nsims"] == 50
+    assert s["n_sims"] == 50
     assert s["max_abs_bias_sigma"] == pytest.approx(np.max(np.abs(t)), rel=1e-12)
     assert s["median_error_ratio"] == pytest.approx(np.median(r.std / 0.8), rel=1e-12)
 
@@ -520,7 +520,7 @@ def test_outputs_table_json_and_figure(tmp_path, small_estimator, one_thread):
     table = r.write_csv(tmp_path / "summary.csv")
     lines = table.read_text().splitlines()
     header = [ln for ln in lines if ln.startswith("#")]
-    assert any(ln == "# nsims: 8" for ln in header) and any(ln.startswith("# unit: uK^2") for ln in header)
+    assert any(ln == "# n_sims: 8" for ln in header) and any(ln.startswith("# unit: uK^2") for ln in header)
     body = [ln for ln in lines if not ln.startswith("#")]
     assert body[0] == "ell_min,ell_max,ell_eff,expected,mean,std,analytic_error,bias_sigma,error_ratio,transfer"
     data = np.loadtxt(table, delimiter=",", comments="#", skiprows=1 + len(header), ndmin=2)
@@ -528,7 +528,7 @@ def test_outputs_table_json_and_figure(tmp_path, small_estimator, one_thread):
     np.testing.assert_allclose(data[:, 4], r.mean * 1e12, rtol=1e-9)  # K^2 -> uK^2
     np.testing.assert_allclose(data[:, 7], r.bias_sigma, rtol=1e-9)
     doc = json.loads(r.write_json(tmp_path / "summary.json").read_text())
-    for key in ("nsims", "max_abs_bias_sigma", "median_error_ratio"):
+    for key in ("n_sims", "max_abs_bias_sigma", "median_error_ratio"):
         assert doc[key] == pytest.approx(r.summary()[key])
     assert doc["bins"]["ell_max"] == [int(v) for v in r.ell_max] and doc["settings"]["nside"] == 16
     fig = r.plot(tmp_path / "validation.png")

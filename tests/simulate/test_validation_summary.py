@@ -59,7 +59,7 @@ def test_summary_fields_match_an_independent_computation_from_the_records(run, t
     min_ratio = min(ratios)
 
     summary = result.summary()
-    assert summary["nsims"] == N_SIMS and summary["n_bins"] == samples.shape[1]
+    assert summary["n_sims"] == N_SIMS and summary["n_bins"] == samples.shape[1]
     # agreement to rounding (different summation orders): 1e-10 relative
     assert summary["rms_bias_sigma"] == pytest.approx(rms_bias, rel=1e-10)
     assert summary["min_error_ratio"] == pytest.approx(min_ratio, rel=1e-10)

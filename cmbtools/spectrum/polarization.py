@@ -1,0 +1,1003 @@
+"""Polarized pseudo-spectra with MASTER correction: TT, TE, TB, EE, EB, BB bandpowers of I, Q, U maps.
+
+:class:`PolarizedSpectrumEstimator` is the polarized counterpart of the temperature estimator: its
+constructor does the expensive work once (the masks' spectra up to ``2 lmax``, the spin-0 and spin-2
+coupling matrices, their binned form with the beams, pixel windows and transfer functions, and the
+inverse of the whole coupled system); :meth:`PolarizedSpectrumEstimator.estimate` then costs one spin-0
+and one spin-2 transform per map (two more with B-mode purification).
+
+The coupled system (Kogut et al. 2003, ApJS 148, 161; Hivon et al. 2002, ApJ 567, 2, eq. A31 extended to
+spin 2; the kernels are listed in the coupling module) is, for the pseudo-spectra ``X~`` of the masked
+maps and the sky spectra ``X`` times ``F^X_l = B^a_l B^b_l p^a_l p^b_l T^X_l``::
+
+    TT~ = M00 TT     TE~ = M02 TE     TB~ = M02 TB
+    EE~ = M++ EE + M-- BB      BB~ = M-- EE + M++ BB      EB~ = (M++ - M--) EB
+
+With B-mode purification (Smith 2006, PRD 74, 083002) the B coefficients are the pure ones and the rows
+involving B become ``TB~ = R.M00 TB``, ``EB~ = R.M02 EB``, ``BB~ = R^2.M00 BB`` with
+``R_ll' = N_l / N_l'`` (see :func:`pure_b_ratio`): no E leaks into B.  Binned with the averaging
+operator ``P`` and the piecewise-flat model ``Q``, the system is a square matrix of
+``n_spectra x n_bins`` rows whose inverse gives the bandpowers; the EE/BB block is solved jointly, which
+removes the E/B mixing of the mask on average.
+
+For a cross-spectrum of maps a and b the estimator measures T_a E_b and E_a T_b (and T_a B_b, B_a T_b)
+separately, each with its own masks and beams, and reports their mean as TE (TB); EB is the mean of
+E_a B_b and B_a E_b, which is what the mask couples without mixing in the anti-symmetric part.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import warnings
+
+import numpy as np
+
+from cmbtools._core import files as _io
+from cmbtools._core import sht as _sht
+from cmbtools._core.checks import (
+    as_map, check_cl, check_lmax, check_mask, check_positive, check_same_nside, missing_pixels,
+    nside_from_npix, resolve_nthreads,
+)
+from cmbtools._version import __version__
+from cmbtools.exceptions import CmbtoolsWarning, IllConditionedError, InvalidInputError
+from cmbtools.spectrum import coupling as coupling_pol
+from cmbtools.spectrum import purification
+from cmbtools.spectrum.binning import Binning
+from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
+from cmbtools.spectrum.errors import _reduce_cols, _reduce_rows
+from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, _beam_array, _transfer_array
+
+__all__ = ["PolarizedSpectrumEstimator", "estimate_polarized_spectra"]
+
+
+#: The spectra measured for a pair of maps a, b ('ET' is E_a x T_b, 'BT' is B_a x T_b); the sky spectrum
+#: each one estimates, and the two fields (index 0..2 for T, E, B of map a and of map b).
+_COMPONENTS_AUTO = ("TT", "TE", "TB", "EE", "EB", "BB")
+_COMPONENTS_CROSS = ("TT", "TE", "ET", "TB", "BT", "EE", "EB", "BB")
+_SKY = {"TT": "TT", "TE": "TE", "ET": "TE", "TB": "TB", "BT": "TB", "EE": "EE", "EB": "EB", "BB": "BB"}
+_FIELD = {"T": 0, "E": 1, "B": 2}
+_LARGEST_MAP_VALUE = 1e100
+
+
+def _pixel_windows(pixel_window, nside, lmax, nthreads):
+    """(p^T_l, p^P_l, description) from True/False or a table (used for T and P alike)."""
+    if pixel_window is True:
+        from cmbtools.spectrum.pixel_windows import pixel_window as _pw
+
+        pt = np.asarray(_pw(nside, lmax, nthreads=nthreads), dtype=np.float64)[: lmax + 1].copy()
+        try:  # the polarization window from its definition, when the maps side provides it
+            from cmbtools.spectrum.pixel_windows import polarization_pixel_window as _ppw
+        except ImportError:
+            pp, desc = pt.copy(), f"healpix nside={nside} (temperature window for T and P)"
+        else:
+            pp = np.asarray(_ppw(nside, lmax, nthreads=nthreads), dtype=np.float64)[: lmax + 1].copy()
+            desc = f"healpix nside={nside} (T and P)"
+        return pt, pp, desc
+    if pixel_window is False or pixel_window is None:
+        return np.ones(lmax + 1), np.ones(lmax + 1), "none"
+    if isinstance(pixel_window, (tuple, list)) and len(pixel_window) == 2:
+        pt = check_cl(pixel_window[0], "pixel_window[0]", lmax=lmax, allow_negative=True)[: lmax + 1].copy()
+        pp = check_cl(pixel_window[1], "pixel_window[1]", lmax=lmax, allow_negative=True)[: lmax + 1].copy()
+        return pt, pp, f"tables sha256={_io.sha256_arrays(pt, pp)[:16]}"
+    pt = check_cl(pixel_window, "pixel_window", lmax=lmax, allow_negative=True)[: lmax + 1].copy()
+    return pt, pt.copy(), f"table sha256={_io.sha256_arrays(pt)[:16]}"
+
+
+def _pol_beam_array(beam, name, table=None, description=None, lmax=None):
+    """B^P_l: for a Gaussian FWHM the spin-2 Gaussian beam (Challinor et al. 2000, PRD 62, 123002:
+    ``exp(-(l(l+1) - 4) sigma^2 / 2)``); a table is used as given (``table``: already checked)."""
+    if beam is None or np.ndim(beam) != 0:
+        if table is not None:
+            return table, description
+        return _beam_array(beam, lmax, name)
+    n = table.size - 1 if table is not None else lmax
+    fwhm = check_positive(beam, f"{name} (FWHM in arcmin)", allow_zero=True)
+    try:
+        from cmbtools.spectrum.beams import gaussian_polarized_beam
+    except ImportError:  # the spin-2 form written out (the maps side adds it to the beams module)
+        ell = np.arange(n + 1, dtype=np.float64)
+        sigma = np.radians(fwhm / 60.0) / np.sqrt(8.0 * np.log(2.0))
+        b = np.where(ell >= 2, np.exp(-0.5 * (ell * (ell + 1.0) - 4.0) * sigma**2), 0.0)
+    else:
+        b = np.asarray(gaussian_polarized_beam(fwhm, n), dtype=np.float64)[: n + 1]
+    return b, f"gaussian spin-2 fwhm_arcmin={fwhm:g}"
+
+
+def _transfers(transfer, lmax):
+    """Per-spectrum transfer functions T^X_l (dict of the six spectra) and a description."""
+    out = {s: np.ones(lmax + 1) for s in SPECTRA}
+    if transfer is None:
+        return out, "none"
+    if not isinstance(transfer, dict):
+        t, d = _transfer_array(transfer, lmax, "transfer")
+        return {s: t.copy() for s in SPECTRA}, d
+    unknown = sorted(set(transfer) - set(SPECTRA))
+    if unknown:
+        raise InvalidInputError(
+            f"The 'transfer' parameter has unknown spectra {unknown}; the keys must be among {', '.join(SPECTRA)}."
+        )
+    parts = []
+    for s, t in transfer.items():
+        out[s], d = _transfer_array(t, lmax, f"transfer[{s!r}]")
+        parts.append(f"{s} {d}")
+    return out, "; ".join(parts)
+
+
+#: Components solved together (the EE/BB block); every other component is decoupled alone.
+_GROUPS_AUTO = (("TT",), ("TE",), ("TB",), ("EE", "BB"), ("EB",))
+_GROUPS_CROSS = (("TT",), ("TE",), ("ET",), ("TB",), ("BT",), ("EE", "BB"), ("EB",))
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class _Pair:
+    """The binned operator of one pair of maps (a, b)."""
+
+    components: tuple
+    ainv: np.ndarray  # (n_comp * n_bins, n_comp * n_bins)
+    pmf: dict  # component -> list of (column component, (n_bins, lmax+1) P M F)
+    pm: dict  # component -> list of (column component, (n_bins, lmax+1) P M), for the noise bias
+    condition_number: float
+
+
+class PolarizedSpectrumEstimator:
+    r"""Masked-sky TT, TE, TB, EE, EB, BB bandpowers of I, Q, U maps (pseudo-Cl with MASTER), built once.
+
+    Parameters
+    ----------
+    mask : ndarray of shape (12*nside**2,)
+        Weights in [0, 1] of the temperature map (I), RING ordering.
+    binning : Binning
+        The bins of the bandpowers (all within ``2..lmax``), the same for the six spectra.
+    pol_mask : ndarray of shape (12*nside**2,), optional
+        Weights of the polarization maps (Q, U); default ``mask``.  With ``purify_b`` it must be
+        apodized (smooth to its second derivative; a cosine taper of a few degrees is common practice).
+    lmax : int, optional
+        Largest multipole of the transforms and couplings; default ``3 nside - 1``.
+    mask2, pol_mask2 : ndarray, optional
+        Weights of the second map of cross-spectra; default ``mask`` and (``pol_mask`` if given, else
+        ``mask2``).
+    beam, pol_beam, beam2, pol_beam2 : None, float or ndarray, optional
+        Beams ``B_l`` of the temperature and polarization maps of map 1 and map 2: a Gaussian FWHM in
+        arcmin or a table.  ``pol_beam=None`` means the same as ``beam``; ``beam2``/``pol_beam2=None`` the
+        same as map 1's.
+    pixel_window : bool, ndarray or (ndarray, ndarray), default=True
+        Deconvolve the HEALPix pixel windows (computed by cmbtools: the temperature one for T, the
+        polarization one for E and B), one table for both, a (T, P) pair of tables, or ``False``.
+    transfer : ndarray or dict, optional
+        Transfer function ``T_l`` of the power spectra: one table for all six, or a dict keyed by spectrum
+        ('TT', 'TE', 'TB', 'EE', 'EB', 'BB'; missing keys mean 1).
+    remove_monopole_dipole : bool, default=True
+        Fit and remove the monopole and dipole of the temperature map on its masked sky.
+    purify_b : bool, default=False
+        Measure B with the pure-B estimator (Smith 2006): no E-to-B leakage from the mask, at the price of
+        one spin-1 and one spin-0 transform more per map.  Accurate up to ``lmax = 2 nside``; above, the
+        pixel grid's quadrature leaks E into the pure B (a warning says so).
+    nthreads : int, optional
+        Threads of the transforms and of the coupling kernel.
+    max_condition_number : float, default=1e3
+        Largest accepted condition number of the binned coupled system (beams etc. divided out).
+
+    Attributes
+    ----------
+    nside, lmax : int
+    binning : Binning
+    f_sky, f_sky_eff, pol_f_sky, pol_f_sky_eff : float
+        Moments of the temperature and polarization masks of map 1.
+    condition_number : float
+        Of the binned coupled system of map 1's auto-spectra.
+
+    Notes
+    -----
+    Errors: the Gaussian covariance of the binned pseudo-spectra in the narrow-kernel approximation
+    (Efstathiou 2004, MNRAS 349, 603; for several fields and masks as in Garcia-Garcia et al. 2019,
+    JCAP 10, 043), ``Cov(X~Y, Z~W)_ll' = O^XZ O^YW Xi(w_x w_z, w_y w_w)_ll' + O^XW O^YZ Xi(w_x w_w, w_y w_z)_ll'``
+    with ``Xi(u, v) = M00[u x v] / (2 l' + 1)`` (spin-0 kernels for E and B too) and the observed spectra
+    ``O`` taken from the binned pseudo-spectra, propagated through the inverse coupled system.  On the
+    full sky it is the Knox formula.  The pseudo-spectra include the E power that the mask leaks into B,
+    so the BB errors of the standard estimator carry the leakage's variance; it is spread over the taper
+    region rather than the whole patch, which this approximation does not model: validate BB errors
+    with simulations (``purify_b`` removes the leakage).
+    """
+
+    def __init__(
+        self,
+        mask,
+        binning,
+        *,
+        pol_mask=None,
+        lmax=None,
+        mask2=None,
+        pol_mask2=None,
+        beam=None,
+        pol_beam=None,
+        beam2=None,
+        pol_beam2=None,
+        pixel_window=True,
+        transfer=None,
+        remove_monopole_dipole=True,
+        purify_b=False,
+        nthreads=None,
+        max_condition_number=MAX_CONDITION_NUMBER,
+    ):
+        t1 = check_mask(mask, "mask").copy()
+        nside = nside_from_npix(t1.size, "mask")
+        p1 = t1 if pol_mask is None else check_mask(pol_mask, "pol_mask").copy()
+        t2 = t1 if mask2 is None else check_mask(mask2, "mask2").copy()
+        if pol_mask2 is not None:
+            p2 = check_mask(pol_mask2, "pol_mask2").copy()
+        else:
+            p2 = p1 if (pol_mask is not None or mask2 is None) else t2
+        for m, name in ((p1, "pol_mask"), (t2, "mask2"), (p2, "pol_mask2")):
+            check_same_nside(t1, m, "mask", name)
+        if not isinstance(binning, Binning):
+            raise InvalidInputError(
+                f"The 'binning' parameter must be a cmbtools.spectrum.Binning. Got {type(binning).__name__} instead."
+            )
+        lmax = 3 * nside - 1 if lmax is None else check_lmax(lmax, nside)
+        if binning.lmax > lmax:
+            raise InvalidInputError(
+                f"The binning reaches ell={binning.lmax} but lmax is {lmax}; end the bins at or below lmax."
+            )
+        if binning.lmin < 2:
+            raise InvalidInputError(
+                f"The first bin starts at ell={binning.lmin}; polarization has no E or B modes below ell=2 "
+                f"(start the bins at ell >= 2)."
+            )
+        for flag, name in ((remove_monopole_dipole, "remove_monopole_dipole"), (purify_b, "purify_b")):
+            if not isinstance(flag, (bool, np.bool_)):
+                raise InvalidInputError(f"The {name!r} parameter must be True or False. Got {flag!r} instead.")
+        if purify_b and lmax > 2 * nside:
+            warnings.warn(
+                f"B-mode purification with lmax={lmax} above 2*nside={2 * nside}: the pixel grid's quadrature "
+                f"leaks E into the pure B there, so the highest BB bandpowers are biased (use lmax <= 2 nside).",
+                CmbtoolsWarning,
+                stacklevel=2,
+            )
+        max_cond = check_positive(max_condition_number, "max_condition_number")
+        if max_cond < 1:
+            raise InvalidInputError(
+                f"The 'max_condition_number' parameter must be >= 1. Got {max_condition_number!r} instead."
+            )
+        nthreads_now = resolve_nthreads(nthreads)
+
+        bt1, d_bt1 = _beam_array(beam, lmax, "beam")
+        bp1, d_bp1 = _pol_beam_array(beam, "beam", bt1, d_bt1) if pol_beam is None else _pol_beam_array(
+            pol_beam, "pol_beam", None, None, lmax)
+        bt2, d_bt2 = (bt1, d_bt1) if beam2 is None else _beam_array(beam2, lmax, "beam2")
+        if pol_beam2 is not None:
+            bp2, d_bp2 = _pol_beam_array(pol_beam2, "pol_beam2", None, None, lmax)
+        elif beam2 is not None:
+            bp2, d_bp2 = _pol_beam_array(beam2, "beam2", bt2, d_bt2)
+        else:
+            bp2, d_bp2 = bp1, d_bp1
+        pt, pp, d_pw = _pixel_windows(pixel_window, nside, lmax, nthreads_now)
+        tr, d_tr = _transfers(transfer, lmax)
+
+        masks = {"t1": t1, "p1": p1, "t2": t2, "p2": p2}
+        unique, key_of = [], {}
+        for k, m in masks.items():
+            for j, u in enumerate(unique):
+                if u is m or np.array_equal(u, m):
+                    key_of[k] = j
+                    break
+            else:
+                key_of[k] = len(unique)
+                unique.append(_freeze(m))
+        self._set("nside", nside)
+        self._set("lmax", lmax)
+        self._set("binning", binning)
+        self._set("purify_b", bool(purify_b))
+        self._set("remove_monopole_dipole", bool(remove_monopole_dipole))
+        self._set("masks", {k: unique[key_of[k]] for k in masks})
+        self._set("descriptions", {
+            "beam": d_bt1, "pol_beam": d_bp1, "beam2": d_bt2, "pol_beam2": d_bp2, "pixel_window": d_pw,
+            "transfer": d_tr,
+        })
+        self._set("_key_of", key_of)
+        self._set("_unique", unique)
+        self._set("_factors", {
+            "t1": _freeze(bt1 * pt), "p1": _freeze(bp1 * pp), "t2": _freeze(bt2 * pt), "p2": _freeze(bp2 * pp)
+        })
+        self._set("_transfer", {k: _freeze(v) for k, v in tr.items()})
+        self._set("_max_cond", max_cond)
+        self._set("_nthreads", nthreads)
+        self._set("_cache", {})
+        self._set("_hashes", {k: _io.sha256_arrays(m) for k, m in self.masks.items()})
+
+        derivs = {}
+        if purify_b:  # the window's spin-1 and spin-2 derivatives, once per polarization mask
+            for k in ("p1", "p2"):
+                j = key_of[k]
+                if j not in derivs:
+                    derivs[j] = tuple(
+                        _freeze(d) for d in purification.window_derivatives(unique[j], lmax, nthreads=nthreads_now)
+                    )
+        self._set("_derivs", derivs)
+
+        self._pair("11")
+        self._covariance_kernels("11")
+        separate = mask2 is not None or pol_mask2 is not None or beam2 is not None or pol_beam2 is not None
+        if separate:  # the cross operator is needed: build it now (else on the first cross-spectrum)
+            self._pair("12")
+            self._covariance_kernels("12")
+
+        from cmbtools.maps.masks import mask_moments
+
+        mom, momp = mask_moments(t1), mask_moments(p1)
+        self._set("f_sky", mom.f_sky)
+        self._set("f_sky_eff", mom.f_sky_eff)
+        self._set("pol_f_sky", momp.f_sky)
+        self._set("pol_f_sky_eff", momp.f_sky_eff)
+        self._set("condition_number", self._pair("11").condition_number)
+
+    # ------------------------------------------------------------------ state
+    def _set(self, name, value):
+        object.__setattr__(self, name, value)
+
+    def __setattr__(self, name, value):
+        raise AttributeError(f"PolarizedSpectrumEstimator is immutable; cannot set {name!r}")
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state["_nthreads"] = None  # a worker process uses its own thread budget
+        return state
+
+    def __setstate__(self, state):
+        for k, v in state.items():
+            object.__setattr__(self, k, v)
+
+    def _cached(self, key, make):
+        """A derived quantity of the masks and settings, computed on first use and kept."""
+        c = self._cache
+        if key not in c:
+            c[key] = make()
+        return c[key]
+
+    def _threads(self):
+        return resolve_nthreads(self._nthreads)
+
+    def _moments(self, *keys):
+        """mean of the product of the named masks ('t1', 'p2', ...)."""
+        idx = tuple(sorted(self._key_of[k] for k in keys))
+
+        def make():
+            prod = np.ones(self.masks["t1"].size)
+            for i in idx:
+                prod = prod * self._unique[i]
+            return float(np.mean(prod))
+
+        return self._cached(("moment",) + idx, make)
+
+    # ------------------------------------------------------------------ couplings
+    def _mask_spectrum(self, i, j):
+        """Cross-spectrum (plain quadrature, to 2 lmax) of unique masks i and j."""
+        i, j = sorted((i, j))
+
+        def make():
+            u = self._unique
+            lw = 2 * self.lmax
+            nthreads = self._threads()
+            if i == j:
+                return _sht.map_spectra([u[i]], lw, nthreads=nthreads, rings=_sht.occupied_rings(u[i]))[0]
+            rings = _sht.occupied_rings(u[i]) | _sht.occupied_rings(u[j])
+            s = _sht.map_spectra([u[i], u[j]], lw, nthreads=nthreads, rings=rings)
+            self._cache.setdefault(("mask_spectrum", i, i), s[0])
+            self._cache.setdefault(("mask_spectrum", j, j), s[1])
+            return s[2]
+
+        return self._cached(("mask_spectrum", i, j), make)
+
+    def _kernels(self, wanted):
+        """P-reduced coupling matrices (n_bins, lmax+1) for keys (kind, i, j); missing ones in one kernel call.
+
+        Kinds: '00', '02', '++', '--', '+-' (= ++ minus --), and for the pure B '00R' (R.M00), '00RR'
+        (R^2.M00), '02R' (R.M02), with ``R = N_l / N_l'`` (:func:`pure_b_ratio`).
+        """
+        missing = sorted({k for k in wanted if ("kernel",) + k not in self._cache})
+        if missing:
+            base = {}
+            for kind, i, j in missing:
+                b = {"00": "00", "00R": "00", "00RR": "00", "02": "02", "02R": "02"}.get(kind, "+-")
+                base.setdefault((b, i, j), []).append(kind)
+            requests = list(base)
+            mats = coupling_pol.coupling_matrices(
+                [(b, self._mask_spectrum(i, j)) for b, i, j in requests], self.lmax, nthreads=self._threads()
+            )
+            p_w = self.binning.averaging_weights(self.lmax)
+            starts = self.binning.ell_min
+            ratio = coupling_pol.pure_b_ratio(self.lmax) if any(k[0].endswith("R") for k in missing) else None
+            pos = 0
+            for (b, i, j) in requests:
+                if b == "+-":
+                    mpp, mmm = mats[pos], mats[pos + 1]
+                    pos += 2
+                    made = {"++": mpp, "--": mmm, "+-": None}
+                else:
+                    made = {b: mats[pos]}
+                    pos += 1
+                for kind in base[(b, i, j)]:
+                    if kind == "+-":
+                        m = mpp - mmm
+                    elif kind.endswith("RR"):
+                        m = made[b] * (ratio * ratio)
+                    elif kind.endswith("R"):
+                        m = made[b] * ratio
+                    else:
+                        m = made[kind].copy()
+                    self._cache[("kernel", kind, i, j)] = _freeze(_reduce_rows(m, p_w, starts))
+            del mats
+        return {k: self._cache[("kernel",) + k] for k in wanted}
+
+    def _terms(self, comp, a, b):
+        """[(column component, kernel key)] of one pseudo-spectrum component of maps a x b."""
+        k = self._key_of
+
+        def key(kind, x, y):
+            i, j = sorted((k[x], k[y]))
+            return (kind, i, j)
+
+        ta, pa, tb, pb = "t" + a, "p" + a, "t" + b, "p" + b
+        pure = self.purify_b
+        if comp == "TT":
+            return [("TT", key("00", ta, tb))]
+        if comp == "TE":
+            return [("TE", key("02", ta, pb))]
+        if comp == "ET":
+            return [("ET", key("02", pa, tb))]
+        if comp in ("TB", "BT"):
+            x, y = (ta, pb) if comp == "TB" else (pa, tb)
+            return [(comp, key("00R", x, y) if pure else key("02", x, y))]
+        if comp == "EE":
+            return [("EE", key("++", pa, pb)), ("BB", key("--", pa, pb))]
+        if comp == "BB":
+            if pure:
+                return [("BB", key("00RR", pa, pb))]
+            return [("EE", key("--", pa, pb)), ("BB", key("++", pa, pb))]
+        if comp == "EB":
+            return [("EB", key("02R", pa, pb) if pure else key("+-", pa, pb))]
+        raise KeyError(comp)
+
+    def _factor(self, col, a, b):
+        """``F_l`` of a column component: beams times pixel windows of its two fields, times the transfer."""
+        fa = self._factors[("t" if col[0] == "T" else "p") + a]
+        fb = self._factors[("t" if col[1] == "T" else "p") + b]
+        return fa * fb * self._transfer[_SKY[col]]
+
+    def _pair(self, name):
+        """The binned operator of map 1 x map 1 ('11') or map 1 x map 2 ('12'), built on first use."""
+        return self._cached(("pair", name), lambda: self._build_pair(*name))
+
+    def _build_pair(self, a, b):
+        comps = _COMPONENTS_AUTO if a == b else _COMPONENTS_CROSS
+        groups = _GROUPS_AUTO if a == b else _GROUPS_CROSS
+        binning, lmax = self.binning, self.lmax
+        nb = binning.n_bins
+        terms = {c: self._terms(c, a, b) for c in comps}
+        kernels = self._kernels({key for t in terms.values() for _, key in t})
+        q = binning.model_weights(lmax)
+        u = np.zeros(lmax + 1)
+        idx = binning.bin_index
+        sel = np.nonzero(idx >= 0)[0]
+        u[sel] = 1.0 / binning.n_ell[idx[sel]]
+        pmf, pm = {}, {}
+        for c in comps:
+            pmf[c] = [(col, _freeze(kernels[key] * self._factor(col, a, b)[None, :])) for col, key in terms[c]]
+            pm[c] = [(col, kernels[key]) for col, key in terms[c]]
+        ainv = np.zeros((len(comps) * nb, len(comps) * nb))
+        sigmas = []
+        for group in groups:
+            n = len(group)
+            block = np.zeros((n * nb, n * nb))
+            scale = np.zeros(n * nb)
+            for r, c in enumerate(group):
+                for col, km in pmf[c]:
+                    s = group.index(col)
+                    block[r * nb:(r + 1) * nb, s * nb:(s + 1) * nb] += _reduce_cols(km.copy(), q, binning.ell_min)
+                f_mean = np.add.reduceat(self._factor(c, a, b) * u, binning.ell_min)
+                if np.any(~(np.abs(f_mean) > 1e-300)):
+                    bad = int(np.argmax(~(np.abs(f_mean) > 1e-300)))
+                    raise IllConditionedError(
+                        f"The binned coupled system of {_SKY[c]} is singular (condition number inf): the beam, pixel "
+                        f"window or transfer function is zero over bin {bad} (ell {int(binning.ell_min[bad])}-"
+                        f"{int(binning.ell_max[bad])}); lower lmax or end the bins before that multipole.",
+                        np.inf,
+                    )
+                scale[r * nb:(r + 1) * nb] = f_mean
+            normalised = block / scale[None, :]
+            if not np.all(np.isfinite(normalised)):
+                raise IllConditionedError("The binned coupled system has non-finite entries (condition number inf).", np.inf)
+            sigmas.append(np.linalg.svd(normalised, compute_uv=False))
+            where = [comps.index(c) for c in group]
+            inv = np.linalg.inv(block)
+            for r, cr in enumerate(where):
+                for s, cs in enumerate(where):
+                    ainv[cr * nb:(cr + 1) * nb, cs * nb:(cs + 1) * nb] = inv[r * nb:(r + 1) * nb, s * nb:(s + 1) * nb]
+        sv = np.concatenate(sigmas)
+        cond = float(sv.max() / sv.min()) if sv.min() > 0 else np.inf
+        if not np.isfinite(cond) or cond > self._max_cond:
+            narrow = int(binning.n_ell.min())
+            raise IllConditionedError(
+                f"The binned coupled system of the polarized spectra is ill-conditioned: condition number "
+                f"{cond:.3g} (the limit is {self._max_cond:.3g}); the bandpowers cannot be told apart on these "
+                f"masks. Use wider bins (the narrowest has {narrow} multipole{'s' if narrow != 1 else ''}), "
+                f"apodize the masks more, or lower lmax.",
+                cond,
+            )
+        return _Pair(tuple(comps), _freeze(ainv), pmf, pm, cond)
+
+    # ------------------------------------------------------------------ errors
+    @staticmethod
+    def _parts(comp):
+        """A component as (weight, field of map a, field of map b) terms."""
+        if comp == "EB":
+            return [(0.5, ("a", "E"), ("b", "B")), (0.5, ("a", "B"), ("b", "E"))]
+        return [(1.0, ("a", comp[0]), ("b", comp[1]))]
+
+    def _mask_of(self, field, name):
+        side, f = field
+        which = "1" if side == "a" or name == "11" else "2"
+        return ("t" if f == "T" else "p") + which
+
+    def _covariance_kernels(self, name):
+        """The binned narrow kernels G(u, v) every covariance term of the pair needs, in one kernel call."""
+        comps = self._pair(name).components
+        wanted = set()
+        for ci in comps:
+            for cj in comps:
+                for _, x, y in self._parts(ci):
+                    for _, z, w in self._parts(cj):
+                        for (p, q_), (r, s) in (((x, z), (y, w)), ((x, w), (y, z))):
+                            wanted.add(self._product_key(self._mask_of(p, name), self._mask_of(q_, name),
+                                                         self._mask_of(r, name), self._mask_of(s, name)))
+        missing = sorted(k for k in wanted if ("cov_kernel",) + k not in self._cache)
+        if not missing:
+            return
+        lmax = self.lmax
+        nthreads = self._threads()
+        products = {}
+        for k in missing:
+            for prod in k:
+                if prod not in products:
+                    products[prod] = self._unique[prod[0]] * self._unique[prod[1]]
+        spectra = []
+        for u, v in missing:  # product masks' spectra up to lmax (the kernel is narrow: enough for it)
+            if u == v:
+                spectra.append(_sht.map_spectra([products[u]], lmax, nthreads=nthreads)[0])
+            else:
+                spectra.append(_sht.map_spectra([products[u], products[v]], lmax, nthreads=nthreads)[2])
+        mats = coupling_pol.coupling_matrices([("00", s) for s in spectra], lmax, nthreads=nthreads)
+        b = self.binning
+        r = np.zeros(lmax + 1)
+        idx = b.bin_index
+        sel = np.nonzero(idx >= 0)[0]
+        r[sel] = 1.0 / b.n_ell[idx[sel]]
+        inv_cols = 1.0 / (2.0 * np.arange(lmax + 1) + 1.0)
+        for k, xi in zip(missing, mats):
+            xi *= inv_cols[None, :]
+            g = _reduce_cols(_reduce_rows(xi, r, b.ell_min), r, b.ell_min)
+            self._cache[("cov_kernel",) + k] = _freeze(0.5 * (g + g.T))
+
+    def _product_key(self, m1, m2, m3, m4):
+        k = self._key_of
+        u = tuple(sorted((k[m1], k[m2])))
+        v = tuple(sorted((k[m3], k[m4])))
+        return tuple(sorted((u, v)))
+
+    def _normalisation(self, mx, my, fx, fy):
+        """Per-bin ratio of a pseudo-spectrum to the observed spectrum, for a flat spectrum.
+
+        ``mean(w_x w_y)`` for the standard estimators; for spectra with a pure B, the row sums of the
+        pure kernels (the pure-B coefficients weigh the multipoles by ``N_l / N_l'``).
+        """
+        n_pure = int(self.purify_b) * ((fx == "B") + (fy == "B"))
+        if not n_pure:
+            return self._moments(mx, my)
+        kind = "00RR" if n_pure == 2 else ("00R" if "T" in (fx, fy) else "02R")
+        i, j = sorted((self._key_of[mx], self._key_of[my]))
+        kern = self._kernels({(kind, i, j)})[(kind, i, j)]
+        rows = np.add.reduceat(self.binning.averaging_weights(self.lmax), self.binning.ell_min)
+        return kern.sum(axis=1) / rows
+
+    def _pseudo_covariance(self, name, spectra_of):
+        """Gaussian covariance of the binned pseudo-spectra of the pair's components (see the class notes)."""
+        pair = self._pair(name)
+        self._covariance_kernels(name)
+        nb = self.binning.n_bins
+
+        def norm(x, y):
+            return self._normalisation(self._mask_of(x, name), self._mask_of(y, name), x[1], y[1])
+
+        def observed(x, y):
+            return spectra_of(x, y) / norm(x, y)
+
+        def kern(p, q_, r, s):
+            key = self._product_key(self._mask_of(p, name), self._mask_of(q_, name),
+                                    self._mask_of(r, name), self._mask_of(s, name))
+            return self._cache[("cov_kernel",) + key]
+
+        def sym(o1, o2):
+            return 0.5 * (np.outer(o1, o2) + np.outer(o2, o1))
+
+        comps = pair.components
+        cov = np.zeros((len(comps) * nb, len(comps) * nb))
+        for i, ci in enumerate(comps):
+            for j in range(i, len(comps)):
+                cj = comps[j]
+                block = np.zeros((nb, nb))
+                for wi, x, y in self._parts(ci):
+                    rxy = norm(x, y) / self._moments(self._mask_of(x, name), self._mask_of(y, name))
+                    for wj, z, w in self._parts(cj):
+                        rzw = norm(z, w) / self._moments(self._mask_of(z, name), self._mask_of(w, name))
+                        o = sym(observed(x, z), observed(y, w)) * kern(x, z, y, w)
+                        o += sym(observed(x, w), observed(y, z)) * kern(x, w, y, z)
+                        block += wi * wj * (np.outer(rxy * np.ones(nb), rzw * np.ones(nb)) * o)
+                cov[i * nb:(i + 1) * nb, j * nb:(j + 1) * nb] = block
+                cov[j * nb:(j + 1) * nb, i * nb:(i + 1) * nb] = block.T
+        return cov
+
+    # ------------------------------------------------------------------ applying
+    def _fields(self, maps, which, name):
+        """T, E, B coefficients of one IQU map (masked; T without monopole/dipole; B pure if asked)."""
+        try:
+            m = np.asarray(maps)
+        except (TypeError, ValueError):
+            raise InvalidInputError(f"The {name!r} must be an array of shape (3, npix) holding I, Q, U.") from None
+        if m.ndim != 2 or m.shape[0] != 3:
+            raise InvalidInputError(
+                f"The {name!r} must be an array of shape (3, npix) holding I, Q, U. Got shape {m.shape} instead."
+            )
+        t_mask, p_mask = self.masks["t" + which], self.masks["p" + which]
+        comps = []
+        for k, (field, w) in enumerate((("I", t_mask), ("Q", p_mask), ("U", p_mask))):
+            a = as_map(m[k], f"{name}[{field}]")
+            check_same_nside(a, w, f"{name}[{field}]", "mask" if field == "I" else "pol_mask")
+            bad = missing_pixels(a)
+            if bad.any():
+                n_in = int((bad & (w > 0)).sum())
+                if n_in:
+                    raise InvalidInputError(
+                        f"The {name!r} has {n_in} missing (UNSEEN/NaN/inf) {field} pixels where its mask is "
+                        f"non-zero; the precomputed coupling would be wrong. Zero the mask there and build a new "
+                        f"estimator, or use estimate_polarized_spectra, which does that for you."
+                    )
+                a = np.where(bad, 0.0, a)
+            peak = float(np.max(np.abs(a[w > 0]), initial=0.0))
+            if peak > _LARGEST_MAP_VALUE:
+                raise InvalidInputError(
+                    f"The {name!r} has {field} values up to {peak:.3g} inside the mask; the transforms square and "
+                    f"sum them, which overflows double precision beyond {_LARGEST_MAP_VALUE:g} (K). Check the unit."
+                )
+            comps.append(a)
+        nthreads = self._nthreads
+        lmax = self.lmax
+        rings_t = self._cached(("rings", "t" + which), lambda: _sht.occupied_rings(t_mask))
+        rings_p = self._cached(("rings", "p" + which), lambda: _sht.occupied_rings(p_mask))
+        if self.remove_monopole_dipole:
+            from cmbtools.maps.monopole_dipole import masked_without_monopole_dipole, weight_sums
+
+            sums = self._cached(("sums", "t" + which), lambda: weight_sums(t_mask, nthreads=nthreads))
+            tm = masked_without_monopole_dipole(comps[0], t_mask, nthreads=nthreads, sums_of_weights=sums)
+        else:
+            tm = comps[0] * t_mask
+        alm_t = _sht.map2alm(tm, lmax, nthreads=nthreads, rings=rings_t)
+        if self.purify_b:
+            eth_w, eth2_w = self._derivs[self._key_of["p" + which]]
+            alm_e, alm_b = purification.pure_eb_alm(
+                comps[1], comps[2], p_mask, eth_w, eth2_w, lmax, nthreads=nthreads, rings=rings_p
+            )
+        else:
+            alm_e, alm_b = _sht.map2alm_spin2(
+                comps[1] * p_mask, comps[2] * p_mask, lmax, nthreads=nthreads, rings=rings_p
+            )
+        return alm_t, alm_e, alm_b
+
+    def _bin(self, pseudo):
+        b = self.binning
+        return np.add.reduceat(b.averaging_weights(self.lmax) * pseudo, b.ell_min)
+
+    def _spectra_of(self, fa, fb):
+        """A function giving the binned pseudo-spectrum of two fields (('a', 'T'), ('b', 'E'), ...), cached."""
+        fields = {("a", f): fa[i] for i, f in enumerate("TEB")}
+        fields.update({("b", f): fb[i] for i, f in enumerate("TEB")})
+        same = fa is fb
+        done = {}
+
+        def get(x, y):
+            if same:
+                x, y = ("a", x[1]), ("a", y[1])
+            key = tuple(sorted((x, y)))
+            if key not in done:
+                done[key] = self._bin(_sht.alm2cl(fields[key[0]], fields[key[1]], lmax=self.lmax))
+            return done[key]
+
+        return get
+
+    def pseudo_spectra(self, maps1, maps2=None) -> dict:
+        """Pseudo-spectra (ell = 0..lmax, K^2) of the masked maps.
+
+        Keys 'TT', 'TE', 'TB', 'EE', 'EB', 'BB' (for two maps also 'ET' = E1 x T2 and 'BT' = B1 x T2; 'EB'
+        is the mean of E1 x B2 and B1 x E2); the monopole and dipole of T are removed first when the
+        estimator does so, and B is the pure B with ``purify_b``.
+
+        Parameters
+        ----------
+        maps1 : ndarray of shape (3, 12*nside**2)
+            I, Q, U of map 1 (K_CMB, RING, HEALPix polarization convention).
+        maps2 : ndarray of shape (3, 12*nside**2), optional
+            I, Q, U of map 2 for cross-spectra.
+
+        Returns
+        -------
+        dict of str to ndarray of shape (lmax+1,)
+        """
+        fa = self._fields(maps1, "1", "maps1")
+        fb = fa if maps2 is None else self._fields(maps2, "2", "maps2")
+        out = {}
+        for c in (_COMPONENTS_AUTO if maps2 is None else _COMPONENTS_CROSS):
+            if c == "EB":
+                x = _sht.alm2cl(fa[1], fb[2], lmax=self.lmax)
+                y = x if fa is fb else _sht.alm2cl(fa[2], fb[1], lmax=self.lmax)
+                out[c] = 0.5 * (x + y)
+            else:
+                out[c] = _sht.alm2cl(fa[_FIELD[c[0]]], fb[_FIELD[c[1]]], lmax=self.lmax)
+        return out
+
+    def estimate(self, maps1, maps2=None, *, noise_cl=None, noise_maps=None):
+        """TT, TE, TB, EE, EB, BB bandpowers of one IQU map or the cross-spectra of two.
+
+        Parameters
+        ----------
+        maps1 : ndarray of shape (3, 12*nside**2)
+            I, Q, U in K_CMB, RING, HEALPix polarization convention.
+        maps2 : ndarray of shape (3, 12*nside**2), optional
+            Second map (masks ``mask2``, ``pol_mask2``, beams ``beam2``, ``pol_beam2``): cross-spectra, free
+            of noise bias when the two noises are independent.
+        noise_cl : dict, optional
+            Noise spectra of ``maps1`` as observed (K^2, not beam deconvolved) under the keys 'TT', 'EE',
+            'BB' (optionally 'TE', 'TB', 'EB'), subtracted from auto-spectra; taken as white (constant)
+            above lmax, like pixel noise.
+        noise_maps : sequence of ndarray of shape (3, 12*nside**2), optional
+            Noise-only IQU maps like ``maps1``'s noise: the mean of their pseudo-spectra is the noise bias.
+
+        Returns
+        -------
+        PolarizedBandpowers
+            Bandpowers of the six spectra, their errors and full covariance (signal and noise).
+
+        Raises
+        ------
+        InvalidInputError
+            Malformed maps, missing pixels inside a mask, or noise options with cross-spectra.
+        ResolutionMismatchError
+            A map whose nside differs from the masks'.
+        """
+        cross = maps2 is not None
+        if cross and (noise_cl is not None or noise_maps is not None):
+            raise InvalidInputError(
+                "The 'noise_cl' and 'noise_maps' parameters apply to auto-spectra only; a cross-spectrum of "
+                "maps with independent noise has no noise bias."
+            )
+        if noise_cl is not None and noise_maps is not None:
+            raise InvalidInputError("Give either 'noise_cl' or 'noise_maps', not both.")
+        noise = None if noise_cl is None else self._check_noise_cl(noise_cl)
+        name = "12" if cross else "11"
+        pair = self._pair(name)
+        fa = self._fields(maps1, "1", "maps1")
+        fb = self._fields(maps2, "2", "maps2") if cross else fa
+        spectra_of = self._spectra_of(fa, fb)
+
+        def component_vector(get):
+            return np.concatenate([sum(w * get(x, y) for w, x, y in self._parts(c)) for c in pair.components])
+
+        vec = component_vector(spectra_of)
+        noise_vec = None
+        count = 0
+        if noise is not None:
+            noise_vec = self._noise_bias_from_spectra(pair, noise)
+        elif noise_maps is not None:
+            if isinstance(noise_maps, np.ndarray) and noise_maps.ndim == 2:
+                raise InvalidInputError("The 'noise_maps' parameter must be a list of IQU maps, not a single map.")
+            acc = np.zeros_like(vec)
+            for i, nm in enumerate(noise_maps):
+                fn = self._fields(nm, "1", f"noise_maps[{i}]")
+                acc += component_vector(self._spectra_of(fn, fn))
+                count += 1
+            if count == 0:
+                raise InvalidInputError("The 'noise_maps' parameter is empty; give at least one noise map.")
+            noise_vec = acc / count
+        x = pair.ainv @ (vec if noise_vec is None else vec - noise_vec)
+        cov_x = pair.ainv @ self._pseudo_covariance(name, spectra_of) @ pair.ainv.T
+        s = self._reporting_matrix(pair.components)
+        value = s @ x
+        cov = s @ cov_x @ s.T
+        cov = 0.5 * (cov + cov.T)
+        b = self.binning
+        nb = b.n_bins
+        conv = np.tile(b.dl_factor if b.weighting == "dl" else np.ones(nb), len(SPECTRA))
+        cl = value / conv
+        cov = cov / np.outer(conv, conv)
+        meta = self._metadata(cross)
+        if noise_vec is not None:
+            meta["noise_bias_subtracted"] = "spectra" if noise is not None else f"{count} noise maps"
+        return PolarizedBandpowers.from_arrays(b, cl.reshape(len(SPECTRA), nb), cov, meta)
+
+    def _reporting_matrix(self, comps):
+        """(6 n_bins, n_comp n_bins): the six reported spectra from the components (means of TE/ET, TB/BT)."""
+        nb = self.binning.n_bins
+        s = np.zeros((len(SPECTRA) * nb, len(comps) * nb))
+        eye = np.eye(nb)
+        for i, name in enumerate(SPECTRA):
+            src = [j for j, c in enumerate(comps) if _SKY[c] == name]
+            for j in src:
+                s[i * nb:(i + 1) * nb, j * nb:(j + 1) * nb] = eye / len(src)
+        return s
+
+    def _check_noise_cl(self, noise_cl):
+        lmax = self.lmax
+        if not isinstance(noise_cl, dict):
+            raise InvalidInputError(
+                "The 'noise_cl' parameter must be a dict of noise spectra under the keys 'TT', 'EE', 'BB' (K^2). "
+                f"Got {type(noise_cl).__name__} instead."
+            )
+        unknown = sorted(set(noise_cl) - set(SPECTRA))
+        if unknown:
+            raise InvalidInputError(f"The 'noise_cl' parameter has unknown spectra {unknown}; use {', '.join(SPECTRA)}.")
+        n = {s: np.zeros(lmax + 1) for s in SPECTRA}
+        for s, v in noise_cl.items():
+            n[s] = check_cl(v, f"noise_cl[{s!r}]", lmax=lmax, allow_negative=s not in ("TT", "EE", "BB"))[: lmax + 1].copy()
+        return n
+
+    def _noise_bias_from_spectra(self, pair, n):
+        """Binned pseudo noise ``P M N`` of every component of map 1's auto-spectra (white above lmax)."""
+        p_w = self.binning.averaging_weights(self.lmax)
+        row_weight = np.add.reduceat(p_w, self.binning.ell_min)
+        out = []
+        for comp in pair.components:
+            acc = np.zeros(self.binning.n_bins)
+            rows = np.zeros(self.binning.n_bins)
+            for col, k in pair.pm[comp]:
+                nl = n[_SKY[col]]
+                acc += k @ nl
+                rows += k.sum(axis=1) * nl[-1]
+            pure_b = self.purify_b and "B" in comp
+            if comp in ("TT", "EE", "BB") and not pure_b:
+                # white noise beyond lmax: the rows of a standard kernel add up to mean(w_x w_y) on any grid
+                m = "t1" if comp == "TT" else "p1"
+                acc += self._moments(m, m) * row_weight * n[comp][-1] - rows
+            elif comp == "BB":  # pure B: the tail from lmax < l' <= 2 lmax through R^2.M00
+                acc += n["BB"][-1] * self._pure_noise_tail()
+            out.append(acc)
+        return np.concatenate(out)
+
+    def _pure_noise_tail(self):
+        """Binned pure-B pseudo noise per unit white noise from the multipoles lmax < l' <= 2 lmax."""
+        lmax = self.lmax
+        lc = 2 * lmax
+
+        def make():
+            nthreads = self._threads()
+            j = self._key_of["p1"]
+            u = self._unique[j]
+            w = _sht.map_spectra([u], lmax + lc, nthreads=nthreads, rings=_sht.occupied_rings(u))[0]
+            m = coupling_pol.coupling_matrices([("00", w)], lmax, nthreads=nthreads, lmax_columns=lc)[0]
+            m *= coupling_pol.pure_b_ratio(lmax, lc) ** 2
+            m[:, : lmax + 1] = 0.0
+            return _reduce_rows(m, self.binning.averaging_weights(lmax), self.binning.ell_min).sum(axis=1)
+
+        return self._cached(("pure_noise_tail",), make)
+
+    def expected_bandpowers(self, spectra, *, cross=False) -> dict:
+        """What :meth:`estimate` returns on average for a sky with the given spectra (``cl`` column, K^2).
+
+        Parameters
+        ----------
+        spectra : dict
+            Sky spectra ``C_l`` (K^2, from ell = 0, before beams and pixel windows) under the keys of
+            :data:`SPECTRA` (missing ones are zero).
+        cross : bool, default=False
+            Use the operator of the cross-spectra of map 1 x map 2.
+
+        Returns
+        -------
+        dict of spectrum name to ndarray of shape (n_bins,)
+        """
+        lmax = self.lmax
+        cl = {s: np.zeros(lmax + 1) for s in SPECTRA}
+        for s, v in spectra.items():
+            if s not in SPECTRA:
+                raise InvalidInputError(f"The 'spectra' parameter has an unknown key {s!r}; use {', '.join(SPECTRA)}.")
+            cl[s] = check_cl(v, f"spectra[{s!r}]", lmax=lmax, allow_negative=True)[: lmax + 1].copy()
+        if self.remove_monopole_dipole:
+            cl["TT"][:2] = 0.0
+        pair = self._pair("12" if cross else "11")
+        vec = np.concatenate([sum(k @ cl[_SKY[col]] for col, k in pair.pmf[c]) for c in pair.components])
+        value = self._reporting_matrix(pair.components) @ (pair.ainv @ vec)
+        nb = self.binning.n_bins
+        b = self.binning
+        conv = b.dl_factor if b.weighting == "dl" else np.ones(nb)
+        return {s: value[i * nb:(i + 1) * nb] / conv for i, s in enumerate(SPECTRA)}
+
+    def _metadata(self, cross) -> dict:
+        b = self.binning
+        meta = {
+            "software": f"cmbtools {__version__}",
+            "spectrum": "polarized cross" if cross else "polarized auto",
+            "nside": self.nside,
+            "lmax": self.lmax,
+            "mask_sha256": self._hashes["t1"],
+            "pol_mask_sha256": self._hashes["p1"],
+            "f_sky": round(self.f_sky, 6),
+            "f_sky_eff": round(self.f_sky_eff, 6),
+            "pol_f_sky": round(self.pol_f_sky, 6),
+            "pol_f_sky_eff": round(self.pol_f_sky_eff, 6),
+        }
+        if cross:
+            meta["mask2_sha256"] = self._hashes["t2"]
+            meta["pol_mask2_sha256"] = self._hashes["p2"]
+        meta.update(b.as_dict())
+        for k, v in self.descriptions.items():
+            if cross or not k.endswith("2"):
+                meta[k] = v
+        meta["monopole_dipole_removed"] = "yes" if self.remove_monopole_dipole else "no"
+        meta["b_mode_purification"] = "yes" if self.purify_b else "no"
+        meta["coupling"] = "exact"
+        meta["condition_number"] = float(f"{self.condition_number:.6g}")
+        meta["errors"] = "Gaussian pseudo-spectrum covariance (Knox-like, f_sky_eff per mask pair) through the inverse coupling"
+        meta["noise_bias_subtracted"] = "no"
+        return meta
+
+    def __repr__(self):
+        return (
+            f"PolarizedSpectrumEstimator(nside={self.nside}, lmax={self.lmax}, {self.binning!r}, "
+            f"f_sky={self.f_sky:.3f}, purify_b={self.purify_b})"
+        )
+
+
+def _freeze(a):
+    a = np.ascontiguousarray(a)
+    a.setflags(write=False)
+    return a
+
+
+def estimate_polarized_spectra(maps1, mask, binning, *, pol_mask=None, maps2=None, mask2=None, pol_mask2=None,
+                               noise_cl=None, noise_maps=None, **estimator_kwargs):
+    """TT, TE, TB, EE, EB, BB bandpowers of an IQU map (or the cross-spectra of two) in one call.
+
+    Missing pixels (UNSEEN/NaN/inf) inside a mask are allowed here: the mask is set to zero there (a
+    :class:`~cmbtools.exceptions.CmbtoolsWarning` says how many), as for the temperature one-call function.
+
+    Parameters
+    ----------
+    maps1 : ndarray of shape (3, 12*nside**2)
+        I, Q, U (K_CMB, RING, HEALPix polarization convention).
+    mask : ndarray of shape (12*nside**2,)
+        Temperature weights.
+    binning : Binning
+        The bins.
+    pol_mask : ndarray, optional
+        Polarization weights (default ``mask``).
+    maps2 : ndarray of shape (3, 12*nside**2), optional
+        Second map: cross-spectra.
+    mask2, pol_mask2 : ndarray, optional
+        Weights of the second map.
+    noise_cl, noise_maps : optional
+        Noise bias of auto-spectra (see :meth:`PolarizedSpectrumEstimator.estimate`).
+    **estimator_kwargs
+        Any other keyword of :class:`PolarizedSpectrumEstimator`.
+
+    Returns
+    -------
+    PolarizedBandpowers
+    """
+    from cmbtools.spectrum.one_call import drop_missing_pixels
+
+    mask = np.asarray(mask, dtype=np.float64)
+    pol_mask = mask if pol_mask is None else np.asarray(pol_mask, dtype=np.float64)
+    m1 = np.asarray(maps1, dtype=np.float64)
+    if m1.ndim == 2 and m1.shape[0] == 3 and m1.shape[1] == mask.size:
+        mask = drop_missing_pixels(m1[0], mask, "maps1[I]", "mask")
+        pol_mask = drop_missing_pixels(m1[1], pol_mask, "maps1[Q]", "pol_mask")
+        pol_mask = drop_missing_pixels(m1[2], pol_mask, "maps1[U]", "pol_mask")
+    est = PolarizedSpectrumEstimator(mask, binning, pol_mask=pol_mask, mask2=mask2, pol_mask2=pol_mask2,
+                                     **estimator_kwargs)
+    return est.estimate(maps1, maps2, noise_cl=noise_cl, noise_maps=noise_maps)
