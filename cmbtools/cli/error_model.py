@@ -101,16 +101,20 @@ def apply_error_model(args, est, bp, raw, theory, noise_maps, *, cross, nside):
         if noise1 is None and noise_maps and len(noise_maps) >= 2:
             noise1 = PixelNoise.from_noise_maps(noise_maps)
         noise2 = _pixel_noise(args, "2", nside, args.force) if cross else None
+        if cross and (noise1 is None or noise2 is None):
+            # the noise of each map enters a cross-spectrum's errors through its auto-spectrum: without its
+            # description per pixel, the Knox formula (with the measured auto-spectra) is the better estimate
+            return bp, None, "Knox formula with f_sky_eff (describe each map's noise for the Gaussian covariance)"
         gauss = GaussianCovariance(est, noise=noise1, noise2=noise2, cross=cross, nthreads=args.threads or None)
         if theory is not None:
             signal, source = theory, "the --theory spectrum"
         elif cross or noise1 is not None or raw is None:
             signal, source = bp, "the measured bandpowers"
         else:  # noise bias subtracted but not described pixel by pixel: the total power stands for signal + noise
-            signal, source = raw, "the measured bandpowers (with their noise)"
+            signal, source = raw, "the measured bandpowers with their noise"
         cov = gauss.covariance(signal)
-        noise_text = "; ".join(n.description for n in (noise1, noise2) if n is not None) or "no noise term"
-        text = f"Gaussian covariance of {source} ({noise_text})"
+        noise_text = "; ".join(n.description for n in (noise1, noise2) if n is not None)
+        text = f"Gaussian covariance of {source}" + (f" (noise: {noise_text})" if noise_text else "")
     b = est.binning
     err = cov.errors
     out = dataclasses.replace(bp, cl_err=err, dl_err=err * b.dl_factor, covariance=np.array(cov.matrix))

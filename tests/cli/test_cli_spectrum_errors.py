@@ -68,6 +68,10 @@ def test_knox_option_and_a_covariance_file_as_the_error_model(files, tmp_path):
     knox = tmp_path / "knox.csv"
     assert _run(p, "-o", str(knox), "--errors", "knox") == 0
     bp = Bandpowers.read_csv(knox)
+    # without a noise description a cross-spectrum keeps the Knox errors (the maps' noise enters through them)
+    plain = tmp_path / "plain.csv"
+    assert _run(p, "-o", str(plain)) == 0
+    np.testing.assert_allclose(Bandpowers.read_csv(plain).cl_err, bp.cl_err, rtol=1e-12)
     # Knox 1995 for a cross-spectrum with f_sky_eff: (C12^2 + C11 C22) / (f_sky_eff sum(2l+1)) (its own record says so)
     assert "Knox" in bp.metadata["errors"]
     sim = simulated_covariance(np.random.default_rng(1).standard_normal((50, bp.n_bins)) * 1e-12,
