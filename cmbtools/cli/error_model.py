@@ -106,12 +106,16 @@ def apply_error_model(args, est, bp, raw, theory, noise_maps, *, cross, nside):
             # description per pixel, the Knox formula (with the measured auto-spectra) is the better estimate
             return bp, None, "Knox formula with f_sky_eff (describe each map's noise for the Gaussian covariance)"
         gauss = GaussianCovariance(est, noise=noise1, noise2=noise2, cross=cross, nthreads=args.threads or None)
-        if theory is not None:
+        if not cross and noise1 is None:
+            # the noise is not described pixel by pixel: the measured total power stands for signal + noise
+            signal, source = (bp if raw is None else raw), "the measured bandpowers with their noise"
+        elif theory is not None:
             signal, source = theory, "the --theory spectrum"
-        elif cross or noise1 is not None or raw is None:
+        elif not cross and (raw is None or raw is bp):  # the described noise is still in the measured power
+            signal = dataclasses.replace(bp, cl=bp.cl - gauss.noise_bandpowers())
+            source = "the measured bandpowers less the described noise"
+        else:
             signal, source = bp, "the measured bandpowers"
-        else:  # noise bias subtracted but not described pixel by pixel: the total power stands for signal + noise
-            signal, source = raw, "the measured bandpowers with their noise"
         cov = gauss.covariance(signal)
         noise_text = "; ".join(n.description for n in (noise1, noise2) if n is not None)
         text = f"Gaussian covariance of {source}" + (f" (noise: {noise_text})" if noise_text else "")
