@@ -73,7 +73,7 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 
 #: Options that name files a command reads, and options that name files it writes.
 _INPUT_OPTIONS = ("map", "map2", "mask", "mask2", "info", "from_mask", "from_map", "holes", "beam", "beam2", "theory",
-                  "noise_spectrum", "spectrum", "beam_file", "hits")
+                  "noise_spectrum", "spectrum", "beam_file", "hits", "pol_mask", "pol_mask2")
 _OUTPUT_OPTIONS = ("output", "fits", "figure", "table", "json", "write_spectrum", "operator_cache")
 
 
