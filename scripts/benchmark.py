@@ -222,8 +222,8 @@ def workload_1(nside, repeats, threads, seed):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", CmbtoolsWarning)  # "above 2*nside": we know
             est = spectrum.SpectrumEstimator(
-                mask, binning, lmax=lmax, coupling="fast", fast_l_exact=settings[0],
-                fast_l_toeplitz=settings[1], fast_band=settings[2], nthreads=threads,
+                mask, binning, lmax=lmax, coupling="fast", fast_exact_below=settings[0],
+                fast_banded_below=settings[1], fast_band_half_width=settings[2], nthreads=threads,
             )
         return est.estimate(map1)
 

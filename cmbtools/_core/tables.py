@@ -491,7 +491,7 @@ def _format(x):
     return "0" if x == 0 else f"{x:.10e}"
 
 
-def write_spectrum_table(path, cl, *, overwrite=False, header=None) -> None:
+def write_spectrum_table(path, cl, *, overwrite=False, header=None) -> Path:
     """Write C_l (K^2, indexed by ell from 0) as a spectrum table.
 
     The file has the columns ``ell``, ``cl_k2`` (C_l in K^2) and ``dl_uk2``
@@ -511,6 +511,11 @@ def write_spectrum_table(path, cl, *, overwrite=False, header=None) -> None:
         Extra comment lines: a string (one comment line per text line) or a
         mapping written as ``# key: value`` lines.  The key ``unit`` is
         reserved (the column names carry the units).
+
+    Returns
+    -------
+    Path
+        The file written.
     """
     cl = check_cl(cl, "cl")
     lines = ["# cmbtools spectrum table",
@@ -536,4 +541,5 @@ def write_spectrum_table(path, cl, *, overwrite=False, header=None) -> None:
     ell = np.arange(cl.size, dtype=float)
     dl_uk2 = ell * (ell + 1.0) * cl / (2.0 * math.pi) * 1e12
     rows = ((str(i), _format(cl[i]), _format(dl_uk2[i])) for i in range(cl.size))
-    write_text_table(path, ("ell", "cl_k2", "dl_uk2"), rows, comments=[c[2:] for c in lines], overwrite=overwrite)
+    return write_text_table(path, ("ell", "cl_k2", "dl_uk2"), rows, comments=[c[2:] for c in lines],
+                            overwrite=overwrite)

@@ -155,12 +155,12 @@ def run(args) -> int:
         return run_polarized(args, seen)
     if args.pol_mask or args.pol_mask2 or args.purify_b:
         raise InvalidInputError(f"--pol-mask, --pol-mask2 and --purify-b need I, Q, U maps; {args.map} holds one map.")
-    m1, info1 = maps.read_map(args.map, force=args.force)
+    m1, info1 = maps.read_sky_map(args.map, force=args.force)
     w1 = maps.read_mask(args.mask, force=args.force)
     check_same_nside(m1, w1, args.map, args.mask)
     m2 = info2 = w2 = None
     if args.map2 is not None:
-        m2, info2 = maps.read_map(args.map2, force=args.force)
+        m2, info2 = maps.read_sky_map(args.map2, force=args.force)
         w2 = maps.read_mask(args.mask2, force=args.force) if args.mask2 else w1
         check_same_nside(m2, w2, args.map2, args.mask2 or args.mask)
         check_same_nside(m1, m2, args.map, args.map2)

@@ -174,7 +174,7 @@ def run(args) -> int:
     if args.noise_depth is not None:
         hits = None
         if args.hits is not None:
-            hits, _info = maps.read_map(args.hits, unit="K", force=args.force)
+            hits, _info = maps.read_sky_map(args.hits, unit="K", force=args.force)
         noise = NoiseModel(depth_uk_arcmin=args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
     if args.spectrum is not None:
         from cmbtools._core.tables import read_spectrum_table

@@ -28,8 +28,6 @@ Examples
 (3072,)
 """
 
-from __future__ import annotations
-
 from cmbtools._core.tables import read_spectrum_table, write_spectrum_table
 from cmbtools.simulate.engine import SimulationSet, run_simulations
 from cmbtools.simulate.noise import NoiseModel, depth_to_white_noise, noise_map, noise_spectrum, white_noise_map

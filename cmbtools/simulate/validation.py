@@ -264,13 +264,13 @@ def validate_estimator(
         raise InvalidInputError(f"The 'sky_filter' parameter must be a callable or None. Got {sky_filter!r} instead.")
     if not isinstance(cross, (bool, np.bool_)):
         raise InvalidInputError(f"The 'cross' parameter must be True or False. Got {cross!r} instead.")
-    pixwin = np.asarray(estimator.pixel_window, dtype=np.float64)[: lmax + 1]
-    sky_beam = np.asarray(estimator.beam, dtype=np.float64)[: lmax + 1] * pixwin
+    window = np.asarray(estimator.pixel_window, dtype=np.float64)[: lmax + 1]
+    sky_beam = np.asarray(estimator.beam, dtype=np.float64)[: lmax + 1] * window
     sky_beam2 = None
     if cross:
         if sky_filter is not None:
             raise InvalidInputError("The 'sky_filter' parameter is not available with cross=True.")
-        b2 = np.asarray(getattr(estimator, "beam2", estimator.beam), dtype=np.float64)[: lmax + 1] * pixwin
+        b2 = np.asarray(getattr(estimator, "beam2", estimator.beam), dtype=np.float64)[: lmax + 1] * window
         sky_beam2 = None if np.array_equal(b2, sky_beam) else b2
         noise_cl = None  # the noises of the two splits are independent: no bias
     setup = _ValidationSetup(

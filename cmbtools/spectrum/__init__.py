@@ -32,10 +32,8 @@ Examples
 True
 """
 
-from __future__ import annotations
-
 from cmbtools.spectrum.bandpowers import Bandpowers
-from cmbtools.spectrum.beams import gaussian_beam, read_beam, write_beam
+from cmbtools.spectrum.beams import GaussianBeam, gaussian_beam, read_beam, write_beam
 from cmbtools.spectrum.binning import Binning
 from cmbtools.spectrum.estimator import MAX_CONDITION_NUMBER, SpectrumEstimator
 from cmbtools.spectrum.one_call import estimate_spectrum
@@ -49,6 +47,7 @@ __all__ = [
     "Bandpowers",
     "estimate_spectrum",
     "MAX_CONDITION_NUMBER",
+    "GaussianBeam",
     "gaussian_beam",
     "read_beam",
     "write_beam",

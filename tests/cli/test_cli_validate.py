@@ -10,7 +10,7 @@ import pytest
 
 from cmbtools.simulate import validate_estimator
 from cmbtools.cli import main
-from cmbtools.maps import cap_mask, write_map, write_mask
+from cmbtools.maps import cap_mask, write_sky_map, write_mask
 from cmbtools.simulate import NoiseModel
 from cmbtools.spectrum import Binning, SpectrumEstimator
 
@@ -114,7 +114,7 @@ def test_validate_bad_inputs_exit_2_before_any_work(files, capsys):
     # a hits map that misses part of the mask is an input error too
     hits = np.ones(12 * NSIDE**2)
     hits[mask > 0.5] = 0.0
-    write_map(tmp / "hits.fits", hits, unit=None)
+    write_sky_map(tmp / "hits.fits", hits, unit=None)
     assert main(_args(tmp, "--hits", str(tmp / "hits.fits"), "--run-dir", str(run_dir))) == 2
     assert "hits map does not cover" in capsys.readouterr().err
     # --workers and --scheduler exclude each other (argparse: exit 2)
