@@ -6,6 +6,7 @@ import argparse
 
 from cmbtools.cli.error_model import add_error_options
 from cmbtools.cli.noise_bias import add_noise_options
+from cmbtools.cli.polarized_spectrum import add_polarization_options
 from cmbtools.cli.common import (
     add_binning, add_force, add_overwrite, add_threads, binning_from_args, describe_binning, positive_float,
     positive_int,
@@ -20,6 +21,11 @@ HEALPix pixel window are deconvolved, and the result is averaged into bins.
 With two maps it measures their cross-spectrum, which has no noise bias when
 the two noises are independent.  Error bars: Knox formula with the effective
 sky fraction of the mask.
+
+On I, Q, U maps (three map columns) it measures the six spectra TT, TE, TB,
+EE, EB, BB with the polarized mode-coupling correction (E/B mixing undone),
+optional B-mode purification (--purify-b), and writes one table with a
+'spectrum' column; --pol-mask gives the polarization mask.
 
 The table (CSV) records the inputs in '# key: value' header lines, then the
 columns ell_min,ell_max,ell_eff,cl,cl_err,dl,dl_err (uK^2 by default).
@@ -69,6 +75,7 @@ def add_arguments(parser):
                         help="do not fit and remove the monopole and dipole before the transform")
     add_noise_options(parser)
     add_error_options(parser)
+    add_polarization_options(parser)
     parser.add_argument("--fast-coupling", action="store_true",
                         help="approximate the mode-coupling matrix (faster at large lmax; exact when lmax > 2 nside, where the approximation fails)")
     parser.add_argument("--theory", metavar="FILE", help="theory spectrum to draw in the figure (columns ell and cl or dl)")
@@ -152,7 +159,15 @@ def run(args) -> int:
             raise InvalidInputError(f"The noise table and the {seen[key]} would both be written to "
                                     f"{args.write_noise_spectrum!r}.")
 
-    # 2. inputs
+    # 2. inputs (I, Q, U files: the six polarized spectra)
+    from cmbtools.cli.polarized_spectrum import is_polarized_input, run_polarized
+
+    if is_polarized_input(args.map):
+        if args.covariance is not None or args.covariance_from is not None:
+            raise InvalidInputError("--covariance and --covariance-from apply to temperature spectra only.")
+        return run_polarized(args, seen)
+    if args.pol_mask or args.pol_mask2 or args.purify_b:
+        raise InvalidInputError(f"--pol-mask, --pol-mask2 and --purify-b need I, Q, U maps; {args.map} holds one map.")
     m1, info1 = maps.read_sky_map(args.map, force=args.force)
     w1 = maps.read_mask(args.mask, force=args.force)
     check_same_nside(m1, w1, args.map, args.mask)
