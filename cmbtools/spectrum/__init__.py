@@ -35,6 +35,15 @@ True
 from cmbtools.spectrum.bandpowers import Bandpowers
 from cmbtools.spectrum.beams import GaussianBeam, gaussian_beam, read_beam, write_beam
 from cmbtools.spectrum.binning import Binning
+from cmbtools.spectrum.covariance import (
+    BandpowerCovariance,
+    GaussianCovariance,
+    PixelNoise,
+    hartlap_factor,
+    read_covariance,
+    simulated_covariance,
+    write_covariance,
+)
 from cmbtools.spectrum.estimator import MAX_CONDITION_NUMBER, SpectrumEstimator
 from cmbtools.spectrum.one_call import estimate_spectrum
 from cmbtools.spectrum.pixel_windows import pixel_window
@@ -52,6 +61,13 @@ __all__ = [
     "read_beam",
     "write_beam",
     "pixel_window",
+    "PixelNoise",
+    "GaussianCovariance",
+    "BandpowerCovariance",
+    "simulated_covariance",
+    "hartlap_factor",
+    "write_covariance",
+    "read_covariance",
     "PolarizedSpectrumEstimator",
     "PolarizedBandpowers",
     "estimate_polarized_spectra",
