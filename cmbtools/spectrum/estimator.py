@@ -110,6 +110,23 @@ class SpectrumEstimator:
     remove_monopole_dipole : bool, default=True
         Fit the monopole and dipole on the masked sky (weights = mask) and
         subtract them before the transform.
+    templates : sequence of ndarray of shape (12*nside**2,), optional
+        Template maps (RING, e.g. a foreground map) fitted on the masked sky
+        jointly with the monopole and dipole and removed from every map
+        (:class:`cmbtools.spectrum.deprojection.TemplateDeprojection`).
+    guess_cl : array_like of shape (>= sky_lmax+1,), optional
+        Guess of the sky spectrum (K^2, from ell 0; default: the built-in
+        fiducial spectrum) for the corrections below; only its shape matters
+        (the corrections are exact for any multiple of it), and the bins'
+        model follows its shape inside each bin.
+    sky_lmax : int, optional
+        Band limit of the sky (default: lmax).  Above the last bin, up to
+        ``sky_lmax``, the sky's power leaking into the bins is modelled from
+        ``guess_cl`` with a rectangular coupling matrix; real skies: ``4 nside - 1``.
+    correct_deprojection_bias : bool, default=True
+        Correct the bias that removing the monopole, dipole and templates
+        causes (Elsner, Leistedt & Peiris 2016, MNRAS 456, 2095; see
+        :mod:`cmbtools.spectrum.deprojection`), from ``guess_cl``.
     coupling : {'exact', 'fast'}, default='exact'
         ``'fast'`` uses the approximation of Louis et al. 2020 (PRD 102,
         123538) for large lmax: exact rows below ``fast_exact_below``, a band of
