@@ -493,6 +493,11 @@ def read_polarized_spectrum_table(path) -> dict:
     negative.  :func:`write_spectrum_table` writes such tables from a dict,
     and :func:`read_spectrum_table` reads their TT column.
 
+    Parameters
+    ----------
+    path : str or path-like
+        The text file.
+
     Returns
     -------
     dict

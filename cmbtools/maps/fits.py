@@ -843,6 +843,16 @@ def is_iqu_file(path) -> bool:
     third columns with a leading Q and U (``Q``, ``Q_POLARISATION``,
     ``Q_STOKES``, ...).  A temperature-only file gives False.
 
+    Parameters
+    ----------
+    path : str or path-like
+        The FITS file.
+
+    Returns
+    -------
+    bool
+        Whether the file holds I, Q, U maps.
+
     Raises
     ------
     InputFileError
@@ -1039,6 +1049,17 @@ def read_mask_pair(path, *, pol_path=None, ordering=None, force=False):
     writes), else it is the temperature mask.  Both follow :func:`read_mask`'s
     rules (weights in [0, 1], missing pixels get weight 0).
 
+    Parameters
+    ----------
+    path : str or path-like
+        The FITS file of the temperature mask (and maybe the polarization mask).
+    pol_path : str or path-like, optional
+        A separate FITS file for the polarization mask.
+    ordering : {'RING', 'NESTED'}, optional
+        Override for files without an ``ORDERING`` keyword.
+    force : bool, default=False
+        As for :func:`read_map`.
+
     Returns
     -------
     mask, pol_mask : ndarray of shape (12*nside**2,)
@@ -1069,7 +1090,28 @@ def write_mask_pair(path, mask, pol_mask, *, coord=None, nest=False, overwrite=F
 
     Columns ``WEIGHT`` (temperature) and ``POL_WEIGHT`` (polarization), no unit;
     :func:`read_mask` reads the first, :func:`read_mask_pair` both.
-    Other parameters as for :func:`write_map`.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Destination (written atomically).
+    mask, pol_mask : array_like of shape (12*nside**2,)
+        Temperature and polarization weights in [0, 1], RING, same nside.
+    coord : {'G', 'C', 'E'}, optional
+        Coordinate system recorded in ``COORDSYS``.
+    nest : bool, default=False
+        Write in NESTED ordering.
+    overwrite : bool, default=False
+        Replace an existing file.
+    extra_header : dict or list of (key, value[, comment]), optional
+        Additional header cards.
+    dtype : {None, 'float32', 'float64'}, optional
+        Data type in the file (default float64).
+
+    Returns
+    -------
+    pathlib.Path
+        The file written.
     """
     w = check_mask(mask, "mask")
     wp = check_mask(pol_mask, "pol_mask")

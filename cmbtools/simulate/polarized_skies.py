@@ -59,8 +59,20 @@ _REQUIRED = ("TT", "EE", "BB", "TE")
 def check_spectra(spectra, lmax=None, name="spectra") -> dict:
     """Validate polarized spectra: a dict with TT, EE, BB, TE (and optionally TB, EB) arrays in K^2.
 
-    Returns a dict of the six float64 arrays, all cut to a common length
-    (``lmax + 1`` if given, else the shortest), TB and EB zero when absent.
+    Parameters
+    ----------
+    spectra : dict
+        Keys TT, EE, BB, TE (required), TB, EB (optional); arrays in K^2 from ell = 0.
+    lmax : int, optional
+        Cut every spectrum to ``lmax + 1`` values (they must extend that far).
+    name : str, default='spectra'
+        The parameter name for error messages.
+
+    Returns
+    -------
+    dict
+        The six float64 arrays (TT, TE, TB, EE, EB, BB), all cut to a common
+        length (``lmax + 1`` if given, else the shortest), TB and EB zero when absent.
 
     Raises
     ------
@@ -316,6 +328,20 @@ def polarized_noise_spectra(model, lmax, nside=None) -> dict:
     ``{'TT': N_l, 'EE': 2 N_l, 'BB': 2 N_l, 'TE': 0, 'TB': 0, 'EB': 0}`` with
     ``N_l`` from :func:`~cmbtools.simulate.noise_spectrum` (Q and U noise
     sqrt(2) times the temperature noise per pixel; see the module notes).
+
+    Parameters
+    ----------
+    model : NoiseModel
+        The temperature noise model.
+    lmax : int
+        Largest multipole.
+    nside : int, optional
+        Checked against the hits map's nside, as in :func:`~cmbtools.simulate.noise_spectrum`.
+
+    Returns
+    -------
+    dict
+        Spectrum name -> ndarray of shape (lmax+1,), K^2.
     """
     nl = noise_spectrum(model, lmax, nside)
     zero = np.zeros_like(nl)
@@ -333,12 +359,15 @@ def iqu_noise_map(model, nside, *, rng=None, lmax=None, nthreads=None, force=Fal
     Parameters
     ----------
     model : NoiseModel
+        The temperature noise model (depth, hits, knee).
     nside : int
         Resolution (must match the hits map).
     rng : Generator, SeedSequence, int or None, optional
+        Random source (see the module notes for the order of the draws).
     lmax : int, optional
         Largest multipole of the correlated part (default ``3*nside - 1``).
     nthreads : int, optional
+        Threads for the draws and transforms.
     force : bool, default=False
         Go ahead even when the memory estimate exceeds what the machine has available.
 

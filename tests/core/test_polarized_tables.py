@@ -62,7 +62,7 @@ def test_polarized_table_from_dl_columns_with_a_unit_comment(tmp_path):
     [
         ("ell,cl\n2,1e-10\n", "no TT column: a polarized table needs TT, EE, BB and TE"),
         ("ell,cl_tt,cl_ee,cl_bb,cl_te\n2,1e-10,-1e-12,0,0\n", "line 2: negative power cl_ee"),
-        ("ell,cl_tt,cl_tt_k2,cl_ee,cl_bb,cl_te\n2,1,1,1,1,1\n", "more than one cl column"),
+        ("ell,cl_tt,cl_tt_k2,cl_ee,cl_bb,cl_te\n2,1,1,1,1,1\n", "more than one TT column"),
         ("ell,cl_tt,cl_ee,cl_bb,dl_te\n2,1,1,1,1\n", "the 'dl_te' column has no unit"),
         ("ell,cl_tt,cl_ee,cl_bb,cl_te\n2,1e-10,1e-12,0,x\n", "line 2: cl_te value 'x' is not a number"),
     ],
