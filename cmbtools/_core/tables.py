@@ -622,7 +622,7 @@ def _format(x):
     return "0" if x == 0 else f"{x:.10e}"
 
 
-def write_spectrum_table(path, cl, *, overwrite=False, header=None) -> None:
+def write_spectrum_table(path, cl, *, overwrite=False, header=None) -> Path:
     """Write C_l (K^2, indexed by ell from 0) as a spectrum table.
 
     The file has the columns ``ell``, ``cl_k2`` (C_l in K^2) and ``dl_uk2``
@@ -642,6 +642,11 @@ def write_spectrum_table(path, cl, *, overwrite=False, header=None) -> None:
         Extra comment lines: a string (one comment line per text line) or a
         mapping written as ``# key: value`` lines.  The key ``unit`` is
         reserved (the column names carry the units).
+
+    Returns
+    -------
+    Path
+        The file written.
     """
     if isinstance(cl, dict):
         columns = _polarized_columns(cl)
@@ -669,6 +674,7 @@ def write_spectrum_table(path, cl, *, overwrite=False, header=None) -> None:
             if re.match(r"#\s*units?\s*:", t, flags=re.IGNORECASE):
                 raise InvalidInputError("The 'header' may not contain a 'unit:' line: the column names carry the units.")
         lines.extend(extra)
+<<<<<<< HEAD
     tags = [f"_{k.lower()}" if k else "" for k in columns]
     names = ("ell", *(f"cl{t}_k2" for t in tags), *(f"dl{t}_uk2" for t in tags))
     arrays = list(columns.values())
@@ -696,3 +702,10 @@ def _polarized_columns(spectra) -> dict:
     if len({a.size for a in out.values()}) > 1:
         raise InvalidInputError(f"The polarized spectra must all have one length. Got lengths {sorted({a.size for a in out.values()})}.")
     return {k: a for k, a in out.items() if k in ("TT", "EE", "BB", "TE") or np.any(a != 0)}
+=======
+    ell = np.arange(cl.size, dtype=float)
+    dl_uk2 = ell * (ell + 1.0) * cl / (2.0 * math.pi) * 1e12
+    rows = ((str(i), _format(cl[i]), _format(dl_uk2[i])) for i in range(cl.size))
+    return write_text_table(path, ("ell", "cl_k2", "dl_uk2"), rows, comments=[c[2:] for c in lines],
+                            overwrite=overwrite)
+>>>>>>> main

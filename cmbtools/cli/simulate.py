@@ -204,10 +204,10 @@ def _run(args, created) -> int:
     if args.noise_depth is not None:
         hits = None
         if args.hits is not None:
-            from cmbtools.maps import read_map
+            from cmbtools.maps import read_sky_map
 
             # hits are relative weights with no unit: read the values as they are
-            hits, _ = read_map(args.hits, unit="K", force=args.force)
+            hits, _ = read_sky_map(args.hits, unit="K", force=args.force)
         noise = simulate.NoiseModel(args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
         if noise.nside is not None and nside is not None and noise.nside != nside:
             raise InvalidInputError(f"--hits has nside {noise.nside} but --nside is {nside}")
@@ -253,7 +253,7 @@ def _run(args, created) -> int:
     monopole = args.monopole_uk * 1e-6
     nthreads = args.threads or None
 
-    from cmbtools.maps import write_map
+    from cmbtools.maps import write_sky_map
 
     print(f"simulating {args.sims} map(s): nside {nside}, lmax {lmax}, seed {seed}, spectrum: {source}")
     print(f"  beam: {beam_text}; pixel window: {'no' if args.no_pixel_window else 'yes'}; "
@@ -275,12 +275,12 @@ def _run(args, created) -> int:
                     m = sky + simulate.noise_map(noise, nside, rng=rng, nthreads=nthreads, force=args.force)
                 split_maps.append(m)
         for k, (path, m) in enumerate(zip(group, split_maps), start=1):
-            _write_one(path, m, i, k if args.splits else None, args, seed, lmax, beam_text, noise, write_map,
+            _write_one(path, m, i, k if args.splits else None, args, seed, lmax, beam_text, noise, write_sky_map,
                        missing_pixels)
     return 0
 
 
-def _write_one(path, m, i, split, args, seed, lmax, beam_text, noise, write_map, missing_pixels):
+def _write_one(path, m, i, split, args, seed, lmax, beam_text, noise, write_sky_map, missing_pixels):
     import math
 
     import numpy as np
@@ -295,8 +295,8 @@ def _write_one(path, m, i, split, args, seed, lmax, beam_text, noise, write_map,
     ]
     if split is not None:
         header.append(("CMBSPLIT", split, "split number: same sky, independent noise"))
-    write_map(path, m, coord=args.coord, overwrite=args.overwrite, extra_header=header,
-              dtype="float32" if args.float32 else None, partial=noise is not None and noise.hits is not None)
+    write_sky_map(path, m, coordinates=args.coord, overwrite=args.overwrite, header=header,
+              dtype="float32" if args.float32 else None, observed_only=noise is not None and noise.hits is not None)
     good = m[~missing_pixels(m)]  # the observed pixels
     peak = float(np.max(np.abs(good), initial=0.0))
     rms = peak * math.sqrt(float(np.mean((good / peak) ** 2))) if peak > 0 else 0.0  # no overflow in m**2

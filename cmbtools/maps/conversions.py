@@ -33,7 +33,11 @@ from cmbtools._core.checks import (
 from cmbtools._core.memory import check_memory, estimate_map_transform_bytes, estimate_regrade_bytes
 from cmbtools.exceptions import InvalidInputError
 
+<<<<<<< HEAD
 __all__ = ["rotate_map", "rotate_mask", "change_resolution", "smooth_map", "gaussian_beam_window", "rotate_iqu", "smooth_iqu"]
+=======
+__all__ = ["rotate_map", "rotate_mask", "change_resolution", "smooth_map"]
+>>>>>>> main
 
 
 def _nside_of(a):
@@ -223,28 +227,23 @@ def rotate_mask(mask, coord_in, coord_out):
 
 
 def gaussian_beam_window(fwhm_arcmin, lmax):
-    """Harmonic transfer ``B_l = exp(-l(l+1) sigma^2 / 2)`` of a Gaussian beam.
-
-    ``sigma = FWHM / sqrt(8 ln 2)`` (common practice; the flat-sky Gaussian
-    beam's transform, accurate for FWHM well below a radian).
+    """Deprecated name of :func:`cmbtools.spectrum.gaussian_beam` (the one Gaussian beam); kept for one release.
 
     Parameters
     ----------
     fwhm_arcmin : float
-        Full width at half maximum of the beam, arcmin (>= 0).
+        Full width at half maximum, arcminutes.
     lmax : int
         Largest multipole.
 
     Returns
     -------
     ndarray of shape (lmax+1,)
-        B_l for ell = 0..lmax.
+        ``B_l``.
     """
-    fwhm = check_positive(fwhm_arcmin, "fwhm_arcmin")
-    lmax = check_lmax(lmax)
-    sigma = math.radians(fwhm / 60.0) / math.sqrt(8.0 * math.log(2.0))
-    ell = np.arange(lmax + 1, dtype=np.float64)
-    return np.exp(-0.5 * ell * (ell + 1.0) * sigma**2)
+    from cmbtools.spectrum.beams import gaussian_beam
+
+    return gaussian_beam(fwhm_arcmin, lmax)
 
 
 _FILL_CHOICES = (None, "zero", "mean")
@@ -306,7 +305,9 @@ def smooth_map(m, *, fwhm_arcmin=None, beam=None, lmax=None, fill_missing=None, 
     if (fwhm_arcmin is None) == (beam is None):
         raise InvalidInputError("Give exactly one of 'fwhm_arcmin' (Gaussian beam) and 'beam' (tabulated B_l).")
     if beam is None:
-        bl = gaussian_beam_window(fwhm_arcmin, lmax)
+        from cmbtools.spectrum.beams import gaussian_beam
+
+        bl = gaussian_beam(check_positive(fwhm_arcmin, "fwhm_arcmin"), lmax)
     else:
         bl = check_cl(beam, "beam", lmax=lmax)[: lmax + 1]
     if fill_missing not in _FILL_CHOICES:

@@ -28,14 +28,16 @@ from pathlib import Path
 import numpy as np
 
 from cmbtools._core.files import atomic_output, check_output_path, open_fits, sha256_file, short_message
+from cmbtools._core.checks import renamed_keywords
 from cmbtools._core.checks import UNSEEN, check_mask, missing_pixels, nside_from_npix
 from cmbtools._version import __version__
 from cmbtools.exceptions import CmbtoolsWarning, InputFileError, InvalidInputError
 
+
 __all__ = [
     "MapInfo",
-    "read_map",
-    "write_map",
+    "read_sky_map",
+    "write_sky_map",
     "read_mask",
     "write_mask",
     "unit_scale",
@@ -254,14 +256,15 @@ def _memory_check(force):
     return lambda need, what: check_memory(need, what, force=force)
 
 
-def read_map_values(path, *, field=0, force=False):
+@renamed_keywords(field="column")
+def read_map_values(path, *, column=0, force=False):
     """Read a HEALPix map's values as the file stores them (no unit conversion), RING ordering.
 
     Parameters
     ----------
     path : str or path-like
         The FITS file.
-    field : int, default=0
+    column : int, default=0
         Which map column to read, numbered from 0.
     force : bool, default=False
         Read a partial-sky file even if the full-sky map it describes is
@@ -272,7 +275,7 @@ def read_map_values(path, *, field=0, force=False):
     ndarray of shape (12*nside**2,)
         float64 values in the file's own unit; missing pixels hold UNSEEN.
     """
-    values, _facts = _read_table(path, field, None, _memory_check(force))
+    values, _facts = _read_table(path, column, None, _memory_check(force))
     return values
 
 
@@ -442,21 +445,22 @@ def _scale_to_kcmb(path, unit, file_unit, temptype, *, what="the file"):
         raise InputFileError(path, f"{exc} (pass unit= to override)") from None
 
 
-def read_map(path, *, field=0, unit=None, ordering=None, force=False):
+@renamed_keywords(field="column", ordering="file_ordering")
+def read_sky_map(path, *, column=0, unit=None, file_ordering=None, force=False):
     """Read a HEALPix map from a FITS file, in K_CMB and RING ordering.
 
     Parameters
     ----------
     path : str or path-like
         The FITS file.
-    field : int, default=0
+    column : int, default=0
         Which map column to read, numbered from 0 (the ``PIXEL`` column of a
         partial-sky file is not counted).
     unit : str, optional
         The unit of the values in the file, overriding what the header says
         (for files with a missing or wrong unit).  Must be K, mK or uK in
         thermodynamic CMB temperature.
-    ordering : {'RING', 'NESTED'}, optional
+    file_ordering : {'RING', 'NESTED'}, optional
         Override for files without (or with a wrong) ``ORDERING`` keyword.
     force : bool, default=False
         Read a partial-sky file even if the full-sky map it describes is
@@ -476,7 +480,7 @@ def read_map(path, *, field=0, unit=None, ordering=None, force=False):
     ------
     InputFileError
         If the file is missing, not FITS, truncated, has no HEALPix table, an
-        impossible pixel count or nside, no such field, or a unit that is not a
+        impossible pixel count or nside, no such column, or a unit that is not a
         thermodynamic CMB temperature (and ``unit`` is not given).
     MemoryLimitError
         If a partial-sky file describes a map too large for the memory
@@ -487,7 +491,7 @@ def read_map(path, *, field=0, unit=None, ordering=None, force=False):
     CmbtoolsWarning
         If the file states no unit and ``unit`` is not given (K_CMB is assumed).
     """
-    m, facts = _read_table(path, field, ordering, _memory_check(force))
+    m, facts = _read_table(path, column, file_ordering, _memory_check(force))
     temptype = facts.pop("temptype")
     facts.pop("n_bad_values")
     scale = _scale_to_kcmb(facts["path"], unit, facts["unit_in_file"], temptype)
@@ -499,7 +503,8 @@ def read_map(path, *, field=0, unit=None, ordering=None, force=False):
     return m, info
 
 
-def read_mask(path, *, field=0, ordering=None, force=False):
+@renamed_keywords(field="column", ordering="file_ordering")
+def read_mask(path, *, column=0, file_ordering=None, force=False):
     """Read a mask (binary or weighted, values in [0, 1]) from a HEALPix FITS file.
 
     Pixels missing from the file get weight 0: pixels a partial-sky file does
@@ -510,12 +515,12 @@ def read_mask(path, *, field=0, ordering=None, force=False):
     ----------
     path : str or path-like
         The FITS file.
-    field : int, default=0
+    column : int, default=0
         Which map column to read.
-    ordering : {'RING', 'NESTED'}, optional
+    file_ordering : {'RING', 'NESTED'}, optional
         Override for files without an ``ORDERING`` keyword.
     force : bool, default=False
-        As for :func:`read_map`.
+        As for :func:`read_sky_map`.
 
     Returns
     -------
@@ -525,12 +530,12 @@ def read_mask(path, *, field=0, ordering=None, force=False):
     Raises
     ------
     InputFileError
-        For unreadable files (see :func:`read_map`) and for values outside
+        For unreadable files (see :func:`read_sky_map`) and for values outside
         [0, 1] or a mask that is zero everywhere.
     MemoryLimitError
-        As for :func:`read_map`.
+        As for :func:`read_sky_map`.
     """
-    w, facts = _read_table(path, field, ordering, _memory_check(force))
+    w, facts = _read_table(path, column, file_ordering, _memory_check(force))
     n_stored = facts["n_bad_values"]
     if n_stored > 0:
         warnings.warn(
@@ -558,7 +563,7 @@ def _header_cards(extra_header):
             cards.append(tuple(item))
         else:
             raise InvalidInputError(
-                f"The 'extra_header' parameter must be a dict or a list of (key, value[, comment]) tuples. "
+                f"The 'header' parameter must be a dict or a list of (key, value[, comment]) tuples. "
                 f"Got the entry {item!r} instead."
             )
     return cards
@@ -569,8 +574,9 @@ _RESERVED = {"PIXTYPE", "ORDERING", "NSIDE", "FIRSTPIX", "LASTPIX", "INDXSCHM", 
              "EXTNAME", "POLANGLE", "POLCCONV", *(f"{k}{i}" for k in ("TUNIT", "TTYPE", "TFORM") for i in range(1, 5))}
 
 
-def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False, extra_header=None,
-              dtype=None, partial=False, column_name="TEMPERATURE"):
+@renamed_keywords(coord="coordinates", nest="nested", extra_header="header", partial="observed_only")
+def write_sky_map(path, m, *, unit="K_CMB", coordinates=None, nested=False, overwrite=False, header=None,
+                  dtype=None, observed_only=False, column_name="TEMPERATURE"):
     """Write a HEALPix map to a FITS file (atomically; never overwrites by default).
 
     Parameters
@@ -585,17 +591,17 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
         (``unit='uK_CMB'`` multiplies by 1e6) and the unit is recorded in
         ``TUNIT``.  ``None`` writes the values unchanged with no unit
         (masks, hit counts).
-    coord : {'G', 'C', 'E'}, optional
+    coordinates : {'G', 'C', 'E'}, optional
         Coordinate system recorded in ``COORDSYS``.
-    nest : bool, default=False
+    nested : bool, default=False
         Write in NESTED ordering instead of RING.
     overwrite : bool, default=False
         Replace an existing file.
-    extra_header : dict or list of (key, value[, comment]), optional
+    header : dict or list of (key, value[, comment]), optional
         Additional header cards (the HEALPix keywords cannot be overridden).
     dtype : {None, 'float32', 'float64'}, optional
         Data type in the file (default float64).
-    partial : bool, default=False
+    observed_only : bool, default=False
         Write an explicit-index partial-sky file: only the pixels that are
         not missing are stored, with their pixel numbers in a ``PIXEL`` column.
     column_name : str, default='TEMPERATURE'
@@ -612,7 +618,7 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
         If ``path`` exists and ``overwrite`` is false.
     InvalidInputError
         For a malformed map, an unknown unit or dtype, a value that does not
-        fit in the dtype (in the unit), or ``partial=True`` with no valid pixel.
+        fit in the dtype (in the unit), or ``observed_only=True`` with no valid pixel.
     """
     try:
         a = np.asarray(m, dtype=np.float64)
@@ -620,6 +626,7 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
         raise InvalidInputError("The 'm' parameter must be an array of numbers.") from None
     if a.ndim != 1:
         raise InvalidInputError(f"The 'm' parameter must be a 1-d HEALPix map. Got shape {a.shape} instead.")
+<<<<<<< HEAD
     return _write_columns(path, a[None, :], [unit], [column_name], coord=coord, nest=nest, overwrite=overwrite,
                           extra_header=extra_header, dtype=dtype, partial=partial)
 
@@ -633,6 +640,11 @@ def _write_columns(path, a, units, column_names, *, coord, nest, overwrite, extr
     nside = nside_from_npix(a.shape[1], "m")
     npix = a.shape[1]
     coord = normalize_coord(coord)
+=======
+    nside = nside_from_npix(a.size, "m")
+    npix = a.size
+    coord = normalize_coord(coordinates)
+>>>>>>> main
     if dtype is None:
         out_dtype = np.dtype(np.float64)
     else:
@@ -642,6 +654,7 @@ def _write_columns(path, a, units, column_names, *, coord, nest, overwrite, extr
             out_dtype = None
         if out_dtype not in (np.dtype(np.float32), np.dtype(np.float64)):
             raise InvalidInputError(f"The 'dtype' parameter must be float32 or float64. Got {dtype!r} instead.")
+<<<<<<< HEAD
     scales, clean_units = [], []
     for unit in units:
         if unit is not None:
@@ -654,11 +667,21 @@ def _write_columns(path, a, units, column_names, *, coord, nest, overwrite, extr
             scales.append(1.0)
         clean_units.append(unit)
     cards = _header_cards(extra_header)
+=======
+    if unit is not None:
+        scale = unit_scale(unit, source="'unit' parameter")
+        # FITS header values are printable ASCII: write the micro sign as 'u'
+        unit = str(unit).strip().replace("\u00b5", "u").replace("\u03bc", "u")
+        if not unit.isascii() or not unit.isprintable():
+            raise InvalidInputError(f"The 'unit' parameter must be printable ASCII text. Got {unit!r} instead.")
+    cards = _header_cards(header)
+>>>>>>> main
     for c in cards:
         if str(c[0]).upper() in _RESERVED:
-            raise InvalidInputError(f"The 'extra_header' parameter may not set the HEALPix keyword {c[0]!r}.")
+            raise InvalidInputError(f"The 'header' parameter may not set the HEALPix keyword {c[0]!r}.")
     check_output_path(path, overwrite=overwrite)
 
+<<<<<<< HEAD
     bads, values = [], []
     for row, unit, scale in zip(a, clean_units, scales):
         bad = missing_pixels(row)
@@ -683,6 +706,28 @@ def _write_columns(path, a, units, column_names, *, coord, nest, overwrite, extr
     tform = "E" if out_dtype == np.float32 else "D"
     if partial:
         pix = np.flatnonzero(~np.logical_and.reduce(bads))
+=======
+    bad = missing_pixels(a)
+    values = a.copy()
+    if unit is not None and scale != 1.0:
+        with np.errstate(over="ignore"):  # checked just below
+            values[~bad] /= scale
+    values[bad] = UNSEEN
+    too_big = ~bad & ~(np.abs(values) <= np.finfo(out_dtype).max)
+    if too_big.any():
+        i = int(np.argmax(too_big))
+        raise InvalidInputError(
+            f"The map value {float(a[i])!r} at pixel {i} does not fit in {out_dtype.name}"
+            + (f" (in {unit})" if unit is not None else "")
+            + ("; write the map with dtype='float64'." if out_dtype == np.float32 else ".")
+        )
+    if nested:
+        values = hp.reorder(values, r2n=True)
+        bad = hp.reorder(bad.astype(np.int8), r2n=True).astype(bool)
+    tform = "E" if out_dtype == np.float32 else "D"
+    if observed_only:
+        pix = np.flatnonzero(~bad)
+>>>>>>> main
         if pix.size == 0:
             raise InvalidInputError("The map has no valid pixel; a partial-sky file would be empty.")
         pix_format = "J" if npix < 2**31 else "K"
@@ -694,14 +739,14 @@ def _write_columns(path, a, units, column_names, *, coord, nest, overwrite, extr
                    for v, unit, name in zip(values, clean_units, column_names)]
     hdu = fits.BinTableHDU.from_columns(columns)
     h = hdu.header
-    h["EXTNAME"] = ("SKYMAP" if not partial else "PARTIAL_SKYMAP", "HEALPix map")
+    h["EXTNAME"] = ("SKYMAP" if not observed_only else "PARTIAL_SKYMAP", "HEALPix map")
     h["PIXTYPE"] = ("HEALPIX", "HEALPix pixelisation")
-    h["ORDERING"] = ("NESTED" if nest else "RING", "pixel ordering scheme")
+    h["ORDERING"] = ("NESTED" if nested else "RING", "pixel ordering scheme")
     h["NSIDE"] = (nside, "resolution parameter")
     h["FIRSTPIX"] = (0, "first pixel number (0 based)")
     h["LASTPIX"] = (npix - 1, "last pixel number (0 based)")
-    h["INDXSCHM"] = ("EXPLICIT" if partial else "IMPLICIT", "indexing: implicit or explicit")
-    h["OBJECT"] = ("PARTIAL" if partial else "FULLSKY", "sky coverage")
+    h["INDXSCHM"] = ("EXPLICIT" if observed_only else "IMPLICIT", "indexing: implicit or explicit")
+    h["OBJECT"] = ("PARTIAL" if observed_only else "FULLSKY", "sky coverage")
     if coord is not None:
         h["COORDSYS"] = (coord, "G = galactic, C = equatorial, E = ecliptic")
     h["BAD_DATA"] = (UNSEEN, "value of missing pixels")
@@ -719,10 +764,11 @@ def _write_columns(path, a, units, column_names, *, coord, nest, overwrite, extr
     return Path(path)
 
 
-def write_mask(path, mask, *, coord=None, nest=False, overwrite=False, extra_header=None, dtype=None):
+@renamed_keywords(coord="coordinates", nest="nested", extra_header="header")
+def write_mask(path, mask, *, coordinates=None, nested=False, overwrite=False, header=None, dtype=None):
     """Write a mask (values in [0, 1]) to a HEALPix FITS file with no unit.
 
-    Parameters are as for :func:`write_map`; the mask is checked with the
+    Parameters are as for :func:`write_sky_map`; the mask is checked with the
     same rules as :func:`read_mask` before anything is written.
 
     Parameters
@@ -731,13 +777,13 @@ def write_mask(path, mask, *, coord=None, nest=False, overwrite=False, extra_hea
         Destination.
     mask : array_like of shape (12*nside**2,)
         RING mask, weights in [0, 1].
-    coord : {'G', 'C', 'E'}, optional
+    coordinates : {'G', 'C', 'E'}, optional
         Coordinate system recorded in ``COORDSYS``.
-    nest : bool, default=False
+    nested : bool, default=False
         Write in NESTED ordering instead of RING.
     overwrite : bool, default=False
         Replace an existing file.
-    extra_header : dict or list of (key, value[, comment]), optional
+    header : dict or list of (key, value[, comment]), optional
         Additional header cards (the HEALPix keywords cannot be overridden).
     dtype : {None, 'float32', 'float64'}, optional
         Data type in the file (default float64).
@@ -748,6 +794,7 @@ def write_mask(path, mask, *, coord=None, nest=False, overwrite=False, extra_hea
         The file written.
     """
     w = check_mask(mask, "mask")
+<<<<<<< HEAD
     return write_map(path, w, unit=None, coord=coord, nest=nest, overwrite=overwrite,
                      extra_header=extra_header, dtype=dtype, column_name="WEIGHT")
 
@@ -1121,3 +1168,46 @@ def write_mask_pair(path, mask, pol_mask, *, coord=None, nest=False, overwrite=F
         )
     return _write_columns(path, np.stack([w, wp]), [None, None], ["WEIGHT", "POL_WEIGHT"], coord=coord, nest=nest,
                           overwrite=overwrite, extra_header=extra_header, dtype=dtype, partial=False)
+=======
+    return write_sky_map(path, w, unit=None, coordinates=coordinates, nested=nested, overwrite=overwrite,
+                         header=header, dtype=dtype, column_name="WEIGHT")
+
+
+def read_map(path, *, field=0, unit=None, ordering=None, force=False):
+    """Deprecated name of :func:`read_sky_map` (``field`` is ``column``, ``ordering`` is ``file_ordering``).
+
+    Kept for one release.
+
+    Parameters
+    ----------
+    path, field, unit, ordering, force
+        As ``path``, ``column``, ``unit``, ``file_ordering`` and ``force`` of :func:`read_sky_map`.
+
+    Returns
+    -------
+    m : ndarray
+        As :func:`read_sky_map`.
+    info : MapInfo
+        As :func:`read_sky_map`.
+    """
+    return read_sky_map(path, column=field, unit=unit, file_ordering=ordering, force=force)
+
+
+def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False, extra_header=None, dtype=None,
+              partial=False, column_name="TEMPERATURE"):
+    """Deprecated name of :func:`write_sky_map` with its old keywords. Kept for one release.
+
+    Parameters
+    ----------
+    path, m, unit, coord, nest, overwrite, extra_header, dtype, partial, column_name
+        As ``path``, ``m``, ``unit``, ``coordinates``, ``nested``, ``overwrite``, ``header``, ``dtype``,
+        ``observed_only`` and ``column_name`` of :func:`write_sky_map`.
+
+    Returns
+    -------
+    Path
+        The file written.
+    """
+    return write_sky_map(path, m, unit=unit, coordinates=coord, nested=nest, overwrite=overwrite, header=extra_header,
+                         dtype=dtype, observed_only=partial, column_name=column_name)
+>>>>>>> main

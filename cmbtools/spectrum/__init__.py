@@ -32,11 +32,22 @@ Examples
 True
 """
 
-from __future__ import annotations
-
 from cmbtools.spectrum.bandpowers import Bandpowers
+<<<<<<< HEAD
 from cmbtools.spectrum.beams import gaussian_beam, gaussian_polarized_beam, read_beam, write_beam
+=======
+from cmbtools.spectrum.beams import GaussianBeam, gaussian_beam, read_beam, write_beam
+>>>>>>> main
 from cmbtools.spectrum.binning import Binning
+from cmbtools.spectrum.covariance import (
+    BandpowerCovariance,
+    GaussianCovariance,
+    PixelNoise,
+    hartlap_factor,
+    read_covariance,
+    simulated_covariance,
+    write_covariance,
+)
 from cmbtools.spectrum.estimator import MAX_CONDITION_NUMBER, SpectrumEstimator
 from cmbtools.spectrum.one_call import estimate_spectrum
 from cmbtools.spectrum.pixel_windows import pixel_window, polarization_pixel_window
@@ -49,12 +60,23 @@ __all__ = [
     "Bandpowers",
     "estimate_spectrum",
     "MAX_CONDITION_NUMBER",
+    "GaussianBeam",
     "gaussian_beam",
     "read_beam",
     "write_beam",
     "pixel_window",
+<<<<<<< HEAD
     "polarization_pixel_window",
     "gaussian_polarized_beam",
+=======
+    "PixelNoise",
+    "GaussianCovariance",
+    "BandpowerCovariance",
+    "simulated_covariance",
+    "hartlap_factor",
+    "write_covariance",
+    "read_covariance",
+>>>>>>> main
     "PolarizedSpectrumEstimator",
     "PolarizedBandpowers",
     "estimate_polarized_spectra",

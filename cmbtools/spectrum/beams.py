@@ -26,6 +26,7 @@ last one exactly once and in order, and finite values ``>= 0``.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import warnings
 from pathlib import Path
@@ -34,11 +35,11 @@ import numpy as np
 
 from cmbtools._core import files as _io
 from cmbtools._core.tables import number_cell, read_text_table, write_text_table
-from cmbtools._core.checks import check_lmax, check_positive
+from cmbtools._core.checks import check_lmax, check_positive, renamed_keywords
 from cmbtools._version import __version__
 from cmbtools.exceptions import CmbtoolsWarning, InputFileError, InvalidInputError
 
-__all__ = ["gaussian_beam", "gaussian_polarized_beam", "read_beam", "write_beam"]
+__all__ = ["GaussianBeam", "gaussian_beam", "gaussian_polarized_beam", "read_beam", "write_beam"]
 
 #: Column names accepted for the multipole and the beam (compared case-insensitively).
 _ELL_NAMES = ("ell",)
@@ -46,6 +47,40 @@ _BEAM_NAMES = ("b_ell",)
 
 #: |B_0 - 1| above which a tabulated beam triggers a warning (it is still used as given).
 _B0_TOLERANCE = 1e-3
+
+
+@dataclasses.dataclass(frozen=True)
+class GaussianBeam:
+    """A circular Gaussian beam given by its full width at half maximum, in arcminutes.
+
+    Wherever a beam is accepted (``SpectrumEstimator(beam=...)``, ``gaussian_sky(beam=...)``, ...),
+    ``GaussianBeam(fwhm_arcmin=25.0)`` says what a bare number (also accepted) means: a FWHM in arcmin.
+
+    Parameters
+    ----------
+    fwhm_arcmin : float
+        Full width at half maximum, arcminutes (>= 0).
+    """
+
+    fwhm_arcmin: float
+
+    def __post_init__(self):
+        object.__setattr__(self, "fwhm_arcmin", check_positive(self.fwhm_arcmin, "fwhm_arcmin", allow_zero=True))
+
+    def transfer(self, lmax) -> np.ndarray:
+        """B_l for ell = 0..lmax (:func:`gaussian_beam`).
+
+        Parameters
+        ----------
+        lmax : int
+            Largest multipole.
+
+        Returns
+        -------
+        ndarray of shape (lmax+1,)
+            The beam transfer function.
+        """
+        return gaussian_beam(self.fwhm_arcmin, lmax)
 
 
 def gaussian_beam(fwhm_arcmin, lmax) -> np.ndarray:
@@ -291,7 +326,8 @@ def _check_table(p: Path, ell: np.ndarray, beam: np.ndarray, where: list[str]) -
 # --------------------------------------------------------------------------- writing
 
 
-def write_beam(path, b_ell, *, overwrite=False, header_comment=None) -> Path:
+@renamed_keywords(header_comment="header")
+def write_beam(path, b_ell, *, overwrite=False, header=None) -> Path:
     """Write a beam transfer function as a text table that :func:`read_beam` reads back exactly.
 
     Parameters
@@ -302,7 +338,7 @@ def write_beam(path, b_ell, *, overwrite=False, header_comment=None) -> Path:
         B_l for ell = 0..lmax; finite and >= 0.
     overwrite : bool, default=False
         Replace an existing file.
-    header_comment : str, optional
+    header : str, optional
         Text written as ``#`` comment lines above the table (may span lines).
 
     Returns
@@ -330,8 +366,8 @@ def write_beam(path, b_ell, *, overwrite=False, header_comment=None) -> Path:
         i = int(np.argmax(b < 0))
         raise InvalidInputError(f"The 'b_ell' parameter must be >= 0. Got {float(b[i])!r} at ell={i} instead.")
     comments = []
-    if header_comment:
-        comments += [c for c in str(header_comment).splitlines()]
+    if header:
+        comments += [c for c in str(header).splitlines()]
     comments.append(f"beam transfer function B_l for ell = 0..{b.size - 1}, written by cmbtools {__version__}")
     rows = ((str(i), repr(v)) for i, v in enumerate(b.tolist()))
     out = write_text_table(path, ("ell", "b_ell"), rows, comments=comments, overwrite=overwrite)

@@ -96,9 +96,10 @@ class SpectrumEstimator:
     mask2 : ndarray of shape (12*nside**2,), optional
         Weights for map 2 of cross-spectra (default: ``mask``).  The coupling
         of a cross-spectrum uses the cross-spectrum of the two masks.
-    beam, beam2 : None, float or ndarray of shape (>= lmax+1,), optional
-        Beam of map 1 / map 2: ``None`` (no beam), a Gaussian FWHM in arcmin or
-        a table ``B_l``.  ``beam2=None`` means "the same as map 1".
+    beam, beam2 : None, GaussianBeam, float or ndarray of shape (>= lmax+1,), optional
+        Beam of map 1 / map 2: ``None`` (no beam), a Gaussian beam
+        (``GaussianBeam(fwhm_arcmin=25.0)``, or the bare FWHM in arcmin) or a
+        table ``B_l``.  ``beam2=None`` means "the same as map 1".
     pixel_window : bool or ndarray of shape (>= lmax+1,), default=True
         Deconvolve the HEALPix pixel window of nside (computed by cmbtools,
         no download), or a table ``p_l``; ``False`` for none.  It applies to
@@ -111,9 +112,9 @@ class SpectrumEstimator:
         subtract them before the transform.
     coupling : {'exact', 'fast'}, default='exact'
         ``'fast'`` uses the approximation of Louis et al. 2020 (PRD 102,
-        123538) for large lmax: exact below ``fast_l_exact``, a band of
-        half-width ``fast_band`` around the diagonal up to ``fast_l_toeplitz``,
-        Toeplitz above.  Defaults: :func:`cmbtools.spectrum.coupling.default_fast_settings`.
+        123538) for large lmax: exact rows below ``fast_exact_below``, a band of
+        half-width ``fast_band_half_width`` around the diagonal below ``fast_banded_below``,
+        and above it rows that repeat the band's shape along the diagonal (a Toeplitz matrix).  Defaults: :func:`cmbtools.spectrum.coupling.default_fast_settings`.
         With ``lmax`` above ``2 nside`` the exact matrix is computed instead
         (unless the settings below are given): there the coupling is dominated
         by the HEALPix grid's aliasing, which a banded form cannot represent
@@ -122,8 +123,9 @@ class SpectrumEstimator:
         It agrees with ``'exact'`` to < 1e-3 for bins up to ``2 nside``; above,
         it misses the quadrature-aliasing part of the exact matrix (percent
         level near ``3 nside``).
-    fast_l_exact, fast_l_toeplitz, fast_band : int, optional
-        Settings of the fast coupling.
+    fast_exact_below, fast_banded_below, fast_band_half_width : int, optional
+        Settings of the fast coupling (the multipole below which rows are
+        exact, the one below which they are banded, the band's half-width).
     n_iter : int, default=0
         Refinement steps of every harmonic transform (maps and mask).  With 0
         the pseudo-Cl is the plain quadrature of the masked map and the
@@ -326,7 +328,7 @@ class SpectrumEstimator:
     @property
     def pixel_window(self) -> np.ndarray:
         """p_l deconvolved from both maps (ones when disabled)."""
-        return self._inputs.pixwin
+        return self._inputs.pixel_window
 
     def _pair(self, cross: bool):
         """(P M, F, A^-1) of the auto-spectrum of map 1, or of the cross-spectrum."""

@@ -64,9 +64,9 @@ def build_operator(inp, nthreads) -> dict:
     p = binning.averaging_weights(lmax)
     fast = inp.fast
 
-    f1 = inp.beam1**2 * inp.pixwin**2 * inp.transfer1
-    f2 = inp.beam2**2 * inp.pixwin**2 * inp.transfer2
-    f12 = inp.beam1 * inp.beam2 * inp.pixwin**2 * np.sqrt(inp.transfer1 * inp.transfer2)
+    f1 = inp.beam1**2 * inp.pixel_window**2 * inp.transfer1
+    f2 = inp.beam2**2 * inp.pixel_window**2 * inp.transfer2
+    f12 = inp.beam1 * inp.beam2 * inp.pixel_window**2 * np.sqrt(inp.transfer1 * inp.transfer2)
     same_factor = np.array_equal(f1, f2) and np.array_equal(f1, f12)
 
     if inp.n_iter == 0:  # never holds the masks' full coefficients (see _sht.map_spectra)

@@ -25,6 +25,7 @@ from cmbtools._core.checks import (
     check_positive,
     check_same_nside,
     nside_from_npix,
+    renamed_keywords,
 )
 from cmbtools._version import __version__
 from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
@@ -52,8 +53,12 @@ def _beam_array(beam, lmax, name):
     """B_l for ell = 0..lmax from None, a FWHM in arcmin or an array; and a description."""
     from cmbtools.spectrum.beams import gaussian_beam
 
+    from cmbtools.spectrum.beams import GaussianBeam
+
     if beam is None:
         return np.ones(lmax + 1), "none"
+    if isinstance(beam, GaussianBeam):
+        beam = beam.fwhm_arcmin
     if np.ndim(beam) == 0:
         fwhm = check_positive(beam, f"{name} (FWHM in arcmin)", allow_zero=True)
         return gaussian_beam(fwhm, lmax), f"gaussian fwhm_arcmin={fwhm:g}"
@@ -101,7 +106,7 @@ class EstimatorSettings:
     lmax: int
     beam1: np.ndarray
     beam2: np.ndarray
-    pixwin: np.ndarray
+    pixel_window: np.ndarray
     transfer1: np.ndarray
     transfer2: np.ndarray
     remove_monopole_dipole: bool
@@ -128,7 +133,7 @@ class EstimatorSettings:
             self.lmax,
             self.beam1,
             self.beam2,
-            self.pixwin,
+            self.pixel_window,
             self.transfer1,
             self.transfer2,
             bool(self.remove_monopole_dipole),
@@ -140,6 +145,8 @@ class EstimatorSettings:
         )
 
 
+@renamed_keywords(fast_l_exact="fast_exact_below", fast_l_toeplitz="fast_banded_below",
+                  fast_band="fast_band_half_width")
 def resolve_settings(
     mask,
     binning,
@@ -153,9 +160,9 @@ def resolve_settings(
     transfer2=None,
     remove_monopole_dipole=True,
     coupling="exact",
-    fast_l_exact=None,
-    fast_l_toeplitz=None,
-    fast_band=None,
+    fast_exact_below=None,
+    fast_banded_below=None,
+    fast_band_half_width=None,
     n_iter=0,
     nthreads=None,
     covariance=False,
@@ -201,7 +208,7 @@ def resolve_settings(
     if coupling not in _COUPLING_MODES:
         raise InvalidInputError(f"The 'coupling' parameter must be 'exact' or 'fast'. Got {coupling!r} instead.")
     fast = None
-    explicit = fast_l_exact is not None or fast_l_toeplitz is not None or fast_band is not None
+    explicit = fast_exact_below is not None or fast_banded_below is not None or fast_band_half_width is not None
     if coupling == "fast" and not explicit and lmax > _coupling.fast_lmax_limit(nside):
         pass  # the banded form cannot represent the grid's aliasing up there: the exact matrix it is
     elif coupling == "fast":
@@ -214,17 +221,17 @@ def resolve_settings(
                 stacklevel=3,
             )
         d_exact, d_toep, d_band = _coupling.default_fast_settings(lmax)
-        l_exact = d_exact if fast_l_exact is None else check_int(fast_l_exact, "fast_l_exact", minimum=0, maximum=lmax)
+        l_exact = d_exact if fast_exact_below is None else check_int(fast_exact_below, "fast_exact_below", minimum=0, maximum=lmax)
         l_toep = (
             max(d_toep, l_exact)
-            if fast_l_toeplitz is None
-            else check_int(fast_l_toeplitz, "fast_l_toeplitz", minimum=l_exact, maximum=lmax)
+            if fast_banded_below is None
+            else check_int(fast_banded_below, "fast_banded_below", minimum=l_exact, maximum=lmax)
         )
-        band = d_band if fast_band is None else check_int(fast_band, "fast_band", minimum=1)
+        band = d_band if fast_band_half_width is None else check_int(fast_band_half_width, "fast_band_half_width", minimum=1)
         fast = (l_exact, l_toep, band)
-    elif fast_l_exact is not None or fast_l_toeplitz is not None or fast_band is not None:
+    elif fast_exact_below is not None or fast_banded_below is not None or fast_band_half_width is not None:
         raise InvalidInputError(
-            "The 'fast_l_exact', 'fast_l_toeplitz' and 'fast_band' parameters only apply with coupling='fast'."
+            "The 'fast_exact_below', 'fast_banded_below' and 'fast_band_half_width' parameters only apply with coupling='fast'."
         )
     n_iter = check_int(n_iter, "n_iter", minimum=0, maximum=20)
     if not isinstance(covariance, (bool, np.bool_)):
@@ -262,7 +269,7 @@ def resolve_settings(
         lmax=lmax,
         beam1=b1,
         beam2=b2,
-        pixwin=pw,
+        pixel_window=pw,
         transfer1=t1,
         transfer2=t2,
         remove_monopole_dipole=bool(remove_monopole_dipole),

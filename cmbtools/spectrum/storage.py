@@ -33,7 +33,7 @@ def save_estimator(estimator, path, *, overwrite=False) -> Path:
         "ell_max": inp.binning.ell_max,
         "beam1": inp.beam1,
         "beam2": inp.beam2,
-        "pixwin": inp.pixwin,
+        "pixel_window": inp.pixel_window,
         "transfer1": inp.transfer1,
         "transfer2": inp.transfer2,
     }
@@ -100,7 +100,7 @@ def load_estimator(cls, path, *, nthreads=None):
             f"{p}: written by cmbtools {settings['version']}, this is {__version__}; rebuild the estimator"
         )
     binning = Binning(data["ell_min"], data["ell_max"], settings["weighting"])
-    for k in ("mask1", "mask2", "beam1", "beam2", "pixwin", "transfer1", "transfer2"):
+    for k in ("mask1", "mask2", "beam1", "beam2", "pixel_window", "transfer1", "transfer2"):
         if k in data:
             data[k].setflags(write=False)
     inp = EstimatorSettings(
@@ -111,7 +111,7 @@ def load_estimator(cls, path, *, nthreads=None):
         lmax=int(settings["lmax"]),
         beam1=data["beam1"],
         beam2=data["beam2"],
-        pixwin=data["pixwin"],
+        pixel_window=data["pixel_window"],
         transfer1=data["transfer1"],
         transfer2=data["transfer2"],
         remove_monopole_dipole=bool(settings["remove_monopole_dipole"]),

@@ -288,7 +288,7 @@ def test_fast_coupling_is_exact_above_2_nside_unless_settings_are_given():
     assert fast.cache_key != exact.cache_key
     with pytest.warns(CmbtoolsWarning, match="above 2\\*nside"):
         banded = SpectrumEstimator(
-            mask, b, pixel_window=False, coupling="fast", fast_l_exact=40, fast_l_toeplitz=80, fast_band=40, nthreads=1
+            mask, b, pixel_window=False, coupling="fast", fast_exact_below=40, fast_banded_below=80, fast_band_half_width=40, nthreads=1
         )
     rel = np.abs(banded.estimate(m).cl / exact.estimate(m).cl - 1)
     assert rel.max() > 1e-3  # the aliasing the banded form misses, at the highest bins
@@ -371,7 +371,7 @@ def test_bad_settings_raise(cap_mask32):
     with pytest.raises(InvalidInputError, match="coupling"):
         SpectrumEstimator(cap_mask32, b, coupling="quick", nthreads=1)
     with pytest.raises(InvalidInputError, match="only apply with coupling='fast'"):
-        SpectrumEstimator(cap_mask32, b, fast_l_exact=20, nthreads=1)
+        SpectrumEstimator(cap_mask32, b, fast_exact_below=20, nthreads=1)
     with pytest.raises(InvalidInputError, match="Binning"):
         SpectrumEstimator(cap_mask32, [2, 10], nthreads=1)
     with pytest.raises(InvalidInputError, match="beam"):
