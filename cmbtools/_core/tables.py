@@ -674,7 +674,6 @@ def write_spectrum_table(path, cl, *, overwrite=False, header=None) -> Path:
             if re.match(r"#\s*units?\s*:", t, flags=re.IGNORECASE):
                 raise InvalidInputError("The 'header' may not contain a 'unit:' line: the column names carry the units.")
         lines.extend(extra)
-<<<<<<< HEAD
     tags = [f"_{k.lower()}" if k else "" for k in columns]
     names = ("ell", *(f"cl{t}_k2" for t in tags), *(f"dl{t}_uk2" for t in tags))
     arrays = list(columns.values())
@@ -682,7 +681,7 @@ def write_spectrum_table(path, cl, *, overwrite=False, header=None) -> Path:
     ell = np.arange(n, dtype=float)
     dls = [ell * (ell + 1.0) * a / (2.0 * math.pi) * 1e12 for a in arrays]
     rows = ((str(i), *(_format(a[i]) for a in arrays), *(_format(d[i]) for d in dls)) for i in range(n))
-    write_text_table(path, names, rows, comments=[c[2:] for c in lines], overwrite=overwrite)
+    return write_text_table(path, names, rows, comments=[c[2:] for c in lines], overwrite=overwrite)
 
 
 def _polarized_columns(spectra) -> dict:
@@ -702,10 +701,3 @@ def _polarized_columns(spectra) -> dict:
     if len({a.size for a in out.values()}) > 1:
         raise InvalidInputError(f"The polarized spectra must all have one length. Got lengths {sorted({a.size for a in out.values()})}.")
     return {k: a for k, a in out.items() if k in ("TT", "EE", "BB", "TE") or np.any(a != 0)}
-=======
-    ell = np.arange(cl.size, dtype=float)
-    dl_uk2 = ell * (ell + 1.0) * cl / (2.0 * math.pi) * 1e12
-    rows = ((str(i), _format(cl[i]), _format(dl_uk2[i])) for i in range(cl.size))
-    return write_text_table(path, ("ell", "cl_k2", "dl_uk2"), rows, comments=[c[2:] for c in lines],
-                            overwrite=overwrite)
->>>>>>> main

@@ -33,11 +33,7 @@ from cmbtools._core.checks import (
 from cmbtools._core.memory import check_memory, estimate_map_transform_bytes, estimate_regrade_bytes
 from cmbtools.exceptions import InvalidInputError
 
-<<<<<<< HEAD
-__all__ = ["rotate_map", "rotate_mask", "change_resolution", "smooth_map", "gaussian_beam_window", "rotate_iqu", "smooth_iqu"]
-=======
-__all__ = ["rotate_map", "rotate_mask", "change_resolution", "smooth_map"]
->>>>>>> main
+__all__ = ["rotate_map", "rotate_mask", "change_resolution", "smooth_map", "rotate_iqu", "smooth_iqu"]
 
 
 def _nside_of(a):

@@ -170,10 +170,6 @@ class MapInfo:
         True for an explicit-index (partial-sky) file.
     sha256 : str
         Hex SHA-256 of the file's bytes.
-    units_by_field : tuple of (str or None), optional
-        For I, Q, U files (:func:`read_iqu`): the unit string of each field.
-    polarization_convention_in_file : {'healpix', 'iau'} or None
-        For I, Q, U files: the convention the header states (None if none).
     """
 
     path: str
@@ -494,7 +490,27 @@ def read_sky_map(path, *, column=0, unit=None, file_ordering=None, force=False):
     m, facts = _read_table(path, column, file_ordering, _memory_check(force))
     temptype = facts.pop("temptype")
     facts.pop("n_bad_values")
-    scale = _scale_to_kcmb(facts["path"], unit, facts["unit_in_file"], temptype)
+    if unit is not None:
+        scale = unit_scale(unit, source="'unit' parameter")
+    else:
+        file_unit = facts["unit_in_file"]
+        if temptype and temptype.upper().startswith("ANTENNA"):
+            raise InputFileError(
+                facts["path"], "has TEMPTYPE='ANTENNA' (Rayleigh-Jeans temperature); cmbtools needs "
+                "thermodynamic K_CMB; convert the map first, or pass unit= to state the unit"
+            )
+        if file_unit is None:
+            warnings.warn(
+                f"{facts['path']}: the file states no unit; assuming K_CMB (pass unit= to state it)",
+                CmbtoolsWarning,
+                stacklevel=2,
+            )
+            scale = 1.0
+        else:
+            try:
+                scale = unit_scale(file_unit, source="unit in the file")
+            except InvalidInputError as exc:
+                raise InputFileError(facts["path"], f"{exc} (pass unit= to override)") from None
     bad = missing_pixels(m)
     if scale != 1.0:
         good = ~bad
@@ -620,54 +636,24 @@ def write_sky_map(path, m, *, unit="K_CMB", coordinates=None, nested=False, over
         For a malformed map, an unknown unit or dtype, a value that does not
         fit in the dtype (in the unit), or ``observed_only=True`` with no valid pixel.
     """
+    import healpy as hp
+    from astropy.io import fits
+
     try:
         a = np.asarray(m, dtype=np.float64)
     except (TypeError, ValueError):
         raise InvalidInputError("The 'm' parameter must be an array of numbers.") from None
     if a.ndim != 1:
         raise InvalidInputError(f"The 'm' parameter must be a 1-d HEALPix map. Got shape {a.shape} instead.")
-<<<<<<< HEAD
-    return _write_columns(path, a[None, :], [unit], [column_name], coord=coord, nest=nest, overwrite=overwrite,
-                          extra_header=extra_header, dtype=dtype, partial=partial)
-
-
-def _write_columns(path, a, units, column_names, *, coord, nest, overwrite, extra_header, dtype, partial,
-                   more_cards=()):
-    """Write the rows of ``a`` (shape (n, npix), RING, K_CMB) as the value columns of one HEALPix table."""
-    import healpy as hp
-    from astropy.io import fits
-
-    nside = nside_from_npix(a.shape[1], "m")
-    npix = a.shape[1]
-    coord = normalize_coord(coord)
-=======
     nside = nside_from_npix(a.size, "m")
     npix = a.size
     coord = normalize_coord(coordinates)
->>>>>>> main
     if dtype is None:
         out_dtype = np.dtype(np.float64)
     else:
-        try:
-            out_dtype = np.dtype(dtype)
-        except TypeError:
-            out_dtype = None
+        out_dtype = np.dtype(dtype)
         if out_dtype not in (np.dtype(np.float32), np.dtype(np.float64)):
             raise InvalidInputError(f"The 'dtype' parameter must be float32 or float64. Got {dtype!r} instead.")
-<<<<<<< HEAD
-    scales, clean_units = [], []
-    for unit in units:
-        if unit is not None:
-            scales.append(unit_scale(unit, source="'unit' parameter"))
-            # FITS header values are printable ASCII: write the micro sign as 'u'
-            unit = str(unit).strip().replace("\u00b5", "u").replace("\u03bc", "u")
-            if not unit.isascii() or not unit.isprintable():
-                raise InvalidInputError(f"The 'unit' parameter must be printable ASCII text. Got {unit!r} instead.")
-        else:
-            scales.append(1.0)
-        clean_units.append(unit)
-    cards = _header_cards(extra_header)
-=======
     if unit is not None:
         scale = unit_scale(unit, source="'unit' parameter")
         # FITS header values are printable ASCII: write the micro sign as 'u'
@@ -675,38 +661,11 @@ def _write_columns(path, a, units, column_names, *, coord, nest, overwrite, extr
         if not unit.isascii() or not unit.isprintable():
             raise InvalidInputError(f"The 'unit' parameter must be printable ASCII text. Got {unit!r} instead.")
     cards = _header_cards(header)
->>>>>>> main
     for c in cards:
         if str(c[0]).upper() in _RESERVED:
             raise InvalidInputError(f"The 'header' parameter may not set the HEALPix keyword {c[0]!r}.")
     check_output_path(path, overwrite=overwrite)
 
-<<<<<<< HEAD
-    bads, values = [], []
-    for row, unit, scale in zip(a, clean_units, scales):
-        bad = missing_pixels(row)
-        v = row.copy()
-        if unit is not None and scale != 1.0:
-            with np.errstate(over="ignore"):  # checked just below
-                v[~bad] /= scale
-        v[bad] = UNSEEN
-        too_big = ~bad & ~(np.abs(v) <= np.finfo(out_dtype).max)
-        if too_big.any():
-            i = int(np.argmax(too_big))
-            raise InvalidInputError(
-                f"The map value {float(row[i])!r} at pixel {i} does not fit in {out_dtype.name}"
-                + (f" (in {unit})" if unit is not None else "")
-                + ("; write the map with dtype='float64'." if out_dtype == np.float32 else ".")
-            )
-        if nest:
-            v = hp.reorder(v, r2n=True)
-            bad = hp.reorder(bad.astype(np.int8), r2n=True).astype(bool)
-        bads.append(bad)
-        values.append(v)
-    tform = "E" if out_dtype == np.float32 else "D"
-    if partial:
-        pix = np.flatnonzero(~np.logical_and.reduce(bads))
-=======
     bad = missing_pixels(a)
     values = a.copy()
     if unit is not None and scale != 1.0:
@@ -727,7 +686,99 @@ def _write_columns(path, a, units, column_names, *, coord, nest, overwrite, extr
     tform = "E" if out_dtype == np.float32 else "D"
     if observed_only:
         pix = np.flatnonzero(~bad)
->>>>>>> main
+        if pix.size == 0:
+            raise InvalidInputError("The map has no valid pixel; a partial-sky file would be empty.")
+        pix_format = "J" if npix < 2**31 else "K"
+        columns = [
+            fits.Column(name="PIXEL", format=pix_format, array=pix.astype(np.int32 if pix_format == "J" else np.int64)),
+            fits.Column(name=column_name, format=tform, unit=unit, array=values[pix].astype(out_dtype)),
+        ]
+    else:
+        columns = [fits.Column(name=column_name, format=tform, unit=unit, array=values.astype(out_dtype))]
+    hdu = fits.BinTableHDU.from_columns(columns)
+    h = hdu.header
+    h["EXTNAME"] = ("SKYMAP" if not observed_only else "PARTIAL_SKYMAP", "HEALPix map")
+    h["PIXTYPE"] = ("HEALPIX", "HEALPix pixelisation")
+    h["ORDERING"] = ("NESTED" if nested else "RING", "pixel ordering scheme")
+    h["NSIDE"] = (nside, "resolution parameter")
+    h["FIRSTPIX"] = (0, "first pixel number (0 based)")
+    h["LASTPIX"] = (npix - 1, "last pixel number (0 based)")
+    h["INDXSCHM"] = ("EXPLICIT" if observed_only else "IMPLICIT", "indexing: implicit or explicit")
+    h["OBJECT"] = ("PARTIAL" if observed_only else "FULLSKY", "sky coverage")
+    if coord is not None:
+        h["COORDSYS"] = (coord, "G = galactic, C = equatorial, E = ecliptic")
+    h["BAD_DATA"] = (UNSEEN, "value of missing pixels")
+    if unit is not None:
+        h["TEMPTYPE"] = ("THERMO", "thermodynamic CMB temperature")
+    h["CREATOR"] = (f"cmbtools {__version__}", "software that wrote this file")
+    for c in cards:
+        h[str(c[0])] = tuple(c[1:]) if len(c) == 3 else c[1]
+    primary = fits.PrimaryHDU()
+    primary.header["CREATOR"] = (f"cmbtools {__version__}", "software that wrote this file")
+    with atomic_output(path, overwrite=overwrite) as tmp:
+        fits.HDUList([primary, hdu]).writeto(tmp, overwrite=True)
+    return Path(path)
+
+
+def _write_columns(path, a, units, column_names, *, coordinates, nested, overwrite, header, dtype, observed_only,
+                   more_cards=()):
+    """Write the rows of ``a`` (shape (n, npix), RING, K_CMB) as the value columns of one HEALPix table."""
+    import healpy as hp
+    from astropy.io import fits
+
+    nside = nside_from_npix(a.shape[1], "m")
+    npix = a.shape[1]
+    coord = normalize_coord(coordinates)
+    if dtype is None:
+        out_dtype = np.dtype(np.float64)
+    else:
+        try:
+            out_dtype = np.dtype(dtype)
+        except TypeError:
+            out_dtype = None
+        if out_dtype not in (np.dtype(np.float32), np.dtype(np.float64)):
+            raise InvalidInputError(f"The 'dtype' parameter must be float32 or float64. Got {dtype!r} instead.")
+    scales, clean_units = [], []
+    for unit in units:
+        if unit is not None:
+            scales.append(unit_scale(unit, source="'unit' parameter"))
+            # FITS header values are printable ASCII: write the micro sign as 'u'
+            unit = str(unit).strip().replace("\u00b5", "u").replace("\u03bc", "u")
+            if not unit.isascii() or not unit.isprintable():
+                raise InvalidInputError(f"The 'unit' parameter must be printable ASCII text. Got {unit!r} instead.")
+        else:
+            scales.append(1.0)
+        clean_units.append(unit)
+    cards = _header_cards(header)
+    for c in cards:
+        if str(c[0]).upper() in _RESERVED:
+            raise InvalidInputError(f"The 'header' parameter may not set the HEALPix keyword {c[0]!r}.")
+    check_output_path(path, overwrite=overwrite)
+
+    bads, values = [], []
+    for row, unit, scale in zip(a, clean_units, scales):
+        bad = missing_pixels(row)
+        v = row.copy()
+        if unit is not None and scale != 1.0:
+            with np.errstate(over="ignore"):  # checked just below
+                v[~bad] /= scale
+        v[bad] = UNSEEN
+        too_big = ~bad & ~(np.abs(v) <= np.finfo(out_dtype).max)
+        if too_big.any():
+            i = int(np.argmax(too_big))
+            raise InvalidInputError(
+                f"The map value {float(row[i])!r} at pixel {i} does not fit in {out_dtype.name}"
+                + (f" (in {unit})" if unit is not None else "")
+                + ("; write the map with dtype='float64'." if out_dtype == np.float32 else ".")
+            )
+        if nested:
+            v = hp.reorder(v, r2n=True)
+            bad = hp.reorder(bad.astype(np.int8), r2n=True).astype(bool)
+        bads.append(bad)
+        values.append(v)
+    tform = "E" if out_dtype == np.float32 else "D"
+    if observed_only:
+        pix = np.flatnonzero(~np.logical_and.reduce(bads))
         if pix.size == 0:
             raise InvalidInputError("The map has no valid pixel; a partial-sky file would be empty.")
         pix_format = "J" if npix < 2**31 else "K"
@@ -794,9 +845,47 @@ def write_mask(path, mask, *, coordinates=None, nested=False, overwrite=False, h
         The file written.
     """
     w = check_mask(mask, "mask")
-<<<<<<< HEAD
-    return write_map(path, w, unit=None, coord=coord, nest=nest, overwrite=overwrite,
-                     extra_header=extra_header, dtype=dtype, column_name="WEIGHT")
+    return write_sky_map(path, w, unit=None, coordinates=coordinates, nested=nested, overwrite=overwrite,
+                         header=header, dtype=dtype, column_name="WEIGHT")
+
+
+def read_map(path, *, field=0, unit=None, ordering=None, force=False):
+    """Deprecated name of :func:`read_sky_map` (``field`` is ``column``, ``ordering`` is ``file_ordering``).
+
+    Kept for one release.
+
+    Parameters
+    ----------
+    path, field, unit, ordering, force
+        As ``path``, ``column``, ``unit``, ``file_ordering`` and ``force`` of :func:`read_sky_map`.
+
+    Returns
+    -------
+    m : ndarray
+        As :func:`read_sky_map`.
+    info : MapInfo
+        As :func:`read_sky_map`.
+    """
+    return read_sky_map(path, column=field, unit=unit, file_ordering=ordering, force=force)
+
+
+def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False, extra_header=None, dtype=None,
+              partial=False, column_name="TEMPERATURE"):
+    """Deprecated name of :func:`write_sky_map` with its old keywords. Kept for one release.
+
+    Parameters
+    ----------
+    path, m, unit, coord, nest, overwrite, extra_header, dtype, partial, column_name
+        As ``path``, ``m``, ``unit``, ``coordinates``, ``nested``, ``overwrite``, ``header``, ``dtype``,
+        ``observed_only`` and ``column_name`` of :func:`write_sky_map`.
+
+    Returns
+    -------
+    Path
+        The file written.
+    """
+    return write_sky_map(path, m, unit=unit, coordinates=coord, nested=nest, overwrite=overwrite, header=extra_header,
+                         dtype=dtype, observed_only=partial, column_name=column_name)
 
 
 # ---------------------------------------------------------------- polarized (I, Q, U) maps
@@ -923,7 +1012,7 @@ def is_iqu_file(path) -> bool:
     return _polarization_card(header) is not None or (values[1].startswith("Q") and values[2].startswith("U"))
 
 
-def read_iqu(path, *, unit=None, ordering=None, polarization_convention=None, force=False):
+def read_iqu(path, *, unit=None, file_ordering=None, polarization_convention=None, force=False):
     """Read I, Q, U HEALPix maps from a FITS file, in K_CMB, RING and the HEALPix angle convention.
 
     The first three map columns are read as I, Q and U (RING or NESTED, full
@@ -940,12 +1029,12 @@ def read_iqu(path, *, unit=None, ordering=None, polarization_convention=None, fo
         The FITS file.
     unit : str, optional
         Unit of all three columns, overriding the header (K, mK or uK, CMB).
-    ordering : {'RING', 'NESTED'}, optional
+    file_ordering : {'RING', 'NESTED'}, optional
         Override for files without an ``ORDERING`` keyword.
     polarization_convention : {'healpix', 'iau'}, optional
         The file's angle convention, overriding (or supplying) the header's.
     force : bool, default=False
-        As for :func:`read_map`.
+        As for :func:`read_sky_map`.
 
     Returns
     -------
@@ -953,7 +1042,7 @@ def read_iqu(path, *, unit=None, ordering=None, polarization_convention=None, fo
         float64 I, Q, U in K_CMB, RING, HEALPix convention; missing pixels
         (per field) hold UNSEEN.
     info : MapInfo
-        As for :func:`read_map` (``unit_in_file`` is I's unit), with
+        As for :func:`read_sky_map` (``unit_in_file`` is I's unit), with
         ``units_by_field`` and ``polarization_convention_in_file`` set.
 
     Raises
@@ -976,7 +1065,7 @@ def read_iqu(path, *, unit=None, ordering=None, polarization_convention=None, fo
             Path(path), f"holds {n_columns} map column(s); an I, Q, U map needs three (I, Q, U). "
             "Read a temperature map with read_map"
         )
-    m, facts = _read_table(path, (0, 1, 2), ordering, _memory_check(force))
+    m, facts = _read_table(path, (0, 1, 2), file_ordering, _memory_check(force))
     temptype = facts.pop("temptype")
     facts.pop("n_bad_values")
     card = facts.pop("polarization_convention_card")
@@ -1033,8 +1122,8 @@ def _count_value_columns(path) -> int:
     return sum(1 for n in names if not (partial and n == "PIXEL"))
 
 
-def write_iqu(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False, extra_header=None, dtype=None,
-              partial=False, polarization_convention="healpix"):
+def write_iqu(path, m, *, unit="K_CMB", coordinates=None, nested=False, overwrite=False, header=None, dtype=None,
+              observed_only=False, polarization_convention="healpix"):
     """Write I, Q, U HEALPix maps to one FITS file (atomically; never overwrites by default).
 
     The header states the angle convention in ``POLANGLE``; with
@@ -1051,9 +1140,9 @@ def write_iqu(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
     unit : str or sequence of 3 str, default='K_CMB'
         Unit of the written values, one for all fields or one per field
         (recorded in ``TUNIT1..3``).
-    coord, nest, overwrite, extra_header, dtype
-        As for :func:`write_map`.
-    partial : bool, default=False
+    coordinates, nested, overwrite, header, dtype
+        As for :func:`write_sky_map`.
+    observed_only : bool, default=False
         Write an explicit-index file of the pixels valid in at least one field.
     polarization_convention : {'healpix', 'iau'}, default='healpix'
         The angle convention of the file.
@@ -1084,11 +1173,11 @@ def write_iqu(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
     if convention == "iau":
         a = convert_polarization_convention(a, "healpix", "iau")
     card = (POLARIZATION_KEYWORD, convention.upper(), "polarization angle convention: HEALPIX or IAU")
-    return _write_columns(path, a, units, ["I", "Q", "U"], coord=coord, nest=nest, overwrite=overwrite,
-                          extra_header=extra_header, dtype=dtype, partial=partial, more_cards=[card])
+    return _write_columns(path, a, units, ["I", "Q", "U"], coordinates=coordinates, nested=nested, overwrite=overwrite,
+                          header=header, dtype=dtype, observed_only=observed_only, more_cards=[card])
 
 
-def read_mask_pair(path, *, pol_path=None, ordering=None, force=False):
+def read_mask_pair(path, *, pol_path=None, file_ordering=None, force=False):
     """Read a temperature mask and a polarization mask.
 
     The polarization mask comes from ``pol_path`` if given, else from the
@@ -1102,10 +1191,10 @@ def read_mask_pair(path, *, pol_path=None, ordering=None, force=False):
         The FITS file of the temperature mask (and maybe the polarization mask).
     pol_path : str or path-like, optional
         A separate FITS file for the polarization mask.
-    ordering : {'RING', 'NESTED'}, optional
+    file_ordering : {'RING', 'NESTED'}, optional
         Override for files without an ``ORDERING`` keyword.
     force : bool, default=False
-        As for :func:`read_map`.
+        As for :func:`read_sky_map`.
 
     Returns
     -------
@@ -1117,22 +1206,22 @@ def read_mask_pair(path, *, pol_path=None, ordering=None, force=False):
     InputFileError
         As for :func:`read_mask`, and for two masks of different nside.
     """
-    mask = read_mask(path, ordering=ordering, force=force)
+    mask = read_mask(path, file_ordering=file_ordering, force=force)
     if pol_path is not None:
-        pol_mask = read_mask(pol_path, ordering=ordering, force=force)
+        pol_mask = read_mask(pol_path, file_ordering=file_ordering, force=force)
         if pol_mask.size != mask.size:
             raise InputFileError(
                 Path(pol_path), f"has nside {nside_from_npix(pol_mask.size)} but the temperature mask "
                 f"{str(path)!r} has nside {nside_from_npix(mask.size)}"
             )
     elif _count_value_columns(path) >= 2:
-        pol_mask = read_mask(path, field=1, ordering=ordering, force=force)
+        pol_mask = read_mask(path, column=1, file_ordering=file_ordering, force=force)
     else:
         pol_mask = mask.copy()
     return mask, pol_mask
 
 
-def write_mask_pair(path, mask, pol_mask, *, coord=None, nest=False, overwrite=False, extra_header=None, dtype=None):
+def write_mask_pair(path, mask, pol_mask, *, coordinates=None, nested=False, overwrite=False, header=None, dtype=None):
     """Write a temperature and a polarization mask as the two columns of one FITS file.
 
     Columns ``WEIGHT`` (temperature) and ``POL_WEIGHT`` (polarization), no unit;
@@ -1144,13 +1233,13 @@ def write_mask_pair(path, mask, pol_mask, *, coord=None, nest=False, overwrite=F
         Destination (written atomically).
     mask, pol_mask : array_like of shape (12*nside**2,)
         Temperature and polarization weights in [0, 1], RING, same nside.
-    coord : {'G', 'C', 'E'}, optional
+    coordinates : {'G', 'C', 'E'}, optional
         Coordinate system recorded in ``COORDSYS``.
-    nest : bool, default=False
+    nested : bool, default=False
         Write in NESTED ordering.
     overwrite : bool, default=False
         Replace an existing file.
-    extra_header : dict or list of (key, value[, comment]), optional
+    header : dict or list of (key, value[, comment]), optional
         Additional header cards.
     dtype : {None, 'float32', 'float64'}, optional
         Data type in the file (default float64).
@@ -1166,48 +1255,5 @@ def write_mask_pair(path, mask, pol_mask, *, coord=None, nest=False, overwrite=F
         raise InvalidInputError(
             f"The 'pol_mask' has {wp.size} pixels but the 'mask' has {w.size}; they must have the same nside."
         )
-    return _write_columns(path, np.stack([w, wp]), [None, None], ["WEIGHT", "POL_WEIGHT"], coord=coord, nest=nest,
-                          overwrite=overwrite, extra_header=extra_header, dtype=dtype, partial=False)
-=======
-    return write_sky_map(path, w, unit=None, coordinates=coordinates, nested=nested, overwrite=overwrite,
-                         header=header, dtype=dtype, column_name="WEIGHT")
-
-
-def read_map(path, *, field=0, unit=None, ordering=None, force=False):
-    """Deprecated name of :func:`read_sky_map` (``field`` is ``column``, ``ordering`` is ``file_ordering``).
-
-    Kept for one release.
-
-    Parameters
-    ----------
-    path, field, unit, ordering, force
-        As ``path``, ``column``, ``unit``, ``file_ordering`` and ``force`` of :func:`read_sky_map`.
-
-    Returns
-    -------
-    m : ndarray
-        As :func:`read_sky_map`.
-    info : MapInfo
-        As :func:`read_sky_map`.
-    """
-    return read_sky_map(path, column=field, unit=unit, file_ordering=ordering, force=force)
-
-
-def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False, extra_header=None, dtype=None,
-              partial=False, column_name="TEMPERATURE"):
-    """Deprecated name of :func:`write_sky_map` with its old keywords. Kept for one release.
-
-    Parameters
-    ----------
-    path, m, unit, coord, nest, overwrite, extra_header, dtype, partial, column_name
-        As ``path``, ``m``, ``unit``, ``coordinates``, ``nested``, ``overwrite``, ``header``, ``dtype``,
-        ``observed_only`` and ``column_name`` of :func:`write_sky_map`.
-
-    Returns
-    -------
-    Path
-        The file written.
-    """
-    return write_sky_map(path, m, unit=unit, coordinates=coord, nested=nest, overwrite=overwrite, header=extra_header,
-                         dtype=dtype, observed_only=partial, column_name=column_name)
->>>>>>> main
+    return _write_columns(path, np.stack([w, wp]), [None, None], ["WEIGHT", "POL_WEIGHT"], coordinates=coordinates,
+                          nested=nested, overwrite=overwrite, header=header, dtype=dtype, observed_only=False)

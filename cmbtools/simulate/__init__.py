@@ -28,13 +28,7 @@ Examples
 (3072,)
 """
 
-<<<<<<< HEAD
-from __future__ import annotations
-
 from cmbtools._core.tables import read_polarized_spectrum_table, read_spectrum_table, write_spectrum_table
-=======
-from cmbtools._core.tables import read_spectrum_table, write_spectrum_table
->>>>>>> main
 from cmbtools.simulate.engine import SimulationSet, run_simulations
 from cmbtools.simulate.noise import NoiseModel, depth_to_white_noise, noise_map, noise_spectrum, white_noise_map
 from cmbtools.simulate.random_streams import simulation_rng, simulation_rngs, simulation_seed_sequence

@@ -33,11 +33,7 @@ True
 """
 
 from cmbtools.spectrum.bandpowers import Bandpowers
-<<<<<<< HEAD
-from cmbtools.spectrum.beams import gaussian_beam, gaussian_polarized_beam, read_beam, write_beam
-=======
-from cmbtools.spectrum.beams import GaussianBeam, gaussian_beam, read_beam, write_beam
->>>>>>> main
+from cmbtools.spectrum.beams import GaussianBeam, gaussian_beam, gaussian_polarized_beam, read_beam, write_beam
 from cmbtools.spectrum.binning import Binning
 from cmbtools.spectrum.covariance import (
     BandpowerCovariance,
@@ -65,10 +61,8 @@ __all__ = [
     "read_beam",
     "write_beam",
     "pixel_window",
-<<<<<<< HEAD
     "polarization_pixel_window",
     "gaussian_polarized_beam",
-=======
     "PixelNoise",
     "GaussianCovariance",
     "BandpowerCovariance",
@@ -76,7 +70,6 @@ __all__ = [
     "hartlap_factor",
     "write_covariance",
     "read_covariance",
->>>>>>> main
     "PolarizedSpectrumEstimator",
     "PolarizedBandpowers",
     "estimate_polarized_spectra",

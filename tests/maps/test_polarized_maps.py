@@ -67,7 +67,7 @@ def test_iqu_round_trip(tmp_path, nest, partial, convention):
         m[:, :100] = UNSEEN
         m[2, 500:510] = UNSEEN  # a pixel missing in U only stays missing in U only
     path = tmp_path / "iqu.fits"
-    maps.write_iqu(path, m, unit="uK_CMB", nest=nest, partial=partial, polarization_convention=convention, coord="G")
+    maps.write_iqu(path, m, unit="uK_CMB", nested=nest, observed_only=partial, polarization_convention=convention, coordinates="G")
     back, info = maps.read_iqu(path)
     np.testing.assert_allclose(back[~(m == UNSEEN)], m[~(m == UNSEEN)], rtol=1e-14, atol=0)
     assert np.all(back[m == UNSEEN] == UNSEEN)
@@ -94,16 +94,16 @@ def test_units_per_field_and_temperature_file_still_works(tmp_path):
     back, _ = maps.read_iqu(path)
     np.testing.assert_allclose(back, m, rtol=1e-14)
     # read_map still reads the temperature (the first column) of the same file
-    t, info = maps.read_map(path)
+    t, info = maps.read_sky_map(path)
     np.testing.assert_allclose(t, m[0], rtol=1e-14)
     assert maps.is_iqu_file(path)
     # a temperature-only file: read_map as before, read_iqu refuses with one clear message
     tpath = tmp_path / "t.fits"
-    maps.write_map(tpath, m[0])
+    maps.write_sky_map(tpath, m[0])
     assert not maps.is_iqu_file(tpath)
     with pytest.raises(InputFileError, match="holds 1 map column.*needs three"):
         maps.read_iqu(tpath)
-    np.testing.assert_allclose(maps.read_map(tpath)[0], m[0], rtol=1e-14)
+    np.testing.assert_allclose(maps.read_sky_map(tpath)[0], m[0], rtol=1e-14)
 
 
 def test_reads_healpy_written_iqu_files(tmp_path):
@@ -125,7 +125,7 @@ def test_reads_healpy_written_iqu_files(tmp_path):
 def test_convention_keyword_problems(tmp_path):
     m, _ = _iqu_sky()
     path = tmp_path / "bad.fits"
-    maps.write_iqu(path, m, extra_header={"HISTORY": "x"})
+    maps.write_iqu(path, m, header={"HISTORY": "x"})
     with fits.open(path) as hdul:
         hdul[1].header["POLANGLE"] = "SIDEWAYS"
         hdul.writeto(tmp_path / "bad2.fits")
@@ -137,7 +137,7 @@ def test_convention_keyword_problems(tmp_path):
     with pytest.raises(InvalidInputError, match="'polarization_convention' parameter must be 'healpix' or 'iau'"):
         maps.read_iqu(path, polarization_convention="galactic")
     with pytest.raises(InvalidInputError, match="may not set the HEALPix keyword 'POLANGLE'"):
-        maps.write_iqu(tmp_path / "x.fits", m, extra_header={"POLANGLE": "IAU"})
+        maps.write_iqu(tmp_path / "x.fits", m, header={"POLANGLE": "IAU"})
     with pytest.raises(InvalidInputError, match=r"shape \(3, 12\*nside\*\*2\)"):
         maps.write_iqu(tmp_path / "y.fits", m[:2])
     assert not (tmp_path / "x.fits").exists() and not (tmp_path / "y.fits").exists()
