@@ -170,6 +170,10 @@ class MapInfo:
         True for an explicit-index (partial-sky) file.
     sha256 : str
         Hex SHA-256 of the file's bytes.
+    units_by_field : tuple of (str or None), optional
+        For I, Q, U files (:func:`read_iqu`): the unit string of each field.
+    polarization_convention_in_file : {'healpix', 'iau'} or None, optional
+        For I, Q, U files: the angle convention the header states (None if none).
     """
 
     path: str
