@@ -83,6 +83,26 @@ def _pixel_windows(pixel_window, nside, lmax, nthreads):
     return pt, pt.copy(), f"table sha256={_io.sha256_arrays(pt)[:16]}"
 
 
+def _check_memory(mask, lmax, others, purify, force):
+    """Refuse, before any large allocation, an estimator that would not fit in memory (see the class doc)."""
+    from cmbtools._core.memory import check_memory, estimate_alm_bytes, estimate_coupling_bytes, estimate_map_bytes
+    from cmbtools.exceptions import CmbtoolsError
+
+    try:
+        nside = nside_from_npix(np.size(mask), "mask")
+        lmax = 3 * nside - 1 if lmax is None else check_lmax(lmax, nside)
+    except CmbtoolsError:
+        return None  # refused later with its own message
+    n_masks = 1 + len(others)
+    masks = estimate_map_bytes(nside, 2 * n_masks)
+    derivatives = estimate_map_bytes(nside, 4 * min(2, n_masks)) if purify else 0
+    transform = 3 * estimate_alm_bytes(2 * lmax) + _sht._leg_bytes(nside, 2 * lmax)
+    kernels = estimate_coupling_bytes(lmax, 2 + 4 * n_masks)
+    need = masks + derivatives + max(transform, kernels)
+    return check_memory(need, f"Building the polarized spectrum estimator at nside {nside} with lmax {lmax}",
+                        force=force)
+
+
 def _pol_beam_array(beam, name, table=None, description=None, lmax=None):
     """B^P_l: for a Gaussian FWHM the spin-2 Gaussian beam (Challinor et al. 2000, PRD 62, 123002:
     ``exp(-(l(l+1) - 4) sigma^2 / 2)``); a table is used as given (``table``: already checked)."""
@@ -176,6 +196,10 @@ class PolarizedSpectrumEstimator:
         Threads of the transforms and of the coupling kernel.
     max_condition_number : float, default=1e3
         Largest accepted condition number of the binned coupled system (beams etc. divided out).
+    force : bool, default=False
+        Build even when the memory estimate (masks, window derivatives, mask transforms to 2 lmax, the dense
+        coupling and covariance kernels of one kernel call), made before any large allocation, exceeds what
+        the machine has available: warn instead of raising.
 
     Attributes
     ----------
@@ -218,7 +242,9 @@ class PolarizedSpectrumEstimator:
         purify_b=False,
         nthreads=None,
         max_condition_number=MAX_CONDITION_NUMBER,
+        force=False,
     ):
+        _check_memory(mask, lmax, [m for m in (pol_mask, mask2, pol_mask2) if m is not None], purify_b, force)
         t1 = check_mask(mask, "mask").copy()
         nside = nside_from_npix(t1.size, "mask")
         p1 = t1 if pol_mask is None else check_mask(pol_mask, "pol_mask").copy()
