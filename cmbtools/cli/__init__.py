@@ -74,9 +74,9 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 #: Options that name files a command reads, and options that name files it writes.
 _INPUT_OPTIONS = ("map", "map2", "mask", "mask2", "info", "from_mask", "from_map", "holes", "beam", "beam2", "theory",
                   "noise_spectrum", "noise_maps", "half_difference", "spectrum", "hits", "pol_mask",
-                  "pol_mask2")
+                  "pol_mask2", "hits2", "noise_variance", "noise_variance2", "covariance_from")
 _OUTPUT_OPTIONS = ("output", "fits", "figure", "table", "json_file", "write_spectrum", "write_noise_spectrum",
-                   "operator_cache")
+                   "operator_cache", "covariance")
 
 
 def _refuse_inputs_as_outputs(args):

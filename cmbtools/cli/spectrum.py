@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 
+from cmbtools.cli.error_model import add_error_options
 from cmbtools.cli.noise_bias import add_noise_options
 from cmbtools.cli.polarized_spectrum import add_polarization_options
 from cmbtools.cli.common import (
@@ -73,6 +74,7 @@ def add_arguments(parser):
     parser.add_argument("--keep-monopole-dipole", action="store_true",
                         help="do not fit and remove the monopole and dipole before the transform")
     add_noise_options(parser)
+    add_error_options(parser)
     add_polarization_options(parser)
     parser.add_argument("--fast-coupling", action="store_true",
                         help="approximate the mode-coupling matrix (faster at large lmax; exact when lmax > 2 nside, where the approximation fails)")
@@ -107,6 +109,7 @@ def _file_identity(path):
 
 def run(args) -> int:
     import contextlib
+    import dataclasses
     import os
     from pathlib import Path
 
@@ -141,6 +144,14 @@ def run(args) -> int:
     if args.map2 is None and (args.mask2 or args.beam2 or args.beam2_fwhm):
         raise InvalidInputError("--mask2, --beam2 and --beam2-fwhm need a second map (MAP2).")
     check_noise_options(args)
+    from cmbtools.cli.error_model import apply_error_model, check_error_options
+
+    check_error_options(args)
+    if args.covariance is not None:
+        key = os.path.abspath(args.covariance)
+        if key in seen:
+            raise InvalidInputError(f"The covariance and the {seen[key]} would both be written to {args.covariance!r}.")
+        seen[key] = "covariance"
     if args.write_noise_spectrum is not None:
         check_output_path(args.write_noise_spectrum, overwrite=args.overwrite)
         key = os.path.abspath(args.write_noise_spectrum)
@@ -152,6 +163,8 @@ def run(args) -> int:
     from cmbtools.cli.polarized_spectrum import is_polarized_input, run_polarized
 
     if is_polarized_input(args.map):
+        if args.covariance is not None or args.covariance_from is not None:
+            raise InvalidInputError("--covariance and --covariance-from apply to temperature spectra only.")
         return run_polarized(args, seen)
     if args.pol_mask or args.pol_mask2 or args.purify_b:
         raise InvalidInputError(f"--pol-mask, --pol-mask2 and --purify-b need I, Q, U maps; {args.map} holds one map.")
@@ -214,10 +227,14 @@ def run(args) -> int:
             cache_text = f"rebuilt, the file held another estimator ({args.operator_cache})"
     else:
         est = sp.SpectrumEstimator(w1, binning, **kwargs)
+    raw = None
     if m2 is not None:
         bp = est.estimate(m1, m2)
     else:
         bp, raw = subtract_noise(est, m1, noise_kind, noise_value, args)
+    noise_maps_for_errors = noise_value if noise_kind == "maps" else None
+    bp, covariance, errors_text = apply_error_model(args, est, bp, raw, theory, noise_maps_for_errors,
+                                                    cross=m2 is not None, nside=nside)
 
     # 3. record the files
     meta = {"map": str(args.map), "map_sha256": info1.sha256, "mask_file": str(args.mask),
@@ -248,6 +265,16 @@ def run(args) -> int:
             written.append(bp.write_fits(args.fits, overwrite=args.overwrite, unit=args.unit))
         if args.figure is not None:
             written.append(bp.plot(args.figure, theory_cl=theory, overwrite=args.overwrite))
+        if args.covariance is not None:
+            if covariance is None:
+                from cmbtools.spectrum import BandpowerCovariance
+
+                covariance = BandpowerCovariance(bp.ell_min, bp.ell_max, bp.ell_eff, np.diag(bp.cl_err**2),
+                                                 kind="knox")
+            if covariance.windows is None:
+                windows = est.cross_bandpower_windows if m2 is not None else est.bandpower_windows
+                covariance = dataclasses.replace(covariance, windows=windows)
+            written.append(covariance.write(args.covariance, overwrite=args.overwrite))
         if args.write_noise_spectrum is not None:
             table = noise_bias_table(est, bp, raw, noise_kind, args)
             written.append(table.write_csv(args.write_noise_spectrum, overwrite=args.overwrite, unit=args.unit))
@@ -273,6 +300,7 @@ def run(args) -> int:
                   f"{len(args.noise_maps)} noise map(s)" if args.noise_maps else
                   f"half-difference of {args.half_difference[0]} and {args.half_difference[1]}")
         print(f"  noise bias subtracted: {source}")
+    print(f"  errors: {errors_text}")
     if args.operator_cache is not None:
         print(f"  operator cache: {cache_text}")
     for p in written:

@@ -246,6 +246,15 @@ def run(args) -> int:
             written.append(result.write_json(path, overwrite=overwrite))
         else:
             written.append(result.plot(path, overwrite=overwrite))
+    # the simulated covariance of the bandpowers, usable by `cmbtools spectrum --covariance-from`
+    from cmbtools.spectrum.covariance import simulated_covariance
+
+    windows = est.cross_bandpower_windows if cross else est.bandpower_windows
+    simulated = simulated_covariance(
+        result.samples, ell_min=result.ell_min, ell_max=result.ell_max, ell_eff=result.ell_eff, windows=windows,
+        settings={"spectrum": "cross" if cross else "auto", "seed": int(result.seed),
+                  "estimator_key": meta.get("estimator_key", "")})
+    written.append(simulated.write(run_dir / "covariance.npz", overwrite=True))
 
     s = result.summary()
     # a null run (zero spectrum, no noise) has no scatter: its ratios are not numbers (None in the summary)
@@ -272,8 +281,9 @@ def run(args) -> int:
     print(f"  input: {spectrum_text}; beam: {meta['beam']}; noise: {noise_text}")
     print(f"  bias: max |bias| {num('max_abs_bias_sigma', '.2f')} sigma (ell {int(result.ell_min[worst])}-"
           f"{int(result.ell_max[worst])}), rms {num('rms_bias_sigma', '.2f')} sigma over {s['n_bins']} bins")
-    print(f"  error bars: scatter / analytic error = {num('median_error_ratio', '.3f')} (median; "
-          f"{num('min_error_ratio', '.3f')} to {num('max_error_ratio', '.3f')})")
+    print(f"  error bars ({meta.get('error_model', 'analytic')}): scatter / error = "
+          f"{num('median_error_ratio', '.3f')} (median; {num('min_error_ratio', '.3f')} to "
+          f"{num('max_error_ratio', '.3f')} over the bins)")
     print(f"  transfer (mean / expected): median {num('median_transfer', '.4f')}")
     print("  wrote " + ", ".join(str(p) for p in written))
     return 0

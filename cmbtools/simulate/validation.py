@@ -148,6 +148,7 @@ def validate_estimator(
     threads_per_worker=None,
     progress=None,
     restart=False,
+    errors="gaussian",
     max_restarts=3,
     force=False,
     cross=False,
@@ -193,6 +194,11 @@ def validate_estimator(
         more transform per simulation); the result's ``mean_pseudo_cl``.
     run_dir, executor, workers, threads_per_worker, progress, restart, max_restarts
         As in :func:`run_simulations`.
+    errors : {'gaussian', 'knox'}, default='gaussian'
+        The error bars the scatter is compared with (``analytic_error`` of the
+        result): the diagonal of :class:`cmbtools.spectrum.GaussianCovariance`
+        of the input spectrum, with the noise's variance map (the error model a
+        likelihood would use), or the Knox errors each simulation reports.
     force : bool, default=False
         Run even when the memory estimate (one simulated sky, its noise and
         its measurement per worker, times the workers that run at once)
@@ -260,6 +266,8 @@ def validate_estimator(
                     "(hits <= 0); zero the mask there (e.g. multiply it by hits > 0) and build the estimator again."
                 )
         noise_cl = noise_spectrum(noise, lmax, nside)
+    if errors not in ("gaussian", "knox"):
+        raise InvalidInputError(f"The 'errors' parameter must be 'gaussian' or 'knox'. Got {errors!r} instead.")
     if sky_filter is not None and not callable(sky_filter):
         raise InvalidInputError(f"The 'sky_filter' parameter must be a callable or None. Got {sky_filter!r} instead.")
     if not isinstance(cross, (bool, np.bool_)):
@@ -304,8 +312,17 @@ def validate_estimator(
         "n_resumed": sims.n_resumed,
         "run_dir": "" if sims.run_dir is None else str(sims.run_dir),
     }
+    reported = sims["cl_err"]
+    if errors == "gaussian":
+        from cmbtools.spectrum.covariance import GaussianCovariance, PixelNoise
+
+        pixel_noise = None if noise is None else PixelNoise.from_model(noise, nside, lmax)
+        gauss = GaussianCovariance(estimator, noise=pixel_noise, noise2=pixel_noise if cross else None,
+                                   cross=bool(cross))
+        reported = np.tile(gauss.covariance(cl).errors, (sims["cl"].shape[0], 1))
+    metadata["error_model"] = "Gaussian covariance of the input spectrum" if errors == "gaussian" else "Knox formula"
     return ValidationResult.from_samples(
-        sims["cl"], sims["cl_err"], estimator.expected_bandpowers(cl, cross=bool(cross)),
+        sims["cl"], reported, estimator.expected_bandpowers(cl, cross=bool(cross)),
         ell_min=binning.ell_min, ell_max=binning.ell_max, ell_eff=binning.ell_eff, dl_factor=binning.dl_factor,
         seed=sims.seed, mean_pseudo_cl=sims["pseudo_cl"].mean(axis=0) if record_pseudo_spectra else None,
         metadata=metadata,

@@ -47,13 +47,21 @@ def test_validate_writes_outputs_matches_the_library_and_resumes(files, capsys, 
     assert main(_args(tmp, "--sims", "6", "--seed", "4", "--workers", "1", "--run-dir", str(run_dir))) == 0
     out = capsys.readouterr().out
     assert "validated the spectrum estimator on 6 simulations (seed 4) on 1 local worker process" in out
-    assert "max |bias|" in out and "scatter / analytic error" in out
-    for name in ("summary.csv", "summary.json", "validation.png", "run.json"):
+    assert "max |bias|" in out and "scatter / error" in out
+    for name in ("summary.csv", "summary.json", "validation.png", "run.json", "covariance.npz"):
         assert (run_dir / name).is_file()
     assert len(list(run_dir.glob("sim_*.npz"))) == 6
     doc = json.loads((run_dir / "summary.json").read_text())
     assert doc["n_sims"] == 6 and doc["seed"] == 4 and doc["settings"]["pixel_window"] == "yes"
-    assert set(doc) >= {"n_sims", "max_abs_bias_sigma", "median_error_ratio"}
+    assert set(doc) >= {"n_sims", "max_abs_bias_sigma", "median_error_ratio", "min_error_ratio", "max_error_ratio"}
+    ratios = np.array(doc["bins"]["error_ratio"])
+    assert doc["min_error_ratio"] == pytest.approx(ratios.min(), rel=1e-12)
+    assert doc["max_error_ratio"] == pytest.approx(ratios.max(), rel=1e-12)
+    from cmbtools.spectrum import read_covariance
+
+    simulated = read_covariance(run_dir / "covariance.npz")
+    assert simulated.kind == "simulation" and simulated.n_sims == 6
+    np.testing.assert_allclose(np.sqrt(np.diag(simulated.matrix)), np.array(doc["bins"]["std"]), rtol=1e-9)
 
     # the same run through the library, on threads: the same numbers
     est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 8), lmax=LMAX, beam=30.0)
