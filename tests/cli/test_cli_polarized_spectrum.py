@@ -45,7 +45,7 @@ def iqu_files(tmp_path, monkeypatch):
     for k in (1, 2):
         m = sky + rng.standard_normal(sky.shape) * 1e-7
         files[f"half{k}"] = tmp_path / f"half{k}.fits"
-        hp.write_map(files[f"half{k}"], m, dtype=np.float64)
+        hp.write_map(files[f"half{k}"], m, dtype=np.float64, column_units="K_CMB")
     mask = apodize_mask(cap_mask(nside, 0.0, 60.0, 50.0), 8.0, nthreads=1)
     files["mask"] = tmp_path / "mask.fits"
     hp.write_map(files["mask"], mask, dtype=np.float64)
