@@ -33,7 +33,7 @@ True
 """
 
 from cmbtools.spectrum.bandpowers import Bandpowers
-from cmbtools.spectrum.beams import GaussianBeam, gaussian_beam, read_beam, write_beam
+from cmbtools.spectrum.beams import GaussianBeam, gaussian_beam, gaussian_polarized_beam, read_beam, write_beam
 from cmbtools.spectrum.binning import Binning
 from cmbtools.spectrum.covariance import (
     BandpowerCovariance,
@@ -46,7 +46,7 @@ from cmbtools.spectrum.covariance import (
 )
 from cmbtools.spectrum.estimator import MAX_CONDITION_NUMBER, SpectrumEstimator
 from cmbtools.spectrum.one_call import estimate_spectrum
-from cmbtools.spectrum.pixel_windows import pixel_window
+from cmbtools.spectrum.pixel_windows import pixel_window, polarization_pixel_window
 from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator, estimate_polarized_spectra
 from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
 
@@ -61,6 +61,8 @@ __all__ = [
     "read_beam",
     "write_beam",
     "pixel_window",
+    "polarization_pixel_window",
+    "gaussian_polarized_beam",
     "PixelNoise",
     "GaussianCovariance",
     "BandpowerCovariance",

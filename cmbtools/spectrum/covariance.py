@@ -364,6 +364,25 @@ def _raw_couplings(spectra, lmax, nthreads):
     return out
 
 
+#: Largest total size of the weight maps' coefficients held at once (above it, spectra are made pair by pair).
+_COEFFICIENT_BUDGET = 2 * 2**30
+
+
+def _pair_spectra(fields, pairs, lw, nthreads, rings):
+    """Cross-spectra up to ``lw`` of the named weight maps, for every pair; each map transformed once when it fits."""
+    names = sorted({n for p in pairs for n in p})
+    if 16 * _sht.alm_size(lw) * len(names) <= _COEFFICIENT_BUDGET:
+        alms = {n: _sht.map2alm(fields[n], lw, nthreads=nthreads, rings=rings) for n in names}
+        return {p: _sht.alm2cl(alms[p[0]], alms[p[1]], lmax=lw) for p in pairs}
+    out = {}
+    for p in pairs:  # lean on memory: the split transforms of map_spectra, two maps at a time
+        if p[0] == p[1]:
+            out[p] = _sht.map_spectra([fields[p[0]]], lw, nthreads=nthreads, rings=rings)[0]
+        else:
+            out[p] = _sht.map_spectra([fields[p[0]], fields[p[1]]], lw, nthreads=nthreads, rings=rings)[2]
+    return out
+
+
 def _block_sum(matrix, starts):
     return np.add.reduceat(np.add.reduceat(matrix, starts, axis=0), starts, axis=1)
 
@@ -483,22 +502,8 @@ class GaussianCovariance:
                 for k2, f2 in parts2:
                     terms.append((k1, k2, tuple(sorted((f1, f2)))))
         wanted = sorted({t[2] for t in terms})
-        spectra = {}
         rings = _sht.occupied_rings(w1) | _sht.occupied_rings(w2)
-        done = set()
-        for p in wanted:
-            if p in done:
-                continue
-            if p[0] == p[1]:
-                spectra[p] = _sht.map_spectra([fields[p[0]]], 2 * lmax, nthreads=nthreads, rings=rings)[0]
-            else:
-                aa, bb, ab = _sht.map_spectra([fields[p[0]], fields[p[1]]], 2 * lmax, nthreads=nthreads, rings=rings)
-                spectra[p] = ab
-                for q, v in (((p[0], p[0]), aa), ((p[1], p[1]), bb)):
-                    if q in wanted:
-                        spectra[q] = v
-                        done.add(q)
-            done.add(p)
+        spectra = _pair_spectra(fields, wanted, 2 * lmax, nthreads, rings)
         mats = _raw_couplings([spectra[p] for p in wanted], lmax, nthreads)
         self._mats = {p: mats[i] for i, p in enumerate(wanted)}
         self._terms = terms
@@ -509,15 +514,11 @@ class GaussianCovariance:
         self._lsky = lsky
         self._sky_factors = self._factors_to(estimator, cross, beam, beam2, lsky)
         # the spectra of the masks for the coupled signal spectra (iNKA)
-        self._mask_cl = {}
-        for x, y in {(a, c), (b, d), (a, d), (b, c)}:
-            key = tuple(sorted((x, y)))
-            if key not in self._mask_cl:
-                if key[0] == key[1]:
-                    self._mask_cl[key] = _sht.map_spectra([self._masks[key[0]]], lmax + lsky, nthreads=nthreads,
-                                                          rings=rings)[0]
-                else:
-                    self._mask_cl[key] = _sht.map_spectra([w1, w2], lmax + lsky, nthreads=nthreads, rings=rings)[2]
+        if cross:  # one call: both masks' spectra and their cross-spectrum
+            w11, w22, w12 = _sht.map_spectra([w1, w2], lmax + lsky, nthreads=nthreads, rings=rings)
+            self._mask_cl = {("1", "1"): w11, ("2", "2"): w22, ("1", "2"): w12}
+        else:
+            self._mask_cl = {("1", "1"): _sht.map_spectra([w1], lmax + lsky, nthreads=nthreads, rings=rings)[0]}
         self._mean_w = {k: float(np.mean(self._masks[k[0]] * self._masks[k[1]])) for k in self._mask_cl}
         # the linear operator pseudo-spectrum -> bandpowers (C_l units)
         pm, f, ainv = estimator._pair(cross)
