@@ -31,6 +31,7 @@ Examples
 from cmbtools._core.tables import read_polarized_spectrum_table, read_spectrum_table, write_spectrum_table
 from cmbtools.simulate.engine import SimulationSet, run_simulations
 from cmbtools.simulate.noise import NoiseModel, depth_to_white_noise, noise_map, noise_spectrum, white_noise_map
+from cmbtools.simulate.polarized_theory import fiducial_spectra, lensing_bb_template
 from cmbtools.simulate.random_streams import simulation_rng, simulation_rngs, simulation_seed_sequence
 from cmbtools.simulate.polarized_skies import (
     SPECTRUM_NAMES,
@@ -73,6 +74,8 @@ __all__ = [
     "fiducial_cl",
     "fiducial_dl",
     "FIDUCIAL_LMAX_LIMIT",
+    "fiducial_spectra",
+    "lensing_bb_template",
     # spectrum tables
     "read_spectrum_table",
     "write_spectrum_table",
