@@ -119,9 +119,9 @@ def run_polarized(args, outputs_checked) -> int:
 
     theory = None
     if args.theory is not None:
-        from cmbtools._core.tables import read_spectra_table
+        from cmbtools._core.tables import read_polarized_spectrum_table
 
-        theory = {k: v for k, v in read_spectra_table(args.theory).items() if k in sp.SPECTRA}
+        theory = {k: v for k, v in read_polarized_spectrum_table(args.theory).items() if k in sp.SPECTRA}
 
     written = []
     try:

@@ -66,7 +66,7 @@ def _pixel_windows(pixel_window, nside, lmax, nthreads):
 
         pt = np.asarray(_pw(nside, lmax, nthreads=nthreads), dtype=np.float64)[: lmax + 1].copy()
         try:  # the polarization window from its definition, when the maps side provides it
-            from cmbtools.spectrum.pixel_windows import polarization_pixel_window as _ppw
+            from cmbtools.spectrum.spin2_pixel_window import polarization_pixel_window as _ppw
         except ImportError:
             pp, desc = pt.copy(), f"healpix nside={nside} (temperature window for T and P)"
         else:
