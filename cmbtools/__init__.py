@@ -11,8 +11,6 @@ cmbtools.cli       the ``cmbtools`` command-line tool
 Submodules are imported on first access, so ``import cmbtools`` stays cheap.
 """
 
-from __future__ import annotations
-
 import importlib
 
 from cmbtools._version import __version__

@@ -138,20 +138,20 @@ def make_demo_data(output_dir, *, overwrite=False, nthreads=None, log=print):
                                   header={"source": "cmbtools built-in fiducial spectrum, Planck18 cosmology, default extras"})
     beam = gaussian_beam(BEAM_FWHM_ARCMIN, LMAX)
     write_beam(paths["tern_beam.csv"], beam, overwrite=overwrite,
-               header_comment="Tern Sky Survey (invented demo data): Gaussian beam, FWHM 25 arcmin")
+               header="Tern Sky Survey (invented demo data): Gaussian beam, FWHM 25 arcmin")
 
     lon, lat, peak = invent_sources(simulate.simulation_rng(SEED, STREAM_SOURCES))
     write_sources_csv(paths["tern_sources.csv"], lon, lat, peak, overwrite)
 
     hits = hits_map(NSIDE)
     hits_out = np.where(hits > 0, hits, np.nan)  # unobserved pixels are left out of the partial file
-    maps.write_map(paths["tern_hits.fits"], hits_out, unit=None, coord="G", overwrite=overwrite,
-                   extra_header=header, dtype="float32", partial=True, column_name="HITS")
+    maps.write_sky_map(paths["tern_hits.fits"], hits_out, unit=None, coordinates="G", overwrite=overwrite,
+                   header=header, dtype="float32", observed_only=True, column_name="HITS")
 
     field = maps.cap_mask(NSIDE, FIELD_LON, FIELD_LAT, FIELD_RADIUS)
     holes = maps.disc_mask(NSIDE, np.column_stack([lon, lat]), HOLE_RADIUS_DEG)
     mask = maps.apodize_mask(maps.combine_masks(field, holes), APODIZATION_DEG, taper="cosine", nthreads=nthreads)
-    maps.write_mask(paths["tern_mask.fits"], mask, coord="G", overwrite=overwrite, extra_header=header,
+    maps.write_mask(paths["tern_mask.fits"], mask, coordinates="G", overwrite=overwrite, header=header,
                     dtype="float32")
 
     sky = simulate.gaussian_sky(
@@ -168,8 +168,8 @@ def make_demo_data(output_dir, *, overwrite=False, nthreads=None, log=print):
         m = np.full(sky.size, np.nan)
         m[seen] = sky[seen] + noise[seen]
         depth = DEPTH_UK_ARCMIN * (1.0 if name == "tern_sky.fits" else math.sqrt(2.0))
-        maps.write_map(paths[name], m, coord="G", overwrite=overwrite, dtype="float32", partial=True,
-                       extra_header=header + [("CMBDEPTH", round(depth, 4), "white-noise depth, uK-arcmin")])
+        maps.write_sky_map(paths[name], m, coordinates="G", overwrite=overwrite, dtype="float32", observed_only=True,
+                       header=header + [("CMBDEPTH", round(depth, 4), "white-noise depth, uK-arcmin")])
     for p in paths.values():
         log(f"wrote {p} ({p.stat().st_size / 1024:.0f} KiB)")
     return paths

@@ -14,6 +14,10 @@ import numpy as np
 
 from cmbtools.exceptions import InvalidInputError, ResolutionMismatchError
 
+#: Largest number of simulations in one run, in the library and on the command line (a bound that keeps a typo
+#: from exhausting memory and disk).
+MAX_SIMULATIONS = 1_000_000
+
 __all__ = [
     "UNSEEN",
     "check_nside",
@@ -221,3 +225,25 @@ def resolve_nthreads(nthreads=None) -> int:
         except AttributeError:  # pragma: no cover - not on Linux
             return max(1, os.cpu_count() or 1)
     return check_int(nthreads, "nthreads", minimum=1, maximum=4096)
+
+
+def renamed_keywords(**renamed):
+    """Accept the keywords a function had before its parameters were renamed (old name -> new name).
+
+    The old names are deprecated and stay for one release; they are not shown in the signature.
+    """
+    import functools
+
+    def wrap(function):
+        @functools.wraps(function)
+        def call(*args, **kwargs):
+            for old, new in renamed.items():
+                if old in kwargs:
+                    if new in kwargs:
+                        raise InvalidInputError(f"Give {new!r} or its old name {old!r}, not both.")
+                    kwargs[new] = kwargs.pop(old)
+            return function(*args, **kwargs)
+
+        return call
+
+    return wrap

@@ -72,9 +72,12 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 
 
 #: Options that name files a command reads, and options that name files it writes.
-_INPUT_OPTIONS = ("map", "map2", "mask", "mask2", "info", "from_mask", "from_map", "holes", "beam", "beam2", "theory",
-                  "noise_spectrum", "spectrum", "beam_file", "hits")
-_OUTPUT_OPTIONS = ("output", "fits", "figure", "table", "json", "write_spectrum", "operator_cache")
+_INPUT_OPTIONS = ("template", "map", "map2", "mask", "mask2", "info", "from_mask", "from_map", "holes", "beam", "beam2",
+                  "theory",
+                  "noise_spectrum", "noise_maps", "half_difference", "spectrum", "hits", "pol_mask",
+                  "pol_mask2", "hits2", "noise_variance", "noise_variance2", "covariance_from")
+_OUTPUT_OPTIONS = ("output", "fits", "figure", "table", "json_file", "write_spectrum", "write_noise_spectrum",
+                   "operator_cache", "covariance")
 
 
 def _refuse_inputs_as_outputs(args):
@@ -83,7 +86,10 @@ def _refuse_inputs_as_outputs(args):
 
     from cmbtools.exceptions import OutputPathError
 
-    inputs = [getattr(args, k) for k in _INPUT_OPTIONS if isinstance(getattr(args, k, None), str)]
+    inputs = []
+    for k in _INPUT_OPTIONS:
+        value = getattr(args, k, None)
+        inputs += [value] if isinstance(value, str) else [v for v in (value or ()) if isinstance(v, str)]
     inputs = [p for p in inputs if os.path.isfile(p)]
     for key in _OUTPUT_OPTIONS:
         out = getattr(args, key, None)

@@ -12,7 +12,7 @@ __all__ = [
 
 #: Upper bounds of counts given on the command line.
 MAX_THREADS = 1024
-MAX_SIMULATIONS = 1_000_000
+from cmbtools._core.checks import MAX_SIMULATIONS  # noqa: E402  (one bound for the library and the CLI)
 
 
 def add_overwrite(parser):

@@ -48,7 +48,7 @@ def run(args) -> int:
 
     if args.figure is not None:
         check_output_path(args.figure, overwrite=args.overwrite)
-    m, info = maps.read_map(args.map, field=args.field, unit=args.unit, force=args.force)
+    m, info = maps.read_sky_map(args.map, column=args.field, unit=args.unit, force=args.force)
     missing = maps.missing_pixels(m)
     if missing.all():
         raise InputFileError(info.path, f"has no valid pixel: all {m.size} pixels are missing (UNSEEN, NaN or inf)")

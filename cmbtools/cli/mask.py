@@ -147,7 +147,7 @@ def run(args) -> int:
     if args.from_map is not None:
         from cmbtools.maps.fits import read_map_values
 
-        values = read_map_values(args.from_map, field=args.field, force=args.force)
+        values = read_map_values(args.from_map, column=args.field, force=args.force)
         sources.append(("--from-map", maps.threshold_mask(values, args.threshold, keep=args.keep_where)))
     if nside is None:
         if not sources:
@@ -194,7 +194,7 @@ def run(args) -> int:
     extra = {"MASKAPOD": (args.apodize or "none", "apodization taper")}
     if args.apodize:
         extra["MASKAPW"] = (args.apodize_width, "apodization width [deg]")
-    maps.write_mask(args.output, w, coord=args.coord, overwrite=args.overwrite, extra_header=extra)
+    maps.write_mask(args.output, w, coordinates=args.coord, overwrite=args.overwrite, header=extra)
     for note in notes:
         print(f"{'resolution':<16}{note}")
     print(f"{'wrote':<16}{args.output}")

@@ -66,7 +66,7 @@ def read_noise_inputs(args, nside, force):
     from cmbtools.exceptions import ResolutionMismatchError
 
     def read(path):
-        m, info = maps.read_map(path, force=force)
+        m, info = maps.read_sky_map(path, force=force)
         if info.nside != nside:
             raise ResolutionMismatchError(f"{path}: has nside {info.nside} but MAP has nside {nside}.", info.nside, nside)
         return m

@@ -41,6 +41,12 @@ def add_arguments(parser):
     source.add_argument("--spectrum", metavar="TABLE",
                         help="draw from this spectrum table (columns ell and cl/dl, see cmbtools.simulate)")
     sky.add_argument("--nside", type=positive_int, metavar="N", help="HEALPix resolution of the maps")
+    sky.add_argument("--polarized", action="store_true",
+                     help="write I, Q, U maps (HEALPix angle convention) from TT, EE, BB, TE: the built-in fiducial "
+                          "spectra or a polarized --spectrum table (columns cl_tt_k2, cl_ee_k2, cl_bb_k2, cl_te_k2); "
+                          "Q and U noise is sqrt(2) times the temperature noise")
+    sky.add_argument("--tensor-ratio", type=finite_float, default=0.0, metavar="R",
+                     help="with --polarized and the built-in spectra: tensor-to-scalar ratio of the B modes (default 0)")
     sky.add_argument("--lmax", type=positive_int, metavar="L",
                      help="largest multipole simulated (default 3*nside-1; with --sims 0, the length "
                           "of the --write-spectrum table, default 2500)")
@@ -204,13 +210,17 @@ def _run(args, created) -> int:
     if args.noise_depth is not None:
         hits = None
         if args.hits is not None:
-            from cmbtools.maps import read_map
+            from cmbtools.maps import read_sky_map
 
             # hits are relative weights with no unit: read the values as they are
-            hits, _ = read_map(args.hits, unit="K", force=args.force)
+            hits, _ = read_sky_map(args.hits, unit="K", force=args.force)
         noise = simulate.NoiseModel(args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
         if noise.nside is not None and nside is not None and noise.nside != nside:
             raise InvalidInputError(f"--hits has nside {noise.nside} but --nside is {nside}")
+    if args.tensor_ratio and not args.polarized:
+        raise InvalidInputError("--tensor-ratio needs --polarized")
+    if args.polarized:
+        return _run_polarized(args, simulate, nside, lmax, seed, noise, outputs)
     if args.spectrum is not None:
         cl = simulate.read_spectrum_table(args.spectrum)
         if cl.size < lmax + 1:
@@ -253,7 +263,7 @@ def _run(args, created) -> int:
     monopole = args.monopole_uk * 1e-6
     nthreads = args.threads or None
 
-    from cmbtools.maps import write_map
+    from cmbtools.maps import write_sky_map
 
     print(f"simulating {args.sims} map(s): nside {nside}, lmax {lmax}, seed {seed}, spectrum: {source}")
     print(f"  beam: {beam_text}; pixel window: {'no' if args.no_pixel_window else 'yes'}; "
@@ -275,12 +285,12 @@ def _run(args, created) -> int:
                     m = sky + simulate.noise_map(noise, nside, rng=rng, nthreads=nthreads, force=args.force)
                 split_maps.append(m)
         for k, (path, m) in enumerate(zip(group, split_maps), start=1):
-            _write_one(path, m, i, k if args.splits else None, args, seed, lmax, beam_text, noise, write_map,
+            _write_one(path, m, i, k if args.splits else None, args, seed, lmax, beam_text, noise, write_sky_map,
                        missing_pixels)
     return 0
 
 
-def _write_one(path, m, i, split, args, seed, lmax, beam_text, noise, write_map, missing_pixels):
+def _write_one(path, m, i, split, args, seed, lmax, beam_text, noise, write_sky_map, missing_pixels):
     import math
 
     import numpy as np
@@ -295,9 +305,93 @@ def _write_one(path, m, i, split, args, seed, lmax, beam_text, noise, write_map,
     ]
     if split is not None:
         header.append(("CMBSPLIT", split, "split number: same sky, independent noise"))
-    write_map(path, m, coord=args.coord, overwrite=args.overwrite, extra_header=header,
-              dtype="float32" if args.float32 else None, partial=noise is not None and noise.hits is not None)
+    write_sky_map(path, m, coordinates=args.coord, overwrite=args.overwrite, header=header,
+              dtype="float32" if args.float32 else None, observed_only=noise is not None and noise.hits is not None)
     good = m[~missing_pixels(m)]  # the observed pixels
     peak = float(np.max(np.abs(good), initial=0.0))
     rms = peak * math.sqrt(float(np.mean((good / peak) ** 2))) if peak > 0 else 0.0  # no overflow in m**2
     print(f"wrote {path}  (rms {rms * 1e6:.1f} uK)")
+
+
+def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs) -> int:
+    """The --polarized branch: I, Q, U maps from TT, EE, BB, TE (same seeds, beams, noise and splits)."""
+    import warnings
+
+    import numpy as np
+
+    from cmbtools._core.checks import UNSEEN, missing_pixels
+    from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
+    from cmbtools.maps import write_iqu
+
+    if args.spectrum is not None:
+        spectra = simulate.read_polarized_spectrum_table(args.spectrum)
+        if spectra["TT"].size < lmax + 1:
+            raise InvalidInputError(
+                f"{args.spectrum}: the table ends at ell = {spectra['TT'].size - 1}, but --lmax is {lmax}; "
+                "pass a smaller --lmax or a longer table"
+            )
+        source = f"table {args.spectrum}"
+    else:
+        if not 0.0 <= args.tensor_ratio <= 10.0:
+            raise InvalidInputError(f"--tensor-ratio must be in [0, 10]. Got {args.tensor_ratio!r} instead.")
+        spectra = simulate.fiducial_spectra(lmax, tensor_ratio=args.tensor_ratio)
+        source = f"built-in fiducial spectra (Planck18 cosmology, default extras, r = {args.tensor_ratio:g})"
+    spectra = simulate.check_spectra(spectra, lmax)
+    if args.write_spectrum is not None:
+        simulate.write_spectrum_table(args.write_spectrum, spectra, overwrite=args.overwrite, header={"source": source})
+        print(f"wrote {args.write_spectrum} (TT, EE, BB, TE; ell 0..{lmax})")
+    if args.write_noise_spectrum is not None:
+        simulate.write_spectrum_table(args.write_noise_spectrum, simulate.polarized_noise_spectra(noise, lmax, nside),
+                                      overwrite=args.overwrite,
+                                      header={"source": f"noise model: {args.noise_depth:g} uK-arcmin",
+                                              "meaning": "noise spectra as observed (not beam-deconvolved)"})
+        print(f"wrote {args.write_noise_spectrum} (noise spectra, ell 0..{lmax})")
+    if args.sims == 0:
+        return 0
+    if args.beam_fwhm is not None:
+        beam, beam_text = args.beam_fwhm, f"Gaussian {args.beam_fwhm:g} arcmin"
+    elif args.beam is not None:
+        from cmbtools.spectrum.beams import read_beam
+
+        beam, beam_text = read_beam(args.beam, lmax=lmax), f"table {args.beam}"
+    else:
+        beam, beam_text = None, "none"
+    dipole = None
+    if args.dipole_uk is not None:
+        amp, lon, lat = args.dipole_uk
+        dipole = simulate.Dipole(amp * 1e-6, lon, lat)
+    nthreads = args.threads or None
+    print(f"simulating {args.sims} I, Q, U map(s): nside {nside}, lmax {lmax}, seed {seed}, spectra: {source}")
+    for i, group in zip(range(args.first_index, args.first_index + args.sims), outputs):
+        rng = simulate.simulation_rng(seed, i)
+        with warnings.catch_warnings():
+            if args.force:
+                warnings.filterwarnings("ignore", message=".*would need about .* going ahead", category=CmbtoolsWarning)
+            sky = simulate.gaussian_iqu_sky(spectra, nside, lmax=lmax, beam=beam,
+                                            pixel_window=not args.no_pixel_window, monopole=args.monopole_uk * 1e-6,
+                                            dipole=dipole, rng=rng, nthreads=nthreads, force=args.force)
+            split_maps = []
+            for _path in group:
+                m = sky
+                if noise is not None:
+                    m = sky + simulate.iqu_noise_map(noise, nside, rng=rng, nthreads=nthreads, force=args.force)
+                    m[missing_pixels(m)] = UNSEEN
+                split_maps.append(m)
+        for k, (path, m) in enumerate(zip(group, split_maps), start=1):
+            header = [
+                ("CMBSEED", seed, "master seed of the simulation set"),
+                ("CMBSIMID", i, "index of this simulation in the set"),
+                ("CMBLMAX", lmax, "largest multipole simulated"),
+                ("CMBBEAM", beam_text[:60], "beam"),
+                ("CMBPIXWN", not args.no_pixel_window, "pixel window applied"),
+                ("CMBNOISE", 0.0 if noise is None else float(args.noise_depth), "white-noise depth (I), uK-arcmin"),
+            ]
+            if args.splits:
+                header.append(("CMBSPLIT", k, "split number: same sky, independent noise"))
+            write_iqu(path, m, coordinates=args.coord, overwrite=args.overwrite, header=header,
+                      dtype="float32" if args.float32 else None,
+                      observed_only=noise is not None and noise.hits is not None)
+            good = m[:, ~missing_pixels(m[0])]
+            rms = [float(np.sqrt(np.mean(x**2))) * 1e6 if x.size else 0.0 for x in good]
+            print(f"wrote {path}  (rms I {rms[0]:.1f} uK, Q {rms[1]:.2f} uK, U {rms[2]:.2f} uK)")
+    return 0

@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import argparse
 
+from cmbtools.cli.error_model import add_error_options
 from cmbtools.cli.noise_bias import add_noise_options
+from cmbtools.cli.polarized_spectrum import add_polarization_options
 from cmbtools.cli.common import (
     add_binning, add_force, add_overwrite, add_threads, binning_from_args, describe_binning, positive_float,
     positive_int,
@@ -19,6 +21,11 @@ HEALPix pixel window are deconvolved, and the result is averaged into bins.
 With two maps it measures their cross-spectrum, which has no noise bias when
 the two noises are independent.  Error bars: Knox formula with the effective
 sky fraction of the mask.
+
+On I, Q, U maps (three map columns) it measures the six spectra TT, TE, TB,
+EE, EB, BB with the polarized mode-coupling correction (E/B mixing undone),
+optional B-mode purification (--purify-b), and writes one table with a
+'spectrum' column; --pol-mask gives the polarization mask.
 
 The table (CSV) records the inputs in '# key: value' header lines, then the
 columns ell_min,ell_max,ell_eff,cl,cl_err,dl,dl_err (uK^2 by default).
@@ -67,6 +74,17 @@ def add_arguments(parser):
     parser.add_argument("--keep-monopole-dipole", action="store_true",
                         help="do not fit and remove the monopole and dipole before the transform")
     add_noise_options(parser)
+    parser.add_argument("--template", metavar="FILE", action="append",
+                        help="template map (HEALPix FITS) fitted on the masked sky and removed with the monopole and "
+                             "dipole, its bias on the spectrum corrected; repeat for several")
+    parser.add_argument("--no-deprojection-correction", action="store_true",
+                        help="do not correct the bias that removing the monopole, dipole and templates causes")
+    parser.add_argument("--sky-lmax", type=positive_int, metavar="N",
+                        help="band limit of the sky whose power above the bins is modelled from the guess spectrum "
+                             "(--theory, else the built-in fiducial one); real skies: 4 nside - 1 (default: lmax, "
+                             "a sky without power above lmax)")
+    add_error_options(parser)
+    add_polarization_options(parser)
     parser.add_argument("--fast-coupling", action="store_true",
                         help="approximate the mode-coupling matrix (faster at large lmax; exact when lmax > 2 nside, where the approximation fails)")
     parser.add_argument("--theory", metavar="FILE", help="theory spectrum to draw in the figure (columns ell and cl or dl)")
@@ -100,6 +118,7 @@ def _file_identity(path):
 
 def run(args) -> int:
     import contextlib
+    import dataclasses
     import os
     from pathlib import Path
 
@@ -134,6 +153,14 @@ def run(args) -> int:
     if args.map2 is None and (args.mask2 or args.beam2 or args.beam2_fwhm):
         raise InvalidInputError("--mask2, --beam2 and --beam2-fwhm need a second map (MAP2).")
     check_noise_options(args)
+    from cmbtools.cli.error_model import apply_error_model, check_error_options
+
+    check_error_options(args)
+    if args.covariance is not None:
+        key = os.path.abspath(args.covariance)
+        if key in seen:
+            raise InvalidInputError(f"The covariance and the {seen[key]} would both be written to {args.covariance!r}.")
+        seen[key] = "covariance"
     if args.write_noise_spectrum is not None:
         check_output_path(args.write_noise_spectrum, overwrite=args.overwrite)
         key = os.path.abspath(args.write_noise_spectrum)
@@ -141,13 +168,21 @@ def run(args) -> int:
             raise InvalidInputError(f"The noise table and the {seen[key]} would both be written to "
                                     f"{args.write_noise_spectrum!r}.")
 
-    # 2. inputs
-    m1, info1 = maps.read_map(args.map, force=args.force)
+    # 2. inputs (I, Q, U files: the six polarized spectra)
+    from cmbtools.cli.polarized_spectrum import is_polarized_input, run_polarized
+
+    if is_polarized_input(args.map):
+        if args.covariance is not None or args.covariance_from is not None:
+            raise InvalidInputError("--covariance and --covariance-from apply to temperature spectra only.")
+        return run_polarized(args, seen)
+    if args.pol_mask or args.pol_mask2 or args.purify_b:
+        raise InvalidInputError(f"--pol-mask, --pol-mask2 and --purify-b need I, Q, U maps; {args.map} holds one map.")
+    m1, info1 = maps.read_sky_map(args.map, force=args.force)
     w1 = maps.read_mask(args.mask, force=args.force)
     check_same_nside(m1, w1, args.map, args.mask)
     m2 = info2 = w2 = None
     if args.map2 is not None:
-        m2, info2 = maps.read_map(args.map2, force=args.force)
+        m2, info2 = maps.read_sky_map(args.map2, force=args.force)
         w2 = maps.read_mask(args.mask2, force=args.force) if args.mask2 else w1
         check_same_nside(m2, w2, args.map2, args.mask2 or args.mask)
         check_same_nside(m1, m2, args.map, args.map2)
@@ -179,7 +214,21 @@ def run(args) -> int:
     if m2 is not None:
         w2 = drop_missing_pixels(m2, w2, args.map2, "mask2" if args.mask2 is not None else "mask", stacklevel=2)
 
+    templates = None
+    if args.template:
+        templates = []
+        for path in args.template:
+            t, _info = maps.read_sky_map(path, unit="K", force=args.force)
+            check_same_nside(t, w1, path, args.mask)
+            templates.append(t)
+    sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
+    if sky_lmax < lmax or sky_lmax > 8 * nside:
+        raise InvalidInputError(f"--sky-lmax must be in [{lmax}, {8 * nside}] (lmax to 8 nside). Got {sky_lmax} instead.")
     kwargs = dict(
+        templates=templates,
+        sky_lmax=sky_lmax,
+        guess_cl=theory if theory is not None and theory.size > sky_lmax else None,
+        correct_deprojection_bias=not args.no_deprojection_correction,
         lmax=lmax,
         mask2=w2,
         beam=beam1,
@@ -201,10 +250,14 @@ def run(args) -> int:
             cache_text = f"rebuilt, the file held another estimator ({args.operator_cache})"
     else:
         est = sp.SpectrumEstimator(w1, binning, **kwargs)
+    raw = None
     if m2 is not None:
         bp = est.estimate(m1, m2)
     else:
         bp, raw = subtract_noise(est, m1, noise_kind, noise_value, args)
+    noise_maps_for_errors = noise_value if noise_kind == "maps" else None
+    bp, covariance, errors_text = apply_error_model(args, est, bp, raw, theory, noise_maps_for_errors,
+                                                    cross=m2 is not None, nside=nside)
 
     # 3. record the files
     meta = {"map": str(args.map), "map_sha256": info1.sha256, "mask_file": str(args.mask),
@@ -235,6 +288,16 @@ def run(args) -> int:
             written.append(bp.write_fits(args.fits, overwrite=args.overwrite, unit=args.unit))
         if args.figure is not None:
             written.append(bp.plot(args.figure, theory_cl=theory, overwrite=args.overwrite))
+        if args.covariance is not None:
+            if covariance is None:
+                from cmbtools.spectrum import BandpowerCovariance
+
+                covariance = BandpowerCovariance(bp.ell_min, bp.ell_max, bp.ell_eff, np.diag(bp.cl_err**2),
+                                                 kind="knox")
+            if covariance.windows is None:
+                windows = est.cross_bandpower_windows if m2 is not None else est.bandpower_windows
+                covariance = dataclasses.replace(covariance, windows=windows)
+            written.append(covariance.write(args.covariance, overwrite=args.overwrite))
         if args.write_noise_spectrum is not None:
             table = noise_bias_table(est, bp, raw, noise_kind, args)
             written.append(table.write_csv(args.write_noise_spectrum, overwrite=args.overwrite, unit=args.unit))
@@ -260,6 +323,7 @@ def run(args) -> int:
                   f"{len(args.noise_maps)} noise map(s)" if args.noise_maps else
                   f"half-difference of {args.half_difference[0]} and {args.half_difference[1]}")
         print(f"  noise bias subtracted: {source}")
+    print(f"  errors: {errors_text}")
     if args.operator_cache is not None:
         print(f"  operator cache: {cache_text}")
     for p in written:

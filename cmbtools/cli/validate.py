@@ -63,6 +63,16 @@ def add_arguments(parser):
     parser.add_argument("--no-pixel-window", action="store_true", help="neither simulate nor deconvolve the pixel window")
     parser.add_argument("--keep-monopole-dipole", action="store_true",
                         help="do not fit and remove the monopole and dipole before the transform")
+    parser.add_argument("--sky-lmax", type=positive_int, metavar="N",
+                        help="band limit of the simulated skies, whose power above the bins the estimator models "
+                             "(real skies: 4 nside - 1; default: lmax)")
+    parser.add_argument("--pixelise", action="store_true",
+                        help="synthesize every sky at twice the nside and average it into the pixels, as a detector does")
+    parser.add_argument("--monopole", type=float, metavar="UK",
+                        help="monopole added to every sky, uK (default 100; 0 with --keep-monopole-dipole)")
+    parser.add_argument("--dipole", type=float, metavar="UK",
+                        help="dipole amplitude added to every sky, uK, towards (lon, lat) = (60, 30) "
+                             "(default 3000; 0 with --keep-monopole-dipole)")
     parser.add_argument("--fast-coupling", action="store_true",
                         help="approximate the mode-coupling matrix (faster at large lmax; exact when lmax > 2 nside, where the approximation fails)")
     noise = parser.add_argument_group("noise (default: none)")
@@ -174,7 +184,7 @@ def run(args) -> int:
     if args.noise_depth is not None:
         hits = None
         if args.hits is not None:
-            hits, _info = maps.read_map(args.hits, unit="K", force=args.force)
+            hits, _info = maps.read_sky_map(args.hits, unit="K", force=args.force)
         noise = NoiseModel(depth_uk_arcmin=args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
     if args.spectrum is not None:
         from cmbtools._core.tables import read_spectrum_table
@@ -200,8 +210,31 @@ def run(args) -> int:
         mask2 = maps.read_mask(args.mask2, force=args.force)
         check_same_nside(mask, mask2, args.mask, args.mask2)
     binning = binning_from_args(args, lmax, float(np.mean(mask)))
+    sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
+    top = (8 if args.pixelise else 4) * nside - 1
+    if cross:
+        sky_lmax = lmax  # the split simulations of a cross-spectrum are band-limited at lmax
+    elif sky_lmax < lmax or sky_lmax > top:
+        raise InvalidInputError(f"--sky-lmax must be in [{lmax}, {top}]. Got {sky_lmax} instead.")
+    if cl.size < sky_lmax + 1:
+        if args.spectrum is not None:
+            raise InvalidInputError(
+                f"The spectrum table {args.spectrum!r} stops at ell={cl.size - 1}; the skies go to --sky-lmax "
+                f"{sky_lmax} (give a longer table or a lower --sky-lmax)."
+            )
+        cl = fiducial_cl(sky_lmax)
+    removal = not args.keep_monopole_dipole
+    monopole = (100.0 if removal else 0.0) if args.monopole is None else args.monopole
+    dipole_uk = (3000.0 if removal else 0.0) if args.dipole is None else args.dipole
+    for name, value in (("--monopole", monopole), ("--dipole", dipole_uk)):
+        if not np.isfinite(value) or abs(value) > 1e9:
+            raise InvalidInputError(f"{name} must be a finite number of uK below 1e9. Got {value!r} instead.")
+    from cmbtools.simulate import Dipole
+
+    dipole = Dipole(abs(dipole_uk) * 1e-6, 60.0, 30.0) if dipole_uk else None
     est = sp.SpectrumEstimator(
         mask, binning, lmax=lmax, mask2=mask2, beam=beam, pixel_window=not args.no_pixel_window,
+        sky_lmax=sky_lmax, guess_cl=cl,
         remove_monopole_dipole=not args.keep_monopole_dipole, coupling="fast" if args.fast_coupling else "exact",
         force=args.force,
     )
@@ -220,6 +253,8 @@ def run(args) -> int:
             est, cl, n_sims=args.sims, seed=args.seed, noise=noise, run_dir=run_dir, executor=client,
             workers=None if client is not None else n_workers, threads_per_worker=args.threads or None,
             progress=False if args.no_progress else None, restart=args.restart, force=args.force, cross=cross,
+            monopole=monopole * 1e-6, dipole=dipole,
+            **({} if cross else {"sky_lmax": sky_lmax, "pixelise": bool(args.pixelise)}),
         )
     finally:
         if client is not None:
@@ -246,6 +281,15 @@ def run(args) -> int:
             written.append(result.write_json(path, overwrite=overwrite))
         else:
             written.append(result.plot(path, overwrite=overwrite))
+    # the simulated covariance of the bandpowers, usable by `cmbtools spectrum --covariance-from`
+    from cmbtools.spectrum.covariance import simulated_covariance
+
+    windows = est.cross_bandpower_windows if cross else est.bandpower_windows
+    simulated = simulated_covariance(
+        result.samples, ell_min=result.ell_min, ell_max=result.ell_max, ell_eff=result.ell_eff, windows=windows,
+        settings={"spectrum": "cross" if cross else "auto", "seed": int(result.seed),
+                  "estimator_key": meta.get("estimator_key", "")})
+    written.append(simulated.write(run_dir / "covariance.npz", overwrite=True))
 
     s = result.summary()
     # a null run (zero spectrum, no noise) has no scatter: its ratios are not numbers (None in the summary)
@@ -272,8 +316,9 @@ def run(args) -> int:
     print(f"  input: {spectrum_text}; beam: {meta['beam']}; noise: {noise_text}")
     print(f"  bias: max |bias| {num('max_abs_bias_sigma', '.2f')} sigma (ell {int(result.ell_min[worst])}-"
           f"{int(result.ell_max[worst])}), rms {num('rms_bias_sigma', '.2f')} sigma over {s['n_bins']} bins")
-    print(f"  error bars: scatter / analytic error = {num('median_error_ratio', '.3f')} (median; "
-          f"{num('min_error_ratio', '.3f')} to {num('max_error_ratio', '.3f')})")
+    print(f"  error bars ({meta.get('error_model', 'analytic')}): scatter / error = "
+          f"{num('median_error_ratio', '.3f')} (median; {num('min_error_ratio', '.3f')} to "
+          f"{num('max_error_ratio', '.3f')} over the bins)")
     print(f"  transfer (mean / expected): median {num('median_transfer', '.4f')}")
     print("  wrote " + ", ".join(str(p) for p in written))
     return 0

@@ -20,8 +20,6 @@ Examples
 0.25
 """
 
-from __future__ import annotations
-
 from cmbtools._core.checks import UNSEEN, missing_pixels  # noqa: F401
 from cmbtools.maps import conversions as _conversions
 from cmbtools.maps import fits as _fits
@@ -29,6 +27,8 @@ from cmbtools.maps import masks as _masks
 from cmbtools.maps import monopole_dipole as _monopole_dipole
 from cmbtools.maps.conversions import *  # noqa: F401,F403
 from cmbtools.maps.fits import *  # noqa: F401,F403
+from cmbtools.maps.fits import read_map, write_map  # noqa: F401  (deprecated names, kept for one release)
+from cmbtools.maps.conversions import gaussian_beam_window  # noqa: F401  (deprecated: spectrum.gaussian_beam)
 from cmbtools.maps.masks import *  # noqa: F401,F403
 from cmbtools.maps.monopole_dipole import *  # noqa: F401,F403
 

@@ -33,7 +33,7 @@ from cmbtools._core.checks import (
 from cmbtools._core.memory import check_memory, estimate_map_transform_bytes, estimate_regrade_bytes
 from cmbtools.exceptions import InvalidInputError
 
-__all__ = ["rotate_map", "rotate_mask", "change_resolution", "smooth_map", "gaussian_beam_window"]
+__all__ = ["rotate_map", "rotate_mask", "change_resolution", "smooth_map", "rotate_iqu", "smooth_iqu"]
 
 
 def _nside_of(a):
@@ -223,28 +223,23 @@ def rotate_mask(mask, coord_in, coord_out):
 
 
 def gaussian_beam_window(fwhm_arcmin, lmax):
-    """Harmonic transfer ``B_l = exp(-l(l+1) sigma^2 / 2)`` of a Gaussian beam.
-
-    ``sigma = FWHM / sqrt(8 ln 2)`` (common practice; the flat-sky Gaussian
-    beam's transform, accurate for FWHM well below a radian).
+    """Deprecated name of :func:`cmbtools.spectrum.gaussian_beam` (the one Gaussian beam); kept for one release.
 
     Parameters
     ----------
     fwhm_arcmin : float
-        Full width at half maximum of the beam, arcmin (>= 0).
+        Full width at half maximum, arcminutes.
     lmax : int
         Largest multipole.
 
     Returns
     -------
     ndarray of shape (lmax+1,)
-        B_l for ell = 0..lmax.
+        ``B_l``.
     """
-    fwhm = check_positive(fwhm_arcmin, "fwhm_arcmin")
-    lmax = check_lmax(lmax)
-    sigma = math.radians(fwhm / 60.0) / math.sqrt(8.0 * math.log(2.0))
-    ell = np.arange(lmax + 1, dtype=np.float64)
-    return np.exp(-0.5 * ell * (ell + 1.0) * sigma**2)
+    from cmbtools.spectrum.beams import gaussian_beam
+
+    return gaussian_beam(fwhm_arcmin, lmax)
 
 
 _FILL_CHOICES = (None, "zero", "mean")
@@ -306,7 +301,9 @@ def smooth_map(m, *, fwhm_arcmin=None, beam=None, lmax=None, fill_missing=None, 
     if (fwhm_arcmin is None) == (beam is None):
         raise InvalidInputError("Give exactly one of 'fwhm_arcmin' (Gaussian beam) and 'beam' (tabulated B_l).")
     if beam is None:
-        bl = gaussian_beam_window(fwhm_arcmin, lmax)
+        from cmbtools.spectrum.beams import gaussian_beam
+
+        bl = gaussian_beam(check_positive(fwhm_arcmin, "fwhm_arcmin"), lmax)
     else:
         bl = check_cl(beam, "beam", lmax=lmax)[: lmax + 1]
     if fill_missing not in _FILL_CHOICES:
@@ -327,4 +324,183 @@ def smooth_map(m, *, fwhm_arcmin=None, beam=None, lmax=None, fill_missing=None, 
     alm = _sht.map2alm(a, lmax, n_iter=n_iter, nthreads=nthreads)
     out = _sht.alm2map(_sht.almxfl(alm, bl, lmax), nside, lmax, nthreads=nthreads)
     out[bad] = UNSEEN
+    return out
+
+
+# --------------------------------------------------------------------------- polarized maps
+
+
+def _as_iqu_map(m, name="map", *, allow_missing=True):
+    """(3, npix) float64 I, Q, U maps with a valid HEALPix size."""
+    try:
+        a = np.asarray(m, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InvalidInputError(f"The {name!r} parameter must be an array of numbers.") from None
+    if a.ndim != 2 or a.shape[0] != 3:
+        raise InvalidInputError(
+            f"The {name!r} parameter must hold three maps I, Q, U, shape (3, 12*nside**2). Got shape {a.shape} instead."
+        )
+    rows = [as_map(a[i], f"{name} ({'IQU'[i]})", allow_missing=allow_missing) for i in range(3)]
+    return np.stack(rows)
+
+
+def _iqu_alm(a, lmax, n_iter, nthreads):
+    """T, E, B coefficients of a complete (3, npix) map (HEALPix convention)."""
+    from cmbtools._core import sht as _sht
+
+    alm_t = _sht.map2alm(a[0], lmax, n_iter=n_iter, nthreads=nthreads)
+    alm_e, alm_b = _sht.map2alm_spin2(a[1], a[2], lmax, n_iter=n_iter, nthreads=nthreads)
+    return [np.asarray(x, dtype=np.complex128) for x in (alm_t, alm_e, alm_b)]
+
+
+def _iqu_from_alm(alms, nside, lmax, nthreads):
+    from cmbtools._core import sht as _sht
+
+    t = _sht.alm2map(alms[0], nside, lmax, nthreads=nthreads)
+    q, u = _sht.alm2map_spin2(alms[1], alms[2], nside, lmax, nthreads=nthreads)
+    return np.stack([t, q, u])
+
+
+def rotate_iqu(m, coord_in, coord_out, *, lmax=None, n_iter=3, nthreads=None, force=False):
+    """Rotate complete I, Q, U maps between coordinate systems, in harmonic space.
+
+    The temperature and the E and B coefficients are rotated with the same
+    Wigner rotation (healpy's ``Rotator.rotate_alm``), and Q, U are
+    synthesized again in the local frames of the new coordinates, so the
+    polarization angle changes by the rotation of the local frame at every
+    pixel (the spin-2 transformation, Zaldarriaga & Seljak 1997, PRD 55, 1830).
+    E and B spectra are unchanged, and rotating back gives the input (for
+    maps band-limited to ``lmax``).
+
+    Parameters
+    ----------
+    m : array_like of shape (3, 12*nside**2)
+        I, Q, U in the HEALPix convention, RING, without missing pixels.
+    coord_in, coord_out : {'G', 'C', 'E'}
+        Coordinate systems (galactic, equatorial, ecliptic).
+    lmax : int, optional
+        Band limit (default ``3*nside - 1``).
+    n_iter : int, default=3
+        Refinement steps of the analysis.
+    nthreads : int, optional
+        Threads for the transforms.
+    force : bool, default=False
+        Go ahead even if the memory estimate exceeds what the machine has available.
+
+    Returns
+    -------
+    ndarray of shape (3, 12*nside**2)
+
+    Raises
+    ------
+    InvalidInputError
+        If a map has missing pixels or the array is not (3, npix).
+    MemoryLimitError
+        If the transforms would not fit in memory (unless ``force``).
+    """
+    import healpy as hp
+
+    try:
+        a = _as_iqu_map(m, "map", allow_missing=False)
+    except InvalidInputError as exc:
+        raise InvalidInputError(
+            f"{exc} A harmonic rotation needs complete maps: fill the holes first, "
+            f"or rotate a mask in pixel space with rotate_mask."
+        ) from None
+    cin, cout = _coord_pair(coord_in, coord_out)
+    if cin == cout:
+        return a.copy()
+    nside = _nside_of(a[0])
+    lmax = 3 * nside - 1 if lmax is None else check_lmax(lmax, nside)
+    warn_lmax_above_band_limit(lmax, nside)
+    check_memory(estimate_map_transform_bytes(nside, lmax, 4), f"Rotating I, Q, U maps at nside {nside} with lmax {lmax}", force=force)
+    nthreads = resolve_nthreads(nthreads)
+    alms = _iqu_alm(a, lmax, n_iter, nthreads)
+    rot = hp.Rotator(coord=[cin, cout])
+    alms = [rot.rotate_alm(x, lmax=lmax) for x in alms]
+    return _iqu_from_alm(alms, nside, lmax, nthreads)
+
+
+def _field_beams(fwhm_arcmin, beam, lmax):
+    """(B_T, B_P) up to lmax from one or two FWHM, or one or two tabulated beams."""
+    if (fwhm_arcmin is None) == (beam is None):
+        raise InvalidInputError("Give exactly one of 'fwhm_arcmin' (Gaussian beam) and 'beam' (tabulated B_l).")
+    if fwhm_arcmin is not None:
+        values = fwhm_arcmin if isinstance(fwhm_arcmin, (tuple, list)) else (fwhm_arcmin, fwhm_arcmin)
+        if len(values) != 2:
+            raise InvalidInputError(
+                f"The 'fwhm_arcmin' parameter must be one FWHM or two (temperature, polarization). Got {fwhm_arcmin!r} instead."
+            )
+        from cmbtools.spectrum.beams import gaussian_polarized_beam
+
+        return gaussian_beam_window(values[0], lmax), gaussian_polarized_beam(check_positive(values[1], "fwhm_arcmin"), lmax)
+    if isinstance(beam, (tuple, list)) or (np.ndim(beam) == 2):
+        if len(beam) != 2:
+            raise InvalidInputError("The 'beam' parameter must be one B_l or two (temperature, polarization).")
+        return tuple(check_cl(b, "beam", lmax=lmax)[: lmax + 1] for b in beam)
+    b = check_cl(beam, "beam", lmax=lmax)[: lmax + 1]
+    return b, b
+
+
+def smooth_iqu(m, *, fwhm_arcmin=None, beam=None, lmax=None, fill_missing=None, n_iter=3, nthreads=None, force=False):
+    """Smooth I, Q, U maps with a beam per field (temperature, polarization).
+
+    I is smoothed as by :func:`smooth_map`; Q and U together as a spin-2
+    field (their E and B coefficients are multiplied by the polarization beam).
+
+    Parameters
+    ----------
+    m : array_like of shape (3, 12*nside**2)
+        I, Q, U, RING, HEALPix convention.
+    fwhm_arcmin : float or (float, float), optional
+        Gaussian FWHM in arcmin: one for all fields or (temperature, polarization).
+        The polarization beam of a Gaussian is its spin-2 transfer function
+        (:func:`cmbtools.spectrum.beams.gaussian_polarized_beam`).
+    beam : array_like or (array_like, array_like), optional
+        Tabulated B_l: one for all fields or (B_T, B_P).  Exactly one of
+        ``fwhm_arcmin`` and ``beam`` must be given.
+    lmax, fill_missing, n_iter, nthreads, force
+        As for :func:`smooth_map` (missing pixels are handled per field; a
+        pixel missing in Q or U is filled in both).
+
+    Returns
+    -------
+    ndarray of shape (3, 12*nside**2)
+        Smoothed maps; filled pixels are UNSEEN again.
+
+    Raises
+    ------
+    InvalidInputError
+        For missing pixels without ``fill_missing``, an empty field, or a bad beam.
+    """
+    a = _as_iqu_map(m, "map")
+    nside = _nside_of(a[0])
+    lmax = 3 * nside - 1 if lmax is None else check_lmax(lmax, nside)
+    warn_lmax_above_band_limit(lmax, nside)
+    b_t, b_p = _field_beams(fwhm_arcmin, beam, lmax)
+    if fill_missing not in _FILL_CHOICES:
+        raise InvalidInputError(f"The 'fill_missing' parameter must be None, 'zero' or 'mean'. Got {fill_missing!r} instead.")
+    bad_t = missing_pixels(a[0])
+    bad_p = missing_pixels(a[1]) | missing_pixels(a[2])
+    a = a.copy()
+    for rows, bad in (((0,), bad_t), ((1, 2), bad_p)):
+        if bad.any():
+            if fill_missing is None:
+                raise InvalidInputError(
+                    f"The 'map' has {int(bad.sum())} missing pixels in {'I' if rows == (0,) else 'Q/U'}; smoothing "
+                    f"would spread them. Pass fill_missing='zero' or 'mean' to fill them first."
+                )
+            if bad.all():
+                raise InvalidInputError(f"The 'map' has no valid pixel in {'I' if rows == (0,) else 'Q/U'} to smooth.")
+            for r in rows:
+                a[r, bad] = 0.0 if fill_missing == "zero" else float(np.mean(a[r, ~bad]))
+    check_memory(estimate_map_transform_bytes(nside, lmax, 3), f"Smoothing I, Q, U maps at nside {nside} with lmax {lmax}", force=force)
+    nthreads = resolve_nthreads(nthreads)
+    from cmbtools._core import sht as _sht
+
+    alms = _iqu_alm(a, lmax, n_iter, nthreads)
+    alms = [_sht.almxfl(alms[0], b_t, lmax), _sht.almxfl(alms[1], b_p, lmax), _sht.almxfl(alms[2], b_p, lmax)]
+    out = _iqu_from_alm(alms, nside, lmax, nthreads)
+    out[0, bad_t] = UNSEEN
+    out[1:, bad_p] = UNSEEN
     return out

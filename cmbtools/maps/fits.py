@@ -28,18 +28,26 @@ from pathlib import Path
 import numpy as np
 
 from cmbtools._core.files import atomic_output, check_output_path, open_fits, sha256_file, short_message
+from cmbtools._core.checks import renamed_keywords
 from cmbtools._core.checks import UNSEEN, check_mask, missing_pixels, nside_from_npix
 from cmbtools._version import __version__
 from cmbtools.exceptions import CmbtoolsWarning, InputFileError, InvalidInputError
 
+
 __all__ = [
     "MapInfo",
-    "read_map",
-    "write_map",
+    "read_sky_map",
+    "write_sky_map",
     "read_mask",
     "write_mask",
     "unit_scale",
     "normalize_coord",
+    "read_iqu",
+    "write_iqu",
+    "is_iqu_file",
+    "convert_polarization_convention",
+    "read_mask_pair",
+    "write_mask_pair",
 ]
 
 _COORD_NAMES = {
@@ -162,6 +170,10 @@ class MapInfo:
         True for an explicit-index (partial-sky) file.
     sha256 : str
         Hex SHA-256 of the file's bytes.
+    units_by_field : tuple of (str or None), optional
+        For I, Q, U files (:func:`read_iqu`): the unit string of each field.
+    polarization_convention_in_file : {'healpix', 'iau'} or None, optional
+        For I, Q, U files: the angle convention the header states (None if none).
     """
 
     path: str
@@ -173,6 +185,8 @@ class MapInfo:
     n_missing: int
     is_partial: bool
     sha256: str
+    units_by_field: tuple | None = None
+    polarization_convention_in_file: str | None = None
 
     def __post_init__(self):
         if self.ordering_in_file not in ("RING", "NESTED"):
@@ -242,14 +256,15 @@ def _memory_check(force):
     return lambda need, what: check_memory(need, what, force=force)
 
 
-def read_map_values(path, *, field=0, force=False):
+@renamed_keywords(field="column")
+def read_map_values(path, *, column=0, force=False):
     """Read a HEALPix map's values as the file stores them (no unit conversion), RING ordering.
 
     Parameters
     ----------
     path : str or path-like
         The FITS file.
-    field : int, default=0
+    column : int, default=0
         Which map column to read, numbered from 0.
     force : bool, default=False
         Read a partial-sky file even if the full-sky map it describes is
@@ -260,12 +275,16 @@ def read_map_values(path, *, field=0, force=False):
     ndarray of shape (12*nside**2,)
         float64 values in the file's own unit; missing pixels hold UNSEEN.
     """
-    values, _facts = _read_table(path, field, None, _memory_check(force))
+    values, _facts = _read_table(path, column, None, _memory_check(force))
     return values
 
 
 def _parse_table(p, hdul, field, ordering, memory_check):
-    """The body of :func:`_read_table`, run while the file is open."""
+    """The body of :func:`_read_table`, run while the file is open.
+
+    ``field`` is one column index (the values come back as one map) or a
+    tuple of indices (the values come back stacked, shape ``(len(field), npix)``).
+    """
     import healpy as hp
 
     table = _first_table(p, hdul)
@@ -279,18 +298,29 @@ def _parse_table(p, hdul, field, ordering, memory_check):
     if is_partial and not has_pixel_column:
         raise InputFileError(p, "is marked as an explicit-index (partial-sky) file but has no PIXEL column")
     value_columns = [i for i, n in enumerate(upper) if not (is_partial and n == "PIXEL")]
-    if isinstance(field, bool) or not isinstance(field, (int, np.integer)):
-        raise InvalidInputError(f"The 'field' parameter must be an integer column index. Got {field!r} instead.")
-    if not 0 <= int(field) < len(value_columns):
+    single = not isinstance(field, tuple)
+    fields = (field,) if single else field
+    for f in fields:
+        if isinstance(f, bool) or not isinstance(f, (int, np.integer)):
+            raise InvalidInputError(f"The 'field' parameter must be an integer column index. Got {f!r} instead.")
+        if not 0 <= int(f) < len(value_columns):
+            raise InputFileError(
+                p, f"has no field {f}: it holds {len(value_columns)} map column(s) "
+                f"({', '.join(names[i] for i in value_columns)}), numbered from 0"
+            )
+    col_indices = [value_columns[int(f)] for f in fields]
+    columns = [_column_values(p, table.data.field(i)) for i in col_indices]
+    if len({c.size for c in columns}) > 1:
         raise InputFileError(
-            p, f"has no field {field}: it holds {len(value_columns)} map column(s) "
-            f"({', '.join(names[i] for i in value_columns)}), numbered from 0"
+            p, "its map columns " + ", ".join(repr(names[i]) for i in col_indices)
+            + " hold different numbers of values"
         )
-    col_index = value_columns[int(field)]
-    col = table.columns[col_index]
-    values = _column_values(p, table.data.field(col_index))
+    values = columns[0]
     dtype_in_file = values.dtype.name
-    unit = (col.unit or "").strip() or _header_str(header, f"TUNIT{col_index + 1}", "BUNIT", "UNIT", "UNITS")
+    units = [
+        (table.columns[i].unit or "").strip() or _header_str(header, f"TUNIT{i + 1}", "BUNIT", "UNIT", "UNITS")
+        for i in col_indices
+    ]
     temptype = _header_str(header, "TEMPTYPE")
 
     # ordering
@@ -327,6 +357,7 @@ def _parse_table(p, hdul, field, ordering, memory_check):
     else:
         nside_hdr = None
 
+    outs = []
     if is_partial:
         if nside_hdr is None:
             raise InputFileError(p, "is a partial-sky file without an NSIDE keyword")
@@ -345,57 +376,91 @@ def _parse_table(p, hdul, field, ordering, memory_check):
         # the file lists a few pixels, but the map it describes may be huge
         from cmbtools._core.memory import estimate_map_bytes
 
-        memory_check(estimate_map_bytes(nside, 2), f"The partial-sky file {str(p)!r} at nside {nside}")
+        memory_check(estimate_map_bytes(nside, 1 + len(columns)), f"The partial-sky file {str(p)!r} at nside {nside}")
         if ordering_in_file == "NESTED":
             pix = hp.nest2ring(nside, pix)
-        out = np.full(npix, UNSEEN, dtype=np.float64)
-        out[pix] = values.astype(np.float64)
+        for c in columns:
+            out = np.full(npix, UNSEEN, dtype=np.float64)
+            out[pix] = c.astype(np.float64)
+            outs.append(out)
     else:
         npix = values.size
         nside = int(round(np.sqrt(npix / 12.0)))
         if nside < 1 or 12 * nside * nside != npix:
             raise InputFileError(
-                p, f"column {names[col_index]!r} holds {npix} values, which is not 12*nside**2 "
+                p, f"column {names[col_indices[0]]!r} holds {npix} values, which is not 12*nside**2 "
                 f"and the file is not an explicit-index partial-sky file"
             )
         if nside & (nside - 1):
             raise InputFileError(p, f"holds {npix} values, i.e. nside {nside}, which is not a power of two")
         if nside_hdr is not None and nside_hdr != nside:
             raise InputFileError(p, f"has NSIDE={nside_hdr} but {npix} pixels (nside {nside})")
-        out = values.astype(np.float64)
-        if ordering_in_file == "NESTED":
-            out = hp.reorder(out, n2r=True)
+        for c in columns:
+            out = c.astype(np.float64)
+            if ordering_in_file == "NESTED":
+                out = hp.reorder(out, n2r=True)
+            outs.append(out)
     coord_raw = _header_str(header, "COORDSYS")
     try:
         coord = normalize_coord(coord_raw) if coord_raw else None
     except InvalidInputError:
         coord = None
-    bad = missing_pixels(out)
-    # values stored in the file that are no number (a partial-sky file's unlisted pixels are not counted)
-    n_bad_values = int(np.count_nonzero(missing_pixels(values))) if is_partial else int(np.count_nonzero(bad))
-    out[bad] = UNSEEN
+    n_bad_values = 0
+    for c, out in zip(columns, outs):
+        bad = missing_pixels(out)
+        # values stored in the file that are no number (a partial-sky file's unlisted pixels are not counted)
+        n_bad_values += int(np.count_nonzero(missing_pixels(c))) if is_partial else int(np.count_nonzero(bad))
+        out[bad] = UNSEEN
     facts = dict(
-        path=str(p), nside=nside, ordering_in_file=ordering_in_file, unit_in_file=unit, coord=coord,
+        path=str(p), nside=nside, ordering_in_file=ordering_in_file, unit_in_file=units[0], coord=coord,
         dtype_in_file=dtype_in_file, is_partial=is_partial, temptype=temptype, n_bad_values=n_bad_values,
     )
-    return out, facts
+    if not single:
+        facts["units_by_field"] = tuple(units)
+        facts["column_names"] = tuple(names[i] for i in col_indices)
+        facts["value_column_names"] = tuple(names[i] for i in value_columns)
+        facts["polarization_convention_card"] = _polarization_card(header)
+    return (outs[0] if single else np.stack(outs)), facts
 
 
-def read_map(path, *, field=0, unit=None, ordering=None, force=False):
+def _scale_to_kcmb(path, unit, file_unit, temptype, *, what="the file"):
+    """Factor from the file's values to K_CMB: ``unit`` if given, else the file's unit (see :func:`read_map`)."""
+    if unit is not None:
+        return unit_scale(unit, source="'unit' parameter")
+    if temptype and temptype.upper().startswith("ANTENNA"):
+        raise InputFileError(
+            path, "has TEMPTYPE='ANTENNA' (Rayleigh-Jeans temperature); cmbtools needs "
+            "thermodynamic K_CMB; convert the map first, or pass unit= to state the unit"
+        )
+    if file_unit is None:
+        warnings.warn(
+            f"{path}: {what} states no unit; assuming K_CMB (pass unit= to state it)",
+            CmbtoolsWarning,
+            stacklevel=3,
+        )
+        return 1.0
+    try:
+        return unit_scale(file_unit, source=f"unit in {what}")
+    except InvalidInputError as exc:
+        raise InputFileError(path, f"{exc} (pass unit= to override)") from None
+
+
+@renamed_keywords(field="column", ordering="file_ordering")
+def read_sky_map(path, *, column=0, unit=None, file_ordering=None, force=False):
     """Read a HEALPix map from a FITS file, in K_CMB and RING ordering.
 
     Parameters
     ----------
     path : str or path-like
         The FITS file.
-    field : int, default=0
+    column : int, default=0
         Which map column to read, numbered from 0 (the ``PIXEL`` column of a
         partial-sky file is not counted).
     unit : str, optional
         The unit of the values in the file, overriding what the header says
         (for files with a missing or wrong unit).  Must be K, mK or uK in
         thermodynamic CMB temperature.
-    ordering : {'RING', 'NESTED'}, optional
+    file_ordering : {'RING', 'NESTED'}, optional
         Override for files without (or with a wrong) ``ORDERING`` keyword.
     force : bool, default=False
         Read a partial-sky file even if the full-sky map it describes is
@@ -415,7 +480,7 @@ def read_map(path, *, field=0, unit=None, ordering=None, force=False):
     ------
     InputFileError
         If the file is missing, not FITS, truncated, has no HEALPix table, an
-        impossible pixel count or nside, no such field, or a unit that is not a
+        impossible pixel count or nside, no such column, or a unit that is not a
         thermodynamic CMB temperature (and ``unit`` is not given).
     MemoryLimitError
         If a partial-sky file describes a map too large for the memory
@@ -426,7 +491,7 @@ def read_map(path, *, field=0, unit=None, ordering=None, force=False):
     CmbtoolsWarning
         If the file states no unit and ``unit`` is not given (K_CMB is assumed).
     """
-    m, facts = _read_table(path, field, ordering, _memory_check(force))
+    m, facts = _read_table(path, column, file_ordering, _memory_check(force))
     temptype = facts.pop("temptype")
     facts.pop("n_bad_values")
     if unit is not None:
@@ -458,7 +523,8 @@ def read_map(path, *, field=0, unit=None, ordering=None, force=False):
     return m, info
 
 
-def read_mask(path, *, field=0, ordering=None, force=False):
+@renamed_keywords(field="column", ordering="file_ordering")
+def read_mask(path, *, column=0, file_ordering=None, force=False):
     """Read a mask (binary or weighted, values in [0, 1]) from a HEALPix FITS file.
 
     Pixels missing from the file get weight 0: pixels a partial-sky file does
@@ -469,12 +535,12 @@ def read_mask(path, *, field=0, ordering=None, force=False):
     ----------
     path : str or path-like
         The FITS file.
-    field : int, default=0
+    column : int, default=0
         Which map column to read.
-    ordering : {'RING', 'NESTED'}, optional
+    file_ordering : {'RING', 'NESTED'}, optional
         Override for files without an ``ORDERING`` keyword.
     force : bool, default=False
-        As for :func:`read_map`.
+        As for :func:`read_sky_map`.
 
     Returns
     -------
@@ -484,12 +550,12 @@ def read_mask(path, *, field=0, ordering=None, force=False):
     Raises
     ------
     InputFileError
-        For unreadable files (see :func:`read_map`) and for values outside
+        For unreadable files (see :func:`read_sky_map`) and for values outside
         [0, 1] or a mask that is zero everywhere.
     MemoryLimitError
-        As for :func:`read_map`.
+        As for :func:`read_sky_map`.
     """
-    w, facts = _read_table(path, field, ordering, _memory_check(force))
+    w, facts = _read_table(path, column, file_ordering, _memory_check(force))
     n_stored = facts["n_bad_values"]
     if n_stored > 0:
         warnings.warn(
@@ -517,19 +583,20 @@ def _header_cards(extra_header):
             cards.append(tuple(item))
         else:
             raise InvalidInputError(
-                f"The 'extra_header' parameter must be a dict or a list of (key, value[, comment]) tuples. "
+                f"The 'header' parameter must be a dict or a list of (key, value[, comment]) tuples. "
                 f"Got the entry {item!r} instead."
             )
     return cards
 
 
 _RESERVED = {"PIXTYPE", "ORDERING", "NSIDE", "FIRSTPIX", "LASTPIX", "INDXSCHM", "OBJECT", "COORDSYS",
-             "TUNIT1", "TUNIT2", "BAD_DATA", "XTENSION", "BITPIX", "NAXIS", "NAXIS1", "NAXIS2",
-             "TFIELDS", "TTYPE1", "TTYPE2", "TFORM1", "TFORM2", "PCOUNT", "GCOUNT", "EXTNAME"}
+             "BAD_DATA", "XTENSION", "BITPIX", "NAXIS", "NAXIS1", "NAXIS2", "TFIELDS", "PCOUNT", "GCOUNT",
+             "EXTNAME", "POLANGLE", "POLCCONV", *(f"{k}{i}" for k in ("TUNIT", "TTYPE", "TFORM") for i in range(1, 5))}
 
 
-def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False, extra_header=None,
-              dtype=None, partial=False, column_name="TEMPERATURE"):
+@renamed_keywords(coord="coordinates", nest="nested", extra_header="header", partial="observed_only")
+def write_sky_map(path, m, *, unit="K_CMB", coordinates=None, nested=False, overwrite=False, header=None,
+                  dtype=None, observed_only=False, column_name="TEMPERATURE"):
     """Write a HEALPix map to a FITS file (atomically; never overwrites by default).
 
     Parameters
@@ -544,17 +611,17 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
         (``unit='uK_CMB'`` multiplies by 1e6) and the unit is recorded in
         ``TUNIT``.  ``None`` writes the values unchanged with no unit
         (masks, hit counts).
-    coord : {'G', 'C', 'E'}, optional
+    coordinates : {'G', 'C', 'E'}, optional
         Coordinate system recorded in ``COORDSYS``.
-    nest : bool, default=False
+    nested : bool, default=False
         Write in NESTED ordering instead of RING.
     overwrite : bool, default=False
         Replace an existing file.
-    extra_header : dict or list of (key, value[, comment]), optional
+    header : dict or list of (key, value[, comment]), optional
         Additional header cards (the HEALPix keywords cannot be overridden).
     dtype : {None, 'float32', 'float64'}, optional
         Data type in the file (default float64).
-    partial : bool, default=False
+    observed_only : bool, default=False
         Write an explicit-index partial-sky file: only the pixels that are
         not missing are stored, with their pixel numbers in a ``PIXEL`` column.
     column_name : str, default='TEMPERATURE'
@@ -571,7 +638,7 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
         If ``path`` exists and ``overwrite`` is false.
     InvalidInputError
         For a malformed map, an unknown unit or dtype, a value that does not
-        fit in the dtype (in the unit), or ``partial=True`` with no valid pixel.
+        fit in the dtype (in the unit), or ``observed_only=True`` with no valid pixel.
     """
     import healpy as hp
     from astropy.io import fits
@@ -584,7 +651,7 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
         raise InvalidInputError(f"The 'm' parameter must be a 1-d HEALPix map. Got shape {a.shape} instead.")
     nside = nside_from_npix(a.size, "m")
     npix = a.size
-    coord = normalize_coord(coord)
+    coord = normalize_coord(coordinates)
     if dtype is None:
         out_dtype = np.dtype(np.float64)
     else:
@@ -597,10 +664,10 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
         unit = str(unit).strip().replace("\u00b5", "u").replace("\u03bc", "u")
         if not unit.isascii() or not unit.isprintable():
             raise InvalidInputError(f"The 'unit' parameter must be printable ASCII text. Got {unit!r} instead.")
-    cards = _header_cards(extra_header)
+    cards = _header_cards(header)
     for c in cards:
         if str(c[0]).upper() in _RESERVED:
-            raise InvalidInputError(f"The 'extra_header' parameter may not set the HEALPix keyword {c[0]!r}.")
+            raise InvalidInputError(f"The 'header' parameter may not set the HEALPix keyword {c[0]!r}.")
     check_output_path(path, overwrite=overwrite)
 
     bad = missing_pixels(a)
@@ -617,11 +684,11 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
             + (f" (in {unit})" if unit is not None else "")
             + ("; write the map with dtype='float64'." if out_dtype == np.float32 else ".")
         )
-    if nest:
+    if nested:
         values = hp.reorder(values, r2n=True)
         bad = hp.reorder(bad.astype(np.int8), r2n=True).astype(bool)
     tform = "E" if out_dtype == np.float32 else "D"
-    if partial:
+    if observed_only:
         pix = np.flatnonzero(~bad)
         if pix.size == 0:
             raise InvalidInputError("The map has no valid pixel; a partial-sky file would be empty.")
@@ -634,14 +701,14 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
         columns = [fits.Column(name=column_name, format=tform, unit=unit, array=values.astype(out_dtype))]
     hdu = fits.BinTableHDU.from_columns(columns)
     h = hdu.header
-    h["EXTNAME"] = ("SKYMAP" if not partial else "PARTIAL_SKYMAP", "HEALPix map")
+    h["EXTNAME"] = ("SKYMAP" if not observed_only else "PARTIAL_SKYMAP", "HEALPix map")
     h["PIXTYPE"] = ("HEALPIX", "HEALPix pixelisation")
-    h["ORDERING"] = ("NESTED" if nest else "RING", "pixel ordering scheme")
+    h["ORDERING"] = ("NESTED" if nested else "RING", "pixel ordering scheme")
     h["NSIDE"] = (nside, "resolution parameter")
     h["FIRSTPIX"] = (0, "first pixel number (0 based)")
     h["LASTPIX"] = (npix - 1, "last pixel number (0 based)")
-    h["INDXSCHM"] = ("EXPLICIT" if partial else "IMPLICIT", "indexing: implicit or explicit")
-    h["OBJECT"] = ("PARTIAL" if partial else "FULLSKY", "sky coverage")
+    h["INDXSCHM"] = ("EXPLICIT" if observed_only else "IMPLICIT", "indexing: implicit or explicit")
+    h["OBJECT"] = ("PARTIAL" if observed_only else "FULLSKY", "sky coverage")
     if coord is not None:
         h["COORDSYS"] = (coord, "G = galactic, C = equatorial, E = ecliptic")
     h["BAD_DATA"] = (UNSEEN, "value of missing pixels")
@@ -657,10 +724,106 @@ def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False,
     return Path(path)
 
 
-def write_mask(path, mask, *, coord=None, nest=False, overwrite=False, extra_header=None, dtype=None):
+def _write_columns(path, a, units, column_names, *, coordinates, nested, overwrite, header, dtype, observed_only,
+                   more_cards=()):
+    """Write the rows of ``a`` (shape (n, npix), RING, K_CMB) as the value columns of one HEALPix table."""
+    import healpy as hp
+    from astropy.io import fits
+
+    nside = nside_from_npix(a.shape[1], "m")
+    npix = a.shape[1]
+    coord = normalize_coord(coordinates)
+    if dtype is None:
+        out_dtype = np.dtype(np.float64)
+    else:
+        try:
+            out_dtype = np.dtype(dtype)
+        except TypeError:
+            out_dtype = None
+        if out_dtype not in (np.dtype(np.float32), np.dtype(np.float64)):
+            raise InvalidInputError(f"The 'dtype' parameter must be float32 or float64. Got {dtype!r} instead.")
+    scales, clean_units = [], []
+    for unit in units:
+        if unit is not None:
+            scales.append(unit_scale(unit, source="'unit' parameter"))
+            # FITS header values are printable ASCII: write the micro sign as 'u'
+            unit = str(unit).strip().replace("\u00b5", "u").replace("\u03bc", "u")
+            if not unit.isascii() or not unit.isprintable():
+                raise InvalidInputError(f"The 'unit' parameter must be printable ASCII text. Got {unit!r} instead.")
+        else:
+            scales.append(1.0)
+        clean_units.append(unit)
+    cards = _header_cards(header)
+    for c in cards:
+        if str(c[0]).upper() in _RESERVED:
+            raise InvalidInputError(f"The 'header' parameter may not set the HEALPix keyword {c[0]!r}.")
+    check_output_path(path, overwrite=overwrite)
+
+    bads, values = [], []
+    for row, unit, scale in zip(a, clean_units, scales):
+        bad = missing_pixels(row)
+        v = row.copy()
+        if unit is not None and scale != 1.0:
+            with np.errstate(over="ignore"):  # checked just below
+                v[~bad] /= scale
+        v[bad] = UNSEEN
+        too_big = ~bad & ~(np.abs(v) <= np.finfo(out_dtype).max)
+        if too_big.any():
+            i = int(np.argmax(too_big))
+            raise InvalidInputError(
+                f"The map value {float(row[i])!r} at pixel {i} does not fit in {out_dtype.name}"
+                + (f" (in {unit})" if unit is not None else "")
+                + ("; write the map with dtype='float64'." if out_dtype == np.float32 else ".")
+            )
+        if nested:
+            v = hp.reorder(v, r2n=True)
+            bad = hp.reorder(bad.astype(np.int8), r2n=True).astype(bool)
+        bads.append(bad)
+        values.append(v)
+    tform = "E" if out_dtype == np.float32 else "D"
+    if observed_only:
+        pix = np.flatnonzero(~np.logical_and.reduce(bads))
+        if pix.size == 0:
+            raise InvalidInputError("The map has no valid pixel; a partial-sky file would be empty.")
+        pix_format = "J" if npix < 2**31 else "K"
+        columns = [fits.Column(name="PIXEL", format=pix_format, array=pix.astype(np.int32 if pix_format == "J" else np.int64))]
+        columns += [fits.Column(name=name, format=tform, unit=unit, array=v[pix].astype(out_dtype))
+                    for v, unit, name in zip(values, clean_units, column_names)]
+    else:
+        columns = [fits.Column(name=name, format=tform, unit=unit, array=v.astype(out_dtype))
+                   for v, unit, name in zip(values, clean_units, column_names)]
+    hdu = fits.BinTableHDU.from_columns(columns)
+    h = hdu.header
+    h["EXTNAME"] = ("SKYMAP" if not observed_only else "PARTIAL_SKYMAP", "HEALPix map")
+    h["PIXTYPE"] = ("HEALPIX", "HEALPix pixelisation")
+    h["ORDERING"] = ("NESTED" if nested else "RING", "pixel ordering scheme")
+    h["NSIDE"] = (nside, "resolution parameter")
+    h["FIRSTPIX"] = (0, "first pixel number (0 based)")
+    h["LASTPIX"] = (npix - 1, "last pixel number (0 based)")
+    h["INDXSCHM"] = ("EXPLICIT" if observed_only else "IMPLICIT", "indexing: implicit or explicit")
+    h["OBJECT"] = ("PARTIAL" if observed_only else "FULLSKY", "sky coverage")
+    if coord is not None:
+        h["COORDSYS"] = (coord, "G = galactic, C = equatorial, E = ecliptic")
+    h["BAD_DATA"] = (UNSEEN, "value of missing pixels")
+    if any(u is not None for u in clean_units):
+        h["TEMPTYPE"] = ("THERMO", "thermodynamic CMB temperature")
+    for key, value, comment in more_cards:
+        h[key] = (value, comment)
+    h["CREATOR"] = (f"cmbtools {__version__}", "software that wrote this file")
+    for c in cards:
+        h[str(c[0])] = tuple(c[1:]) if len(c) == 3 else c[1]
+    primary = fits.PrimaryHDU()
+    primary.header["CREATOR"] = (f"cmbtools {__version__}", "software that wrote this file")
+    with atomic_output(path, overwrite=overwrite) as tmp:
+        fits.HDUList([primary, hdu]).writeto(tmp, overwrite=True)
+    return Path(path)
+
+
+@renamed_keywords(coord="coordinates", nest="nested", extra_header="header")
+def write_mask(path, mask, *, coordinates=None, nested=False, overwrite=False, header=None, dtype=None):
     """Write a mask (values in [0, 1]) to a HEALPix FITS file with no unit.
 
-    Parameters are as for :func:`write_map`; the mask is checked with the
+    Parameters are as for :func:`write_sky_map`; the mask is checked with the
     same rules as :func:`read_mask` before anything is written.
 
     Parameters
@@ -669,13 +832,13 @@ def write_mask(path, mask, *, coord=None, nest=False, overwrite=False, extra_hea
         Destination.
     mask : array_like of shape (12*nside**2,)
         RING mask, weights in [0, 1].
-    coord : {'G', 'C', 'E'}, optional
+    coordinates : {'G', 'C', 'E'}, optional
         Coordinate system recorded in ``COORDSYS``.
-    nest : bool, default=False
+    nested : bool, default=False
         Write in NESTED ordering instead of RING.
     overwrite : bool, default=False
         Replace an existing file.
-    extra_header : dict or list of (key, value[, comment]), optional
+    header : dict or list of (key, value[, comment]), optional
         Additional header cards (the HEALPix keywords cannot be overridden).
     dtype : {None, 'float32', 'float64'}, optional
         Data type in the file (default float64).
@@ -686,5 +849,415 @@ def write_mask(path, mask, *, coord=None, nest=False, overwrite=False, extra_hea
         The file written.
     """
     w = check_mask(mask, "mask")
-    return write_map(path, w, unit=None, coord=coord, nest=nest, overwrite=overwrite,
-                     extra_header=extra_header, dtype=dtype, column_name="WEIGHT")
+    return write_sky_map(path, w, unit=None, coordinates=coordinates, nested=nested, overwrite=overwrite,
+                         header=header, dtype=dtype, column_name="WEIGHT")
+
+
+def read_map(path, *, field=0, unit=None, ordering=None, force=False):
+    """Deprecated name of :func:`read_sky_map` (``field`` is ``column``, ``ordering`` is ``file_ordering``).
+
+    Kept for one release.
+
+    Parameters
+    ----------
+    path, field, unit, ordering, force
+        As ``path``, ``column``, ``unit``, ``file_ordering`` and ``force`` of :func:`read_sky_map`.
+
+    Returns
+    -------
+    m : ndarray
+        As :func:`read_sky_map`.
+    info : MapInfo
+        As :func:`read_sky_map`.
+    """
+    return read_sky_map(path, column=field, unit=unit, file_ordering=ordering, force=force)
+
+
+def write_map(path, m, *, unit="K_CMB", coord=None, nest=False, overwrite=False, extra_header=None, dtype=None,
+              partial=False, column_name="TEMPERATURE"):
+    """Deprecated name of :func:`write_sky_map` with its old keywords. Kept for one release.
+
+    Parameters
+    ----------
+    path, m, unit, coord, nest, overwrite, extra_header, dtype, partial, column_name
+        As ``path``, ``m``, ``unit``, ``coordinates``, ``nested``, ``overwrite``, ``header``, ``dtype``,
+        ``observed_only`` and ``column_name`` of :func:`write_sky_map`.
+
+    Returns
+    -------
+    Path
+        The file written.
+    """
+    return write_sky_map(path, m, unit=unit, coordinates=coord, nested=nest, overwrite=overwrite, header=extra_header,
+                         dtype=dtype, observed_only=partial, column_name=column_name)
+
+
+# ---------------------------------------------------------------- polarized (I, Q, U) maps
+#
+# Stokes Q and U are defined relative to a local frame at each pixel.  The IAU convention
+# (Hamaker & Bregman 1996, A&A Suppl. 117, 161) counts the polarization angle from north towards
+# east as seen on the sky; the HEALPix convention (Gorski et al. 2005, ApJ 622, 759) uses the local
+# (theta, phi) basis, in which the angle runs the other way.  Q is the same in both and U changes
+# sign (common practice).
+
+#: The header keyword cmbtools writes to state the polarization angle convention of a file.
+POLARIZATION_KEYWORD = "POLANGLE"
+
+_CONVENTIONS = {"HEALPIX": "healpix", "COSMO": "healpix", "IAU": "iau"}
+
+
+def normalize_polarization_convention(convention, name="polarization_convention"):
+    """Return 'healpix' or 'iau' for a convention name (case-insensitive; None stays None)."""
+    if convention is None:
+        return None
+    key = str(convention).strip().upper()
+    if key not in ("HEALPIX", "IAU"):
+        raise InvalidInputError(
+            f"The {name!r} parameter must be 'healpix' or 'iau'. Got {convention!r} instead."
+        )
+    return _CONVENTIONS[key]
+
+
+def _polarization_card(header):
+    """The angle convention a header states: 'healpix', 'iau', None (not stated) or ('bad', text)."""
+    for key in (POLARIZATION_KEYWORD, "POLCCONV"):  # POLCCONV: the HEALPix FITS convention's keyword
+        if key in header:
+            raw = header[key]
+            text = str(raw).strip().upper() if isinstance(raw, str) else None
+            if text in _CONVENTIONS:
+                return _CONVENTIONS[text]
+            return ("bad", f"{key}={raw!r}")
+    return None
+
+
+def convert_polarization_convention(m, from_convention, to_convention):
+    """Change the polarization angle convention of an I, Q, U map: U changes sign.
+
+    Parameters
+    ----------
+    m : array_like of shape (3, 12*nside**2)
+        I, Q, U maps (RING or NESTED; any unit).  Missing pixels stay missing.
+    from_convention, to_convention : {'healpix', 'iau'}
+        The convention of ``m`` and the one wanted.
+
+    Returns
+    -------
+    ndarray of shape (3, 12*nside**2)
+        A new array; U is negated when the conventions differ.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> m = np.array([[1.0], [2.0], [3.0]])
+    >>> convert_polarization_convention(m, "healpix", "iau")[:, 0].tolist()
+    [1.0, 2.0, -3.0]
+    """
+    a = _as_iqu(m, "m")
+    src = normalize_polarization_convention(from_convention, "from_convention")
+    dst = normalize_polarization_convention(to_convention, "to_convention")
+    out = a.copy()
+    if src != dst:
+        good = ~missing_pixels(out[2])
+        out[2, good] = -out[2, good]
+    return out
+
+
+def _as_iqu(m, name="m"):
+    """A float64 array of shape (3, n) (no other checks)."""
+    try:
+        a = np.asarray(m, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InvalidInputError(f"The {name!r} parameter must be an array of numbers.") from None
+    if a.ndim != 2 or a.shape[0] != 3:
+        raise InvalidInputError(
+            f"The {name!r} parameter must hold three maps I, Q, U, shape (3, 12*nside**2). Got shape {a.shape} instead."
+        )
+    return a
+
+
+def is_iqu_file(path) -> bool:
+    """True if a HEALPix FITS file holds I, Q, U maps.
+
+    That is: its map table has at least three value columns and either states
+    a polarization angle convention in its header or names its second and
+    third columns with a leading Q and U (``Q``, ``Q_POLARISATION``,
+    ``Q_STOKES``, ...).  A temperature-only file gives False.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The FITS file.
+
+    Returns
+    -------
+    bool
+        Whether the file holds I, Q, U maps.
+
+    Raises
+    ------
+    InputFileError
+        If the file cannot be read as a HEALPix FITS table.
+    """
+    from astropy.io.fits.verify import VerifyError
+
+    with open_fits(path) as (p, hdul):
+        try:
+            table = _first_table(p, hdul)
+            header = table.header
+            names = [n.upper() for n in table.columns.names]
+        except (VerifyError, ValueError, TypeError, KeyError, IndexError) as exc:
+            raise InputFileError(p, f"has a damaged FITS header or table ({short_message(exc)})") from None
+    indxschm = (_header_str(header, "INDXSCHM") or "").upper()
+    obj = (_header_str(header, "OBJECT") or "").upper()
+    partial = indxschm == "EXPLICIT" or (obj == "PARTIAL" and "PIXEL" in names)
+    values = [n for n in names if not (partial and n == "PIXEL")]
+    if len(values) < 3:
+        return False
+    return _polarization_card(header) is not None or (values[1].startswith("Q") and values[2].startswith("U"))
+
+
+def read_iqu(path, *, unit=None, file_ordering=None, polarization_convention=None, force=False):
+    """Read I, Q, U HEALPix maps from a FITS file, in K_CMB, RING and the HEALPix angle convention.
+
+    The first three map columns are read as I, Q and U (RING or NESTED, full
+    sky or explicit-index partial sky, as for :func:`read_map`).  Each column
+    is converted to K_CMB with its own unit (``TUNITn``).  The angle convention
+    comes from the header keyword ``POLANGLE`` ('HEALPIX' or 'IAU'; the
+    HEALPix FITS keyword ``POLCCONV``, 'COSMO' or 'IAU', is understood too);
+    a file that states none is taken to be in the HEALPix convention (the
+    HEALPix FITS default).  An IAU file's U is negated on reading.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The FITS file.
+    unit : str, optional
+        Unit of all three columns, overriding the header (K, mK or uK, CMB).
+    file_ordering : {'RING', 'NESTED'}, optional
+        Override for files without an ``ORDERING`` keyword.
+    polarization_convention : {'healpix', 'iau'}, optional
+        The file's angle convention, overriding (or supplying) the header's.
+    force : bool, default=False
+        As for :func:`read_sky_map`.
+
+    Returns
+    -------
+    m : ndarray of shape (3, 12*nside**2)
+        float64 I, Q, U in K_CMB, RING, HEALPix convention; missing pixels
+        (per field) hold UNSEEN.
+    info : MapInfo
+        As for :func:`read_sky_map` (``unit_in_file`` is I's unit), with
+        ``units_by_field`` and ``polarization_convention_in_file`` set.
+
+    Raises
+    ------
+    InputFileError
+        For the problems :func:`read_map` reports, a file with fewer than
+        three map columns, or an unknown convention keyword value.
+    InvalidInputError
+        For a bad ``unit``, ``ordering`` or ``polarization_convention``.
+
+    Warns
+    -----
+    CmbtoolsWarning
+        If a column states no unit and ``unit`` is not given (K_CMB is assumed).
+    """
+    override = normalize_polarization_convention(polarization_convention)
+    n_columns = _count_value_columns(path)
+    if n_columns < 3:
+        raise InputFileError(
+            Path(path), f"holds {n_columns} map column(s); an I, Q, U map needs three (I, Q, U). "
+            "Read a temperature map with read_map"
+        )
+    m, facts = _read_table(path, (0, 1, 2), file_ordering, _memory_check(force))
+    temptype = facts.pop("temptype")
+    facts.pop("n_bad_values")
+    card = facts.pop("polarization_convention_card")
+    facts.pop("column_names")
+    facts.pop("value_column_names")
+    units = facts.pop("units_by_field")
+    if isinstance(card, tuple):
+        if override is None:
+            raise InputFileError(
+                facts["path"], f"has {card[1]}, expected 'HEALPIX' or 'IAU' "
+                "(pass polarization_convention= to state it)"
+            )
+        card = None
+    convention = override or card or "healpix"
+    missing_unit = unit is None and any(u is None for u in units)
+    if missing_unit:
+        warnings.warn(
+            f"{facts['path']}: " + ", ".join("IQU"[i] for i, u in enumerate(units) if u is None)
+            + " column(s) state no unit; assuming K_CMB (pass unit= to state it)",
+            CmbtoolsWarning,
+            stacklevel=2,
+        )
+    n_missing = 0
+    for i, file_unit in enumerate(units):
+        if unit is None and file_unit is None:
+            scale = 1.0
+        else:
+            scale = _scale_to_kcmb(facts["path"], unit, file_unit, temptype, what=f"the file's {'IQU'[i]} column")
+        bad = missing_pixels(m[i])
+        if scale != 1.0:
+            m[i, ~bad] *= scale
+        if convention == "iau" and i == 2:
+            m[2, ~bad] = -m[2, ~bad]
+        n_missing = max(n_missing, int(bad.sum()))
+    info = MapInfo(n_missing=n_missing, sha256=sha256_file(facts["path"]), units_by_field=tuple(units),
+                   polarization_convention_in_file=card, **facts)
+    return m, info
+
+
+def _count_value_columns(path) -> int:
+    """Number of map columns (not counting a partial-sky file's PIXEL column)."""
+    from astropy.io.fits.verify import VerifyError
+
+    with open_fits(path) as (p, hdul):
+        try:
+            table = _first_table(p, hdul)
+            header = table.header
+            names = [n.upper() for n in table.columns.names]
+        except (VerifyError, ValueError, TypeError, KeyError, IndexError) as exc:
+            raise InputFileError(p, f"has a damaged FITS header or table ({short_message(exc)})") from None
+    indxschm = (_header_str(header, "INDXSCHM") or "").upper()
+    obj = (_header_str(header, "OBJECT") or "").upper()
+    partial = indxschm == "EXPLICIT" or (obj == "PARTIAL" and "PIXEL" in names)
+    return sum(1 for n in names if not (partial and n == "PIXEL"))
+
+
+def write_iqu(path, m, *, unit="K_CMB", coordinates=None, nested=False, overwrite=False, header=None, dtype=None,
+              observed_only=False, polarization_convention="healpix"):
+    """Write I, Q, U HEALPix maps to one FITS file (atomically; never overwrites by default).
+
+    The header states the angle convention in ``POLANGLE``; with
+    ``polarization_convention='iau'`` U is negated on writing (the array
+    given is always in the HEALPix convention, as everywhere in cmbtools).
+
+    Parameters
+    ----------
+    path : str or path-like
+        Destination.
+    m : array_like of shape (3, 12*nside**2)
+        I, Q, U in K_CMB, RING, HEALPix convention.  Missing pixels are
+        written as UNSEEN.
+    unit : str or sequence of 3 str, default='K_CMB'
+        Unit of the written values, one for all fields or one per field
+        (recorded in ``TUNIT1..3``).
+    coordinates, nested, overwrite, header, dtype
+        As for :func:`write_sky_map`.
+    observed_only : bool, default=False
+        Write an explicit-index file of the pixels valid in at least one field.
+    polarization_convention : {'healpix', 'iau'}, default='healpix'
+        The angle convention of the file.
+
+    Returns
+    -------
+    pathlib.Path
+        The file written.
+
+    Raises
+    ------
+    OutputExistsError
+        If ``path`` exists and ``overwrite`` is false.
+    InvalidInputError
+        For an array that is not (3, 12*nside**2), bad units, dtype or
+        convention, or values that do not fit in the dtype.
+    """
+    a = _as_iqu(m, "m")
+    convention = normalize_polarization_convention(polarization_convention)
+    if unit is None or isinstance(unit, str):
+        units = [unit] * 3
+    else:
+        units = list(unit)
+        if len(units) != 3:
+            raise InvalidInputError(
+                f"The 'unit' parameter must be one unit or three (I, Q, U). Got {unit!r} instead."
+            )
+    if convention == "iau":
+        a = convert_polarization_convention(a, "healpix", "iau")
+    card = (POLARIZATION_KEYWORD, convention.upper(), "polarization angle convention: HEALPIX or IAU")
+    return _write_columns(path, a, units, ["I", "Q", "U"], coordinates=coordinates, nested=nested, overwrite=overwrite,
+                          header=header, dtype=dtype, observed_only=observed_only, more_cards=[card])
+
+
+def read_mask_pair(path, *, pol_path=None, file_ordering=None, force=False):
+    """Read a temperature mask and a polarization mask.
+
+    The polarization mask comes from ``pol_path`` if given, else from the
+    second column of ``path`` if it has one (the layout :func:`write_mask_pair`
+    writes), else it is the temperature mask.  Both follow :func:`read_mask`'s
+    rules (weights in [0, 1], missing pixels get weight 0).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The FITS file of the temperature mask (and maybe the polarization mask).
+    pol_path : str or path-like, optional
+        A separate FITS file for the polarization mask.
+    file_ordering : {'RING', 'NESTED'}, optional
+        Override for files without an ``ORDERING`` keyword.
+    force : bool, default=False
+        As for :func:`read_sky_map`.
+
+    Returns
+    -------
+    mask, pol_mask : ndarray of shape (12*nside**2,)
+        The temperature and polarization weights, RING.
+
+    Raises
+    ------
+    InputFileError
+        As for :func:`read_mask`, and for two masks of different nside.
+    """
+    mask = read_mask(path, file_ordering=file_ordering, force=force)
+    if pol_path is not None:
+        pol_mask = read_mask(pol_path, file_ordering=file_ordering, force=force)
+        if pol_mask.size != mask.size:
+            raise InputFileError(
+                Path(pol_path), f"has nside {nside_from_npix(pol_mask.size)} but the temperature mask "
+                f"{str(path)!r} has nside {nside_from_npix(mask.size)}"
+            )
+    elif _count_value_columns(path) >= 2:
+        pol_mask = read_mask(path, column=1, file_ordering=file_ordering, force=force)
+    else:
+        pol_mask = mask.copy()
+    return mask, pol_mask
+
+
+def write_mask_pair(path, mask, pol_mask, *, coordinates=None, nested=False, overwrite=False, header=None, dtype=None):
+    """Write a temperature and a polarization mask as the two columns of one FITS file.
+
+    Columns ``WEIGHT`` (temperature) and ``POL_WEIGHT`` (polarization), no unit;
+    :func:`read_mask` reads the first, :func:`read_mask_pair` both.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Destination (written atomically).
+    mask, pol_mask : array_like of shape (12*nside**2,)
+        Temperature and polarization weights in [0, 1], RING, same nside.
+    coordinates : {'G', 'C', 'E'}, optional
+        Coordinate system recorded in ``COORDSYS``.
+    nested : bool, default=False
+        Write in NESTED ordering.
+    overwrite : bool, default=False
+        Replace an existing file.
+    header : dict or list of (key, value[, comment]), optional
+        Additional header cards.
+    dtype : {None, 'float32', 'float64'}, optional
+        Data type in the file (default float64).
+
+    Returns
+    -------
+    pathlib.Path
+        The file written.
+    """
+    w = check_mask(mask, "mask")
+    wp = check_mask(pol_mask, "pol_mask")
+    if wp.size != w.size:
+        raise InvalidInputError(
+            f"The 'pol_mask' has {wp.size} pixels but the 'mask' has {w.size}; they must have the same nside."
+        )
+    return _write_columns(path, np.stack([w, wp]), [None, None], ["WEIGHT", "POL_WEIGHT"], coordinates=coordinates,
+                          nested=nested, overwrite=overwrite, header=header, dtype=dtype, observed_only=False)

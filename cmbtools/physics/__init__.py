@@ -12,8 +12,6 @@ The implementation is split by concept, one module each (``blackbody``,
 this package only re-exports their public names.
 """
 
-from __future__ import annotations
-
 from cmbtools.physics import bandpass as _bandpass
 from cmbtools.physics import blackbody as _blackbody
 from cmbtools.physics import distance_functions as _distance_functions

@@ -28,12 +28,19 @@ Examples
 (3072,)
 """
 
-from __future__ import annotations
-
-from cmbtools._core.tables import read_spectrum_table, write_spectrum_table
+from cmbtools._core.tables import read_polarized_spectrum_table, read_spectrum_table, write_spectrum_table
 from cmbtools.simulate.engine import SimulationSet, run_simulations
 from cmbtools.simulate.noise import NoiseModel, depth_to_white_noise, noise_map, noise_spectrum, white_noise_map
+from cmbtools.simulate.polarized_theory import fiducial_spectra, lensing_bb_template
 from cmbtools.simulate.random_streams import simulation_rng, simulation_rngs, simulation_seed_sequence
+from cmbtools.simulate.polarized_skies import (
+    SPECTRUM_NAMES,
+    check_spectra,
+    gaussian_iqu_alm,
+    gaussian_iqu_sky,
+    iqu_noise_map,
+    polarized_noise_spectra,
+)
 from cmbtools.simulate.skies import Dipole, dipole_map, gaussian_alm, gaussian_sky
 from cmbtools.simulate.theory_spectrum import FIDUCIAL_LMAX_LIMIT, fiducial_cl, fiducial_dl
 from cmbtools.simulate.validation import validate_estimator, validate_pipeline
@@ -50,6 +57,13 @@ __all__ = [
     "gaussian_sky",
     "Dipole",
     "dipole_map",
+    # polarized skies and noise
+    "SPECTRUM_NAMES",
+    "check_spectra",
+    "gaussian_iqu_alm",
+    "gaussian_iqu_sky",
+    "iqu_noise_map",
+    "polarized_noise_spectra",
     # noise
     "depth_to_white_noise",
     "NoiseModel",
@@ -60,9 +74,12 @@ __all__ = [
     "fiducial_cl",
     "fiducial_dl",
     "FIDUCIAL_LMAX_LIMIT",
+    "fiducial_spectra",
+    "lensing_bb_template",
     # spectrum tables
     "read_spectrum_table",
     "write_spectrum_table",
+    "read_polarized_spectrum_table",
     # Monte Carlo
     "SimulationSet",
     "run_simulations",

@@ -159,8 +159,7 @@ def _pool_task(index, seed):
     return _execute(_WORKER_JOB, index, seed)
 
 
-#: Largest number of simulations in one run (a bound that keeps a typo from exhausting memory).
-MAX_SIMULATIONS = 10_000_000
+from cmbtools._core.checks import MAX_SIMULATIONS  # noqa: E402  (the one bound, shared with the command line)
 
 #: The thread count this module put into $CMBTOOLS_NUM_THREADS of a dask worker
 #: (None: not set by us, so a value found there was set by the user and is kept).

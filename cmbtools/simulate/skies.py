@@ -74,8 +74,12 @@ def _gaussian_alm(cl, lmax, rng, nthreads, factor=None) -> np.ndarray:
 
 def _beam_factor(beam, lmax) -> np.ndarray | None:
     """B_l up to lmax from None, a FWHM in arcmin, or an array."""
+    from cmbtools.spectrum.beams import GaussianBeam
+
     if beam is None:
         return None
+    if isinstance(beam, GaussianBeam):
+        beam = beam.fwhm_arcmin
     if isinstance(beam, numbers.Real) and not isinstance(beam, bool):
         from cmbtools.spectrum.beams import gaussian_beam
 

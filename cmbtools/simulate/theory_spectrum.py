@@ -284,7 +284,7 @@ class _Model:
         return {"phi": phi, "u_c": y[1], "theta0": 0.25 * d_r, "u_g": y[2], "d_nu": d_r,
                 "u_nu": y[3], "s": y[4], "g_hi": y[5:]}
 
-    def sources(self, k, eta_nodes):
+    def sources(self, k, eta_nodes, with_velocity=False):
         """Sources g(Theta0 + psi) + e^-tau (phi' + psi') and g theta_b / k at the nodes, for every k.
 
         Modes above ``_K_SPLIT`` are integrated only to z = ``_Z_END_SMALL_SCALES``: later
@@ -293,17 +293,21 @@ class _Model:
         """
         src_a = np.zeros((k.size, eta_nodes.size))
         src_b = np.zeros((k.size, eta_nodes.size))
+        theta_g = np.zeros((k.size, eta_nodes.size))
         eta_cut = float(self.eta_of_z(_Z_END_SMALL_SCALES))
         eta_i = min(1e-2 / k.max(), 1e-3 * self.eta_1)
         start = self._superhorizon_state(eta_i)
         for sel, last in ((k <= _K_SPLIT, eta_nodes.size), (k > _K_SPLIT, int(np.searchsorted(eta_nodes, eta_cut)) + 1)):
             if np.any(sel):
-                a_part, b_part = self.solve(k[sel], eta_nodes[:last], eta_i, start)
+                a_part, b_part, t_part = self.solve(k[sel], eta_nodes[:last], eta_i, start, with_velocity=True)
                 src_a[sel, :last] = a_part
                 src_b[sel, :last] = b_part
+                theta_g[sel, :last] = t_part
+        if with_velocity:  # the photon velocity divergence theta_gamma (Mpc^-1), for the polarization source
+            return src_a, src_b, theta_g
         return src_a, src_b
 
-    def solve(self, k, eta_nodes, eta_i, start):
+    def solve(self, k, eta_nodes, eta_i, start, with_velocity=False):
         """Sources (see :meth:`sources`) of the modes ``k`` at the nodes, integrating to the last node.
 
         State per mode: phi, u_c, Theta_0, u_g, delta_nu, u_nu, s, G_3 .. G_L with u = theta / k^2,
@@ -385,6 +389,8 @@ class _Model:
         tau = np.asarray(self.hist.optical_depth(z_nodes))
         src_a = g * (t0 + phi_for_src) + np.exp(-tau) * (dphi + dpsi)
         src_b = g * u_g * k[:, None]  # g theta_b / k, baryons moving with the photons at last scattering
+        if with_velocity:
+            return src_a, src_b, u_g * k2[:, None]
         return src_a, src_b
 
 

@@ -37,6 +37,8 @@ class _ValidationSetup:
     record_pseudo: bool
     cross: bool = False
     sky_beam2: np.ndarray | None = None
+    sky_lmax: int | None = None  # band limit of the skies when above the estimator's lmax (sky_beam goes there)
+    pixelise: bool = False  # synthesize at 2 nside (sky_beam then carries that grid's window) and average
 
 
 def _validation_memory(estimator, noise, with_dipole, with_filter) -> int:
@@ -78,8 +80,22 @@ def _simulate_and_estimate(index, rng, setup):
     rings = est._occupied_rings() if setup.sky_filter is None else None
     dip = None if setup.dipole is None else _dipole_vector(setup.dipole)
     rng_sky2 = copy.deepcopy(rng) if setup.cross and setup.sky_beam2 is not None else None
-    sky = _gaussian_sky(setup.cl, est.nside, lmax, _beam_factor(setup.sky_beam, lmax), False, float(setup.monopole),
-                        dip, rng, None, rings=rings)
+    sky_lmax = lmax if setup.sky_lmax is None else setup.sky_lmax
+    if setup.pixelise:
+        import healpy as hp
+
+        fine = _gaussian_sky(setup.cl, 2 * est.nside, sky_lmax, setup.sky_beam, False, 0.0, None, rng, None)
+        sky = hp.ud_grade(fine, est.nside)  # the mean of the four sub-pixels: what a detector's map holds
+        del fine
+        if setup.monopole:
+            sky += float(setup.monopole)
+        if dip is not None:
+            from cmbtools.simulate.skies import _dipole_map
+
+            sky += _dipole_map(est.nside, dip)
+    else:
+        sky = _gaussian_sky(setup.cl, est.nside, sky_lmax, _beam_factor(setup.sky_beam, sky_lmax), False,
+                            float(setup.monopole), dip, rng, None, rings=rings)
     if setup.cross:
         return _simulate_and_estimate_cross(sky, rng, rng_sky2, dip, setup, rings)
     if setup.sky_filter is not None:
@@ -148,9 +164,12 @@ def validate_estimator(
     threads_per_worker=None,
     progress=None,
     restart=False,
+    errors="gaussian",
     max_restarts=3,
     force=False,
     cross=False,
+    sky_lmax=None,
+    pixelise=False,
 ) -> ValidationResult:
     """Check a spectrum estimator on simulated skies: bias, error bars and transfer per bin.
 
@@ -193,6 +212,11 @@ def validate_estimator(
         more transform per simulation); the result's ``mean_pseudo_cl``.
     run_dir, executor, workers, threads_per_worker, progress, restart, max_restarts
         As in :func:`run_simulations`.
+    errors : {'gaussian', 'knox'}, default='gaussian'
+        The error bars the scatter is compared with (``analytic_error`` of the
+        result): the diagonal of :class:`cmbtools.spectrum.GaussianCovariance`
+        of the input spectrum, with the noise's variance map (the error model a
+        likelihood would use), or the Knox errors each simulation reports.
     force : bool, default=False
         Run even when the memory estimate (one simulated sky, its noise and
         its measurement per worker, times the workers that run at once)
@@ -205,6 +229,20 @@ def validate_estimator(
         measures ``estimator.estimate(split1, split2)`` (masks ``mask`` and
         ``mask2``), with no noise bias to subtract; the expectation is
         ``estimator.expected_bandpowers(cl, cross=True)``.
+    sky_lmax : int, optional
+        Band limit of the simulated skies (default: the estimator's lmax).
+        Real skies have power above the analysis lmax: give ``4 * nside - 1``
+        (at most ``4 nside - 1``, or ``8 nside - 1`` with ``pixelise``) to
+        check that the estimator models its leakage; the estimator must then
+        have been built with ``sky_lmax`` at least as large (its beam and
+        pixel window are taken from there).  The mean is then compared with
+        the bin averages of ``cl`` (``binning.bin_spectrum``).
+    pixelise : bool, default=False
+        Synthesize every sky at twice the nside (with that grid's pixel
+        window) and average it into the pixels (``healpy.ud_grade``), as a
+        detector's map is made, instead of sampling the pixel centres with the
+        pixel window applied.  Needs an estimator that deconvolves the HEALPix
+        pixel window; the mean is compared with the bin averages of ``cl``.
 
     Returns
     -------
@@ -225,14 +263,20 @@ def validate_estimator(
             )
     lmax, nside = int(estimator.lmax), int(estimator.nside)
     n_sims = check_int(n_sims, "n_sims", minimum=2, maximum=MAX_SIMULATIONS)
+    if not isinstance(pixelise, (bool, np.bool_)):
+        raise InvalidInputError(f"The 'pixelise' parameter must be True or False. Got {pixelise!r} instead.")
+    realistic = sky_lmax is not None or bool(pixelise)
+    sky_lmax = lmax if sky_lmax is None else check_int(
+        sky_lmax, "sky_lmax", minimum=lmax, maximum=(8 if pixelise else 4) * nside - 1
+    )
     if cl is None:
         from cmbtools.simulate.theory_spectrum import fiducial_cl
 
-        cl = fiducial_cl(lmax)
+        cl = fiducial_cl(sky_lmax)
         cl_source = "built-in fiducial spectrum"
     else:
         cl_source = "user spectrum"
-    cl = check_cl(cl, "cl", lmax=lmax)[: lmax + 1].copy()
+    cl = check_cl(cl, "cl", lmax=sky_lmax)[: sky_lmax + 1].copy()
     cl.setflags(write=False)
     noise_cl = None
     if noise is not None:
@@ -260,30 +304,37 @@ def validate_estimator(
                     "(hits <= 0); zero the mask there (e.g. multiply it by hits > 0) and build the estimator again."
                 )
         noise_cl = noise_spectrum(noise, lmax, nside)
+    if errors not in ("gaussian", "knox"):
+        raise InvalidInputError(f"The 'errors' parameter must be 'gaussian' or 'knox'. Got {errors!r} instead.")
     if sky_filter is not None and not callable(sky_filter):
         raise InvalidInputError(f"The 'sky_filter' parameter must be a callable or None. Got {sky_filter!r} instead.")
     if not isinstance(cross, (bool, np.bool_)):
         raise InvalidInputError(f"The 'cross' parameter must be True or False. Got {cross!r} instead.")
-    pixwin = np.asarray(estimator.pixel_window, dtype=np.float64)[: lmax + 1]
-    sky_beam = np.asarray(estimator.beam, dtype=np.float64)[: lmax + 1] * pixwin
+    window = np.asarray(estimator.pixel_window, dtype=np.float64)[: lmax + 1]
+    sky_beam = np.asarray(estimator.beam, dtype=np.float64)[: lmax + 1] * window
     sky_beam2 = None
     if cross:
         if sky_filter is not None:
             raise InvalidInputError("The 'sky_filter' parameter is not available with cross=True.")
-        b2 = np.asarray(getattr(estimator, "beam2", estimator.beam), dtype=np.float64)[: lmax + 1] * pixwin
+        b2 = np.asarray(getattr(estimator, "beam2", estimator.beam), dtype=np.float64)[: lmax + 1] * window
         sky_beam2 = None if np.array_equal(b2, sky_beam) else b2
         noise_cl = None  # the noises of the two splits are independent: no bias
+    if realistic:
+        if cross:
+            raise InvalidInputError("The 'sky_lmax' and 'pixelise' parameters are not available with cross=True.")
+        sky_beam = _sky_amplitude(estimator, sky_lmax, bool(pixelise))
     setup = _ValidationSetup(
         estimator=estimator, cl=cl, sky_beam=sky_beam, noise=noise, noise_cl=noise_cl,
         monopole=float(monopole), dipole=None if dipole is None else dipole, sky_filter=sky_filter,
         record_pseudo=bool(record_pseudo_spectra), cross=bool(cross), sky_beam2=sky_beam2,
+        sky_lmax=sky_lmax if realistic else None, pixelise=bool(pixelise),
     )
     sims = run_simulations(
         _simulate_and_estimate, n_sims, seed=seed, context=setup, run_dir=run_dir, executor=executor,
         workers=workers, threads_per_worker=threads_per_worker, progress=progress, restart=restart,
         max_restarts=max_restarts, description="validation",
         memory_per_simulation=_validation_memory(estimator, noise, dipole is not None, sky_filter is not None)
-        * (2 if cross else 1),
+        * (2 if cross else 1) * (6 if pixelise else 1),
         force=force,
     )
     binning = estimator.binning
@@ -300,16 +351,57 @@ def validate_estimator(
         "monopole_K": float(monopole),
         "dipole": "none" if dipole is None else repr(dipole),
         "sky_filter": "none" if sky_filter is None else _function_name(sky_filter),
+        "sky_lmax": int(sky_lmax),
+        "pixelised": "yes (synthesized at 2 nside, averaged into the pixels)" if pixelise else "no",
         "estimator_key": getattr(estimator, "cache_key", ""),
         "n_resumed": sims.n_resumed,
         "run_dir": "" if sims.run_dir is None else str(sims.run_dir),
     }
+    reported = sims["cl_err"]
+    if errors == "gaussian":
+        from cmbtools.spectrum.covariance import GaussianCovariance, PixelNoise
+
+        pixel_noise = None if noise is None else PixelNoise.from_model(noise, nside, lmax)
+        gauss = GaussianCovariance(estimator, noise=pixel_noise, noise2=pixel_noise if cross else None,
+                                   cross=bool(cross))
+        reported = np.tile(gauss.covariance(cl[: lmax + 1]).errors, (sims["cl"].shape[0], 1))
+    metadata["error_model"] = "Gaussian covariance of the input spectrum" if errors == "gaussian" else "Knox formula"
     return ValidationResult.from_samples(
-        sims["cl"], sims["cl_err"], estimator.expected_bandpowers(cl, cross=bool(cross)),
+        sims["cl"], reported,
+        binning.bin_spectrum(cl) if realistic else estimator.expected_bandpowers(cl[: lmax + 1], cross=bool(cross)),
         ell_min=binning.ell_min, ell_max=binning.ell_max, ell_eff=binning.ell_eff, dl_factor=binning.dl_factor,
         seed=sims.seed, mean_pseudo_cl=sims["pseudo_cl"].mean(axis=0) if record_pseudo_spectra else None,
         metadata=metadata,
     )
+
+
+def _sky_amplitude(estimator, sky_lmax, pixelise):
+    """``B_l`` times the pixel window of the simulated skies up to ``sky_lmax`` (that of 2 nside with ``pixelise``)."""
+    inp = getattr(estimator, "_inputs", None)
+    factors = None if inp is None else inp.sky_factors
+    lmax, nside = int(estimator.lmax), int(estimator.nside)
+    if sky_lmax > lmax and (factors is None or inp.sky_lmax < sky_lmax):
+        have = lmax if factors is None else inp.sky_lmax
+        raise InvalidInputError(
+            f"The skies go to sky_lmax={sky_lmax} but the estimator models the sky only to ell={have}; build it "
+            f"with sky_lmax={sky_lmax} (it then models the power above its bins)."
+        )
+    if factors is not None and inp.sky_lmax >= sky_lmax:
+        amp = np.sqrt(np.clip(factors[0][: sky_lmax + 1], 0.0, None))
+    else:
+        amp = np.asarray(estimator.beam, dtype=np.float64)[: lmax + 1] * np.asarray(
+            estimator.pixel_window, dtype=np.float64)[: lmax + 1]
+    if pixelise:
+        from cmbtools.spectrum.pixel_windows import pixel_window
+
+        own = np.asarray(pixel_window(nside, sky_lmax), dtype=np.float64)
+        window = np.asarray(estimator.pixel_window, dtype=np.float64)[: lmax + 1]
+        if not np.allclose(window, own[: lmax + 1], rtol=1e-12, atol=0):
+            raise InvalidInputError(
+                "The 'pixelise' parameter needs an estimator that deconvolves the HEALPix pixel window of its nside."
+            )
+        amp = amp / own[: amp.size] * np.asarray(pixel_window(2 * nside, sky_lmax), dtype=np.float64)[: amp.size]
+    return np.ascontiguousarray(amp)
 
 
 def validate_pipeline(mask, binning, cl=None, *, beam=None, noise=None, pixel_window=True, n_sims=100, seed=None,

@@ -320,8 +320,10 @@ class ValidationResult:
 
         Upper panel: the expected bandpowers (line), the mean of the recovered
         ones (points with the standard error of the mean) and the scatter of a
-        single simulation (shaded: +-1 and +-2 standard deviations).  Lower
-        panel: ``bias_sigma`` per bin with the +-1, +-2 and +-3 levels.
+        single simulation (shaded: +-1 and +-2 standard deviations).  Middle
+        panel: ``bias_sigma`` per bin with the +-1, +-2 and +-3 levels.  Lower
+        panel: ``error_ratio`` per bin (scatter / reported error) with the band
+        of +-2 of its standard errors ``1/sqrt(2 (n_sims - 1))`` around 1.
 
         Parameters
         ----------
@@ -338,7 +340,12 @@ class ValidationResult:
             The file written.
         """
         out, fmt = check_figure_path(path, overwrite)
-        fig, ax, bx = new_figure(6.0, height_ratios=(3, 1.4))
+        fig, ax, bx = new_figure(7.4, height_ratios=(3, 2.6))
+        spec = bx.get_subplotspec()
+        bx.remove()
+        rows = spec.subgridspec(2, 1, hspace=0.09)
+        bx = fig.add_subplot(rows[0], sharex=ax)
+        cx = fig.add_subplot(rows[1], sharex=ax)
         x = self.ell_eff
         k = self.dl_factor * UK2
         half = 0.5 * (self.ell_max - self.ell_min + 1)
@@ -359,16 +366,26 @@ class ValidationResult:
         lim = max(3.5, float(np.nanmax(np.abs(self.bias_sigma), initial=0.0)) * 1.15)
         bx.set_ylim(-lim, lim)
         bx.set_ylabel(r"bias [$\sigma/\sqrt{N}$]")
-        bx.set_xlabel(ELL_LABEL)
-        style_axes(ax, bx)
+        for lab in bx.get_xticklabels():
+            lab.set_visible(False)
+        band = 2.0 / math.sqrt(2.0 * (self.n_sims - 1))
+        cx.axhspan(1.0 - band, 1.0 + band, color=BAND, alpha=0.24, lw=0)
+        cx.axhline(1.0, color=SOFT, lw=0.9)
+        cx.plot(x, self.error_ratio, "s", ms=3.4, color=ACCENT)
+        finite = self.error_ratio[np.isfinite(self.error_ratio)]
+        spread = float(np.max(np.abs(finite - 1.0), initial=0.0)) if finite.size else 0.0
+        cx.set_ylim(1.0 - max(0.2, 1.15 * spread), 1.0 + max(0.2, 1.15 * spread))
+        cx.set_ylabel("scatter / error")
+        cx.set_xlabel(ELL_LABEL)
+        style_axes(ax, bx, cx)
         s = self.summary()
         if title is None:
             def num(key, spec):  # None: not a number (a null run has no scatter)
                 return "n/a" if s[key] is None else format(s[key], spec)
 
             title = (f"{self.n_sims} simulations: max |bias| {num('max_abs_bias_sigma', '.2f')} sigma, "
-                     f"median error ratio {num('median_error_ratio', '.3f')}")
-        return save_figure(fig, ax, bx, title, out, fmt, overwrite=overwrite)
+                     f"error ratio {num('min_error_ratio', '.3f')} to {num('max_error_ratio', '.3f')}")
+        return save_figure(fig, ax, cx, title, out, fmt, overwrite=overwrite)
 
     def __repr__(self):
         s = self.summary()

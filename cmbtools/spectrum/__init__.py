@@ -32,14 +32,21 @@ Examples
 True
 """
 
-from __future__ import annotations
-
 from cmbtools.spectrum.bandpowers import Bandpowers
-from cmbtools.spectrum.beams import gaussian_beam, read_beam, write_beam
+from cmbtools.spectrum.beams import GaussianBeam, gaussian_beam, gaussian_polarized_beam, read_beam, write_beam
 from cmbtools.spectrum.binning import Binning
+from cmbtools.spectrum.covariance import (
+    BandpowerCovariance,
+    GaussianCovariance,
+    PixelNoise,
+    hartlap_factor,
+    read_covariance,
+    simulated_covariance,
+    write_covariance,
+)
 from cmbtools.spectrum.estimator import MAX_CONDITION_NUMBER, SpectrumEstimator
 from cmbtools.spectrum.one_call import estimate_spectrum
-from cmbtools.spectrum.pixel_windows import pixel_window
+from cmbtools.spectrum.pixel_windows import pixel_window, polarization_pixel_window
 from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator, estimate_polarized_spectra
 from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
 
@@ -49,10 +56,20 @@ __all__ = [
     "Bandpowers",
     "estimate_spectrum",
     "MAX_CONDITION_NUMBER",
+    "GaussianBeam",
     "gaussian_beam",
     "read_beam",
     "write_beam",
     "pixel_window",
+    "polarization_pixel_window",
+    "gaussian_polarized_beam",
+    "PixelNoise",
+    "GaussianCovariance",
+    "BandpowerCovariance",
+    "simulated_covariance",
+    "hartlap_factor",
+    "write_covariance",
+    "read_covariance",
     "PolarizedSpectrumEstimator",
     "PolarizedBandpowers",
     "estimate_polarized_spectra",

@@ -26,6 +26,7 @@ last one exactly once and in order, and finite values ``>= 0``.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import warnings
 from pathlib import Path
@@ -34,11 +35,11 @@ import numpy as np
 
 from cmbtools._core import files as _io
 from cmbtools._core.tables import number_cell, read_text_table, write_text_table
-from cmbtools._core.checks import check_lmax, check_positive
+from cmbtools._core.checks import check_lmax, check_positive, renamed_keywords
 from cmbtools._version import __version__
 from cmbtools.exceptions import CmbtoolsWarning, InputFileError, InvalidInputError
 
-__all__ = ["gaussian_beam", "read_beam", "write_beam"]
+__all__ = ["GaussianBeam", "gaussian_beam", "gaussian_polarized_beam", "read_beam", "write_beam"]
 
 #: Column names accepted for the multipole and the beam (compared case-insensitively).
 _ELL_NAMES = ("ell",)
@@ -46,6 +47,40 @@ _BEAM_NAMES = ("b_ell",)
 
 #: |B_0 - 1| above which a tabulated beam triggers a warning (it is still used as given).
 _B0_TOLERANCE = 1e-3
+
+
+@dataclasses.dataclass(frozen=True)
+class GaussianBeam:
+    """A circular Gaussian beam given by its full width at half maximum, in arcminutes.
+
+    Wherever a beam is accepted (``SpectrumEstimator(beam=...)``, ``gaussian_sky(beam=...)``, ...),
+    ``GaussianBeam(fwhm_arcmin=25.0)`` says what a bare number (also accepted) means: a FWHM in arcmin.
+
+    Parameters
+    ----------
+    fwhm_arcmin : float
+        Full width at half maximum, arcminutes (>= 0).
+    """
+
+    fwhm_arcmin: float
+
+    def __post_init__(self):
+        object.__setattr__(self, "fwhm_arcmin", check_positive(self.fwhm_arcmin, "fwhm_arcmin", allow_zero=True))
+
+    def transfer(self, lmax) -> np.ndarray:
+        """B_l for ell = 0..lmax (:func:`gaussian_beam`).
+
+        Parameters
+        ----------
+        lmax : int
+            Largest multipole.
+
+        Returns
+        -------
+        ndarray of shape (lmax+1,)
+            The beam transfer function.
+        """
+        return gaussian_beam(self.fwhm_arcmin, lmax)
 
 
 def gaussian_beam(fwhm_arcmin, lmax) -> np.ndarray:
@@ -75,6 +110,43 @@ def gaussian_beam(fwhm_arcmin, lmax) -> np.ndarray:
     ell = np.arange(lmax + 1, dtype=np.float64)
     with np.errstate(over="ignore"):  # a beam wider than the sky: B_l = 0 above l = 0, not an overflow warning
         return np.exp(-0.5 * ell * (ell + 1.0) * sigma * sigma)  # in this order, l = 0 gives exactly 0 * sigma
+
+
+
+def gaussian_polarized_beam(fwhm_arcmin, lmax) -> np.ndarray:
+    """Transfer function of a circular Gaussian beam for the E and B modes (spin 2).
+
+    A spin-2 field smoothed by a circular Gaussian has
+    ``B_l = exp(-(l(l+1) - 4) sigma**2 / 2)`` (Challinor et al. 2000, PRD 62,
+    123002, eq. 3.4 with spin 2; Ng & Liu 1999, IJMPD 8, 61), slightly above
+    the temperature beam: the factor ``exp(2 sigma**2)`` is 1 + 4e-5 for
+    25 arcmin.  Set to 0 for l < 2 (E and B start at l = 2).
+
+    Parameters
+    ----------
+    fwhm_arcmin : float
+        Full width at half maximum, arcminutes (>= 0).
+    lmax : int
+        Largest multipole.
+
+    Returns
+    -------
+    ndarray of shape (lmax+1,), float64
+
+    Examples
+    --------
+    >>> b = gaussian_polarized_beam(25.0, 1000)
+    >>> round(float(b[500] / gaussian_beam(25.0, 1000)[500]), 6)
+    1.000019
+    """
+    fwhm = check_positive(fwhm_arcmin, "fwhm_arcmin", allow_zero=True)
+    lmax = check_lmax(lmax)
+    sigma = math.radians(fwhm / 60.0) / math.sqrt(8.0 * math.log(2.0))
+    ell = np.arange(lmax + 1, dtype=np.float64)
+    with np.errstate(over="ignore"):
+        out = np.exp(-0.5 * (ell * (ell + 1.0) - 4.0) * sigma * sigma)
+    out[:2] = 0.0
+    return out
 
 
 # --------------------------------------------------------------------------- reading
@@ -254,7 +326,8 @@ def _check_table(p: Path, ell: np.ndarray, beam: np.ndarray, where: list[str]) -
 # --------------------------------------------------------------------------- writing
 
 
-def write_beam(path, b_ell, *, overwrite=False, header_comment=None) -> Path:
+@renamed_keywords(header_comment="header")
+def write_beam(path, b_ell, *, overwrite=False, header=None) -> Path:
     """Write a beam transfer function as a text table that :func:`read_beam` reads back exactly.
 
     Parameters
@@ -265,7 +338,7 @@ def write_beam(path, b_ell, *, overwrite=False, header_comment=None) -> Path:
         B_l for ell = 0..lmax; finite and >= 0.
     overwrite : bool, default=False
         Replace an existing file.
-    header_comment : str, optional
+    header : str, optional
         Text written as ``#`` comment lines above the table (may span lines).
 
     Returns
@@ -293,8 +366,8 @@ def write_beam(path, b_ell, *, overwrite=False, header_comment=None) -> Path:
         i = int(np.argmax(b < 0))
         raise InvalidInputError(f"The 'b_ell' parameter must be >= 0. Got {float(b[i])!r} at ell={i} instead.")
     comments = []
-    if header_comment:
-        comments += [c for c in str(header_comment).splitlines()]
+    if header:
+        comments += [c for c in str(header).splitlines()]
     comments.append(f"beam transfer function B_l for ell = 0..{b.size - 1}, written by cmbtools {__version__}")
     rows = ((str(i), repr(v)) for i, v in enumerate(b.tolist()))
     out = write_text_table(path, ("ell", "b_ell"), rows, comments=comments, overwrite=overwrite)

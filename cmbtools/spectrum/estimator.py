@@ -96,9 +96,10 @@ class SpectrumEstimator:
     mask2 : ndarray of shape (12*nside**2,), optional
         Weights for map 2 of cross-spectra (default: ``mask``).  The coupling
         of a cross-spectrum uses the cross-spectrum of the two masks.
-    beam, beam2 : None, float or ndarray of shape (>= lmax+1,), optional
-        Beam of map 1 / map 2: ``None`` (no beam), a Gaussian FWHM in arcmin or
-        a table ``B_l``.  ``beam2=None`` means "the same as map 1".
+    beam, beam2 : None, GaussianBeam, float or ndarray of shape (>= lmax+1,), optional
+        Beam of map 1 / map 2: ``None`` (no beam), a Gaussian beam
+        (``GaussianBeam(fwhm_arcmin=25.0)``, or the bare FWHM in arcmin) or a
+        table ``B_l``.  ``beam2=None`` means "the same as map 1".
     pixel_window : bool or ndarray of shape (>= lmax+1,), default=True
         Deconvolve the HEALPix pixel window of nside (computed by cmbtools,
         no download), or a table ``p_l``; ``False`` for none.  It applies to
@@ -109,11 +110,28 @@ class SpectrumEstimator:
     remove_monopole_dipole : bool, default=True
         Fit the monopole and dipole on the masked sky (weights = mask) and
         subtract them before the transform.
+    templates : sequence of ndarray of shape (12*nside**2,), optional
+        Template maps (RING, e.g. a foreground map) fitted on the masked sky
+        jointly with the monopole and dipole and removed from every map
+        (:class:`cmbtools.spectrum.deprojection.TemplateDeprojection`).
+    guess_cl : array_like of shape (>= sky_lmax+1,), optional
+        Guess of the sky spectrum (K^2, from ell 0; default: the built-in
+        fiducial spectrum) for the corrections below; only its shape matters
+        (the corrections are exact for any multiple of it), and the bins'
+        model follows its shape inside each bin.
+    sky_lmax : int, optional
+        Band limit of the sky (default: lmax).  Above the last bin, up to
+        ``sky_lmax``, the sky's power leaking into the bins is modelled from
+        ``guess_cl`` with a rectangular coupling matrix; real skies: ``4 nside - 1``.
+    correct_deprojection_bias : bool, default=True
+        Correct the bias that removing the monopole, dipole and templates
+        causes (Elsner, Leistedt & Peiris 2016, MNRAS 456, 2095; see
+        :mod:`cmbtools.spectrum.deprojection`), from ``guess_cl``.
     coupling : {'exact', 'fast'}, default='exact'
         ``'fast'`` uses the approximation of Louis et al. 2020 (PRD 102,
-        123538) for large lmax: exact below ``fast_l_exact``, a band of
-        half-width ``fast_band`` around the diagonal up to ``fast_l_toeplitz``,
-        Toeplitz above.  Defaults: :func:`cmbtools.spectrum.coupling.default_fast_settings`.
+        123538) for large lmax: exact rows below ``fast_exact_below``, a band of
+        half-width ``fast_band_half_width`` around the diagonal below ``fast_banded_below``,
+        and above it rows that repeat the band's shape along the diagonal (a Toeplitz matrix).  Defaults: :func:`cmbtools.spectrum.coupling.default_fast_settings`.
         With ``lmax`` above ``2 nside`` the exact matrix is computed instead
         (unless the settings below are given): there the coupling is dominated
         by the HEALPix grid's aliasing, which a banded form cannot represent
@@ -122,8 +140,9 @@ class SpectrumEstimator:
         It agrees with ``'exact'`` to < 1e-3 for bins up to ``2 nside``; above,
         it misses the quadrature-aliasing part of the exact matrix (percent
         level near ``3 nside``).
-    fast_l_exact, fast_l_toeplitz, fast_band : int, optional
-        Settings of the fast coupling.
+    fast_exact_below, fast_banded_below, fast_band_half_width : int, optional
+        Settings of the fast coupling (the multipole below which rows are
+        exact, the one below which they are banded, the band's half-width).
     n_iter : int, default=0
         Refinement steps of every harmonic transform (maps and mask).  With 0
         the pseudo-Cl is the plain quadrature of the masked map and the
@@ -326,7 +345,7 @@ class SpectrumEstimator:
     @property
     def pixel_window(self) -> np.ndarray:
         """p_l deconvolved from both maps (ones when disabled)."""
-        return self._inputs.pixwin
+        return self._inputs.pixel_window
 
     def _pair(self, cross: bool):
         """(P M, F, A^-1) of the auto-spectrum of map 1, or of the cross-spectrum."""
@@ -399,6 +418,8 @@ class SpectrumEstimator:
     def _prepare(self, m, name, mask, is_second=False):
         """Check a map against the mask, fill missing pixels outside it, remove monopole/dipole, apply the mask."""
         a = self._checked_map(m, name, mask, is_second)
+        if self._inputs.templates:
+            return self._template_deprojection(is_second).project(a, nthreads=self._nthreads)
         if self.remove_monopole_dipole:
             from cmbtools.maps.monopole_dipole import masked_without_monopole_dipole, weight_sums
 
@@ -409,6 +430,16 @@ class SpectrumEstimator:
                 a, mask, nthreads=self._nthreads, sums_of_weights=sums, rings=rings
             )
         return a * mask
+
+    def _template_deprojection(self, is_second=False):
+        """The :class:`~cmbtools.spectrum.deprojection.TemplateDeprojection` of map 1 or map 2 (built once)."""
+        key = "_deprojection2" if is_second and self._inputs.mask2 is not None else "_deprojection1"
+        from cmbtools.spectrum.deprojection import TemplateDeprojection
+
+        mask = self.mask2 if key == "_deprojection2" else self.mask
+        inp = self._inputs
+        return self._cached(key, lambda: TemplateDeprojection(
+            mask, inp.templates, monopole_dipole=inp.remove_monopole_dipole, nthreads=self._nthreads))
 
     @staticmethod
     def _checked_map(m, name, mask, is_second=False):
@@ -502,6 +533,8 @@ class SpectrumEstimator:
         if "_removal_coefficients" in self.__dict__:
             return True
         if not self.remove_monopole_dipole or self._inputs.n_iter or self._inputs.mask2 is not None:
+            return False
+        if self._inputs.templates:
             return False
         if 4 * 16 * _sht.alm_size(self.lmax) > _sht.ONE_CALL_BYTES:
             return False

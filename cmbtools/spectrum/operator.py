@@ -64,9 +64,9 @@ def build_operator(inp, nthreads) -> dict:
     p = binning.averaging_weights(lmax)
     fast = inp.fast
 
-    f1 = inp.beam1**2 * inp.pixwin**2 * inp.transfer1
-    f2 = inp.beam2**2 * inp.pixwin**2 * inp.transfer2
-    f12 = inp.beam1 * inp.beam2 * inp.pixwin**2 * np.sqrt(inp.transfer1 * inp.transfer2)
+    f1 = inp.beam1**2 * inp.pixel_window**2 * inp.transfer1
+    f2 = inp.beam2**2 * inp.pixel_window**2 * inp.transfer2
+    f12 = inp.beam1 * inp.beam2 * inp.pixel_window**2 * np.sqrt(inp.transfer1 * inp.transfer2)
     same_factor = np.array_equal(f1, f2) and np.array_equal(f1, f12)
 
     if inp.n_iter == 0:  # never holds the masks' full coefficients (see _sht.map_spectra)
@@ -88,25 +88,36 @@ def build_operator(inp, nthreads) -> dict:
             del alm2
         del alm1
 
-    def pm_of(w):
-        m = _coupling.coupling_matrix(w, lmax, fast=fast, nthreads=nthreads)
-        return _reduce_rows(m, p, binning.ell_min)
+    deps = deprojections(inp, nthreads)
 
+    def pm_of(w, which):
+        # P (1 + r) M for the windows and the noise; P (1 + r + t) M for the binned matrix (t: power above the bins)
+        m = _coupling.coupling_matrix(w, lmax, fast=fast, nthreads=nthreads)
+        rows = _correction_rows(inp, m, which, deps, nthreads)
+        if rows is None:
+            pm = _reduce_rows(m, p, binning.ell_min)
+            return pm, pm
+        bias_rows, leak_rows = rows  # (reduce_rows scales its argument in place: one copy, then m itself)
+        pm_leak = _reduce_rows(m * leak_rows[:, None], p, binning.ell_min)
+        m *= bias_rows[:, None]
+        return _reduce_rows(m, p, binning.ell_min), pm_leak
+
+    shape = in_bin_shape(binning, lmax, inp.guess_cl)
     what = "binned mode-coupling matrix"
-    pm11 = pm_of(w11)
-    ainv11, cond11 = _binned_operator(pm11, f1, binning, lmax, inp.max_condition_number, what)
+    pm11, pma11 = pm_of(w11, "11")
+    ainv11, cond11 = _binned_operator(pma11, f1 * shape, binning, lmax, inp.max_condition_number, what)
     if inp.mask2 is None:
         pm12 = pm22 = None
         if same_factor:
             ainv12 = ainv22 = None
         else:
-            ainv12, _ = _binned_operator(pm11, f12, binning, lmax, inp.max_condition_number, what + " of map 1 x map 2")
-            ainv22, _ = _binned_operator(pm11, f2, binning, lmax, inp.max_condition_number, what + " of map 2")
+            ainv12, _ = _binned_operator(pma11, f12 * shape, binning, lmax, inp.max_condition_number, what + " of map 1 x map 2")
+            ainv22, _ = _binned_operator(pma11, f2 * shape, binning, lmax, inp.max_condition_number, what + " of map 2")
     else:
-        pm12 = pm_of(w12)
-        pm22 = pm_of(w22)
-        ainv12, _ = _binned_operator(pm12, f12, binning, lmax, inp.max_condition_number, what + " of map 1 x map 2")
-        ainv22, _ = _binned_operator(pm22, f2, binning, lmax, inp.max_condition_number, what + " of map 2")
+        pm12, pma12 = pm_of(w12, "12")
+        pm22, pma22 = pm_of(w22, "22")
+        ainv12, _ = _binned_operator(pma12, f12 * shape, binning, lmax, inp.max_condition_number, what + " of map 1 x map 2")
+        ainv22, _ = _binned_operator(pma22, f2 * shape, binning, lmax, inp.max_condition_number, what + " of map 2")
 
     from cmbtools.maps.masks import mask_moments
 
@@ -157,4 +168,86 @@ def build_operator(inp, nthreads) -> dict:
         "f_sky_eff": mom1.f_sky_eff,
         "f_sky_eff_cross": fsky12,
         "w2": mom1.w2,
+        "deprojection1": deps[0],
+        "deprojection2": deps[1],
     }
+
+
+def in_bin_shape(binning, lmax, guess_cl):
+    """``C_guess,l / (Q P C_guess)_l``: the guess spectrum's shape inside each bin (ones without a guess).
+
+    The binned matrix models the spectrum inside a bin as the guess's shape scaled to the bandpower
+    (``Q -> diag(shape) Q``) instead of flat: for a sky whose spectrum is the guess (times any
+    constant) the bandpowers are then the bin averages of the sky spectrum, not those of a flat
+    approximation of it (the flat model is 1.5% low in a first bin of 16 multipoles from ell 2).
+    """
+    shape = np.ones(lmax + 1)
+    if guess_cl is None:
+        return shape
+    g = np.asarray(guess_cl, dtype=np.float64)[: lmax + 1]
+    binned = np.add.reduceat(binning.averaging_weights(lmax) * g, binning.ell_min)
+    idx = np.full(lmax + 1, -1)
+    idx[: binning.bin_index.size] = binning.bin_index
+    sel = idx >= 0
+    model = binning.model_weights(lmax)
+    model[sel] *= binned[idx[sel]]
+    ok = sel & (model > 0) & (g > 0)
+    shape[ok] = g[ok] / model[ok]
+    return shape
+
+
+def deprojections(inp, nthreads):
+    """The template deprojections of map 1 and map 2 (None when only the monopole/dipole or nothing is removed).
+
+    The plain monopole/dipole removal keeps its own faster path in the estimator; a
+    :class:`~cmbtools.spectrum.deprojection.TemplateDeprojection` is built when user templates are given.
+    """
+    if not inp.templates:
+        return None, None
+    from cmbtools.spectrum.deprojection import TemplateDeprojection
+
+    d1 = TemplateDeprojection(inp.mask1, inp.templates, monopole_dipole=inp.remove_monopole_dipole, nthreads=nthreads)
+    d2 = None
+    if inp.mask2 is not None:
+        d2 = TemplateDeprojection(inp.mask2, inp.templates, monopole_dipole=inp.remove_monopole_dipole,
+                                  nthreads=nthreads)
+    return d1, d2
+
+
+def _correction_rows(inp, m, which, deps, nthreads):
+    """Row factors of the coupling matrix ``m`` for the deprojection bias and the power above the bins, or None."""
+    if inp.sky_factors is None:
+        return None
+    from cmbtools.spectrum import deprojection as _dep
+
+    lmax = inp.lmax
+    factor = inp.sky_factors[{"11": 0, "22": 1, "12": 2}[which]]
+    signal = factor * inp.guess_cl[: factor.size]
+    mask_a = inp.mask2 if which == "22" else inp.mask1
+    mask_b = inp.mask1 if which == "11" else (inp.mask2 if inp.mask2 is not None else inp.mask1)
+    bias = None
+    if inp.deprojects and inp.correct_deprojection_bias:
+        built = list(deps)
+
+        def dep_of(index):
+            if built[index] is None:
+                mask = inp.mask1 if index == 0 else inp.mask2
+                built[index] = _dep.TemplateDeprojection(
+                    mask, inp.templates, monopole_dipole=inp.remove_monopole_dipole, nthreads=nthreads
+                )
+            return built[index]
+
+        if inp.mask2 is None or which == "11":
+            da = db = dep_of(0)
+        elif which == "22":
+            da = db = dep_of(1)
+        else:
+            da, db = dep_of(0), dep_of(1)
+        bias = _dep.deprojection_bias(da, signal, lmax, deprojection2=None if db is da else db, nthreads=nthreads)
+    leakage = None
+    if inp.sky_lmax > inp.binning.lmax:
+        leakage = _dep.above_bins_leakage(
+            mask_a, signal, lmax, inp.binning.lmax + 1, mask2=None if mask_b is mask_a else mask_b, nthreads=nthreads
+        )
+    with_bias = _dep.row_factors(m, signal, lmax, bias=bias)
+    return with_bias, _dep.row_factors(m, signal, lmax, bias=bias, leakage=leakage)

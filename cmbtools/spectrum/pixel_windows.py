@@ -507,3 +507,8 @@ def pixel_window(nside, lmax=None, *, use_cache=True, nthreads=None) -> np.ndarr
     if path is not None:
         _store(path, nside, lmax_table, window)
     return window[: lmax + 1].copy()
+
+
+# The polarization window lives in its own module (it reuses the quadrature above); its name is
+# available here too.
+from cmbtools.spectrum.spin2_pixel_window import polarization_pixel_window  # noqa: E402

@@ -66,7 +66,7 @@ def _pixel_windows(pixel_window, nside, lmax, nthreads):
 
         pt = np.asarray(_pw(nside, lmax, nthreads=nthreads), dtype=np.float64)[: lmax + 1].copy()
         try:  # the polarization window from its definition, when the maps side provides it
-            from cmbtools.spectrum.pixel_windows import polarization_pixel_window as _ppw
+            from cmbtools.spectrum.spin2_pixel_window import polarization_pixel_window as _ppw
         except ImportError:
             pp, desc = pt.copy(), f"healpix nside={nside} (temperature window for T and P)"
         else:
@@ -81,6 +81,26 @@ def _pixel_windows(pixel_window, nside, lmax, nthreads):
         return pt, pp, f"tables sha256={_io.sha256_arrays(pt, pp)[:16]}"
     pt = check_cl(pixel_window, "pixel_window", lmax=lmax, allow_negative=True)[: lmax + 1].copy()
     return pt, pt.copy(), f"table sha256={_io.sha256_arrays(pt)[:16]}"
+
+
+def _check_memory(mask, lmax, others, purify, force):
+    """Refuse, before any large allocation, an estimator that would not fit in memory (see the class doc)."""
+    from cmbtools._core.memory import check_memory, estimate_alm_bytes, estimate_coupling_bytes, estimate_map_bytes
+    from cmbtools.exceptions import CmbtoolsError
+
+    try:
+        nside = nside_from_npix(np.size(mask), "mask")
+        lmax = 3 * nside - 1 if lmax is None else check_lmax(lmax, nside)
+    except CmbtoolsError:
+        return None  # refused later with its own message
+    n_masks = 1 + len(others)
+    masks = estimate_map_bytes(nside, 2 * n_masks)
+    derivatives = estimate_map_bytes(nside, 4 * min(2, n_masks)) if purify else 0
+    transform = 3 * estimate_alm_bytes(2 * lmax) + _sht._leg_bytes(nside, 2 * lmax)
+    kernels = estimate_coupling_bytes(lmax, 2 + 4 * n_masks)
+    need = masks + derivatives + max(transform, kernels)
+    return check_memory(need, f"Building the polarized spectrum estimator at nside {nside} with lmax {lmax}",
+                        force=force)
 
 
 def _pol_beam_array(beam, name, table=None, description=None, lmax=None):
@@ -176,6 +196,10 @@ class PolarizedSpectrumEstimator:
         Threads of the transforms and of the coupling kernel.
     max_condition_number : float, default=1e3
         Largest accepted condition number of the binned coupled system (beams etc. divided out).
+    force : bool, default=False
+        Build even when the memory estimate (masks, window derivatives, mask transforms to 2 lmax, the dense
+        coupling and covariance kernels of one kernel call), made before any large allocation, exceeds what
+        the machine has available: warn instead of raising.
 
     Attributes
     ----------
@@ -218,7 +242,9 @@ class PolarizedSpectrumEstimator:
         purify_b=False,
         nthreads=None,
         max_condition_number=MAX_CONDITION_NUMBER,
+        force=False,
     ):
+        _check_memory(mask, lmax, [m for m in (pol_mask, mask2, pol_mask2) if m is not None], purify_b, force)
         t1 = check_mask(mask, "mask").copy()
         nside = nside_from_npix(t1.size, "mask")
         p1 = t1 if pol_mask is None else check_mask(pol_mask, "pol_mask").copy()
@@ -314,12 +340,21 @@ class PolarizedSpectrumEstimator:
                     )
         self._set("_derivs", derivs)
 
-        self._pair("11")
-        self._covariance_kernels("11")
         separate = mask2 is not None or pol_mask2 is not None or beam2 is not None or pol_beam2 is not None
-        if separate:  # the cross operator is needed: build it now (else on the first cross-spectrum)
-            self._pair("12")
-            self._covariance_kernels("12")
+        names = ("11", "12") if separate else ("11",)  # the cross operator: now if asked for, else on first use
+        # every coupling and covariance kernel in one kernel call (ducc0 evaluates the 3j symbols once)
+        wanted = {key for n in names for c in (_COMPONENTS_AUTO if n == "11" else _COMPONENTS_CROSS)
+                  for _, key in self._terms(c, n[0], n[1])}
+        keys, spectra = [], []
+        for n in names:
+            k, w = self._covariance_requests(n)
+            for kk, ww in zip(k, w):
+                if kk not in keys:
+                    keys.append(kk)
+                    spectra.append(ww)
+        self._kernels(wanted, covariance=(keys, spectra))
+        for n in names:
+            self._pair(n)
 
         from cmbtools.maps.masks import mask_moments
 
@@ -387,45 +422,61 @@ class PolarizedSpectrumEstimator:
 
         return self._cached(("mask_spectrum", i, j), make)
 
-    def _kernels(self, wanted):
+    def _kernels(self, wanted, covariance=None):
         """P-reduced coupling matrices (n_bins, lmax+1) for keys (kind, i, j); missing ones in one kernel call.
 
         Kinds: '00', '02', '++', '--', '+-' (= ++ minus --), and for the pure B '00R' (R.M00), '00RR'
-        (R^2.M00), '02R' (R.M02), with ``R = N_l / N_l'`` (:func:`pure_b_ratio`).
+        (R^2.M00), '02R' (R.M02), with ``R = N_l / N_l'`` (:func:`pure_b_ratio`).  ``covariance``: the
+        (keys, spectra) of covariance kernels to compute in the same kernel call (ducc0 evaluates the 3j
+        symbols once for all the matrices of a call).
         """
         missing = sorted({k for k in wanted if ("kernel",) + k not in self._cache})
-        if missing:
-            base = {}
-            for kind, i, j in missing:
-                b = {"00": "00", "00R": "00", "00RR": "00", "02": "02", "02R": "02"}.get(kind, "+-")
-                base.setdefault((b, i, j), []).append(kind)
-            requests = list(base)
-            mats = coupling_pol.coupling_matrices(
-                [(b, self._mask_spectrum(i, j)) for b, i, j in requests], self.lmax, nthreads=self._threads()
-            )
-            p_w = self.binning.averaging_weights(self.lmax)
-            starts = self.binning.ell_min
-            ratio = coupling_pol.pure_b_ratio(self.lmax) if any(k[0].endswith("R") for k in missing) else None
-            pos = 0
-            for (b, i, j) in requests:
-                if b == "+-":
-                    mpp, mmm = mats[pos], mats[pos + 1]
-                    pos += 2
-                    made = {"++": mpp, "--": mmm, "+-": None}
+        cov_keys, cov_spectra = covariance if covariance is not None else ((), ())
+        if not missing and not cov_keys:
+            return {k: self._cache[("kernel",) + k] for k in wanted}
+        base = {}
+        for kind, i, j in missing:
+            b = {"00": "00", "00R": "00", "00RR": "00", "02": "02", "02R": "02"}.get(kind, "+-")
+            base.setdefault((b, i, j), []).append(kind)
+        requests = list(base)
+        mats = coupling_pol.coupling_matrices(
+            [(b, self._mask_spectrum(i, j)) for b, i, j in requests] + [("00", w) for w in cov_spectra],
+            self.lmax, nthreads=self._threads(),
+        )
+        p_w = self.binning.averaging_weights(self.lmax)
+        starts = self.binning.ell_min
+        ratio = coupling_pol.pure_b_ratio(self.lmax) if any(k[0].endswith("R") for k in missing) else None
+        pos = 0
+        for (b, i, j) in requests:
+            if b == "+-":
+                mpp, mmm = mats[pos], mats[pos + 1]
+                pos += 2
+                made = {"++": mpp, "--": mmm, "+-": None}
+            else:
+                made = {b: mats[pos]}
+                pos += 1
+            for kind in base[(b, i, j)]:
+                if kind == "+-":
+                    m = mpp - mmm
+                elif kind.endswith("RR"):
+                    m = made[b] * (ratio * ratio)
+                elif kind.endswith("R"):
+                    m = made[b] * ratio
                 else:
-                    made = {b: mats[pos]}
-                    pos += 1
-                for kind in base[(b, i, j)]:
-                    if kind == "+-":
-                        m = mpp - mmm
-                    elif kind.endswith("RR"):
-                        m = made[b] * (ratio * ratio)
-                    elif kind.endswith("R"):
-                        m = made[b] * ratio
-                    else:
-                        m = made[kind].copy()
-                    self._cache[("kernel", kind, i, j)] = _freeze(_reduce_rows(m, p_w, starts))
-            del mats
+                    m = made[kind].copy()
+                self._cache[("kernel", kind, i, j)] = _freeze(_reduce_rows(m, p_w, starts))
+        if cov_keys:
+            b = self.binning
+            r = np.zeros(self.lmax + 1)
+            idx = b.bin_index
+            sel = np.nonzero(idx >= 0)[0]
+            r[sel] = 1.0 / b.n_ell[idx[sel]]
+            inv_cols = 1.0 / (2.0 * np.arange(self.lmax + 1) + 1.0)
+            for k, xi in zip(cov_keys, mats[pos:]):
+                xi = xi * inv_cols[None, :]
+                g = _reduce_cols(_reduce_rows(xi, r, b.ell_min), r, b.ell_min)
+                self._cache[("cov_kernel",) + k] = _freeze(0.5 * (g + g.T))
+        del mats
         return {k: self._cache[("kernel",) + k] for k in wanted}
 
     def _terms(self, comp, a, b):
@@ -538,9 +589,9 @@ class PolarizedSpectrumEstimator:
         which = "1" if side == "a" or name == "11" else "2"
         return ("t" if f == "T" else "p") + which
 
-    def _covariance_kernels(self, name):
-        """The binned narrow kernels G(u, v) every covariance term of the pair needs, in one kernel call."""
-        comps = self._pair(name).components
+    def _covariance_requests(self, name):
+        """(keys, spectra) of the narrow covariance kernels of a pair of maps not computed yet."""
+        comps = _COMPONENTS_AUTO if name == "11" else _COMPONENTS_CROSS
         wanted = set()
         for ci in comps:
             for cj in comps:
@@ -550,8 +601,6 @@ class PolarizedSpectrumEstimator:
                             wanted.add(self._product_key(self._mask_of(p, name), self._mask_of(q_, name),
                                                          self._mask_of(r, name), self._mask_of(s, name)))
         missing = sorted(k for k in wanted if ("cov_kernel",) + k not in self._cache)
-        if not missing:
-            return
         lmax = self.lmax
         nthreads = self._threads()
         products = {}
@@ -565,17 +614,13 @@ class PolarizedSpectrumEstimator:
                 spectra.append(_sht.map_spectra([products[u]], lmax, nthreads=nthreads)[0])
             else:
                 spectra.append(_sht.map_spectra([products[u], products[v]], lmax, nthreads=nthreads)[2])
-        mats = coupling_pol.coupling_matrices([("00", s) for s in spectra], lmax, nthreads=nthreads)
-        b = self.binning
-        r = np.zeros(lmax + 1)
-        idx = b.bin_index
-        sel = np.nonzero(idx >= 0)[0]
-        r[sel] = 1.0 / b.n_ell[idx[sel]]
-        inv_cols = 1.0 / (2.0 * np.arange(lmax + 1) + 1.0)
-        for k, xi in zip(missing, mats):
-            xi *= inv_cols[None, :]
-            g = _reduce_cols(_reduce_rows(xi, r, b.ell_min), r, b.ell_min)
-            self._cache[("cov_kernel",) + k] = _freeze(0.5 * (g + g.T))
+        return missing, spectra
+
+    def _covariance_kernels(self, name):
+        """The binned narrow kernels G(u, v) every covariance term of the pair needs (computed once)."""
+        keys, spectra = self._covariance_requests(name)
+        if keys:
+            self._kernels(set(), covariance=(keys, spectra))
 
     def _product_key(self, m1, m2, m3, m4):
         k = self._key_of

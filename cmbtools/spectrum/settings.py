@@ -25,6 +25,7 @@ from cmbtools._core.checks import (
     check_positive,
     check_same_nside,
     nside_from_npix,
+    renamed_keywords,
 )
 from cmbtools._version import __version__
 from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
@@ -48,16 +49,22 @@ _COUPLING_MODES = ("exact", "fast")
 
 
 
-def _beam_array(beam, lmax, name):
+def _beam_array(beam, lmax, name, short_ok=False):
     """B_l for ell = 0..lmax from None, a FWHM in arcmin or an array; and a description."""
     from cmbtools.spectrum.beams import gaussian_beam
 
+    from cmbtools.spectrum.beams import GaussianBeam
+
     if beam is None:
         return np.ones(lmax + 1), "none"
+    if isinstance(beam, GaussianBeam):
+        beam = beam.fwhm_arcmin
     if np.ndim(beam) == 0:
         fwhm = check_positive(beam, f"{name} (FWHM in arcmin)", allow_zero=True)
         return gaussian_beam(fwhm, lmax), f"gaussian fwhm_arcmin={fwhm:g}"
-    b = check_cl(beam, name, lmax=lmax, allow_negative=True)[: lmax + 1].copy()
+    b = check_cl(beam, name, lmax=None if short_ok else lmax, allow_negative=True)[: lmax + 1].copy()
+    if short_ok:
+        return b, ""
     if abs(b[0] - 1.0) > 1e-3:
         warnings.warn(
             f"The {name!r} has B_0 = {b[0]:.6g}, not 1; it is used as given (not renormalised).",
@@ -101,7 +108,7 @@ class EstimatorSettings:
     lmax: int
     beam1: np.ndarray
     beam2: np.ndarray
-    pixwin: np.ndarray
+    pixel_window: np.ndarray
     transfer1: np.ndarray
     transfer2: np.ndarray
     remove_monopole_dipole: bool
@@ -113,6 +120,16 @@ class EstimatorSettings:
     descriptions: dict
     mask1_sha256: str
     mask2_sha256: str | None
+    templates: tuple = ()
+    guess_cl: np.ndarray | None = None
+    sky_lmax: int | None = None
+    correct_deprojection_bias: bool = True
+    sky_factors: tuple | None = None  # (F1, F2, F12) from ell 0 to sky_lmax: the corrections' spectra on the grid
+
+    @property
+    def deprojects(self) -> bool:
+        """Whether maps go through a template deprojection (monopole/dipole and/or user templates)."""
+        return bool(self.remove_monopole_dipole or self.templates)
 
     @property
     def cache_key(self) -> str:
@@ -128,7 +145,7 @@ class EstimatorSettings:
             self.lmax,
             self.beam1,
             self.beam2,
-            self.pixwin,
+            self.pixel_window,
             self.transfer1,
             self.transfer2,
             bool(self.remove_monopole_dipole),
@@ -137,9 +154,15 @@ class EstimatorSettings:
             int(self.n_iter),
             bool(self.covariance),
             float(self.max_condition_number),
+            *self.templates,
+            self.guess_cl,
+            self.sky_lmax,
+            bool(self.correct_deprojection_bias),
         )
 
 
+@renamed_keywords(fast_l_exact="fast_exact_below", fast_l_toeplitz="fast_banded_below",
+                  fast_band="fast_band_half_width")
 def resolve_settings(
     mask,
     binning,
@@ -153,13 +176,17 @@ def resolve_settings(
     transfer2=None,
     remove_monopole_dipole=True,
     coupling="exact",
-    fast_l_exact=None,
-    fast_l_toeplitz=None,
-    fast_band=None,
+    fast_exact_below=None,
+    fast_banded_below=None,
+    fast_band_half_width=None,
     n_iter=0,
     nthreads=None,
     covariance=False,
     max_condition_number=MAX_CONDITION_NUMBER,
+    templates=None,
+    guess_cl=None,
+    sky_lmax=None,
+    correct_deprojection_bias=True,
 ) -> EstimatorSettings:
     """Check and normalise the settings of a spectrum estimator (see :class:`~cmbtools.spectrum.SpectrumEstimator`)."""
     w1 = check_mask(mask, "mask").copy()
@@ -201,7 +228,7 @@ def resolve_settings(
     if coupling not in _COUPLING_MODES:
         raise InvalidInputError(f"The 'coupling' parameter must be 'exact' or 'fast'. Got {coupling!r} instead.")
     fast = None
-    explicit = fast_l_exact is not None or fast_l_toeplitz is not None or fast_band is not None
+    explicit = fast_exact_below is not None or fast_banded_below is not None or fast_band_half_width is not None
     if coupling == "fast" and not explicit and lmax > _coupling.fast_lmax_limit(nside):
         pass  # the banded form cannot represent the grid's aliasing up there: the exact matrix it is
     elif coupling == "fast":
@@ -214,17 +241,17 @@ def resolve_settings(
                 stacklevel=3,
             )
         d_exact, d_toep, d_band = _coupling.default_fast_settings(lmax)
-        l_exact = d_exact if fast_l_exact is None else check_int(fast_l_exact, "fast_l_exact", minimum=0, maximum=lmax)
+        l_exact = d_exact if fast_exact_below is None else check_int(fast_exact_below, "fast_exact_below", minimum=0, maximum=lmax)
         l_toep = (
             max(d_toep, l_exact)
-            if fast_l_toeplitz is None
-            else check_int(fast_l_toeplitz, "fast_l_toeplitz", minimum=l_exact, maximum=lmax)
+            if fast_banded_below is None
+            else check_int(fast_banded_below, "fast_banded_below", minimum=l_exact, maximum=lmax)
         )
-        band = d_band if fast_band is None else check_int(fast_band, "fast_band", minimum=1)
+        band = d_band if fast_band_half_width is None else check_int(fast_band_half_width, "fast_band_half_width", minimum=1)
         fast = (l_exact, l_toep, band)
-    elif fast_l_exact is not None or fast_l_toeplitz is not None or fast_band is not None:
+    elif fast_exact_below is not None or fast_banded_below is not None or fast_band_half_width is not None:
         raise InvalidInputError(
-            "The 'fast_l_exact', 'fast_l_toeplitz' and 'fast_band' parameters only apply with coupling='fast'."
+            "The 'fast_exact_below', 'fast_banded_below' and 'fast_band_half_width' parameters only apply with coupling='fast'."
         )
     n_iter = check_int(n_iter, "n_iter", minimum=0, maximum=20)
     if not isinstance(covariance, (bool, np.bool_)):
@@ -247,12 +274,20 @@ def resolve_settings(
     for a in (w1, w2, b1, b2, pw, t1, t2):
         if a is not None:
             a.setflags(write=False)
+    temps, guess, sky_lmax, factors = _resolve_corrections(
+        w1, w2, binning, nside, lmax, templates, guess_cl, sky_lmax, correct_deprojection_bias,
+        remove_monopole_dipole, (beam, beam2, pixel_window, t1, t2), nthreads,
+    )
     descriptions = {
         "beam": d_b1,
         "beam2": d_b2,
         "pixel_window": d_pw,
         "transfer": d_t1,
         "transfer2": d_t2,
+        "templates": str(len(temps)),
+        "guess_cl": "none" if guess is None else (
+            "built-in fiducial spectrum" if guess_cl is None else f"table sha256={_io.sha256_arrays(guess)[:16]}"
+        ),
     }
     return EstimatorSettings(
         mask1=w1,
@@ -262,7 +297,7 @@ def resolve_settings(
         lmax=lmax,
         beam1=b1,
         beam2=b2,
-        pixwin=pw,
+        pixel_window=pw,
         transfer1=t1,
         transfer2=t2,
         remove_monopole_dipole=bool(remove_monopole_dipole),
@@ -274,7 +309,83 @@ def resolve_settings(
         descriptions=descriptions,
         mask1_sha256=_io.sha256_arrays(w1),
         mask2_sha256=None if w2 is None else _io.sha256_arrays(w2),
+        templates=temps,
+        guess_cl=guess,
+        sky_lmax=sky_lmax,
+        correct_deprojection_bias=bool(correct_deprojection_bias),
+        sky_factors=factors,
     )
+
+
+def _padded(a, n):
+    out = np.zeros(n)
+    k = min(n, a.size)
+    out[:k] = a[:k]
+    return out
+
+
+def _resolve_corrections(w1, w2, binning, nside, lmax, templates, guess_cl, sky_lmax, correct, remove_md, raw,
+                         nthreads):
+    """Templates, guess spectrum, sky band limit and the spectra on the grid that the corrections need."""
+    if templates is None:
+        temps = ()
+    else:
+        if isinstance(templates, np.ndarray) and templates.ndim == 1:
+            raise InvalidInputError("The 'templates' parameter must be a list of maps, not a single map.")
+        temps = []
+        for i, t in enumerate(templates):
+            try:
+                a = np.array(t, dtype=np.float64)
+            except (TypeError, ValueError):
+                raise InvalidInputError(f"The 'templates[{i}]' must be a map (an array of numbers).") from None
+            if a.shape != w1.shape:
+                raise InvalidInputError(
+                    f"The 'templates[{i}]' has shape {a.shape} but the mask has {w1.shape}; give every template "
+                    f"at the mask's nside ({nside}), RING ordering."
+                )
+            inside = w1 > 0 if w2 is None else (w1 > 0) | (w2 > 0)
+            if not np.all(np.isfinite(a[inside])):
+                raise InvalidInputError(f"The 'templates[{i}]' has missing or non-finite pixels inside the mask.")
+            a[~inside] = 0.0
+            a.setflags(write=False)
+            temps.append(a)
+        temps = tuple(temps)
+    if not isinstance(correct, (bool, np.bool_)):
+        raise InvalidInputError(
+            f"The 'correct_deprojection_bias' parameter must be True or False. Got {correct!r} instead."
+        )
+    if sky_lmax is None:
+        sky_lmax = lmax
+    else:
+        sky_lmax = check_int(sky_lmax, "sky_lmax", minimum=lmax, maximum=8 * nside)
+    deprojects = bool(remove_md or temps)
+    needs = (deprojects and correct) or sky_lmax > binning.lmax
+    if not needs:
+        if guess_cl is not None:
+            check_cl(guess_cl, "guess_cl")
+        return temps, None, sky_lmax, None
+    if guess_cl is None:
+        from cmbtools.simulate.theory_spectrum import fiducial_cl
+
+        guess = np.asarray(fiducial_cl(sky_lmax), dtype=np.float64)
+    else:
+        guess = check_cl(guess_cl, "guess_cl", lmax=sky_lmax)[: sky_lmax + 1].copy()
+    guess.setflags(write=False)
+    beam, beam2, pixel_window, t1, t2 = raw
+    b1 = _padded(_beam_array(beam, sky_lmax, "beam", short_ok=True)[0], sky_lmax + 1)
+    b2 = b1 if beam2 is None else _padded(_beam_array(beam2, sky_lmax, "beam2", short_ok=True)[0], sky_lmax + 1)
+    if pixel_window is True:
+        pw = _window_array(True, nside, sky_lmax, nthreads)[0]
+    elif pixel_window is False or pixel_window is None:
+        pw = np.ones(sky_lmax + 1)
+    else:
+        pw = _padded(np.asarray(pixel_window, dtype=np.float64), sky_lmax + 1)
+    tt1 = np.concatenate([t1, np.full(sky_lmax - lmax, t1[-1])])
+    tt2 = np.concatenate([t2, np.full(sky_lmax - lmax, t2[-1])])
+    factors = (b1**2 * pw**2 * tt1, b2**2 * pw**2 * tt2, b1 * b2 * pw**2 * np.sqrt(tt1 * tt2))
+    for f in factors:
+        f.setflags(write=False)
+    return temps, guess, sky_lmax, factors
 
 
 def bandpower_record(inp, *, cross, f_sky, f_sky_eff, condition_number) -> dict:
@@ -317,6 +428,14 @@ def bandpower_record(inp, *, cross, f_sky, f_sky_eff, condition_number) -> dict:
     if cross:
         meta["transfer2"] = inp.descriptions["transfer2"]
     meta["monopole_dipole_removed"] = "yes" if inp.remove_monopole_dipole else "no"
+    meta["templates_removed"] = int(inp.descriptions.get("templates", "0"))
+    if inp.deprojects:
+        meta["deprojection_bias"] = (
+            "corrected (Elsner, Leistedt & Peiris 2016) with the guess spectrum" if inp.correct_deprojection_bias
+            else "not corrected"
+        )
+    meta["sky_lmax"] = inp.sky_lmax
+    meta["guess_spectrum"] = inp.descriptions.get("guess_cl", "none")
     if inp.fast is not None:
         meta["coupling"] = "fast l_exact={} l_toeplitz={} band={}".format(*inp.fast)
     elif inp.coupling == "fast":

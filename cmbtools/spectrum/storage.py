@@ -33,12 +33,18 @@ def save_estimator(estimator, path, *, overwrite=False) -> Path:
         "ell_max": inp.binning.ell_max,
         "beam1": inp.beam1,
         "beam2": inp.beam2,
-        "pixwin": inp.pixwin,
+        "pixel_window": inp.pixel_window,
         "transfer1": inp.transfer1,
         "transfer2": inp.transfer2,
     }
     if inp.mask2 is not None:
         arrays["mask2"] = inp.mask2
+    for i, t in enumerate(inp.templates):
+        arrays[f"template{i}"] = t
+    if inp.guess_cl is not None:
+        arrays["guess_cl"] = inp.guess_cl
+    if inp.sky_factors is not None:
+        arrays["sky_factor1"], arrays["sky_factor2"], arrays["sky_factor12"] = inp.sky_factors
     for name in _ARRAYS:
         v = getattr(estimator, "_" + name)
         if v is not None:
@@ -59,6 +65,9 @@ def save_estimator(estimator, path, *, overwrite=False) -> Path:
         "descriptions": inp.descriptions,
         "mask1_sha256": inp.mask1_sha256,
         "mask2_sha256": inp.mask2_sha256,
+        "n_templates": len(inp.templates),
+        "sky_lmax": inp.sky_lmax,
+        "correct_deprojection_bias": bool(inp.correct_deprojection_bias),
         "condition_number": float(estimator._condition_number),
         "f_sky": float(estimator._f_sky),
         "f_sky_eff": float(estimator._f_sky_eff),
@@ -100,9 +109,19 @@ def load_estimator(cls, path, *, nthreads=None):
             f"{p}: written by cmbtools {settings['version']}, this is {__version__}; rebuild the estimator"
         )
     binning = Binning(data["ell_min"], data["ell_max"], settings["weighting"])
-    for k in ("mask1", "mask2", "beam1", "beam2", "pixwin", "transfer1", "transfer2"):
+    for k in ("mask1", "mask2", "beam1", "beam2", "pixel_window", "transfer1", "transfer2", "guess_cl",
+              "sky_factor1", "sky_factor2", "sky_factor12"):
         if k in data:
             data[k].setflags(write=False)
+    try:
+        templates = tuple(data[f"template{i}"] for i in range(int(settings.get("n_templates", 0))))
+    except KeyError:
+        raise CacheError(f"{p}: a template map is missing; the estimator file is corrupt") from None
+    for t in templates:
+        t.setflags(write=False)
+    factors = None
+    if "sky_factor1" in data:
+        factors = (data["sky_factor1"], data["sky_factor2"], data["sky_factor12"])
     inp = EstimatorSettings(
         mask1=data["mask1"],
         mask2=data.get("mask2"),
@@ -111,7 +130,7 @@ def load_estimator(cls, path, *, nthreads=None):
         lmax=int(settings["lmax"]),
         beam1=data["beam1"],
         beam2=data["beam2"],
-        pixwin=data["pixwin"],
+        pixel_window=data["pixel_window"],
         transfer1=data["transfer1"],
         transfer2=data["transfer2"],
         remove_monopole_dipole=bool(settings["remove_monopole_dipole"]),
@@ -123,6 +142,11 @@ def load_estimator(cls, path, *, nthreads=None):
         descriptions=dict(settings["descriptions"]),
         mask1_sha256=settings["mask1_sha256"],
         mask2_sha256=settings["mask2_sha256"],
+        templates=templates,
+        guess_cl=data.get("guess_cl"),
+        sky_lmax=settings.get("sky_lmax"),
+        correct_deprojection_bias=bool(settings.get("correct_deprojection_bias", True)),
+        sky_factors=factors,
     )
     if inp.cache_key != settings["cache_key"]:
         raise CacheError(f"{p}: the stored inputs do not match the stored key; the estimator file is corrupt")

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from cmbtools import cli
-from cmbtools.maps import UNSEEN, cap_mask, mask_moments, read_mask, write_map, write_mask
+from cmbtools.maps import UNSEEN, cap_mask, mask_moments, read_mask, write_sky_map, write_mask
 
 NSIDE = 32
 
@@ -70,7 +70,7 @@ def test_mask_latitude_cut_area(tmp_path, capsys):
 
 def test_mask_from_map_threshold_and_from_mask(tmp_path, capsys):
     hits = np.arange(12 * NSIDE**2, dtype=float)  # increasing from the north pole
-    hits_path = write_map(tmp_path / "hits.fits", hits, unit=None)
+    hits_path = write_sky_map(tmp_path / "hits.fits", hits, unit=None)
     code, out, _ = run(capsys, "mask", "--from-map", hits_path, "--threshold", 6143.5, "--keep-where", "above",
                        "-o", tmp_path / "south.fits")
     assert code == 0
@@ -157,7 +157,7 @@ def sky_file(tmp_path):
     m = 2e-5 + 3e-3 * vec @ hp.ang2vec(264.0, 48.0, lonlat=True)
     m += 1e-5 * np.sin(7 * np.arange(m.size))  # a small deterministic ripple
     m[:100] = UNSEEN
-    path = write_map(tmp_path / "sky.fits", m, unit="uK_CMB", coord="G", nest=True, dtype="float32")
+    path = write_sky_map(tmp_path / "sky.fits", m, unit="uK_CMB", coordinates="G", nested=True, dtype="float32")
     return path, m
 
 

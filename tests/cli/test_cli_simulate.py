@@ -11,7 +11,7 @@ import pytest
 from astropy.io import fits
 
 from cmbtools.cli import main
-from cmbtools.maps import read_map, read_mask, write_map
+from cmbtools.maps import read_sky_map, read_mask, write_sky_map
 from cmbtools.simulate import (
     Dipole,
     NoiseModel,
@@ -46,7 +46,7 @@ def test_maps_match_the_library_and_record_the_seed(tmp_path, table, capsys):
     assert "seed 5" in printed and "wrote" in printed
     model = NoiseModel(300.0, ell_knee=10.0, alpha=2.0)
     for i in range(2):
-        m, info = read_map(out / f"sky_{i:04d}.fits")
+        m, info = read_sky_map(out / f"sky_{i:04d}.fits")
         rng = simulation_rng(5, i)
         expected = gaussian_sky(cl, 16, lmax=40, beam=120.0, monopole=50 * 1e-6, dipole=Dipole(80 * 1e-6, 120.0, -30.0),
                                 rng=rng, nthreads=1)
@@ -57,7 +57,7 @@ def test_maps_match_the_library_and_record_the_seed(tmp_path, table, capsys):
     # a later call for map 1 alone gives the same file content
     again = tmp_path / "again"
     assert main(common + ["--sims", "1", "--first-index", "1", "--output-dir", str(again)]) == 0
-    np.testing.assert_array_equal(read_map(again / "sky_0001.fits")[0], read_map(out / "sky_0001.fits")[0])
+    np.testing.assert_array_equal(read_sky_map(again / "sky_0001.fits")[0], read_sky_map(out / "sky_0001.fits")[0])
 
 
 def test_no_overwrite_and_overwrite(tmp_path, table, capsys):
@@ -72,7 +72,7 @@ def test_no_overwrite_and_overwrite(tmp_path, table, capsys):
     assert len(err) == 1 and "output exists" in err[0] and "--overwrite" in err[0]
     assert (tmp_path / "sky_0000.fits").read_bytes() == first
     assert main(args + ["--overwrite"]) == 0
-    m, info = read_map(tmp_path / "sky_0000.fits")
+    m, info = read_sky_map(tmp_path / "sky_0000.fits")
     assert "32" in info.dtype_in_file
     assert fits.getheader(tmp_path / "sky_0000.fits", 1)["TFORM1"] == "E"
 
@@ -82,10 +82,10 @@ def test_hits_map_gives_partial_sky_files(tmp_path, table):
     hits = np.zeros(12 * 16**2)
     hits[:1000] = np.linspace(1.0, 5.0, 1000)
     hits_path = tmp_path / "hits.fits"
-    write_map(hits_path, np.where(hits > 0, hits, np.nan), unit=None, partial=True)
+    write_sky_map(hits_path, np.where(hits > 0, hits, np.nan), unit=None, observed_only=True)
     assert main(["simulate", "--spectrum", str(path), "--nside", "16", "--noise-depth", "100", "--hits",
                  str(hits_path), "--seed", "3", "--output-dir", str(tmp_path), "--threads", "1"]) == 0
-    m, info = read_map(tmp_path / "sky_0000.fits")
+    m, info = read_sky_map(tmp_path / "sky_0000.fits")
     assert info.n_missing == 12 * 16**2 - 1000
     assert np.all(np.isfinite(m[:1000])) and np.all(np.abs(m[:1000]) < 1e-2)
 
@@ -154,7 +154,7 @@ def test_demo_data_is_reproducible(tmp_path):
             if name == "tern_mask.fits":
                 a, b = read_mask(committed), read_mask(fresh)
             else:
-                a, b = read_map(committed, unit="K")[0], read_map(fresh, unit="K")[0]
+                a, b = read_sky_map(committed, unit="K")[0], read_sky_map(fresh, unit="K")[0]
             np.testing.assert_array_equal(np.isfinite(a) & (a > -1e30), np.isfinite(b) & (b > -1e30))
             np.testing.assert_allclose(a, b, rtol=2e-7, atol=1e-12)  # float32 precision
         else:

@@ -10,7 +10,7 @@ import pytest
 
 from cmbtools.simulate import validate_estimator
 from cmbtools.cli import main
-from cmbtools.maps import cap_mask, write_map, write_mask
+from cmbtools.maps import cap_mask, write_sky_map, write_mask
 from cmbtools.simulate import NoiseModel
 from cmbtools.spectrum import Binning, SpectrumEstimator
 
@@ -47,19 +47,30 @@ def test_validate_writes_outputs_matches_the_library_and_resumes(files, capsys, 
     assert main(_args(tmp, "--sims", "6", "--seed", "4", "--workers", "1", "--run-dir", str(run_dir))) == 0
     out = capsys.readouterr().out
     assert "validated the spectrum estimator on 6 simulations (seed 4) on 1 local worker process" in out
-    assert "max |bias|" in out and "scatter / analytic error" in out
-    for name in ("summary.csv", "summary.json", "validation.png", "run.json"):
+    assert "max |bias|" in out and "scatter / error" in out
+    for name in ("summary.csv", "summary.json", "validation.png", "run.json", "covariance.npz"):
         assert (run_dir / name).is_file()
     assert len(list(run_dir.glob("sim_*.npz"))) == 6
     doc = json.loads((run_dir / "summary.json").read_text())
     assert doc["n_sims"] == 6 and doc["seed"] == 4 and doc["settings"]["pixel_window"] == "yes"
-    assert set(doc) >= {"n_sims", "max_abs_bias_sigma", "median_error_ratio"}
+    assert set(doc) >= {"n_sims", "max_abs_bias_sigma", "median_error_ratio", "min_error_ratio", "max_error_ratio"}
+    ratios = np.array(doc["bins"]["error_ratio"])
+    assert doc["min_error_ratio"] == pytest.approx(ratios.min(), rel=1e-12)
+    assert doc["max_error_ratio"] == pytest.approx(ratios.max(), rel=1e-12)
+    from cmbtools.spectrum import read_covariance
+
+    simulated = read_covariance(run_dir / "covariance.npz")
+    assert simulated.kind == "simulation" and simulated.n_sims == 6
+    np.testing.assert_allclose(np.sqrt(np.diag(simulated.matrix)), np.array(doc["bins"]["std"]), rtol=1e-9)
 
     # the same run through the library, on threads: the same numbers
-    est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 8), lmax=LMAX, beam=30.0)
+    # (the command injects a 100 uK monopole and a 3 mK dipole and uses the input spectrum as the guess)
+    from cmbtools.simulate import Dipole
+
+    est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 8), lmax=LMAX, beam=30.0, guess_cl=_spectrum(LMAX))
     with ThreadPoolExecutor(2) as pool:
         ref = validate_estimator(est, _spectrum(LMAX), n_sims=6, seed=4, noise=NoiseModel(30.0), executor=pool,
-                                 progress=False)
+                                 progress=False, monopole=100e-6, dipole=Dipole(3e-3, 60.0, 30.0), sky_lmax=LMAX)
     np.testing.assert_allclose(doc["bins"]["mean"], ref.mean, rtol=1e-12)
     np.testing.assert_allclose(doc["bins"]["bias_sigma"], ref.bias_sigma, rtol=1e-9, atol=1e-12)
     assert doc["max_abs_bias_sigma"] == pytest.approx(ref.summary()["max_abs_bias_sigma"], rel=1e-9)
@@ -114,7 +125,7 @@ def test_validate_bad_inputs_exit_2_before_any_work(files, capsys):
     # a hits map that misses part of the mask is an input error too
     hits = np.ones(12 * NSIDE**2)
     hits[mask > 0.5] = 0.0
-    write_map(tmp / "hits.fits", hits, unit=None)
+    write_sky_map(tmp / "hits.fits", hits, unit=None)
     assert main(_args(tmp, "--hits", str(tmp / "hits.fits"), "--run-dir", str(run_dir))) == 2
     assert "hits map does not cover" in capsys.readouterr().err
     # --workers and --scheduler exclude each other (argparse: exit 2)

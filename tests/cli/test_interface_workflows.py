@@ -292,3 +292,14 @@ def test_a_spectrum_table_written_by_cmbtools_is_accepted_as_a_noise_spectrum(tm
                    "--bin-width", 24, "--noise-spectrum", "nl.csv", "-o", "a.csv", cwd=tmp_path)
     assert out.returncode == 0, out.stderr
     assert "  noise bias subtracted: nl.csv" in out.stdout
+
+
+def test_a_noise_table_may_not_overwrite_a_noise_map_given_as_input(tmp_path):
+    import shutil
+
+    shutil.copy(MAPS / "tern_half1.fits", tmp_path / "h1.fits")
+    out = cmbtools("spectrum", MAPS / "tern_sky.fits", "--mask", MAPS / "tern_mask.fits", "--half-difference",
+                   "h1.fits", MAPS / "tern_half2.fits", "--write-noise-spectrum", "h1.fits", "-o", "a.csv",
+                   "--overwrite", cwd=tmp_path)
+    assert out.returncode == 2 and "is also an input of this command" in out.stderr
+    assert (tmp_path / "h1.fits").read_bytes() == (MAPS / "tern_half1.fits").read_bytes()

@@ -26,7 +26,7 @@ from cmbtools._core.checks import UNSEEN
 
 def test_a_failing_writer_leaves_nothing_behind(tmp_path):
     # an exception inside the block (not a kill) removes the temporary and keeps the old file
-    target = maps.write_map(tmp_path / "m.fits", np.arange(12 * 16**2, dtype=float))
+    target = maps.write_sky_map(tmp_path / "m.fits", np.arange(12 * 16**2, dtype=float))
     before = target.read_bytes()
     with pytest.raises(ZeroDivisionError):
         with _io.atomic_output(target, overwrite=True) as tmp:
@@ -44,8 +44,8 @@ def input_files(tmp_path):
     m = rng.normal(0.0, 1e-4, 12 * 16**2)
     m[:20] = UNSEEN
     f = {
-        "map": maps.write_map(tmp_path / "map.fits", m, unit="uK_CMB", nest=True),
-        "hits": maps.write_map(tmp_path / "hits.fits", rng.integers(0, 9, 12 * 16**2).astype(float), unit=None),
+        "map": maps.write_sky_map(tmp_path / "map.fits", m, unit="uK_CMB", nested=True),
+        "hits": maps.write_sky_map(tmp_path / "hits.fits", rng.integers(0, 9, 12 * 16**2).astype(float), unit=None),
         "mask": maps.write_mask(tmp_path / "mask.fits", maps.cap_mask(16, 30.0, -20.0, 60.0)),
         "mask8": maps.write_mask(tmp_path / "mask8.fits", maps.cap_mask(8, 30.0, -20.0, 60.0)),
         "holes": tmp_path / "holes.csv",
@@ -88,12 +88,12 @@ def test_commands_never_modify_their_inputs(input_files, tmp_path, capsys, argv,
 
 def test_readers_never_modify_their_inputs(input_files):
     before = {k: fingerprint(p) for k, p in input_files.items()}
-    maps.read_map(input_files["map"])
+    maps.read_sky_map(input_files["map"])
     maps.read_mask(input_files["mask"])
     maps.read_positions_csv(input_files["holes"])
     physics.read_bandpass(input_files["band"])
     with pytest.raises(Exception):
-        maps.read_map(input_files["bad"])
+        maps.read_sky_map(input_files["bad"])
     assert {k: fingerprint(p) for k, p in input_files.items()} == before
 
 
@@ -129,8 +129,8 @@ def test_writers_never_modify_the_arrays_they_are_given(tmp_path):
     m = np.random.default_rng(5).normal(0.0, 1e-4, 768)
     m[:4] = [np.nan, np.inf, -np.inf, UNSEEN]
     before = m.copy()
-    maps.write_map(tmp_path / "a.fits", m, unit="uK_CMB", nest=True, dtype="float32")
-    maps.write_map(tmp_path / "b.fits", m, partial=True)
+    maps.write_sky_map(tmp_path / "a.fits", m, unit="uK_CMB", nested=True, dtype="float32")
+    maps.write_sky_map(tmp_path / "b.fits", m, observed_only=True)
     np.testing.assert_array_equal(m, before)
 
 

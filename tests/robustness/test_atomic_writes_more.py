@@ -5,7 +5,7 @@ version, and is killed with SIGKILL, either at a random moment or a random
 instant after its temporary file appeared (so that some kills land in the
 middle of a write), for each writer kind:
 
-* ``map``: ``maps.write_map`` of an nside-256 map (6.3 MB);
+* ``map``: ``maps.write_sky_map`` of an nside-256 map (6.3 MB);
 * ``raw_output``: ``_io.atomic_output`` with a 32 MB file written in chunks;
 * ``spectrum_table``: ``simulate.write_spectrum_table`` (the text spectrum table);
 * ``bandpower_table``: ``Bandpowers.write_csv`` (the table of ``cmbtools spectrum``);
@@ -215,7 +215,7 @@ N_CHUNKS = 32
 
 
 class Map(Kind):
-    """``maps.write_map`` of an nside-256 map: every pixel tells which version it belongs to."""
+    """``maps.write_sky_map`` of an nside-256 map: every pixel tells which version it belongs to."""
 
     suffix = ".fits"
 
@@ -223,10 +223,10 @@ class Map(Kind):
         return np.full(12 * BIG_NSIDE**2, float(version)) + np.arange(12 * BIG_NSIDE**2) * 1e-9
 
     def write(self, target, version, overwrite=True):
-        maps.write_map(target, self.pixels(version), overwrite=overwrite)
+        maps.write_sky_map(target, self.pixels(version), overwrite=overwrite)
 
     def read_label(self, target):
-        m, _ = maps.read_map(target)
+        m, _ = maps.read_sky_map(target)
         version = int(round(m[0]))
         np.testing.assert_array_equal(m, self.pixels(version))
         return version
@@ -389,11 +389,11 @@ def input_files(tmp_path):
     m[np.flatnonzero(w == 0)[:6]] = UNSEEN  # missing pixels outside the mask
     ell = np.arange(3 * NSIDE)
     f = {
-        "map": maps.write_map(tmp_path / "map.fits", m, unit="uK_CMB", nest=True),
-        "map2": maps.write_map(tmp_path / "map2.fits", rng.normal(0.0, 1e-4, npix)),
+        "map": maps.write_sky_map(tmp_path / "map.fits", m, unit="uK_CMB", nested=True),
+        "map2": maps.write_sky_map(tmp_path / "map2.fits", rng.normal(0.0, 1e-4, npix)),
         "mask": maps.write_mask(tmp_path / "mask.fits", w),
         "mask2": maps.write_mask(tmp_path / "mask2.fits", maps.cap_mask(NSIDE, 60.0, 10.0, 80.0)),
-        "hits": maps.write_map(tmp_path / "hits.fits", rng.integers(1, 9, npix).astype(float), unit=None),
+        "hits": maps.write_sky_map(tmp_path / "hits.fits", rng.integers(1, 9, npix).astype(float), unit=None),
         "beam": write_beam(tmp_path / "beam.csv", np.exp(-ell * (ell + 1) * 1e-4)),
         "theory": tmp_path / "theory.csv",
         "noise": tmp_path / "noise.csv",
@@ -452,7 +452,7 @@ def test_spectrum_commands_never_modify_their_inputs(input_files, tmp_path, caps
 def test_table_readers_and_caches_never_modify_their_inputs(input_files, tmp_path):
     mask = maps.read_mask(input_files["mask"])
     cache = SpectrumEstimator(mask, Binning.uniform(2, 47, 16), nthreads=1).save(tmp_path / "cache.npz")
-    bp_path = SpectrumEstimator.load(cache).estimate(maps.read_map(input_files["map2"])[0]).write_csv(tmp_path / "bp.csv")
+    bp_path = SpectrumEstimator.load(cache).estimate(maps.read_sky_map(input_files["map2"])[0]).write_csv(tmp_path / "bp.csv")
     files = {**input_files, "cache": cache, "bp": bp_path}
     for p in (cache, bp_path):
         os.chmod(p, 0o444)

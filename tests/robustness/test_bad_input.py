@@ -78,8 +78,8 @@ def write_table(path, values, **header):
 def files(tmp_path):
     """Good and bad input files of every kind the map readers meet."""
     f = {}
-    f["map"] = maps.write_map(tmp_path / "map.fits", sky())
-    f["map16"] = maps.write_map(tmp_path / "map16.fits", sky(16))
+    f["map"] = maps.write_sky_map(tmp_path / "map.fits", sky())
+    f["map16"] = maps.write_sky_map(tmp_path / "map16.fits", sky(16))
     f["mask"] = maps.write_mask(tmp_path / "mask.fits", maps.cap_mask(NSIDE, 0.0, 30.0, 60.0))
     f["mask16"] = maps.write_mask(tmp_path / "mask16.fits", maps.cap_mask(16, 0.0, 30.0, 60.0))
     f["missing"] = tmp_path / "none.fits"
@@ -92,9 +92,9 @@ def files(tmp_path):
     f["truncated"].write_bytes(good[: len(good) - 2880 - 100])  # the data block is cut short
     f["pixels"] = write_table(tmp_path / "pixels.fits", np.zeros(700), ORDERING="RING")
     f["nside12"] = write_table(tmp_path / "nside12.fits", np.zeros(12 * 12**2), ORDERING="RING")
-    f["weights_big"] = maps.write_map(tmp_path / "big.fits", np.full(NPIX, 1.5), unit=None)
-    f["weights_zero"] = maps.write_map(tmp_path / "zero.fits", np.zeros(NPIX), unit=None)
-    f["all_missing"] = maps.write_map(tmp_path / "holes.fits", np.full(NPIX, UNSEEN))
+    f["weights_big"] = maps.write_sky_map(tmp_path / "big.fits", np.full(NPIX, 1.5), unit=None)
+    f["weights_zero"] = maps.write_sky_map(tmp_path / "zero.fits", np.zeros(NPIX), unit=None)
+    f["all_missing"] = maps.write_sky_map(tmp_path / "holes.fits", np.full(NPIX, UNSEEN))
     return f
 
 
@@ -111,7 +111,7 @@ def files(tmp_path):
         ("nside12", "nside 12, which is not a power of two"),
     ],
 )
-@pytest.mark.parametrize("reader", [maps.read_map, maps.read_mask])
+@pytest.mark.parametrize("reader", [maps.read_sky_map, maps.read_mask])
 def test_unreadable_files_raise_input_file_error(files, key, fragment, reader):
     with pytest.raises(InputFileError) as info:
         reader(files[key])
@@ -143,7 +143,7 @@ def test_missing_values_in_a_mask_file_weigh_zero(tmp_path):
     w = np.ones(NPIX)
     w[:10] = np.nan
     w[10:20] = UNSEEN
-    path = maps.write_map(tmp_path / "w.fits", w, unit=None)
+    path = maps.write_sky_map(tmp_path / "w.fits", w, unit=None)
     # never silent: the warning gives the count of pixels that hold no number
     with pytest.warns(CmbtoolsWarning, match=r"20 mask pixels hold no number \(NaN, inf or UNSEEN\); they get weight 0"):
         got = maps.read_mask(path)
@@ -237,7 +237,7 @@ def test_partial_file_describing_a_huge_map_is_refused_before_allocating(tmp_pat
     fits.HDUList([fits.PrimaryHDU(), hdu]).writeto(path)
     # nside 2^24: 12 * 2^48 pixels of 8 bytes, twice = 54 PB, more than any machine
     with pytest.raises(MemoryLimitError, match=r"The partial-sky file .*huge\.fits' at nside 16777216 would need about 54 PB") as info:
-        maps.read_map(path, unit="K")
+        maps.read_sky_map(path, unit="K")
     assert info.value.required_bytes == 2 * 8 * 12 * 4**24
 
 
@@ -303,7 +303,7 @@ def test_cli_map_and_mask_of_different_nside(files, tmp_path, capsys):
                              "--threshold", 0.0, "--nside", 8, "-o", out_path)
     assert (code, err) == (0, "")
     assert "--from-mask changed from nside 16 to 8" in out and "--from-map" not in out
-    expected = maps.change_mask_resolution(maps.read_mask(files["mask16"]), 8) * (maps.read_map(files["map"])[0] < 0)
+    expected = maps.change_mask_resolution(maps.read_mask(files["mask16"]), 8) * (maps.read_sky_map(files["map"])[0] < 0)
     np.testing.assert_allclose(maps.read_mask(out_path), expected, rtol=0, atol=1e-15)
 
 
@@ -385,21 +385,21 @@ def test_bad_bandpass_files(tmp_path, text, fragment):
 def test_output_paths_are_checked_before_any_work(tmp_path, capsys):
     m = sky()
     with pytest.raises(OutputPathError, match="does not exist"):
-        maps.write_map(tmp_path / "no" / "such" / "dir" / "m.fits", m)
+        maps.write_sky_map(tmp_path / "no" / "such" / "dir" / "m.fits", m)
     not_a_dir = tmp_path / "file.txt"
     not_a_dir.write_text("x")
     with pytest.raises(OutputPathError, match="is not a directory"):
-        maps.write_map(not_a_dir / "m.fits", m)
+        maps.write_sky_map(not_a_dir / "m.fits", m)
     with pytest.raises(OutputPathError, match="is a directory, expected a file name"):
-        maps.write_map(tmp_path, m)
+        maps.write_sky_map(tmp_path, m)
     # a directory nobody may write to: /proc refuses new files even to root, whatever its mode bits
     # say (os.access answers yes for root), so the check creates a probe file (Linux proc(5))
     with pytest.raises(OutputPathError, match="is not writable"):
-        maps.write_map("/proc/cmbtools-test.fits", m)
-    existing = maps.write_map(tmp_path / "m.fits", m)
+        maps.write_sky_map("/proc/cmbtools-test.fits", m)
+    existing = maps.write_sky_map(tmp_path / "m.fits", m)
     before = existing.read_bytes()
     with pytest.raises(OutputExistsError, match="output exists; pass overwrite=True"):
-        maps.write_map(existing, 2 * m)
+        maps.write_sky_map(existing, 2 * m)
     assert existing.read_bytes() == before
     assert sorted(p.name for p in tmp_path.iterdir()) == ["file.txt", "m.fits"]  # no probe or temporary left
     for target, fragment in [(tmp_path / "no" / "m.fits", "does not exist"), ("/proc/m.fits", "is not writable"),
@@ -902,7 +902,7 @@ def test_validation_refuses_before_simulating_and_force_runs(monkeypatch):
 @pytest.mark.filterwarnings("default::cmbtools.exceptions.CmbtoolsWarning")
 def test_spectrum_cli_memory_refusal_and_force(tmp_path, capsys, monkeypatch):
     mask_path = maps.write_mask(tmp_path / "mask.fits", maps.cap_mask(16, 0, 30, 60))
-    map_path = maps.write_map(tmp_path / "map.fits", sky(16))
+    map_path = maps.write_sky_map(tmp_path / "map.fits", sky(16))
     argv = ("spectrum", map_path, "--mask", mask_path, "--no-pixel-window", "--threads", 1, "-o")
     out_path = tmp_path / "spectrum.csv"
     monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")
@@ -945,8 +945,8 @@ def test_simulate_cli_memory_refusal_and_force(tmp_path, capsys, monkeypatch):
     code, out, err = run_cli(capsys, *argv, tmp_path / "plain")
     assert code == 0 and err == ""
     for i in range(2):
-        forced, _ = maps.read_map(tmp_path / "forced" / f"sky_{i:04d}.fits")
-        plain, _ = maps.read_map(tmp_path / "plain" / f"sky_{i:04d}.fits")
+        forced, _ = maps.read_sky_map(tmp_path / "forced" / f"sky_{i:04d}.fits")
+        plain, _ = maps.read_sky_map(tmp_path / "plain" / f"sky_{i:04d}.fits")
         np.testing.assert_array_equal(forced, plain)
 
 
@@ -1010,7 +1010,7 @@ def test_file_names_with_a_nul_character_are_refused(tmp_path, capsys):
     ids=["count", "sims", "validate-threads", "spectrum-threads"],
 )
 def test_absurd_counts_are_refused_before_any_work(tmp_path, capsys, argv):
-    m = maps.write_map(tmp_path / "m.fits", np.zeros(12 * 16**2))
+    m = maps.write_sky_map(tmp_path / "m.fits", np.zeros(12 * 16**2))
     w = maps.write_mask(tmp_path / "w.fits", maps.latitude_cut_mask(16, 20.0))
     argv = [a.format(tmp=tmp_path, map=m, mask=w) for a in argv]
     with pytest.raises(SystemExit) as exit_info:
@@ -1041,7 +1041,7 @@ def test_api_counts_have_upper_bounds():
     ids=["spectrum-table", "spectrum-figure", "mask", "inspect"],
 )
 def test_an_output_that_is_an_input_is_refused_even_with_overwrite(tmp_path, capsys, argv):
-    m = maps.write_map(tmp_path / "m.fits", np.random.default_rng(0).normal(size=12 * 16**2))
+    m = maps.write_sky_map(tmp_path / "m.fits", np.random.default_rng(0).normal(size=12 * 16**2))
     w = maps.write_mask(tmp_path / "w.fits", maps.apodize_mask(maps.latitude_cut_mask(16, 20.0), 10.0))
     before = {p: p.read_bytes() for p in (m, w)}
     argv = [a.format(tmp=tmp_path, map=m, mask=w) for a in argv]

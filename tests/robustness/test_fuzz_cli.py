@@ -57,12 +57,12 @@ def _make_inputs():
     f = {}
     m8 = rng.normal(0.0, 1e-4, 768)
     m8[:10] = UNSEEN
-    f["map8"] = maps.write_map(_DIR / "map8.fits", m8, unit="uK_CMB", coord="G")
-    f["map16"] = maps.write_map(_DIR / "map16.fits", rng.normal(0.0, 1e-4, 3072), nest=True)
-    f["hits8"] = maps.write_map(_DIR / "hits8.fits", rng.integers(0, 20, 768).astype(float), unit=None)
+    f["map8"] = maps.write_sky_map(_DIR / "map8.fits", m8, unit="uK_CMB", coordinates="G")
+    f["map16"] = maps.write_sky_map(_DIR / "map16.fits", rng.normal(0.0, 1e-4, 3072), nested=True)
+    f["hits8"] = maps.write_sky_map(_DIR / "hits8.fits", rng.integers(0, 20, 768).astype(float), unit=None)
     f["mask8"] = maps.write_mask(_DIR / "mask8.fits", maps.cap_mask(8, 0.0, 30.0, 70.0))
     f["mask16"] = maps.write_mask(_DIR / "mask16.fits", maps.cap_mask(16, 90.0, -20.0, 50.0) * 0.7)
-    f["allmissing"] = maps.write_map(_DIR / "allmissing.fits", np.full(768, UNSEEN))
+    f["allmissing"] = maps.write_sky_map(_DIR / "allmissing.fits", np.full(768, UNSEEN))
     good = f["map8"].read_bytes()
     (_DIR / "cut.fits").write_bytes(good[: len(good) // 2])
     f["truncated"] = _DIR / "cut.fits"

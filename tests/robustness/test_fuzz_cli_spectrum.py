@@ -83,17 +83,17 @@ def _make_inputs():
     d = _DIR / "inputs"
     d.mkdir()
     f = {}
-    f["map16"] = maps.write_map(d / "map16.fits", rng.normal(0.0, 1e-4, 3072))
-    f["map16b"] = maps.write_map(d / "map16b.fits", rng.normal(0.0, 1e-4, 3072), unit="uK_CMB", nest=True)
+    f["map16"] = maps.write_sky_map(d / "map16.fits", rng.normal(0.0, 1e-4, 3072))
+    f["map16b"] = maps.write_sky_map(d / "map16b.fits", rng.normal(0.0, 1e-4, 3072), unit="uK_CMB", nested=True)
     holes = rng.normal(0.0, 1e-4, 3072)
     holes[rng.random(3072) < 0.02] = UNSEEN
-    f["map16_missing"] = maps.write_map(d / "map16_missing.fits", holes)
-    f["map32"] = maps.write_map(d / "map32.fits", rng.normal(0.0, 1e-4, 12288))
+    f["map16_missing"] = maps.write_sky_map(d / "map16_missing.fits", holes)
+    f["map32"] = maps.write_sky_map(d / "map32.fits", rng.normal(0.0, 1e-4, 12288))
     f["mask16"] = maps.write_mask(d / "mask16.fits", maps.cap_mask(16, 0.0, 60.0, 70.0))
     f["mask16b"] = maps.write_mask(d / "mask16b.fits", maps.cap_mask(16, 180.0, -30.0, 80.0) * 0.8)
     f["mask16_tiny"] = maps.write_mask(d / "mask16_tiny.fits", maps.cap_mask(16, 0.0, 0.0, 4.0))
     f["mask32"] = maps.write_mask(d / "mask32.fits", maps.cap_mask(32, 0.0, 60.0, 70.0))
-    f["hits16"] = maps.write_map(d / "hits16.fits", rng.integers(0, 30, 3072).astype(float), unit=None)
+    f["hits16"] = maps.write_sky_map(d / "hits16.fits", rng.integers(0, 30, 3072).astype(float), unit=None)
     good = f["map16"].read_bytes()
     (d / "truncated.fits").write_bytes(good[: len(good) // 2])
     f["truncated"] = d / "truncated.fits"
@@ -197,7 +197,7 @@ _NUMBER = st.one_of(
     st.integers(min_value=-10**6, max_value=10**6).map(str),
     st.sampled_from(["0", "-0", "1e-300", "1e308", "1e999", "nan", "inf", "-inf", "abc", "", " 5 ", "1_0", "0x10"]),
 )
-# no huge counts: --count and --sims have no upper bound yet, and a list of 2**70 indices fills the memory
+# no huge counts: --sims is bounded but large, and a list of 2**70 indices fills the memory
 _BAD_INT = st.sampled_from(["-1", "abc", "", "1.5", "1e3", "0x10", "-0", "2 ", "+3"])
 _EXTREME = st.sampled_from(["1e300", "1e-300", "5e-324", "1.7976931348623157e308", "1e-30", "1e30"])
 
@@ -358,7 +358,7 @@ def test_simulate_command_exits_0_or_2(argv):
         for path in written:
             path = Path(_DIR, path)
             if path.suffix == ".fits":
-                m, info = maps.read_map(path)
+                m, info = maps.read_sky_map(path)
                 assert np.all(np.isfinite(m))
             else:
                 from cmbtools.simulate import read_spectrum_table
@@ -495,7 +495,7 @@ _TOKENS = st.one_of(
                      "--sims", "--lmax", "--seed", "--output-dir", "--run-dir", "--write-spectrum",
                      "--spectrum", "--beam", "--noise-depth", "--overwrite", "--no-progress", "--fiducial",
                      INPUTS["map16"], INPUTS["mask16"], INPUTS["cl"], INPUTS["beam"], "--", "-"]),
-    _ANY_TEXT.filter(lambda t: _at_most(t, 16)),  # no "--count 99999" from random text
+    _ANY_TEXT.filter(lambda t: _at_most(t, 16)),  # no "--sims 99999" from random text
 )
 
 

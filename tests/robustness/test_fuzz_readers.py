@@ -1,6 +1,6 @@
 """Property-based tests of the file readers: any input loads correctly or raises a CmbtoolsError.
 
-Covered: ``maps.read_map`` and ``maps.read_mask`` (random bytes, truncated and
+Covered: ``maps.read_sky_map`` and ``maps.read_mask`` (random bytes, truncated and
 corrupted real FITS files, FITS tables with random shapes, column types and
 header keywords), ``maps.read_positions_csv`` and ``physics.read_bandpass``
 (random and structured text).  For every input the reader either returns a
@@ -61,8 +61,8 @@ def check_loaded_mask(w):
 
 
 def read_both(path, **kwargs):
-    """Run read_map and read_mask on one file and check whatever they return."""
-    result, err, caught = attempt(maps.read_map, path, **kwargs)
+    """Run read_sky_map and read_mask on one file and check whatever they return."""
+    result, err, caught = attempt(maps.read_sky_map, path, **kwargs)
     only_our_warnings(caught)
     if err is None:
         check_loaded_map(*result)
@@ -96,7 +96,7 @@ def _reference_file(nside=4, nest=False, partial=False):
     if partial:
         m[rng.random(m.size) < 0.5] = UNSEEN
     path = new_path(".fits")
-    maps.write_map(path, m, unit="K_CMB", nest=nest, partial=partial, coord="G")
+    maps.write_sky_map(path, m, unit="K_CMB", nested=nest, observed_only=partial, coordinates="G")
     with fits.open(path) as hdul:
         data_end = hdul[1].fileinfo()["datLoc"] + hdul[1].data.nbytes
     return path.read_bytes(), m, data_end
@@ -504,9 +504,9 @@ def test_damaged_tables_are_refused_and_sound_ones_load_exactly(table):
     if facts["is_open"]:
         return
     if facts["fatal_map"]:
-        assert err is not None, f"read_map accepted a file with {what}"
+        assert err is not None, f"read_sky_map accepted a file with {what}"
     else:
-        assert err is None, f"read_map refused a file with {what}: {err}"
+        assert err is None, f"read_sky_map refused a file with {what}: {err}"
         m, info = result
         assert info.nside == facts["nside"] and info.is_partial == facts["partial"]
         assert info.ordering_in_file == ("NESTED" if facts["nest"] else "RING")

@@ -35,11 +35,20 @@ EXPECTED = {
         "peak_rss_gb", "rss_with_inputs_loaded_gb", "first_call_fast_in_child_s", "pixel_window_first_computation_s",
     },
     "W4": {"n_redshifts", "n_astropy", "cmbtools_s", "astropy_s", "astropy_scaled_s", "ratio", "max_rel_diff"},
+    "W5": {
+        "nside", "lmax", "repeats", "temperature_first_call_s", "polarized_first_call_s", "first_call_ratio",
+        "temperature_reuse_s", "polarized_reuse_s", "reuse_ratio",
+    },
+    "W6": {
+        "nside", "lmax", "repeats", "coupling_matrix_s", "auto_covariance_s", "auto_in_coupling_matrices",
+        "cross_covariance_s", "cross_in_coupling_matrices", "new_spectrum_s",
+    },
 }
 TARGETS = {
     "W1.first_call_exact_ratio", "W1.first_call_fast_ratio", "W1.first_call_vs_kernels_ratio", "W1.reuse_ratio",
     "W1.coupling_ratio", "W1.fast_max_rel_diff_all_bins", "W2.simulation_ratio", "W2.workers_speedup",
-    "W3.first_call_fast_ratio", "W3.peak_rss_gb", "W4.ratio", "W4.max_rel_diff",
+    "W3.first_call_fast_ratio", "W3.peak_rss_gb", "W4.ratio", "W4.max_rel_diff", "W5.first_call_ratio",
+    "W5.reuse_ratio", "W6.auto_in_coupling_matrices", "W6.cross_in_coupling_matrices",
 }
 PROFILE_STEPS = (
     "random_numbers", "sky_synthesis", "analysis", "monopole_dipole_removal", "pseudo_spectrum", "map_checks_and_mask",
@@ -57,7 +66,7 @@ def test_quick_run_prints_every_figure(tmp_path):
     )
     assert res.returncode == 0, res.stderr[-2000:]
     report = json.loads(res.stdout)
-    assert set(report) == {"machine", "quick", "W1", "W2", "W3", "W4", "targets"}
+    assert set(report) == {"machine", "quick", "W1", "W2", "W3", "W4", "W5", "W6", "targets"}
     assert report["quick"] is True
     assert report["machine"]["threads"] == 1
     profile = report["W2"].pop("profile")

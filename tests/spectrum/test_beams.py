@@ -61,7 +61,7 @@ def test_gaussian_beam_rejects_bad_lmax(lmax):
 
 def test_round_trip_is_exact(tmp_path):
     b = gaussian_beam(25.0, 1200)
-    path = write_beam(tmp_path / "tern_beam.csv", b, header_comment="Tern Sky Survey, 145 GHz\nGaussian, 25 arcmin")
+    path = write_beam(tmp_path / "tern_beam.csv", b, header="Tern Sky Survey, 145 GHz\nGaussian, 25 arcmin")
     text = path.read_text()
     assert text.startswith("# Tern Sky Survey, 145 GHz\n# Gaussian, 25 arcmin\n")
     assert "\nell,b_ell\n0,1.0\n" in text

@@ -199,3 +199,14 @@ def test_bad_inputs_are_refused():
         est.estimate(np.zeros((3, mask.size)), np.zeros((3, mask.size)), noise_cl={"TT": np.ones(41)})
     with pytest.raises(InvalidInputError, match="unknown spectra"):
         est.estimate(np.zeros((3, mask.size)), noise_cl={"XX": np.ones(41)})
+
+
+def test_memory_estimate_refuses_before_allocating(monkeypatch):
+    from cmbtools.exceptions import CmbtoolsWarning, MemoryLimitError
+
+    monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "1MB")
+    mask = np.ones(12 * 64**2)  # six dense 191 x 191 kernels alone exceed 1 MB
+    with pytest.raises(MemoryLimitError, match="polarized spectrum estimator at nside 64"):
+        PolarizedSpectrumEstimator(mask, Binning.uniform(2, 190, 20), pixel_window=False, nthreads=1)
+    with pytest.warns(CmbtoolsWarning):
+        PolarizedSpectrumEstimator(mask, Binning.uniform(2, 190, 20), pixel_window=False, nthreads=1, force=True)

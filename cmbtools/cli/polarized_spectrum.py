@@ -1,0 +1,150 @@
+"""``cmbtools spectrum`` on I, Q, U maps: the six spectra TT, TE, TB, EE, EB, BB.
+
+The spectrum command hands over here when MAP is an I, Q, U file (three map columns); temperature-only files
+keep the temperature path.  The options mean the same as for temperature; ``--pol-mask``/``--pol-mask2`` give
+the polarization masks (default: the temperature masks) and ``--purify-b`` the B-mode purification.  A
+Gaussian ``--beam-fwhm`` gives the spin-2 Gaussian beam to E and B; a ``--beam`` table applies to both.
+"""
+
+from __future__ import annotations
+
+__all__ = ["is_polarized_input", "add_polarization_options", "run_polarized"]
+
+
+def add_polarization_options(parser):
+    pol = parser.add_argument_group("polarization (MAP and MAP2 holding I, Q, U)")
+    pol.add_argument("--pol-mask", metavar="MASK", help="mask of MAP's Q and U (default: --mask)")
+    pol.add_argument("--pol-mask2", metavar="MASK2", help="mask of MAP2's Q and U (default: --pol-mask, else --mask2)")
+    pol.add_argument("--purify-b", action="store_true",
+                     help="measure B with the pure-B estimator (no E-to-B leakage from the mask; needs an apodized "
+                          "polarization mask; accurate up to lmax = 2 nside)")
+
+
+def is_polarized_input(path) -> bool:
+    """Whether ``path`` is an I, Q, U map file (the maps package decides; unreadable files are left to it)."""
+    try:
+        from cmbtools.maps.fits import is_iqu_file
+    except ImportError:  # the maps package reads I, Q, U files once the maps side of polarization is in place
+        return False
+    try:
+        return bool(is_iqu_file(path))
+    except Exception:  # noqa: BLE001 - an unreadable file is reported by the reader with its own message
+        return False
+
+
+def run_polarized(args, outputs_checked) -> int:
+    """The polarized spectrum command (arguments already parsed; the output paths already checked)."""
+    import contextlib
+    import os
+
+    import numpy as np
+
+    from cmbtools import maps
+    from cmbtools import spectrum as sp
+    from cmbtools._core.checks import check_same_nside
+    from cmbtools._core.files import sha256_file
+    from cmbtools.cli.common import binning_from_args, describe_binning
+    from cmbtools.exceptions import InvalidInputError
+    from cmbtools.maps.fits import read_iqu
+    from cmbtools.spectrum.one_call import drop_missing_pixels
+
+    for flag, given in (("--noise-spectrum", args.noise_spectrum), ("--operator-cache", args.operator_cache),
+                        ("--fast-coupling", args.fast_coupling), ("--write-noise-spectrum", args.write_noise_spectrum)):
+        if given:
+            raise InvalidInputError(f"{flag} applies to temperature maps only; MAP holds I, Q, U "
+                                    "(for the noise bias of I, Q, U maps use --noise-maps or --half-difference).")
+    m1, info1 = read_iqu(args.map, force=args.force)
+    w1 = maps.read_mask(args.mask, force=args.force)
+    p1 = maps.read_mask(args.pol_mask, force=args.force) if args.pol_mask else w1
+    check_same_nside(m1[0], w1, args.map, args.mask)
+    check_same_nside(m1[0], p1, args.map, args.pol_mask or args.mask)
+    m2 = info2 = w2 = p2 = None
+    if args.map2 is not None:
+        m2, info2 = read_iqu(args.map2, force=args.force)
+        check_same_nside(m1[0], m2[0], args.map, args.map2)
+        w2 = maps.read_mask(args.mask2, force=args.force) if args.mask2 else w1
+        if args.pol_mask2:
+            p2 = maps.read_mask(args.pol_mask2, force=args.force)
+        else:
+            p2 = p1 if (args.pol_mask or not args.mask2) else w2
+    nside = int(round(np.sqrt(m1.shape[1] / 12)))
+    lmax = 3 * nside - 1 if args.lmax is None else args.lmax
+
+    def beam_of(fwhm, path):
+        if fwhm is not None:
+            return float(fwhm)
+        if path is not None:
+            return sp.read_beam(path, lmax=lmax)
+        return None
+
+    beam1 = beam_of(args.beam_fwhm, args.beam)
+    beam2 = beam_of(args.beam2_fwhm, args.beam2) if args.map2 is not None else None
+    binning = binning_from_args(args, lmax, float(np.mean(p1)))
+    if binning.lmin < 2:
+        raise InvalidInputError(f"The bins start at ell={binning.lmin}; polarized spectra need bins from ell >= 2.")
+
+    # missing pixels inside a mask: dropped from that mask, with a warning (the library's one rule)
+    w1 = drop_missing_pixels(m1[0], w1, f"{args.map} (I)", "mask", stacklevel=2)
+    for k, f in ((1, "Q"), (2, "U")):
+        p1 = drop_missing_pixels(m1[k], p1, f"{args.map} ({f})", "pol-mask", stacklevel=2)
+    if m2 is not None:
+        w2 = drop_missing_pixels(m2[0], w2, f"{args.map2} (I)", "mask2", stacklevel=2)
+        for k, f in ((1, "Q"), (2, "U")):
+            p2 = drop_missing_pixels(m2[k], p2, f"{args.map2} ({f})", "pol-mask2", stacklevel=2)
+
+    noise_maps = None
+    if args.noise_maps:
+        noise_maps = [read_iqu(p, force=args.force)[0] for p in args.noise_maps]
+    elif args.half_difference:
+        h1, h2 = (read_iqu(p, force=args.force)[0] for p in args.half_difference)
+        noise_maps = [0.5 * (h1 - h2)]
+    for n in noise_maps or ():
+        if n.shape != m1.shape:
+            raise InvalidInputError(f"The noise maps must be I, Q, U maps of nside {nside} like MAP.")
+
+    est = sp.PolarizedSpectrumEstimator(
+        w1, binning, pol_mask=p1, lmax=lmax, mask2=w2, pol_mask2=p2, beam=beam1, beam2=beam2,
+        pixel_window=not args.no_pixel_window, remove_monopole_dipole=not args.keep_monopole_dipole,
+        purify_b=args.purify_b, nthreads=args.threads or None,
+    )
+    bp = est.estimate(m1, m2, noise_maps=noise_maps)
+    meta = dict(bp.metadata)
+    meta.update({"map": str(args.map), "map_sha256": info1.sha256, "mask_file": str(args.mask),
+                 "mask_file_sha256": sha256_file(args.mask)})
+    if args.pol_mask:
+        meta.update({"pol_mask_file": str(args.pol_mask), "pol_mask_file_sha256": sha256_file(args.pol_mask)})
+    if m2 is not None:
+        meta.update({"map2": str(args.map2), "map2_sha256": info2.sha256})
+    bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, bp.cl_err, bp.dl, bp.dl_err, bp.covariance, meta)
+
+    theory = None
+    if args.theory is not None:
+        from cmbtools._core.tables import read_polarized_spectrum_table
+
+        theory = {k: v for k, v in read_polarized_spectrum_table(args.theory).items() if k in sp.SPECTRA}
+
+    written = []
+    try:
+        written.append(bp.write_csv(args.output, overwrite=args.overwrite, unit=args.unit))
+        if args.fits is not None:
+            written.append(bp.write_fits(args.fits, overwrite=args.overwrite, unit=args.unit))
+        if args.figure is not None:
+            written.append(bp.plot(args.figure, theory=theory, overwrite=args.overwrite))
+    except BaseException:
+        for p in written:
+            with contextlib.suppress(OSError):
+                os.unlink(p)
+        raise
+
+    kind = "polarized cross-spectra" if m2 is not None else "polarized spectra"
+    what = f"{args.map} x {args.map2}" if m2 is not None else str(args.map)
+    print(f"{kind} (TT, TE, TB, EE, EB, BB) of {what}: nside {nside}, lmax {est.lmax}")
+    print(f"  sky fraction: temperature f_sky {est.f_sky:.3f}, polarization f_sky {est.pol_f_sky:.3f}")
+    print(f"  {describe_binning(binning)}")
+    print(f"  beam: {meta['beam']}; polarization beam: {meta['pol_beam']}; pixel window: {meta['pixel_window']}")
+    print(f"  B-mode purification: {'yes' if args.purify_b else 'no'}; condition number {est.condition_number:.3g}")
+    if noise_maps is not None:
+        print(f"  noise bias subtracted: {meta['noise_bias_subtracted']}")
+    for p in written:
+        print(f"  wrote {p}")
+    return 0

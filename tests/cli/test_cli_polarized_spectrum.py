@@ -1,0 +1,74 @@
+"""``cmbtools spectrum`` on I, Q, U files: the six spectra in one table, refused options, temperature unchanged.
+
+When the maps package has no I, Q, U reader yet, a stand-in built on healpy's FITS reader is used (the
+command's wiring is what is checked here; the reader has its own tests in the maps package).
+"""
+
+from __future__ import annotations
+
+import hashlib
+
+import healpy as hp
+import numpy as np
+import pytest
+
+from cmbtools.cli import main
+from cmbtools.maps import fits as map_fits
+from cmbtools.maps.masks import apodize_mask, cap_mask
+from cmbtools.spectrum import SPECTRA, PolarizedBandpowers
+
+
+class _Info:
+    def __init__(self, path):
+        self.sha256 = hashlib.sha256(open(path, "rb").read()).hexdigest()
+
+
+@pytest.fixture
+def iqu_files(tmp_path, monkeypatch):
+    if not hasattr(map_fits, "read_iqu"):
+        monkeypatch.setattr(map_fits, "is_iqu_file", lambda p: len(hp.read_map(p, field=None, dtype=None)) == 3
+                            if np.ndim(hp.read_map(p, field=None, dtype=None)) == 2 else False, raising=False)
+        monkeypatch.setattr(map_fits, "read_iqu", lambda p, force=False: (
+            np.array(hp.read_map(p, field=(0, 1, 2), dtype=np.float64)), _Info(p)), raising=False)
+    nside, lmax = 32, 64
+    rng = np.random.default_rng(11)
+    ell = np.arange(lmax + 1.0)
+    shape = np.where(ell >= 2, 1e-10 / (ell + 5.0) ** 2, 0.0)
+    n = hp.Alm.getsize(lmax)
+    lidx = hp.Alm.getlm(lmax)[0]
+    alm = [np.sqrt(a * shape[lidx]) * (rng.standard_normal(n) + 1j * rng.standard_normal(n)) / np.sqrt(2.0)
+           for a in (1.0, 0.3, 0.05)]
+    for a in alm:
+        a[: lmax + 1] = a[: lmax + 1].real * np.sqrt(2.0)
+    sky = hp.alm2map(alm, nside, lmax=lmax, pol=True)
+    files = {}
+    for k in (1, 2):
+        m = sky + rng.standard_normal(sky.shape) * 1e-7
+        files[f"half{k}"] = tmp_path / f"half{k}.fits"
+        hp.write_map(files[f"half{k}"], m, dtype=np.float64, column_units="K_CMB")
+    mask = apodize_mask(cap_mask(nside, 0.0, 60.0, 50.0), 8.0, nthreads=1)
+    files["mask"] = tmp_path / "mask.fits"
+    hp.write_map(files["mask"], mask, dtype=np.float64)
+    return files
+
+
+def test_iqu_cross_spectra_in_one_table(iqu_files, tmp_path, capsys):
+    out, fig = tmp_path / "pol.csv", tmp_path / "pol.png"
+    code = main(["spectrum", str(iqu_files["half1"]), str(iqu_files["half2"]), "--mask", str(iqu_files["mask"]),
+                 "--bin-width", "8", "--lmax", "64", "--no-pixel-window", "--purify-b", "-o", str(out),
+                 "--figure", str(fig), "--threads", "1"])
+    assert code == 0
+    text = capsys.readouterr().out
+    assert "polarized cross-spectra (TT, TE, TB, EE, EB, BB)" in text and "B-mode purification: yes" in text
+    bp = PolarizedBandpowers.read_csv(out)
+    assert bp.cl.shape[0] == len(SPECTRA) and bp.metadata["b_mode_purification"] == "yes"
+    assert np.all(bp.cl[SPECTRA.index("EE")][1:] > 0)
+    assert fig.stat().st_size > 10000
+
+
+def test_iqu_refuses_temperature_only_options(iqu_files, tmp_path, capsys):
+    code = main(["spectrum", str(iqu_files["half1"]), "--mask", str(iqu_files["mask"]), "--fast-coupling",
+                 "-o", str(tmp_path / "x.csv")])
+    assert code == 2
+    assert "--fast-coupling applies to temperature maps only" in capsys.readouterr().err
+    assert not (tmp_path / "x.csv").exists()

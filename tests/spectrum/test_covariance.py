@@ -1,0 +1,190 @@
+"""The analytic Gaussian covariance, the simulated covariance and the covariance files."""
+
+from __future__ import annotations
+
+import math
+import types
+
+import healpy as hp
+import numpy as np
+import pytest
+
+from cmbtools.exceptions import CmbtoolsError, InputFileError, InvalidInputError
+from cmbtools.maps import apodize_mask, cap_mask
+from cmbtools.spectrum import (
+    Binning,
+    GaussianCovariance,
+    PixelNoise,
+    SpectrumEstimator,
+    coupling,
+    gaussian_beam,
+    hartlap_factor,
+    read_covariance,
+    simulated_covariance,
+)
+from cmbtools.spectrum.covariance import BandpowerCovariance, coupled_spectrum
+from cmbtools._core import sht
+
+
+def test_coupled_spectrum_is_the_coupling_matrix_times_the_spectrum():
+    # the correlation-function route must equal M @ C with M from ducc0's kernel (Hivon et al. 2002, eq. A31)
+    w = apodize_mask(cap_mask(16, 10.0, 30.0, 40.0), 8.0, nthreads=1)
+    lmax = 40
+    wl = sht.map_spectra([w], 2 * lmax, nthreads=1)[0]
+    cl = 1.0 / (np.arange(lmax + 1) + 2.0) ** 2
+    m = coupling.coupling_matrix(wl, lmax, nthreads=1)
+    np.testing.assert_allclose(coupled_spectrum(wl, cl, lmax), m @ cl, rtol=1e-10)
+
+
+def _full_sky_estimator(nside=16, lmax=32):
+    bins = Binning(np.arange(2, lmax + 1), np.arange(2, lmax + 1), weighting="cl")
+    return SpectrumEstimator(np.ones(12 * nside**2), bins, lmax=lmax, pixel_window=False,
+                             remove_monopole_dipole=False, nthreads=1)
+
+
+def test_full_sky_uniform_noise_is_the_knox_formula():
+    # Knox 1995, PRD 52, 4307: Var(C_l) = 2 (C_l + N_l)^2 / (2l + 1) on the full sky with uniform white noise
+    est = _full_sky_estimator()
+    ell = np.arange(33)
+    cl = np.where(ell >= 2, 1e-10 * 100.0 / (ell + 10.0) ** 2, 0.0)
+    noise = PixelNoise.uniform(16, 200.0)
+    n = noise.white_noise
+    cov = GaussianCovariance(est, noise=noise, nthreads=1).covariance(cl)
+    expected = 2.0 * (cl[2:] + n) ** 2 / (2 * ell[2:] + 1)
+    np.testing.assert_allclose(np.diag(cov.matrix), expected, rtol=2e-3)
+    off = cov.matrix - np.diag(np.diag(cov.matrix))
+    assert np.max(np.abs(off)) < 1e-3 * np.max(expected)
+
+
+def test_full_sky_cross_spectrum_of_two_noisy_maps():
+    # the cross-spectrum variance (C^2 + (C + N1)(C + N2)) / (2l + 1), the Knox formula for cross-spectra (common practice)
+    est = _full_sky_estimator()
+    ell = np.arange(33)
+    cl = np.where(ell >= 2, 1e-10 * 100.0 / (ell + 10.0) ** 2, 0.0)
+    n1, n2 = PixelNoise.uniform(16, 150.0), PixelNoise.uniform(16, 300.0)
+    cov = GaussianCovariance(est, noise=n1, noise2=n2, cross=True, nthreads=1).covariance(cl)
+    c = cl[2:]
+    expected = (c**2 + (c + n1.white_noise) * (c + n2.white_noise)) / (2 * ell[2:] + 1)
+    np.testing.assert_allclose(np.diag(cov.matrix), expected, rtol=2e-3)
+
+
+def test_noise_from_hits_keeps_the_depth_as_the_mean_noise_power():
+    hits = np.linspace(0.5, 2.0, 12 * 8**2)
+    noise = PixelNoise.from_hits(hits, 40.0)
+    # N_white = (depth in K rad)^2 (common practice); the depth is the rms over the observed pixels
+    assert noise.white_noise == pytest.approx((40e-6 * math.pi / 10800) ** 2, rel=1e-12)
+    ratio = noise.variance / noise.variance.mean()
+    np.testing.assert_allclose(ratio, (1 / hits) / np.mean(1 / hits), rtol=1e-12)
+
+
+def test_noise_from_noise_maps_recovers_variance_and_white_shape(rng):
+    nside = 8
+    sigma = np.linspace(1.0, 3.0, 12 * nside**2) * 1e-6
+    maps = [rng.standard_normal(sigma.size) * sigma for _ in range(800)]
+    noise = PixelNoise.from_noise_maps(maps, nthreads=1)
+    # 400 draws: the variance of each pixel within 5 of its standard errors sqrt(2/400)
+    assert np.max(np.abs(noise.variance / sigma**2 - 1)) < 5 * math.sqrt(2 / 400)
+    shape = noise.shape_to(3 * nside - 1)
+    assert np.max(np.abs(shape[2:] - 1)) < 0.1
+
+
+def test_hartlap_factor_and_the_inverse_of_a_simulated_covariance(rng):
+    # Hartlap, Simon & Schneider 2007, A&A 464, 399, eq. 17: (n - p - 2) / (n - 1)
+    assert hartlap_factor(400, 16) == pytest.approx(382 / 399)
+    with pytest.raises(InvalidInputError, match="at least 19 simulations"):
+        hartlap_factor(18, 16)
+    x = rng.standard_normal((50, 4))
+    cov = simulated_covariance(x, ell_min=[2, 10, 20, 30], ell_max=[9, 19, 29, 39], ell_eff=[5.5, 14.5, 24.5, 34.5])
+    np.testing.assert_allclose(cov.matrix, np.cov(x, rowvar=False))
+    np.testing.assert_allclose(cov.inverse(), np.linalg.inv(np.cov(x, rowvar=False)) * (50 - 4 - 2) / 49, rtol=1e-10)
+
+
+@pytest.mark.parametrize("suffix", [".npz", ".fits"])
+def test_covariance_files_round_trip(tmp_path, suffix, rng):
+    a = rng.standard_normal((3, 3))
+    c = BandpowerCovariance([2, 10, 20], [9, 19, 29], [5.5, 14.5, 24.5], a @ a.T, rng.random((3, 30)),
+                            kind="simulation", n_sims=77, settings={"spectrum": "auto"})
+    path = c.write(tmp_path / f"cov{suffix}")
+    back = read_covariance(path)
+    np.testing.assert_array_equal(back.matrix, c.matrix)
+    np.testing.assert_array_equal(back.windows, c.windows)
+    np.testing.assert_array_equal(back.ell_max, c.ell_max)
+    assert (back.kind, back.n_sims) == ("simulation", 77)
+    with pytest.raises(CmbtoolsError, match="exists"):
+        c.write(path)
+    bad = tmp_path / f"bad{suffix}"
+    bad.write_bytes(b"not a covariance")
+    with pytest.raises(InputFileError):
+        read_covariance(bad)
+
+
+# ----------------------------------------------------------------------------- Monte Carlo
+
+NSIDE, NSIDE_FINE = 32, 64
+
+
+def _survey():
+    w1 = cap_mask(NSIDE, 30.0, 40.0, 60.0)
+    w2 = cap_mask(NSIDE, 50.0, 30.0, 55.0)
+    for w, centres in ((w1, [(20, 45), (40, 30), (35, 60)]), (w2, [(60, 20), (45, 40)])):
+        for lon, lat in centres:
+            w[hp.query_disc(NSIDE, hp.ang2vec(lon, lat, lonlat=True), math.radians(4.0))] = 0.0
+    w1 = apodize_mask(w1, 6.0, nthreads=1)
+    w2 = apodize_mask(w2, 5.0, nthreads=1)
+    vec = np.array(hp.pix2vec(NSIDE, np.arange(12 * NSIDE**2))).T
+    dist = np.degrees(np.arccos(np.clip(vec @ hp.ang2vec(30.0, 40.0, lonlat=True), -1, 1)))
+    phi = hp.pix2ang(NSIDE, np.arange(12 * NSIDE**2))[1]
+    hits = 0.15 + np.exp(-0.5 * (dist / 25.0) ** 2) * (1 + 0.3 * np.cos(8 * phi))
+    return w1, w2, hits
+
+
+@pytest.mark.slow
+def test_gaussian_errors_match_the_scatter_of_simulations():
+    """800 skies with power to 4 nside, pixelised by averaging a finer map, beam of two pixels, hits noise.
+
+    Every reported bin from the second on must have simulated scatter / error in [0.9, 1.1] (the
+    ratio's own standard error is 1/sqrt(2 * 799) = 2.5 %), for the auto-spectrum and for the
+    cross-spectrum of two maps with different masks and noises; neighbouring-bin correlations
+    within 3 standard errors (1/sqrt(800)) of the simulated ones.  The first bin (ell 2-17) is
+    judged separately: the monopole and dipole removal takes variance out of it that the
+    Gaussian approximation does not model, so its error is conservative (ratio 0.7-1.0).
+    """
+    from cmbtools.simulate import fiducial_cl, gaussian_alm, simulation_rng
+
+    w1, w2, hits = _survey()
+    fwhm = 2 * hp.nside2resol(NSIDE, arcmin=True)
+    lmax = 3 * NSIDE - 1
+    bins = Binning.uniform(2, lmax, 16)
+    est_a = SpectrumEstimator(w1, bins, beam=fwhm, lmax=lmax, nthreads=1)
+    est_x = SpectrumEstimator(w1, bins, mask2=w2, beam=fwhm, lmax=lmax, nthreads=1)
+    n1 = PixelNoise.from_hits(hits, 600.0)
+    n2 = PixelNoise.from_hits(np.roll(hits, 700), 800.0)
+    l_fine = 4 * NSIDE - 1
+    cl = fiducial_cl(l_fine)
+    cl[:2] = 0.0
+    bl = gaussian_beam(fwhm, l_fine)
+    auto, cross = [], []
+    for i in range(800):
+        rng = simulation_rng(11, i)
+        alm = sht.almxfl(gaussian_alm(cl, l_fine, rng=rng), bl, l_fine)
+        sky = hp.ud_grade(sht.alm2map(alm, NSIDE_FINE, l_fine, nthreads=1), NSIDE)
+        m1 = sky + rng.standard_normal(sky.size) * np.sqrt(n1.variance)
+        m2 = sky + rng.standard_normal(sky.size) * np.sqrt(n2.variance)
+        auto.append(est_a.estimate(m1).cl)
+        cross.append(est_x.estimate(m1, m2).cl)
+    for samples, gauss in ((np.array(auto), GaussianCovariance(est_a, noise=n1, beam=fwhm, nthreads=1)),
+                           (np.array(cross), GaussianCovariance(est_x, noise=n1, noise2=n2, cross=True, beam=fwhm,
+                                                                nthreads=1))):
+        cov = gauss.covariance(cl)  # the input spectrum to 4 nside - 1
+        # the errors from each simulation's own bandpowers (what is reported for a measured map)
+        bias = gauss.noise_bandpowers()
+        measured = np.mean([gauss.covariance(types.SimpleNamespace(cl=s - bias, ell_eff=bins.ell_eff)).errors
+                            for s in samples[:100]], axis=0)
+        for errors in (cov.errors, measured):
+            ratio = samples.std(axis=0, ddof=1) / errors
+            assert np.all((ratio[1:] > 0.9) & (ratio[1:] < 1.1)), ratio
+            assert 0.7 < ratio[0] < 1.05, ratio
+        sim = np.corrcoef(samples, rowvar=False)
+        th = cov.correlation
+        k = np.arange(bins.n_bins - 1)
+        assert np.all(np.abs(sim[k, k + 1] - th[k, k + 1]) < 3 / math.sqrt(800))
