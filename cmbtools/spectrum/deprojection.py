@@ -68,6 +68,9 @@ __all__ = [
 #: (:func:`coarse_grid_deprojection_bias`).
 COARSE_NSIDE = 256
 
+#: Width (multipoles) of the running mean of the mask spectrum that shapes the coarse-grid bias above 2 COARSE_NSIDE.
+_TAIL_SMOOTHING = 21
+
 #: Templates whose normalised normal matrix has a larger condition number are refused (degenerate on the mask).
 MAX_TEMPLATE_CONDITION = 1e12
 
@@ -355,9 +358,9 @@ def coarse_grid_deprojection_bias(mask, signal_cl, lmax, mask_cl, *, mask2=None,
     :func:`deprojection_bias` of the monopole and dipole removal runs there up
     to ``2 coarse_nside`` (the guess spectrum cut at ``3 coarse_nside - 1``).
     Above that multipole the bias is taken proportional to the mask spectrum
-    ``mask_cl`` (of the fine mask: the bias of a removal of smooth templates
-    is mask power at those scales), with the factor fitted by least squares
-    on ``coarse_nside .. 2 coarse_nside``.  Maps at or below ``coarse_nside``
+    ``mask_cl`` of the fine mask averaged over 21 multipoles (the bias of a
+    removal of smooth templates is mask power at those scales), with the
+    factor fitted by least squares on ``coarse_nside .. 2 coarse_nside``.  Maps at or below ``coarse_nside``
     get the exact :func:`deprojection_bias`.
 
     Accuracy (nside 256 against the exact bias on the grid, ``coarse_nside``
@@ -407,7 +410,11 @@ def coarse_grid_deprojection_bias(mask, signal_cl, lmax, mask_cl, *, mask2=None,
     delta = np.zeros(lmax + 1)
     delta[: top + 1] = low
     if lmax > top:
-        wl = np.asarray(mask_cl, dtype=np.float64)[: lmax + 1]
+        # the shape: the mask spectrum averaged over _TAIL_SMOOTHING multipoles (the bias follows its envelope,
+        # not the oscillations of a sharp-edged mask's spectrum)
+        raw = np.asarray(mask_cl, dtype=np.float64)[: lmax + 1]
+        half = _TAIL_SMOOTHING // 2
+        wl = np.convolve(np.pad(raw, half, mode="edge"), np.full(_TAIL_SMOOTHING, 1.0 / _TAIL_SMOOTHING), mode="valid")
         fit = slice(coarse_nside, top + 1)
         norm = float(np.dot(wl[fit], wl[fit]))
         factor = float(np.dot(low[fit], wl[fit])) / norm if norm > 0 else 0.0
