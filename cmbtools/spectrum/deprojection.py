@@ -363,13 +363,13 @@ def coarse_grid_deprojection_bias(mask, signal_cl, lmax, mask_cl, *, mask2=None,
     factor fitted by least squares on ``coarse_nside .. 2 coarse_nside``.  Maps at or below ``coarse_nside``
     get the exact :func:`deprojection_bias`.
 
-    Accuracy (nside 256 against the exact bias on the grid, ``coarse_nside``
-    128; row factors ``delta / (M S)`` with the fiducial spectrum): largest
-    difference 1.2e-4 for a tapered cap with tapered holes and 1.7e-5 for an
-    apodized latitude cut below ``2 coarse_nside``, 2.7e-4 and 1.9e-3 above it
-    for a cap with unapodized holes (see DEVELOPERS.md for the figures at
-    nside 1024).  The cost is that of a few transforms at ``coarse_nside``
-    instead of three transforms per template at the map's resolution.
+    Accuracy (nside 1024 against the exact bias on the grid, row factors
+    ``delta / (M S)`` with the fiducial spectrum): largest difference 5e-6
+    for an apodized latitude cut, 3.7e-5 for a tapered cap with tapered
+    holes, 3.3e-4 below ``2 coarse_nside`` and 4.2e-3 above it for a cap with
+    unapodized edges and holes (where the exact factor reaches 2.3e-2).  The
+    cost is that of a few transforms at ``coarse_nside`` instead of three
+    transforms per template at the map's resolution.
 
     Parameters
     ----------

@@ -126,7 +126,11 @@ class SpectrumEstimator:
     correct_deprojection_bias : bool, default=True
         Correct the bias that removing the monopole, dipole and templates
         causes (Elsner, Leistedt & Peiris 2016, MNRAS 456, 2095; see
-        :mod:`cmbtools.spectrum.deprojection`), from ``guess_cl``.
+        :mod:`cmbtools.spectrum.deprojection`), from ``guess_cl``.  Exact
+        on the map's grid; above nside 256, without templates, the monopole
+        and dipole's bias comes from the mask averaged to nside 256
+        (:func:`~cmbtools.spectrum.deprojection.coarse_grid_deprojection_bias`,
+        accurate to a few 1e-5 of the pseudo-power on tapered masks).
     coupling : {'exact', 'fast'}, default='exact'
         ``'fast'`` uses the approximation of Louis et al. 2020 (PRD 102,
         123538) for large lmax: exact rows below ``fast_exact_below``, a band of
