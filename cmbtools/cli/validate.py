@@ -351,8 +351,8 @@ def run(args) -> int:
     print(f"  error bars ({meta.get('error_model', 'analytic')}): scatter / error = "
           f"{num('median_error_ratio', '.3f')} (median; {num('min_error_ratio', '.3f')} to "
           f"{num('max_error_ratio', '.3f')} over the bins)")
-    print(f"  transfer (mean / expected): median {num('median_transfer', '.4f')}, from "
-          f"{float(np.nanmin(result.transfer)):.4f} to {float(np.nanmax(result.transfer)):.4f}"
-          + (f" (harmonic filter {args.harmonic_filter})" if args.harmonic_filter else ""))
+    print(f"  transfer (mean / expected): median {num('median_transfer', '.4f')}"
+          + (f", from {float(np.nanmin(result.transfer)):.4f} to {float(np.nanmax(result.transfer)):.4f} "
+             f"(harmonic filter {args.harmonic_filter})" if args.harmonic_filter else ""))
     print("  wrote " + ", ".join(str(p) for p in written))
     return 0
