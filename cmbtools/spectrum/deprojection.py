@@ -346,8 +346,11 @@ def _averaged_down(w, nside_out):
 
     nside_in = int(round(np.sqrt(w.size / 12)))
     k = (nside_in // nside_out) ** 2
-    nest = hp.reorder(np.asarray(w, dtype=np.float64), r2n=True)
-    return hp.reorder(nest.reshape(-1, k).mean(axis=1), n2r=True)
+    sums = np.zeros(12 * nside_out * nside_out)
+    for s in range(0, w.size, _CHUNK):  # no full-size temporary: the NESTED parent of each RING pixel, in chunks
+        pix = np.arange(s, min(w.size, s + _CHUNK))
+        sums += np.bincount(hp.ring2nest(nside_in, pix) // k, weights=w[s:s + pix.size], minlength=sums.size)
+    return hp.reorder(sums / k, n2r=True)
 
 
 def coarse_grid_deprojection_bias(mask, signal_cl, lmax, mask_cl, *, mask2=None, coarse_nside=COARSE_NSIDE,
