@@ -50,6 +50,8 @@ removes the excess of the top bins (nside 64, beam of one pixel, bins to
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 from cmbtools._core import sht as _sht
@@ -78,10 +80,22 @@ _CHUNK = 1 << 20
 _S0, _S10, _S11 = np.sqrt(4 * np.pi), np.sqrt(4 * np.pi / 3), np.sqrt(8 * np.pi / 3)
 
 
+@functools.lru_cache(maxsize=2)
+def _small_grid_vectors(nside):
+    """The RING pixel-centre unit vectors of a small grid (nside <= COARSE_NSIDE), shape (3, npix), read-only."""
+    import healpy as hp
+
+    v = np.array(hp.pix2vec(nside, np.arange(12 * nside * nside)))
+    v.setflags(write=False)
+    return v
+
+
 def _pixel_vector_component(nside, k):
     """Component ``k`` (0 x, 1 y, 2 z) of the RING pixel-centre unit vectors (chunked)."""
     import healpy as hp
 
+    if nside <= COARSE_NSIDE:
+        return _small_grid_vectors(nside)[k]
     npix = 12 * nside * nside
     out = np.empty(npix)
     for s in range(0, npix, _CHUNK):
@@ -308,11 +322,12 @@ def deprojection_bias(deprojection, signal_cl, lmax, *, deprojection2=None, nthr
     h2 = sums(d2) if cross else h1
     g1 = [omega * _truncate(h, lw, lmax) for h in h1]
     g2 = [omega * _truncate(h, lw, lmax) for h in h2] if cross else g1
-    two_l = 2.0 * np.arange(lw + 1) + 1.0
-    sigma = np.empty((d1.n_templates, d2.n_templates))
-    for j in range(d1.n_templates):
-        for n in range(d2.n_templates):
-            sigma[j, n] = float(np.sum(two_l * s_ext * _sht.alm2cl(h1[j], h2[n], lmax=lw)))
+    # Sigma_jn = sum_l (2l+1) S_l C_l[H_j, H_n] = sum_lm S_l Re(H_j,lm conj H_n,lm) over m = -l..l:
+    # twice the sum over the stored m >= 0 minus the m = 0 terms (the first lw+1 entries)
+    sh2 = np.array([_sht.almxfl(h, s_ext, lw) for h in h2])
+    stacked1 = np.array(h1)
+    sigma = 2.0 * (stacked1 @ sh2.conj().T).real - (stacked1[:, : lw + 1] @ sh2[:, : lw + 1].conj().T).real
+    del sh2, stacked1
 
     def covariance_times(h_list, w_other):
         # Y_j = quadrature transform of w_other * (S g_j): E[(w_other d_other)_lm (g_j . d)]
@@ -326,17 +341,21 @@ def deprojection_bias(deprojection, signal_cl, lmax, *, deprojection2=None, nthr
     y12 = covariance_times(h1, d2.mask)
     y21 = covariance_times(h2, d1.mask) if cross else y12
     a1, a2 = d1.normal_inverse, d2.normal_inverse
+    inner = a1 @ sigma @ a2
+
+    def combined(coeffs, alms):  # sum_j coeffs[j] alms[j] (real coefficients: C_l is linear in each argument)
+        out = np.zeros_like(alms[0])
+        for c, a in zip(coeffs, alms):
+            out += c * a
+        return out
+
     delta = np.zeros(lmax + 1)
     for i in range(d1.n_templates):
-        for j in range(d1.n_templates):
-            delta -= a1[i, j] * _sht.alm2cl(g1[i], y12[j], lmax=lmax)
+        delta -= _sht.alm2cl(g1[i], combined(a1[i], y12), lmax=lmax)
     for k in range(d2.n_templates):
-        for n in range(d2.n_templates):
-            delta -= a2[k, n] * _sht.alm2cl(y21[n], g2[k], lmax=lmax)
-    inner = a1 @ sigma @ a2
+        delta -= _sht.alm2cl(combined(a2[k], y21), g2[k], lmax=lmax)
     for i in range(d1.n_templates):
-        for k in range(d2.n_templates):
-            delta += inner[i, k] * _sht.alm2cl(g1[i], g2[k], lmax=lmax)
+        delta += _sht.alm2cl(g1[i], combined(inner[i], g2), lmax=lmax)
     return delta
 
 
