@@ -44,7 +44,27 @@ from cmbtools.spectrum.storage import load_estimator, load_or_build, save_estima
 __all__ = ["SpectrumEstimator", "MAX_CONDITION_NUMBER"]
 
 
-def _check_estimator_memory(mask, binning, *, lmax, mask2, n_iter, covariance, force) -> int | None:
+def _bias_bytes(nside, lmax, mask2, settings):
+    """Bytes of the deprojection-bias correction the settings ask for (0 when there is none)."""
+    from cmbtools._core.memory import estimate_deprojection_bias_bytes
+    from cmbtools.spectrum.deprojection import COARSE_NSIDE
+
+    templates = settings.get("templates") or ()
+    remove = settings.get("remove_monopole_dipole", True) is True
+    if settings.get("correct_deprojection_bias", True) is not True:
+        return 0
+    try:
+        n_user = len(templates)
+    except TypeError:
+        return 0
+    sky_lmax = settings.get("sky_lmax")
+    return estimate_deprojection_bias_bytes(
+        nside, lmax, n_templates=4 * remove + n_user, sky_lmax=sky_lmax if isinstance(sky_lmax, int) else None,
+        cross=mask2 is not None, grid_nside=COARSE_NSIDE if n_user == 0 else None,
+    )
+
+
+def _check_estimator_memory(mask, binning, *, lmax, mask2, n_iter, covariance, force, settings=None) -> int | None:
     """Refuse, before any large allocation, an estimator whose construction would not fit in memory.
 
     The byte model is :func:`cmbtools._core.memory.estimate_estimator_bytes`.
@@ -64,6 +84,7 @@ def _check_estimator_memory(mask, binning, *, lmax, mask2, n_iter, covariance, f
         cross=mask2 is not None,
         refine=refine,
         covariance=isinstance(covariance, (bool, np.bool_)) and bool(covariance),
+        bias_bytes=_bias_bytes(nside, lmax, mask2, settings or {}),
     )
     return check_memory(need, f"Building the spectrum estimator at nside {nside} with lmax {lmax}", force=force)
 
@@ -246,6 +267,7 @@ class SpectrumEstimator:
         _check_estimator_memory(
             mask, binning, lmax=settings.get("lmax"), mask2=settings.get("mask2"),
             n_iter=settings.get("n_iter", 0), covariance=settings.get("covariance", False), force=force,
+            settings=settings,
         )
         inputs = resolve_settings(mask, binning, nthreads=nthreads, **settings)
         state = build_operator(inputs, nthreads)
