@@ -42,6 +42,11 @@ def check_polarization_options(args):
         return
     if args.fast_coupling:
         raise InvalidInputError("--fast-coupling is not available with --polarized (its couplings are exact).")
+    for flag, given in (("--harmonic-filter", getattr(args, "harmonic_filter", None)),
+                        ("--transfer-table", getattr(args, "transfer_table", None))):
+        if given is not None:
+            raise InvalidInputError(f"{flag} applies to temperature validation only; it is not available with "
+                                    "--polarized.")
     if args.tensor_ratio is not None:
         if args.spectrum is not None:
             raise InvalidInputError("--tensor-ratio sets the built-in spectra; it cannot be combined with --spectrum.")
@@ -169,7 +174,7 @@ def run_polarized(args, outputs, run_dir, where) -> int:
             written.append(result.write_csv(path, overwrite=overwrite, unit=args.unit))
         elif what == "JSON summary":
             written.append(result.write_json(path, overwrite=overwrite))
-        else:
+        elif what == "figure":
             written.append(result.plot(path, overwrite=overwrite))
 
     s = result.summary()
