@@ -43,6 +43,7 @@ def check_polarization_options(args):
     if args.fast_coupling:
         raise InvalidInputError("--fast-coupling is not available with --polarized (its couplings are exact).")
     for flag, given in (("--harmonic-filter", getattr(args, "harmonic_filter", None)),
+                        ("--transfer", getattr(args, "transfer", None)),
                         ("--transfer-table", getattr(args, "transfer_table", None))):
         if given is not None:
             raise InvalidInputError(f"{flag} applies to temperature validation only; it is not available with "
