@@ -45,9 +45,9 @@ from cmbtools.spectrum.covariance import (
     write_covariance,
 )
 from cmbtools.spectrum.estimator import MAX_CONDITION_NUMBER, SpectrumEstimator
-from cmbtools.spectrum.one_call import estimate_spectrum
+from cmbtools.spectrum.one_call import estimate_polarized_spectra, estimate_spectrum
 from cmbtools.spectrum.pixel_windows import pixel_window, polarization_pixel_window
-from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator, estimate_polarized_spectra
+from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator
 from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
 
 __all__ = [
