@@ -282,7 +282,7 @@ def run(args) -> int:
         else:
             written.append(result.plot(path, overwrite=overwrite))
     # the simulated covariance of the bandpowers, usable by `cmbtools spectrum --covariance-from`
-    from cmbtools.spectrum.covariance import simulated_covariance
+    from cmbtools.spectrum.bandpower_covariance import simulated_covariance
 
     windows = est.cross_bandpower_windows if cross else est.bandpower_windows
     simulated = simulated_covariance(
