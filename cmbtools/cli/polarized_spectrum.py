@@ -119,7 +119,7 @@ def run_polarized(args, outputs_checked) -> int:
 
     theory = None
     if args.theory is not None:
-        from cmbtools._core.tables import read_polarized_spectrum_table
+        from cmbtools._core.spectrum_tables import read_polarized_spectrum_table
 
         theory = {k: v for k, v in read_polarized_spectrum_table(args.theory).items() if k in sp.SPECTRA}
 

@@ -204,7 +204,7 @@ def run(args) -> int:
             hits, _info = maps.read_sky_map(args.hits, unit="K", force=args.force)
         noise = NoiseModel(depth_uk_arcmin=args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
     if args.spectrum is not None:
-        from cmbtools._core.tables import read_spectrum_table
+        from cmbtools._core.spectrum_tables import read_spectrum_table
 
         cl = np.asarray(read_spectrum_table(args.spectrum), dtype=np.float64)
         if cl.size < lmax + 1:
@@ -242,7 +242,7 @@ def run(args) -> int:
         cl = fiducial_cl(sky_lmax)
     harmonic_filter = None
     if args.harmonic_filter is not None:
-        from cmbtools._core.tables import read_filter_table
+        from cmbtools._core.binned_tables import read_filter_table
 
         harmonic_filter = read_filter_table(args.harmonic_filter)
         if harmonic_filter.size < sky_lmax + 1:

@@ -32,13 +32,8 @@ from cmbtools._core.figures import (
     save_figure,
     style_axes,
 )
-from cmbtools._core.tables import (
-    BANDPOWER_COLUMNS,
-    metadata_comments,
-    power_unit_scale,
-    read_bandpower_table,
-    write_text_table,
-)
+from cmbtools._core.binned_tables import BANDPOWER_COLUMNS, read_bandpower_table
+from cmbtools._core.tables import metadata_comments, power_unit_scale, write_text_table
 from cmbtools.spectrum.binning import Binning
 from cmbtools._core.checks import check_cl
 from cmbtools.exceptions import InputFileError, InvalidInputError
