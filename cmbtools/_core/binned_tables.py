@@ -38,6 +38,20 @@ def _parse_value(text):
         return t
 
 
+def result_metadata(table) -> dict:
+    """The ``# key: value`` comments of a result table (bandpowers, polarized bandpowers), numbers as numbers."""
+    return {k: _parse_value(v) for k, v in table.metadata().items()}
+
+
+def result_unit_scale(path, metadata) -> float:
+    """Factor from a result table's values to K^2: its ``unit`` entry (removed from ``metadata``), default uK^2."""
+    unit_text = str(metadata.pop("unit", "uK^2"))
+    unit = unit_text[:-2] if unit_text.endswith("^2") else unit_text
+    if unit not in POWER_UNITS:
+        raise InputFileError(path, f"unknown unit {unit_text!r} (expected uK^2 or K^2)")
+    return POWER_UNITS[unit]
+
+
 def read_bandpower_table(path, table=None):
     """Columns (K^2) and metadata of a bandpower table; see :meth:`cmbtools.spectrum.Bandpowers.read_csv`.
 
@@ -46,12 +60,7 @@ def read_bandpower_table(path, table=None):
     if table is None:
         table = read_text_table(path, what="a bandpower table", separator=",")
     p = table.path
-    meta = {}
-    for _, body in table.comments:
-        body = body.strip()
-        if ":" in body:
-            k, v = body.split(":", 1)
-            meta[k.strip()] = _parse_value(v)
+    meta = result_metadata(table)
     if table.names is None:
         raise InputFileError(p, f"no column header {','.join(BANDPOWER_COLUMNS)} found")
     if table.names != BANDPOWER_COLUMNS:
@@ -67,11 +76,7 @@ def read_bandpower_table(path, table=None):
             raise InputFileError(p, f"line {lineno}: a value is not a number ({','.join(cells)!r})") from None
     if not rows:
         raise InputFileError(p, "the table has no rows")
-    unit_text = str(meta.pop("unit", "uK^2"))
-    unit = unit_text[:-2] if unit_text.endswith("^2") else unit_text
-    if unit not in POWER_UNITS:
-        raise InputFileError(p, f"unknown unit {unit_text!r} (expected uK^2 or K^2)")
-    scale = POWER_UNITS[unit]
+    scale = result_unit_scale(p, meta)
     a = np.array(rows)
     cols = {c: a[:, i] for i, c in enumerate(BANDPOWER_COLUMNS)}
     for c in ("ell_min", "ell_max"):
