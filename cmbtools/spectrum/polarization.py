@@ -35,6 +35,7 @@ from cmbtools.spectrum import purification
 from cmbtools.spectrum.binning import Binning
 from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
 from cmbtools.spectrum.errors import _reduce_rows
+from cmbtools.spectrum.map_preparation import _LARGEST_MAP_VALUE
 from cmbtools.spectrum.polarized_operator import (
     _COMPONENTS_AUTO, _COMPONENTS_CROSS, _FIELD, _SKY, _PolarizedOperator, _freeze,
 )
@@ -42,8 +43,6 @@ from cmbtools.spectrum.polarized_settings import _check_memory, _pixel_windows, 
 from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, _beam_array
 
 __all__ = ["PolarizedSpectrumEstimator"]
-
-_LARGEST_MAP_VALUE = 1e100
 
 
 class PolarizedSpectrumEstimator(_PolarizedOperator):
