@@ -154,9 +154,19 @@ def _read_power_table(path, *, prefer) -> np.ndarray:
         )
     if not rows:
         raise InputFileError(p, "has column names but no data rows")
+    ells, (values,) = _ell_rows(p, rows, names, [(col, True)])
+    return _as_cl(p, rows, names[col], kind, factor, ells, values)
+
+
+def _ell_rows(p, rows, names, columns):
+    """``(ells, [values per column])`` of the data rows: one ``ell`` per row, increasing by 1.
+
+    ``columns``: ``(index, must_be_non_negative)`` of each value column read.  Every cell is checked (a
+    number, finite, not negative where a power must not be) with an error naming its line.
+    """
     ell_col = names.index("ell")
     ells = np.empty(len(rows), dtype=np.int64)
-    values = np.empty(len(rows))
+    values = [np.empty(len(rows)) for _ in columns]
     for j, (number, cells) in enumerate(rows):
         if len(cells) != len(names):
             raise InputFileError(p, f"line {number}: {len(cells)} cells, but the header names {len(names)} columns")
@@ -165,13 +175,14 @@ def _read_power_table(path, *, prefer) -> np.ndarray:
             raise InputFileError(p, f"line {number}: ell {cells[ell_col]!r} is not a non-negative integer")
         if ell_value > LARGEST_ELL:
             raise InputFileError(p, f"line {number}: ell {cells[ell_col]!r} is above the largest ell, {LARGEST_ELL}")
-        v = number_cell(p, cells[col], f"line {number}: {names[col]} value")
-        if not math.isfinite(v):
-            raise InputFileError(p, f"line {number}: {names[col]} value {cells[col]!r} is not finite")
-        if v < 0:
-            raise InputFileError(p, f"line {number}: negative power {names[col]} = {cells[col]} (a spectrum is >= 0)")
         ells[j] = int(ell_value)
-        values[j] = v
+        for (col, non_negative), out in zip(columns, values):
+            v = number_cell(p, cells[col], f"line {number}: {names[col]} value")
+            if not math.isfinite(v):
+                raise InputFileError(p, f"line {number}: {names[col]} value {cells[col]!r} is not finite")
+            if v < 0 and non_negative:
+                raise InputFileError(p, f"line {number}: negative power {names[col]} = {cells[col]} (a spectrum is >= 0)")
+            out[j] = v
     steps = np.diff(ells)
     if np.any(steps != 1):
         j = int(np.argmax(steps != 1))
@@ -180,30 +191,30 @@ def _read_power_table(path, *, prefer) -> np.ndarray:
             p, f"line {rows[j + 1][0]}: ell {problem} from {ells[j]} to {ells[j + 1]} "
                "(ell must increase by 1 from row to row)"
         )
+    return ells, values
+
+
+def _as_cl(p, rows, name, kind, factor, ells, values):
+    """C_l in K^2 from ell = 0 (zero below the first row) of one column of kind 'cl'/'nl' or 'dl'."""
     lmin, lmax = int(ells[0]), int(ells[-1])
     cl = np.zeros(lmax + 1)
     if kind in ("cl", "nl"):
         cl[lmin:] = values * factor
+        return cl
+    ell = np.arange(lmin, lmax + 1, dtype=float)
+    if lmin == 0:
+        if values[0] != 0:
+            raise InputFileError(p, f"line {rows[0][0]}: D_l at ell = 0 must be 0 (C_0 cannot be recovered from D_0)")
+        ell, dvals, start = ell[1:], values[1:], 1
     else:
-        ell = np.arange(lmin, lmax + 1, dtype=float)
-        if lmin == 0:
-            if values[0] != 0:
-                raise InputFileError(
-                    p, f"line {rows[0][0]}: D_l at ell = 0 must be 0 (C_0 cannot be recovered from D_0)"
-                )
-            ell, dvals, start = ell[1:], values[1:], 1
-        else:
-            dvals, start = values, lmin
-        # the factor first: 2 pi D_l alone overflows for D_l near the largest double
-        with np.errstate(over="ignore"):
-            cl[start:] = dvals * factor * (2.0 * math.pi / (ell * (ell + 1.0)))
-        if not np.all(np.isfinite(cl)):
-            j = int(np.argmax(~np.isfinite(cl))) - lmin
-            raise InputFileError(
-                p, f"line {rows[j][0]}: {names[col]} value {values[j]!r} gives a C_l too large for a double"
-            )
+        dvals, start = values, lmin
+    # the factor first: 2 pi D_l alone overflows for D_l near the largest double
+    with np.errstate(over="ignore"):
+        cl[start:] = dvals * factor * (2.0 * math.pi / (ell * (ell + 1.0)))
+    if not np.all(np.isfinite(cl)):
+        j = int(np.argmax(~np.isfinite(cl))) - lmin
+        raise InputFileError(p, f"line {rows[j][0]}: {name} value {values[j]!r} gives a C_l too large for a double")
     return cl
-
 
 
 def read_polarized_spectrum_table(path) -> dict:
@@ -284,52 +295,10 @@ def _polarized_spectra(table, wanted) -> dict:
     rows = table.rows
     if not rows:
         raise InputFileError(p, "has column names but no data rows")
-    ell_col = names.index("ell")
-    ells = np.empty(len(rows), dtype=np.int64)
-    values = {k: np.empty(len(rows)) for k in columns}
-    for j, (number, cells) in enumerate(rows):
-        if len(cells) != len(names):
-            raise InputFileError(p, f"line {number}: {len(cells)} cells, but the header names {len(names)} columns")
-        ell_value = number_cell(p, cells[ell_col], f"line {number}: ell")
-        if not math.isfinite(ell_value) or ell_value != int(ell_value) or ell_value < 0:
-            raise InputFileError(p, f"line {number}: ell {cells[ell_col]!r} is not a non-negative integer")
-        if ell_value > LARGEST_ELL:
-            raise InputFileError(p, f"line {number}: ell {cells[ell_col]!r} is above the largest ell, {LARGEST_ELL}")
-        ells[j] = int(ell_value)
-        for spectrum, (col, _, _) in columns.items():
-            v = number_cell(p, cells[col], f"line {number}: {names[col]} value")
-            if not math.isfinite(v):
-                raise InputFileError(p, f"line {number}: {names[col]} value {cells[col]!r} is not finite")
-            if v < 0 and spectrum in ("TT", "EE", "BB"):
-                raise InputFileError(p, f"line {number}: negative power {names[col]} = {cells[col]} (a spectrum is >= 0)")
-            values[spectrum][j] = v
-    steps = np.diff(ells)
-    if np.any(steps != 1):
-        j = int(np.argmax(steps != 1))
-        problem = "repeats" if steps[j] == 0 else ("decreases" if steps[j] < 0 else "skips")
-        raise InputFileError(p, f"line {rows[j + 1][0]}: ell {problem} from {ells[j]} to {ells[j + 1]} "
-                                "(ell must increase by 1 from row to row)")
-    lmin, lmax = int(ells[0]), int(ells[-1])
-    out = {}
-    for spectrum, (col, kind, factor) in columns.items():
-        vals = values[spectrum]
-        cl = np.zeros(lmax + 1)
-        if kind == "cl":
-            cl[lmin:] = vals * factor
-        else:
-            ell = np.arange(lmin, lmax + 1, dtype=float)
-            if lmin == 0:
-                if vals[0] != 0:
-                    raise InputFileError(p, f"line {rows[0][0]}: D_l at ell = 0 must be 0 (C_0 cannot be recovered from D_0)")
-                ell, dvals, start = ell[1:], vals[1:], 1
-            else:
-                dvals, start = vals, lmin
-            with np.errstate(over="ignore"):
-                cl[start:] = dvals * factor * (2.0 * math.pi / (ell * (ell + 1.0)))
-            if not np.all(np.isfinite(cl)):
-                raise InputFileError(p, f"{names[col]} holds a D_l whose C_l is too large for a double")
-        out[spectrum] = cl
-    return out
+    ells, values = _ell_rows(p, rows, names, [(col, spectrum in ("TT", "EE", "BB"))
+                                              for spectrum, (col, _, _) in columns.items()])
+    return {spectrum: _as_cl(p, rows, names[col], kind, factor, ells, vals)
+            for (spectrum, (col, kind, factor)), vals in zip(columns.items(), values)}
 
 
 def read_noise_spectrum_table(path) -> np.ndarray:
