@@ -39,7 +39,11 @@ out) and covariance.npz (the simulated covariance of the bandpowers).
 Filtering: --harmonic-filter FILE multiplies every simulated sky's harmonic
 coefficients by a factor per multipole (a table with columns ell,factor from
 ell 0), a stand-in for the filtering of a real survey's maps; transfer.csv
-then measures what it does to each bin.
+then measures what it does to each bin.  --transfer FILE divides such a table
+out of every simulation's bandpowers and errors (as 'cmbtools spectrum
+--transfer' does), to check the corrected pipeline with another --seed: the
+bias and the transfer column then describe what is left, transfer.csv still
+holds the whole F_b and covariance.npz is of the corrected bandpowers.
 
 The memory of the estimator and of the simulations (one per local worker at
 a time) is estimated before they start; the command stops if it exceeds what
@@ -95,6 +99,10 @@ def add_arguments(parser):
                         help="multiply every simulated sky's harmonic coefficients by a factor per multipole "
                              "(table with columns ell,factor from ell 0 to the skies' band limit): a stand-in for the "
                              "filtering of the real maps, measured in transfer.csv")
+    parser.add_argument("--transfer", metavar="FILE",
+                        help="per-bin transfer function table (transfer.csv of an earlier run, same bins) divided "
+                             "out of every simulation's bandpowers, as 'cmbtools spectrum --transfer' does: checks the "
+                             "corrected pipeline (use another --seed)")
     parser.add_argument("--spectrum", metavar="FILE",
                         help="input sky spectrum table (columns ell and cl or dl; default: the built-in fiducial spectrum)")
     sims = parser.add_argument_group("simulations")
@@ -227,6 +235,13 @@ def run(args) -> int:
         mask2 = maps.read_mask(args.mask2, force=args.force)
         check_same_nside(mask, mask2, args.mask, args.mask2)
     binning = binning_from_args(args, lmax, float(np.mean(mask)))
+    transfer = None
+    if args.transfer is not None:
+        transfer = sp.BandpowerTransfer.read_csv(args.transfer)
+        try:
+            transfer.check_bins(binning, "the validation")
+        except InvalidInputError as exc:
+            raise InvalidInputError(f"{args.transfer}: {exc}") from None
     sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
     top = (8 if args.pixelise else 4) * nside - 1
     if cross:
@@ -280,7 +295,7 @@ def run(args) -> int:
             est, cl, n_sims=args.sims, seed=args.seed, noise=noise, run_dir=run_dir, executor=client,
             workers=None if client is not None else n_workers, threads_per_worker=args.threads or None,
             progress=False if args.no_progress else None, restart=args.restart, force=args.force, cross=cross,
-            monopole=monopole * 1e-6, dipole=dipole, harmonic_filter=harmonic_filter,
+            monopole=monopole * 1e-6, dipole=dipole, harmonic_filter=harmonic_filter, bandpower_transfer=transfer,
             **({} if cross else {"sky_lmax": sky_lmax, "pixelise": bool(args.pixelise)}),
         )
     finally:
@@ -300,6 +315,8 @@ def run(args) -> int:
     if args.harmonic_filter is not None:
         meta["harmonic_filter_file"] = str(args.harmonic_filter)
         meta["harmonic_filter_file_sha256"] = sha256_file(args.harmonic_filter)
+    if args.transfer is not None:
+        meta["transfer_file"] = str(args.transfer)
     import dataclasses
 
     result = dataclasses.replace(result, metadata=meta)
@@ -310,7 +327,14 @@ def run(args) -> int:
         elif what == "JSON summary":
             written.append(result.write_json(path, overwrite=overwrite))
         elif what == "transfer table":
-            written.append(sp.BandpowerTransfer.from_validation(result).write_csv(path, overwrite=overwrite))
+            measured = sp.BandpowerTransfer.from_validation(result)
+            if transfer is not None:  # the whole F_b of the pipeline: what is left times what was divided out
+                measured = dataclasses.replace(
+                    measured, transfer=measured.transfer * transfer.transfer,
+                    transfer_error=measured.transfer_error * transfer.transfer,
+                    metadata={**measured.metadata, "measured_by": "Monte Carlo validation (mean / expected per bin, "
+                              f"with {args.transfer} divided out and multiplied back)"})
+            written.append(measured.write_csv(path, overwrite=overwrite))
         else:
             written.append(result.plot(path, overwrite=overwrite))
     # the simulated covariance of the bandpowers, usable by `cmbtools spectrum --covariance-from`
@@ -320,7 +344,9 @@ def run(args) -> int:
     simulated = simulated_covariance(
         result.samples, ell_min=result.ell_min, ell_max=result.ell_max, ell_eff=result.ell_eff, windows=windows,
         settings={"spectrum": "cross" if cross else "auto", "seed": int(result.seed),
-                  "estimator_key": meta.get("estimator_key", "")})
+                  "estimator_key": meta.get("estimator_key", ""),
+                  **({} if transfer is None else {"bandpower_transfer_key": transfer.key,
+                                                  "bandpower_transfer": f"divided out ({args.transfer})"})})
     written.append(simulated.write(run_dir / "covariance.npz", overwrite=True))
 
     s = result.summary()
@@ -351,6 +377,9 @@ def run(args) -> int:
     print(f"  error bars ({meta.get('error_model', 'analytic')}): scatter / error = "
           f"{num('median_error_ratio', '.3f')} (median; {num('min_error_ratio', '.3f')} to "
           f"{num('max_error_ratio', '.3f')} over the bins)")
+    if transfer is not None:
+        print(f"  bandpowers and errors divided by F_b of {args.transfer} "
+              f"({float(transfer.transfer.min()):.4g} to {float(transfer.transfer.max()):.4g})")
     print(f"  transfer (mean / expected): median {num('median_transfer', '.4f')}"
           + (f", from {float(np.nanmin(result.transfer)):.4f} to {float(np.nanmax(result.transfer)):.4f} "
              f"(harmonic filter {args.harmonic_filter})" if args.harmonic_filter else ""))

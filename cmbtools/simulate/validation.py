@@ -159,6 +159,7 @@ def validate_estimator(
     dipole=None,
     sky_filter=None,
     harmonic_filter=None,
+    bandpower_transfer=None,
     record_pseudo_spectra=False,
     run_dir=None,
     executor=None,
@@ -218,6 +219,13 @@ def validate_estimator(
         per-bin ``transfer`` of the result measures its effect;
         :meth:`cmbtools.spectrum.BandpowerTransfer.from_validation` turns it
         into the correction of bandpowers measured on maps filtered alike.
+    bandpower_transfer : BandpowerTransfer, optional
+        A per-bin transfer function (with the estimator's bins) divided out
+        of every simulation's bandpowers and error bars, as
+        ``cmbtools spectrum --transfer`` does: checks the corrected pipeline
+        (use another ``seed`` than the run that measured it).  The result's
+        ``transfer`` is then what is left after the correction (1 when it is
+        right); the simulation records on disk keep the measured bandpowers.
     record_pseudo_spectra : bool, default=False
         Also record the pseudo-spectrum of each masked sky before noise (one
         more transform per simulation); the result's ``mean_pseudo_cl``.
@@ -325,6 +333,13 @@ def validate_estimator(
 
         filter_text = (f"f_l table sha256={sha256_arrays(harmonic_filter)[:16]} (f_l from "
                        f"{float(np.min(harmonic_filter)):.4g} to {float(np.max(harmonic_filter)):.4g})")
+    if bandpower_transfer is not None:
+        from cmbtools.spectrum.transfer import BandpowerTransfer
+
+        if not isinstance(bandpower_transfer, BandpowerTransfer):
+            raise InvalidInputError("The 'bandpower_transfer' parameter must be a cmbtools.spectrum.BandpowerTransfer "
+                                    f"or None. Got {type(bandpower_transfer).__name__} instead.")
+        bandpower_transfer.check_bins(estimator.binning, "the estimator")
     if sky_filter is not None and not callable(sky_filter):
         raise InvalidInputError(f"The 'sky_filter' parameter must be a callable or None. Got {sky_filter!r} instead.")
     if not isinstance(cross, (bool, np.bool_)):
@@ -394,10 +409,15 @@ def validate_estimator(
                                    cross=bool(cross))
         signal = cl[: lmax + 1] if harmonic_filter is None else cl[: lmax + 1] * harmonic_filter[: lmax + 1] ** 2
         reported = np.tile(gauss.covariance(signal).errors, (sims["cl"].shape[0], 1))
+    samples = sims["cl"]
+    if bandpower_transfer is not None:
+        samples = samples / bandpower_transfer.transfer
+        reported = reported / bandpower_transfer.transfer
+        metadata.update(bandpower_transfer.record())
     metadata["error_model"] = ("Knox formula" if errors != "gaussian" else "Gaussian covariance of the input spectrum"
                                + ("" if harmonic_filter is None else " times the filter's f_l^2"))
     return ValidationResult.from_samples(
-        sims["cl"], reported,
+        samples, reported,
         binning.bin_spectrum(cl) if realistic else estimator.expected_bandpowers(cl[: lmax + 1], cross=bool(cross)),
         ell_min=binning.ell_min, ell_max=binning.ell_max, ell_eff=binning.ell_eff, dl_factor=binning.dl_factor,
         seed=sims.seed, mean_pseudo_cl=sims["pseudo_cl"].mean(axis=0) if record_pseudo_spectra else None,
