@@ -68,7 +68,6 @@ _POLARIZED_COLUMN = re.compile(r"^(cl|dl)_(tt|ee|bb|te|tb|eb)(?:_(k2|uk2|kcmb2|u
 POLARIZED_SPECTRA = ("TT", "EE", "BB", "TE", "TB", "EB")
 
 
-
 def read_spectrum_table(path) -> np.ndarray:
     """Read a spectrum table (see the module notes for the format) as C_l in K^2.
 

@@ -92,7 +92,6 @@ class MapInfo:
         return 12 * self.nside**2
 
 
-
 @renamed_keywords(field="column")
 def read_map_values(path, *, column=0, force=False):
     """Read a HEALPix map's values as the file stores them (no unit conversion), RING ordering.
@@ -114,7 +113,6 @@ def read_map_values(path, *, column=0, force=False):
     """
     values, _facts = _read_table(path, column, None, _memory_check(force))
     return values
-
 
 
 @renamed_keywords(field="column", ordering="file_ordering")

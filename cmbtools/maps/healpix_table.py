@@ -191,7 +191,6 @@ def _polarization_card(header):
     return None
 
 
-
 # ---------------------------------------------------------------- reading
 
 def _first_table(p, hdul):
@@ -218,7 +217,6 @@ def _column_values(p, column):
     if data.dtype.kind not in "fiub":
         raise InputFileError(p, f"column has non-numeric type {data.dtype} and cannot be a map")
     return data.reshape(-1)
-
 
 
 def _read_table(path, field, ordering, memory_check):
@@ -249,7 +247,6 @@ def _memory_check(force):
     from cmbtools._core.memory import check_memory
 
     return lambda need, what: check_memory(need, what, force=force)
-
 
 
 def _parse_table(p, hdul, field, ordering, memory_check):
@@ -438,7 +435,6 @@ def _header_cards(extra_header):
 _RESERVED = {"PIXTYPE", "ORDERING", "NSIDE", "FIRSTPIX", "LASTPIX", "INDXSCHM", "OBJECT", "COORDSYS",
              "BAD_DATA", "XTENSION", "BITPIX", "NAXIS", "NAXIS1", "NAXIS2", "TFIELDS", "PCOUNT", "GCOUNT",
              "EXTNAME", "POLANGLE", "POLCCONV", *(f"{k}{i}" for k in ("TUNIT", "TTYPE", "TFORM") for i in range(1, 5))}
-
 
 
 def _write_columns(path, a, units, column_names, *, coordinates, nested, overwrite, header, dtype, observed_only,

@@ -207,7 +207,6 @@ def read_iqu(path, *, unit=None, file_ordering=None, polarization_convention=Non
     return m, info
 
 
-
 def _count_value_columns(path) -> int:
     """Number of map columns (not counting a partial-sky file's PIXEL column)."""
     return len(_value_column_names(path)[1])

@@ -22,7 +22,6 @@ __all__ = ["PixelNoise"]
 _ARCMIN = math.pi / 180.0 / 60.0
 
 
-
 @dataclasses.dataclass(frozen=True, eq=False)
 class PixelNoise:
     """White instrument noise described pixel by pixel: its variance map.
