@@ -45,10 +45,10 @@ memory is estimated; the command stops if it exceeds what the machine has
 available, and --force goes ahead anyway.
 
 examples:
-  cmbtools spectrum tern_map.fits --mask tern_mask.fits --beam-fwhm 25 -o tern_spectrum.csv
-  cmbtools spectrum half1.fits half2.fits --mask tern_mask.fits --beam-fwhm 25 \\
+  cmbtools spectrum tern_map.fits --mask tern_mask.fits --beam-fwhm 60 -o tern_spectrum.csv
+  cmbtools spectrum half1.fits half2.fits --mask tern_mask.fits --beam-fwhm 60 \\
       --bin-width 20 -o cross.csv --figure cross.png
-  cmbtools spectrum tern_map.fits --mask tern_mask.fits --beam-fwhm 25 \\
+  cmbtools spectrum tern_map.fits --mask tern_mask.fits --beam-fwhm 60 \\
       --half-difference half1.fits half2.fits --write-noise-spectrum noise.csv -o auto.csv
 """
 
@@ -132,7 +132,7 @@ def run(args) -> int:
     from cmbtools import spectrum as sp
     from cmbtools._core.files import check_output_path, sha256_file
     from cmbtools._core.checks import check_same_nside
-    from cmbtools._core.tables import read_spectrum_table
+    from cmbtools._core.spectrum_tables import read_spectrum_table
     from cmbtools.cli.noise_bias import (
         check_noise_options, noise_bias_table, read_noise_inputs, subtract_noise,
     )
@@ -278,10 +278,21 @@ def run(args) -> int:
     bp, covariance, errors_text = apply_error_model(args, est, bp, raw, filtered_theory, noise_maps_for_errors,
                                                     cross=m2 is not None, nside=nside)
     measured = bp  # before the transfer correction: the noise bias table is of the measured power
+    corrected_key = None if covariance is None else covariance.settings.get("bandpower_transfer_key")
+    if corrected_key is not None and (transfer is None or corrected_key != transfer.key):
+        # a simulated covariance of `validate --transfer`: already of corrected bandpowers
+        raise InvalidInputError(
+            f"{args.covariance_from}: the covariance is of bandpowers divided by a transfer function "
+            f"(key {corrected_key}); give the same table with --transfer"
+            + ("." if transfer is None else f" (the --transfer table has key {transfer.key}).")
+        )
     if transfer is not None:
         bp = transfer.apply(bp).with_metadata(transfer_file=str(args.transfer),
                                               transfer_file_sha256=sha256_file(args.transfer))
-        if covariance is not None:
+        if corrected_key is not None:  # the errors and covariance describe the corrected bandpowers already
+            bp = dataclasses.replace(bp, cl_err=measured.cl_err, dl_err=measured.dl_err,
+                                     covariance=measured.covariance)
+        elif covariance is not None:
             covariance = transfer.apply_to_covariance(covariance)
 
     # 3. record the files

@@ -28,6 +28,15 @@ run continues where it stopped when the same command is run again (--restart
 starts over).  Simulation i always uses the same random numbers for a given
 --seed, whatever the number of workers.
 
+--polarized checks the polarized estimator the same way: I, Q, U skies drawn
+from TT, EE, BB, TE (the built-in spectra with lensing-like B modes and
+--tensor-ratio, or a polarized --spectrum table), Q and U noise sqrt(2) times
+the I noise per pixel, the temperature MASK and the polarization mask
+--pol-mask (--pol-mask2 for the second split), optionally --purify-b; the
+bias and the error ratio are reported per spectrum and bin, the table gains a
+'spectrum' column, summary.json per-spectrum keys under "spectra", and the
+figure one panel per spectrum.
+
 Outputs (by default in the run directory): summary.csv (one row per bin, a
 '# key: value' header with the settings), summary.json (the headline numbers
 n_sims, max_abs_bias_sigma, median_error_ratio, ... and the per-bin columns),
@@ -39,18 +48,24 @@ out) and covariance.npz (the simulated covariance of the bandpowers).
 Filtering: --harmonic-filter FILE multiplies every simulated sky's harmonic
 coefficients by a factor per multipole (a table with columns ell,factor from
 ell 0), a stand-in for the filtering of a real survey's maps; transfer.csv
-then measures what it does to each bin.
+then measures what it does to each bin.  --transfer FILE divides such a table
+out of every simulation's bandpowers and errors (as 'cmbtools spectrum
+--transfer' does), to check the corrected pipeline with another --seed: the
+bias and the transfer column then describe what is left, transfer.csv still
+holds the whole F_b and covariance.npz is of the corrected bandpowers.
 
 The memory of the estimator and of the simulations (one per local worker at
 a time) is estimated before they start; the command stops if it exceeds what
 the machine has available, and --force goes ahead anyway.
 
 examples:
-  cmbtools validate tern_mask.fits --beam-fwhm 25 --noise-depth 35 --hits tern_hits.fits \\
+  cmbtools validate tern_mask.fits --beam-fwhm 60 --noise-depth 35 --hits tern_hits.fits \\
       --sims 200 --seed 1 --run-dir tern_validation
   cmbtools validate mask.fits --lmax 300 --bin-width 20 --spectrum model.csv --sims 500 \\
       --scheduler tcp://10.0.0.5:8786 --run-dir big_run
-  cmbtools validate tern_mask.fits --beam-fwhm 25 --harmonic-filter high_pass.csv --sims 100 \\
+  cmbtools validate tern_mask.fits --polarized --pol-mask tern_pol_mask.fits --purify-b --beam-fwhm 60 \\
+      --noise-depth 35 --hits tern_hits.fits --lmax 255 --bin-width 16 --sims 200 --run-dir tern_pol_validation
+  cmbtools validate tern_mask.fits --beam-fwhm 60 --harmonic-filter high_pass.csv --sims 100 \\
       --run-dir filtered   # then: cmbtools spectrum ... --transfer filtered/transfer.csv
 """
 
@@ -95,6 +110,10 @@ def add_arguments(parser):
                         help="multiply every simulated sky's harmonic coefficients by a factor per multipole "
                              "(table with columns ell,factor from ell 0 to the skies' band limit): a stand-in for the "
                              "filtering of the real maps, measured in transfer.csv")
+    parser.add_argument("--transfer", metavar="FILE",
+                        help="per-bin transfer function table (transfer.csv of an earlier run, same bins) divided "
+                             "out of every simulation's bandpowers, as 'cmbtools spectrum --transfer' does: checks the "
+                             "corrected pipeline (use another --seed)")
     parser.add_argument("--spectrum", metavar="FILE",
                         help="input sky spectrum table (columns ell and cl or dl; default: the built-in fiducial spectrum)")
     sims = parser.add_argument_group("simulations")
@@ -121,6 +140,9 @@ def add_arguments(parser):
                      help="per-bin transfer function table, read by 'cmbtools spectrum --transfer' "
                           "(default RUN_DIR/transfer.csv)")
     out.add_argument("--unit", choices=("uK", "K"), default="uK", help="unit of the table's spectra: uK^2 (default) or K^2")
+    from cmbtools.cli.polarized_validate import add_polarization_options
+
+    add_polarization_options(parser)
     add_overwrite(parser)
     add_force(parser)
 
@@ -187,6 +209,23 @@ def run(args) -> int:
         raise InvalidInputError("--noise-knee needs --noise-depth (the white level of the noise).")
     if args.sims < 2:
         raise InvalidInputError(f"--sims must be at least 2 to measure a scatter. Got {args.sims} instead.")
+    from cmbtools.cli.polarized_validate import check_polarization_options, run_polarized
+
+    check_polarization_options(args)
+    if args.polarized:
+        client = None
+        if args.scheduler is not None:
+            client = _dask_client(args.scheduler)
+            n_workers = len(client.scheduler_info(n_workers=-1).get("workers", {}))
+            where = (client, None, f"the dask cluster at {args.scheduler} ({n_workers} workers)")
+        else:
+            n_workers = args.workers or resolve_nthreads(None)
+            where = (None, n_workers, f"{n_workers} local worker process{'es' if n_workers != 1 else ''}")
+        try:
+            return run_polarized(args, outputs, run_dir, where)
+        finally:
+            if client is not None:
+                client.close()
 
     # 2. inputs
     mask = maps.read_mask(args.mask, force=args.force)
@@ -204,7 +243,7 @@ def run(args) -> int:
             hits, _info = maps.read_sky_map(args.hits, unit="K", force=args.force)
         noise = NoiseModel(depth_uk_arcmin=args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
     if args.spectrum is not None:
-        from cmbtools._core.tables import read_spectrum_table
+        from cmbtools._core.spectrum_tables import read_spectrum_table
 
         cl = np.asarray(read_spectrum_table(args.spectrum), dtype=np.float64)
         if cl.size < lmax + 1:
@@ -227,6 +266,13 @@ def run(args) -> int:
         mask2 = maps.read_mask(args.mask2, force=args.force)
         check_same_nside(mask, mask2, args.mask, args.mask2)
     binning = binning_from_args(args, lmax, float(np.mean(mask)))
+    transfer = None
+    if args.transfer is not None:
+        transfer = sp.BandpowerTransfer.read_csv(args.transfer)
+        try:
+            transfer.check_bins(binning, "the validation")
+        except InvalidInputError as exc:
+            raise InvalidInputError(f"{args.transfer}: {exc}") from None
     sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
     top = (8 if args.pixelise else 4) * nside - 1
     if cross:
@@ -242,7 +288,7 @@ def run(args) -> int:
         cl = fiducial_cl(sky_lmax)
     harmonic_filter = None
     if args.harmonic_filter is not None:
-        from cmbtools._core.tables import read_filter_table
+        from cmbtools._core.binned_tables import read_filter_table
 
         harmonic_filter = read_filter_table(args.harmonic_filter)
         if harmonic_filter.size < sky_lmax + 1:
@@ -280,7 +326,7 @@ def run(args) -> int:
             est, cl, n_sims=args.sims, seed=args.seed, noise=noise, run_dir=run_dir, executor=client,
             workers=None if client is not None else n_workers, threads_per_worker=args.threads or None,
             progress=False if args.no_progress else None, restart=args.restart, force=args.force, cross=cross,
-            monopole=monopole * 1e-6, dipole=dipole, harmonic_filter=harmonic_filter,
+            monopole=monopole * 1e-6, dipole=dipole, harmonic_filter=harmonic_filter, bandpower_transfer=transfer,
             **({} if cross else {"sky_lmax": sky_lmax, "pixelise": bool(args.pixelise)}),
         )
     finally:
@@ -300,6 +346,8 @@ def run(args) -> int:
     if args.harmonic_filter is not None:
         meta["harmonic_filter_file"] = str(args.harmonic_filter)
         meta["harmonic_filter_file_sha256"] = sha256_file(args.harmonic_filter)
+    if args.transfer is not None:
+        meta["transfer_file"] = str(args.transfer)
     import dataclasses
 
     result = dataclasses.replace(result, metadata=meta)
@@ -310,17 +358,26 @@ def run(args) -> int:
         elif what == "JSON summary":
             written.append(result.write_json(path, overwrite=overwrite))
         elif what == "transfer table":
-            written.append(sp.BandpowerTransfer.from_validation(result).write_csv(path, overwrite=overwrite))
+            measured = sp.BandpowerTransfer.from_validation(result)
+            if transfer is not None:  # the whole F_b of the pipeline: what is left times what was divided out
+                measured = dataclasses.replace(
+                    measured, transfer=measured.transfer * transfer.transfer,
+                    transfer_error=measured.transfer_error * transfer.transfer,
+                    metadata={**measured.metadata, "measured_by": "Monte Carlo validation (mean / expected per bin, "
+                              f"with {args.transfer} divided out and multiplied back)"})
+            written.append(measured.write_csv(path, overwrite=overwrite))
         else:
             written.append(result.plot(path, overwrite=overwrite))
     # the simulated covariance of the bandpowers, usable by `cmbtools spectrum --covariance-from`
-    from cmbtools.spectrum.covariance import simulated_covariance
+    from cmbtools.spectrum.bandpower_covariance import simulated_covariance
 
     windows = est.cross_bandpower_windows if cross else est.bandpower_windows
     simulated = simulated_covariance(
         result.samples, ell_min=result.ell_min, ell_max=result.ell_max, ell_eff=result.ell_eff, windows=windows,
         settings={"spectrum": "cross" if cross else "auto", "seed": int(result.seed),
-                  "estimator_key": meta.get("estimator_key", "")})
+                  "estimator_key": meta.get("estimator_key", ""),
+                  **({} if transfer is None else {"bandpower_transfer_key": transfer.key,
+                                                  "bandpower_transfer": f"divided out ({args.transfer})"})})
     written.append(simulated.write(run_dir / "covariance.npz", overwrite=True))
 
     s = result.summary()
@@ -351,6 +408,9 @@ def run(args) -> int:
     print(f"  error bars ({meta.get('error_model', 'analytic')}): scatter / error = "
           f"{num('median_error_ratio', '.3f')} (median; {num('min_error_ratio', '.3f')} to "
           f"{num('max_error_ratio', '.3f')} over the bins)")
+    if transfer is not None:
+        print(f"  bandpowers and errors divided by F_b of {args.transfer} "
+              f"({float(transfer.transfer.min()):.4g} to {float(transfer.transfer.max()):.4g})")
     print(f"  transfer (mean / expected): median {num('median_transfer', '.4f')}"
           + (f", from {float(np.nanmin(result.transfer)):.4f} to {float(np.nanmax(result.transfer)):.4f} "
              f"(harmonic filter {args.harmonic_filter})" if args.harmonic_filter else ""))

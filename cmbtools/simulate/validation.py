@@ -159,6 +159,7 @@ def validate_estimator(
     dipole=None,
     sky_filter=None,
     harmonic_filter=None,
+    bandpower_transfer=None,
     record_pseudo_spectra=False,
     run_dir=None,
     executor=None,
@@ -172,7 +173,8 @@ def validate_estimator(
     cross=False,
     sky_lmax=None,
     pixelise=False,
-) -> ValidationResult:
+    sky_beam=None,
+):
     """Check a spectrum estimator on simulated skies: bias, error bars and transfer per bin.
 
     Each simulation draws a Gaussian sky from ``cl``, convolves it with the
@@ -186,9 +188,11 @@ def validate_estimator(
 
     Parameters
     ----------
-    estimator : SpectrumEstimator
+    estimator : SpectrumEstimator or PolarizedSpectrumEstimator
         The estimator to check (auto-spectra).  Build it with ``nthreads=None``
-        so that each worker uses its share of the cores.
+        so that each worker uses its share of the cores.  A polarized one is
+        checked by :func:`validate_polarized_estimator` (with ``cl`` its dict
+        of spectra), which returns a :class:`PolarizedValidationResult`.
     cl : array_like of shape (>= lmax+1,), optional
         Input sky spectrum C_l in K^2 from ell = 0; default: the built-in
         fiducial spectrum :func:`cmbtools.simulate.fiducial_cl`.
@@ -218,6 +222,13 @@ def validate_estimator(
         per-bin ``transfer`` of the result measures its effect;
         :meth:`cmbtools.spectrum.BandpowerTransfer.from_validation` turns it
         into the correction of bandpowers measured on maps filtered alike.
+    bandpower_transfer : BandpowerTransfer, optional
+        A per-bin transfer function (with the estimator's bins) divided out
+        of every simulation's bandpowers and error bars, as
+        ``cmbtools spectrum --transfer`` does: checks the corrected pipeline
+        (use another ``seed`` than the run that measured it).  The result's
+        ``transfer`` is then what is left after the correction (1 when it is
+        right); the simulation records on disk keep the measured bandpowers.
     record_pseudo_spectra : bool, default=False
         Also record the pseudo-spectrum of each masked sky before noise (one
         more transform per simulation); the result's ``mean_pseudo_cl``.
@@ -254,10 +265,13 @@ def validate_estimator(
         detector's map is made, instead of sampling the pixel centres with the
         pixel window applied.  Needs an estimator that deconvolves the HEALPix
         pixel window; the mean is compared with the bin averages of ``cl``.
+    sky_beam : float, array_like or (array_like, array_like), optional
+        Polarized estimator only: the beam of the skies to ``sky_lmax`` (see
+        :func:`validate_polarized_estimator`).
 
     Returns
     -------
-    ValidationResult
+    ValidationResult or PolarizedValidationResult
 
     See Also
     --------
@@ -266,7 +280,24 @@ def validate_estimator(
     """
     from cmbtools.simulate.noise import NoiseModel, noise_spectrum
     from cmbtools._core.checks import check_cl
+    from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator
 
+    if isinstance(estimator, PolarizedSpectrumEstimator):
+        from cmbtools.simulate.polarized_validation import validate_polarized_estimator
+
+        if sky_filter is not None or record_pseudo_spectra or errors != "gaussian":
+            raise InvalidInputError(
+                "The 'sky_filter', 'record_pseudo_spectra' and 'errors' parameters are not available for a "
+                "polarized estimator (its reported errors are compared with the scatter)."
+            )
+        return validate_polarized_estimator(
+            estimator, cl, n_sims=n_sims, seed=seed, noise=noise, monopole=monopole, dipole=dipole, run_dir=run_dir,
+            executor=executor, workers=workers, threads_per_worker=threads_per_worker, progress=progress,
+            restart=restart, max_restarts=max_restarts, force=force, cross=cross, sky_lmax=sky_lmax,
+            pixelise=pixelise, sky_beam=sky_beam,
+        )
+    if sky_beam is not None:
+        raise InvalidInputError("The 'sky_beam' parameter applies to a polarized estimator only.")
     for attr in ("estimate", "expected_bandpowers", "pseudo_spectrum", "mask", "beam", "pixel_window", "nside", "lmax"):
         if not hasattr(estimator, attr):
             raise InvalidInputError(
@@ -325,6 +356,13 @@ def validate_estimator(
 
         filter_text = (f"f_l table sha256={sha256_arrays(harmonic_filter)[:16]} (f_l from "
                        f"{float(np.min(harmonic_filter)):.4g} to {float(np.max(harmonic_filter)):.4g})")
+    if bandpower_transfer is not None:
+        from cmbtools.spectrum.transfer import BandpowerTransfer
+
+        if not isinstance(bandpower_transfer, BandpowerTransfer):
+            raise InvalidInputError("The 'bandpower_transfer' parameter must be a cmbtools.spectrum.BandpowerTransfer "
+                                    f"or None. Got {type(bandpower_transfer).__name__} instead.")
+        bandpower_transfer.check_bins(estimator.binning, "the estimator")
     if sky_filter is not None and not callable(sky_filter):
         raise InvalidInputError(f"The 'sky_filter' parameter must be a callable or None. Got {sky_filter!r} instead.")
     if not isinstance(cross, (bool, np.bool_)):
@@ -386,17 +424,23 @@ def validate_estimator(
     }
     reported = sims["cl_err"]
     if errors == "gaussian":
-        from cmbtools.spectrum.covariance import GaussianCovariance, PixelNoise
+        from cmbtools.spectrum.covariance import GaussianCovariance
+        from cmbtools.spectrum.pixel_noise import PixelNoise
 
         pixel_noise = None if noise is None else PixelNoise.from_model(noise, nside, lmax)
         gauss = GaussianCovariance(estimator, noise=pixel_noise, noise2=pixel_noise if cross else None,
                                    cross=bool(cross))
         signal = cl[: lmax + 1] if harmonic_filter is None else cl[: lmax + 1] * harmonic_filter[: lmax + 1] ** 2
         reported = np.tile(gauss.covariance(signal).errors, (sims["cl"].shape[0], 1))
+    samples = sims["cl"]
+    if bandpower_transfer is not None:
+        samples = samples / bandpower_transfer.transfer
+        reported = reported / bandpower_transfer.transfer
+        metadata.update(bandpower_transfer.record())
     metadata["error_model"] = ("Knox formula" if errors != "gaussian" else "Gaussian covariance of the input spectrum"
                                + ("" if harmonic_filter is None else " times the filter's f_l^2"))
     return ValidationResult.from_samples(
-        sims["cl"], reported,
+        samples, reported,
         binning.bin_spectrum(cl) if realistic else estimator.expected_bandpowers(cl[: lmax + 1], cross=bool(cross)),
         ell_min=binning.ell_min, ell_max=binning.ell_max, ell_eff=binning.ell_eff, dl_factor=binning.dl_factor,
         seed=sims.seed, mean_pseudo_cl=sims["pseudo_cl"].mean(axis=0) if record_pseudo_spectra else None,

@@ -7,7 +7,7 @@ Two forms, both from the MASTER treatment of filtering (Hivon et al. 2002, ApJ 5
 * per bin, :class:`BandpowerTransfer` (``F_b``, the mean recovered bandpower over the
   expected one, as ``cmbtools validate`` measures it): the corrected bandpowers are
   ``cl / F_b``, their errors ``cl_err / F_b`` and their covariance ``C_bb' / (F_b F_b')``.
-  Its table (:func:`cmbtools._core.tables.write_transfer_table`) is what
+  Its table (:func:`cmbtools._core.binned_tables.write_transfer_table`) is what
   ``cmbtools validate`` writes and ``cmbtools spectrum --transfer`` reads.
 """
 
@@ -97,6 +97,13 @@ class BandpowerTransfer:
         """Number of bins."""
         return int(self.ell_min.size)
 
+    @property
+    def key(self) -> str:
+        """A hash of the bins and ``F_b`` (16 hex digits): what a covariance of corrected bandpowers records."""
+        from cmbtools._core.files import sha256_arrays
+
+        return sha256_arrays(self.ell_min, self.ell_max, self.transfer)[:16]
+
     @classmethod
     def from_validation(cls, result) -> "BandpowerTransfer":
         """The transfer a Monte Carlo validation measured: ``F_b = mean / expected``.
@@ -126,7 +133,7 @@ class BandpowerTransfer:
 
     def write_csv(self, path, *, overwrite=False):
         """Write the table (columns ``ell_min,ell_max,ell_eff,transfer,transfer_error``; see
-        :func:`cmbtools._core.tables.write_transfer_table`).
+        :func:`cmbtools._core.binned_tables.write_transfer_table`).
 
         Parameters
         ----------
@@ -139,7 +146,7 @@ class BandpowerTransfer:
         -------
         Path
         """
-        from cmbtools._core.tables import write_transfer_table
+        from cmbtools._core.binned_tables import write_transfer_table
 
         return write_transfer_table(path, self.ell_min, self.ell_max, self.ell_eff, self.transfer,
                                     self.transfer_error, metadata=self.metadata, overwrite=overwrite)
@@ -157,7 +164,7 @@ class BandpowerTransfer:
         -------
         BandpowerTransfer
         """
-        from cmbtools._core.tables import read_transfer_table
+        from cmbtools._core.binned_tables import read_transfer_table
 
         p, cols, meta = read_transfer_table(path)
         return cls(cols["ell_min"], cols["ell_max"], cols["ell_eff"], cols["transfer"], cols["transfer_error"],
@@ -212,7 +219,7 @@ class BandpowerTransfer:
         cov = None if bandpowers.covariance is None else bandpowers.covariance / np.outer(f, f)
         out = dataclasses.replace(bandpowers, cl=bandpowers.cl / f, cl_err=bandpowers.cl_err / f,
                                   dl=bandpowers.dl / f, dl_err=bandpowers.dl_err / f, covariance=cov)
-        return out.with_metadata(**self._record())
+        return out.with_metadata(**self.record())
 
     def apply_to_covariance(self, covariance):
         """The covariance of the corrected bandpowers: ``C_bb' / (F_b F_b')`` (window functions kept).
@@ -229,14 +236,22 @@ class BandpowerTransfer:
         self.check_bins(covariance, "the covariance")
         f = self.transfer
         settings = dict(covariance.settings)
-        settings.update(self._record())
+        settings.update(self.record())
         return dataclasses.replace(covariance, matrix=covariance.matrix / np.outer(f, f), settings=settings)
 
-    def _record(self) -> dict:
+    def record(self) -> dict:
+        """What a correction by this transfer function records in the metadata of its result.
+
+        Returns
+        -------
+        dict
+            ``bandpower_transfer`` (text), ``bandpower_transfer_max_relative_error`` and
+            ``bandpower_transfer_key`` (:attr:`key`).
+        """
         with np.errstate(divide="ignore", invalid="ignore"):
             rel = float(np.max(self.transfer_error / self.transfer))
         return {"bandpower_transfer": f"divided by F_b from {self.transfer.min():.4g} to {self.transfer.max():.4g}",
-                "bandpower_transfer_max_relative_error": rel}
+                "bandpower_transfer_max_relative_error": rel, "bandpower_transfer_key": self.key}
 
 
 def transfer_from_pseudo_spectrum(mean_pseudo_cl, cl, mask, *, beam=None, pixel_window=None, iterations=5,

@@ -1,35 +1,21 @@
 """``cmbtools spectrum`` on I, Q, U files: the six spectra in one table, refused options, temperature unchanged.
 
-When the maps package has no I, Q, U reader yet, a stand-in built on healpy's FITS reader is used (the
-command's wiring is what is checked here; the reader has its own tests in the maps package).
+The command's wiring is what is checked here; the I, Q, U reader has its own tests in the maps package.
 """
 
 from __future__ import annotations
-
-import hashlib
 
 import healpy as hp
 import numpy as np
 import pytest
 
 from cmbtools.cli import main
-from cmbtools.maps import fits as map_fits
 from cmbtools.maps.masks import apodize_mask, cap_mask
 from cmbtools.spectrum import SPECTRA, PolarizedBandpowers
 
 
-class _Info:
-    def __init__(self, path):
-        self.sha256 = hashlib.sha256(open(path, "rb").read()).hexdigest()
-
-
 @pytest.fixture
-def iqu_files(tmp_path, monkeypatch):
-    if not hasattr(map_fits, "read_iqu"):
-        monkeypatch.setattr(map_fits, "is_iqu_file", lambda p: len(hp.read_map(p, field=None, dtype=None)) == 3
-                            if np.ndim(hp.read_map(p, field=None, dtype=None)) == 2 else False, raising=False)
-        monkeypatch.setattr(map_fits, "read_iqu", lambda p, force=False: (
-            np.array(hp.read_map(p, field=(0, 1, 2), dtype=np.float64)), _Info(p)), raising=False)
+def iqu_files(tmp_path):
     nside, lmax = 32, 64
     rng = np.random.default_rng(11)
     ell = np.arange(lmax + 1.0)
@@ -72,3 +58,28 @@ def test_iqu_refuses_temperature_only_options(iqu_files, tmp_path, capsys):
     assert code == 2
     assert "--fast-coupling applies to temperature maps only" in capsys.readouterr().err
     assert not (tmp_path / "x.csv").exists()
+
+
+@pytest.mark.parametrize("table, message", [
+    ("ell,cl_tt_k2,cl_ee_k2,cl_bb_k2,cl_te_k2\n" + "".join(f"{ell},1e-10,1e-11,0,1e-12\n" for ell in range(30)),
+     "stops at ell=29; the bins go to ell=64"),
+    ("ell,cl_tt_k2,cl_ee_k2\n0,1e-10,1e-11\n", "TE"),
+    ("ell,cl_tt_k2,cl_ee_k2,cl_bb_k2,cl_te_k2\n0,1e-10,-1e-11,0,0\n", "line"),
+])
+def test_iqu_theory_table_is_checked_before_any_computing(iqu_files, tmp_path, capsys, monkeypatch, table, message):
+    import cmbtools.spectrum as sp
+
+    def never(*args, **kwargs):
+        raise AssertionError("the estimator was built before the theory table was checked")
+
+    monkeypatch.setattr(sp, "PolarizedSpectrumEstimator", never)
+    theory = tmp_path / "theory.csv"
+    theory.write_text(table)
+    out, fig = tmp_path / "pol.csv", tmp_path / "pol.png"
+    code = main(["spectrum", str(iqu_files["half1"]), str(iqu_files["half2"]), "--mask", str(iqu_files["mask"]),
+                 "--bin-width", "8", "--lmax", "64", "--theory", str(theory), "-o", str(out), "--figure", str(fig),
+                 "--threads", "1"])
+    assert code == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and message in err[0], err
+    assert not out.exists() and not fig.exists()

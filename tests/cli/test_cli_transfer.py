@@ -109,3 +109,38 @@ def test_a_filter_table_short_of_the_band_limit_is_refused(files, tmp_path, caps
     err = capsys.readouterr().err
     assert "stops at ell=29; the skies go to ell=" in err and err.count("\n") == 1
     assert not (run / "summary.csv").exists()
+
+
+def test_validate_checks_the_corrected_pipeline_and_its_covariance_is_not_divided_twice(files, tmp_path, capsys,
+                                                                                        monkeypatch):
+    monkeypatch.setenv("CMBTOOLS_NUM_THREADS", "1")
+    common = ["validate", str(files / "mask.fits"), "--lmax", str(LMAX), "--bin-width", "8", "--beam-fwhm", str(FWHM),
+              "--harmonic-filter", str(files / "high_pass.csv"), "--sky-lmax", str(4 * NSIDE - 1), "--sims", "6",
+              "--workers", "1", "--no-progress"]
+    assert main(common + ["--seed", "2", "--run-dir", str(tmp_path / "measure")]) == 0
+    first = BandpowerTransfer.read_csv(tmp_path / "measure" / "transfer.csv")
+    capsys.readouterr()
+    check = tmp_path / "check"
+    assert main(common + ["--seed", "3", "--run-dir", str(check), "--transfer",
+                          str(tmp_path / "measure" / "transfer.csv")]) == 0
+    assert "bandpowers and errors divided by F_b of" in capsys.readouterr().out
+    doc = json.loads((check / "summary.json").read_text())
+    # the summary describes what is left; transfer.csv holds the whole F_b again (a second measurement of it)
+    second = BandpowerTransfer.read_csv(check / "transfer.csv")
+    np.testing.assert_allclose(np.array(doc["bins"]["transfer"]) * first.transfer, second.transfer, rtol=1e-9)
+    assert doc["settings"]["bandpower_transfer_key"] == first.key
+    cov = read_covariance(check / "covariance.npz")
+    assert cov.settings["bandpower_transfer_key"] == first.key
+    np.testing.assert_allclose(np.sqrt(np.diag(cov.matrix)), doc["bins"]["std"], rtol=1e-9)  # corrected scatter
+
+    # spectrum with that covariance: the errors are the covariance's, not divided again; without --transfer: refused
+    out = tmp_path / "corrected.csv"
+    assert main(_spectrum_args(files, out, "--transfer", str(tmp_path / "measure" / "transfer.csv"),
+                               "--covariance-from", str(check / "covariance.npz"))) == 0
+    np.testing.assert_allclose(Bandpowers.read_csv(out).cl_err, np.sqrt(np.diag(cov.matrix)), rtol=1e-12)
+    capsys.readouterr()
+    refused = tmp_path / "refused.csv"
+    assert main(_spectrum_args(files, refused, "--covariance-from", str(check / "covariance.npz"))) == 2
+    err = capsys.readouterr().err
+    assert "the covariance is of bandpowers divided by a transfer function" in err and err.count("\n") == 1
+    assert not refused.exists()

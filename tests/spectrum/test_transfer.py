@@ -8,7 +8,8 @@ import numpy as np
 import pytest
 
 from cmbtools._core import sht as _sht
-from cmbtools._core.tables import read_filter_table, read_transfer_table, write_text_table
+from cmbtools._core.binned_tables import read_filter_table, read_transfer_table
+from cmbtools._core.tables import write_text_table
 from cmbtools.exceptions import InputFileError, InvalidInputError
 from cmbtools.simulate import Dipole, NoiseModel, fiducial_cl, gaussian_alm, noise_map, noise_spectrum, validate_estimator
 from cmbtools.spectrum import (
@@ -54,12 +55,12 @@ def test_measured_transfer_undoes_a_high_pass_on_independent_realistic_maps(one_
     # Skies as real maps are: power to 4 nside - 1, a beam of two pixels, synthesized at 2 nside and averaged into
     # the pixels (healpy.ud_grade), a 100 uK monopole and a 3 mK dipole, noise shaped by a hits map, a tapered
     # cap with holes; a harmonic high-pass multiplies every a_lm (monopole and dipole too) before the noise.
-    # 1. validate_estimator measures F_b on 400 filtered skies; 2. 400 independent skies made here (public
+    # 1. validate_estimator measures F_b on 300 filtered skies; 2. 300 independent skies made here (public
     # simulation functions, another seed) go through the estimator and BandpowerTransfer.apply.  Every reported
     # bin (10 to 2 nside) of the corrected mean is within 3 standard errors of the binned input (the standard
-    # error combines the scatter of the 400 maps and the Monte Carlo error of F_b); without the correction the
+    # error combines the scatter of the 300 maps and the Monte Carlo error of F_b); without the correction the
     # filtered bins are low by many standard errors.
-    nside, n_sims = 32, 400
+    nside, n_sims = 32, 300
     lmax, sky_lmax = 3 * nside - 1, 4 * nside - 1
     w, vec, centre = _cap_with_holes(nside)
     fwhm = 2 * np.degrees(np.sqrt(4 * np.pi / w.size)) * 60
@@ -102,6 +103,17 @@ def test_measured_transfer_undoes_a_high_pass_on_independent_realistic_maps(one_
     filtered = binned_f2 < 0.9  # the three lowest bins
     assert filtered.sum() == 3
     assert np.all(z_measured[filtered] < -10.0), z_measured
+
+    # 3. the corrected pipeline checked by validate_estimator itself (other seed): what is left is within the
+    # same combined standard error of the binned input, and the errors it compares with are divided by F_b too
+    with ThreadPoolExecutor(2) as pool:
+        check = validate_estimator(est, cl, n_sims=n_sims, seed=4, noise=noise, monopole=100e-6,
+                                   dipole=Dipole(3e-3, 60.0, 30.0), harmonic_filter=f, bandpower_transfer=transfer,
+                                   sky_lmax=sky_lmax, pixelise=True, executor=pool, progress=False)
+    error = np.sqrt(check.std**2 / n_sims + (truth * transfer.transfer_error / transfer.transfer) ** 2)
+    assert np.all(np.abs(check.mean - truth) / error < 3.0), (check.mean - truth) / error
+    assert np.all(np.abs(check.error_ratio - 1.0) < 0.2), check.error_ratio  # 300 sims: 4 % standard error
+    assert check.metadata["bandpower_transfer_key"] == transfer.key
 
 
 def test_table_round_trip_and_what_apply_scales(tmp_path):
@@ -154,6 +166,13 @@ def test_the_validation_summary_table_is_a_transfer_table(tmp_path, one_thread):
     np.testing.assert_array_equal(own.transfer, run.transfer)  # repr: exact
     np.testing.assert_allclose(own.transfer_error, run.std / (2.0 * run.expected), rtol=1e-12)
     assert "f_l table sha256=" in run.metadata["harmonic_filter"]
+    # a cross-spectrum run filters both splits alike: without noise its splits are one sky, so it sees the
+    # auto-spectrum's bandpowers (same masks, same draws)
+    with ThreadPoolExecutor(2) as pool:
+        cross = validate_estimator(est, cl, n_sims=4, seed=1, harmonic_filter=_high_pass(40), cross=True,
+                                   executor=pool, progress=False)
+    np.testing.assert_allclose(cross.samples, run.samples, rtol=1e-10)
+    assert run.transfer[0] < 0.5  # the first bin (4-12) keeps a small part of its power
 
 
 @pytest.mark.parametrize(
