@@ -98,6 +98,10 @@ def build_operator(inp, nthreads) -> dict:
             pm = _reduce_rows(m, p, binning.ell_min)
             return pm, pm
         bias_rows, leak_rows = rows  # (reduce_rows scales its argument in place: one copy, then m itself)
+        if np.array_equal(bias_rows, leak_rows):  # no power above the bins: no second matrix
+            m *= bias_rows[:, None]
+            pm = _reduce_rows(m, p, binning.ell_min)
+            return pm, pm
         pm_leak = _reduce_rows(m * leak_rows[:, None], p, binning.ell_min)
         m *= bias_rows[:, None]
         return _reduce_rows(m, p, binning.ell_min), pm_leak
