@@ -42,14 +42,19 @@ def _bias_bytes(nside, lmax, mask2, settings):
     from cmbtools._core.memory import estimate_deprojection_bias_bytes
     from cmbtools.spectrum.deprojection import COARSE_NSIDE
 
-    templates = settings.get("templates") or ()
+    templates = settings.get("templates")
     remove = settings.get("remove_monopole_dipole", True) is True
     if settings.get("correct_deprojection_bias", True) is not True:
         return 0
-    try:
-        n_user = len(templates)
-    except TypeError:
-        return 0
+    if templates is None:
+        n_user = 0
+    elif isinstance(templates, np.ndarray) and templates.ndim < 2:
+        return 0  # refused by resolve_settings with its own message
+    else:
+        try:
+            n_user = len(templates)
+        except TypeError:
+            return 0
     sky_lmax = settings.get("sky_lmax")
     return estimate_deprojection_bias_bytes(
         nside, lmax, n_templates=4 * remove + n_user, sky_lmax=sky_lmax if isinstance(sky_lmax, int) else None,
