@@ -701,3 +701,144 @@ def _polarized_columns(spectra) -> dict:
     if len({a.size for a in out.values()}) > 1:
         raise InvalidInputError(f"The polarized spectra must all have one length. Got lengths {sorted({a.size for a in out.values()})}.")
     return {k: a for k, a in out.items() if k in ("TT", "EE", "BB", "TE") or np.any(a != 0)}
+
+
+# --------------------------------------------------------------------------- transfer and filter tables
+
+#: The columns of a bandpower transfer table, in order (``transfer_error`` optional when read).
+TRANSFER_COLUMNS = ("ell_min", "ell_max", "ell_eff", "transfer", "transfer_error")
+
+
+def write_transfer_table(path, ell_min, ell_max, ell_eff, transfer, transfer_error, *, metadata=None,
+                         overwrite=False) -> Path:
+    """Write a per-bin transfer function as a text table (the layout :func:`read_transfer_table` reads).
+
+    Comment lines (the title, the meaning of the columns, then ``# key: value``
+    per ``metadata`` item), then the columns :data:`TRANSFER_COLUMNS`:
+    ``ell_min,ell_max`` (bin limits, inclusive), ``ell_eff``, ``transfer``
+    (``F_b``, the mean recovered bandpower over the expected one, dimensionless)
+    and ``transfer_error`` (its standard error; 0 when unknown).
+
+    Returns
+    -------
+    Path
+    """
+    comments = ["cmbtools bandpower transfer function",
+                "columns: ell_min, ell_max = bin limits (inclusive); ell_eff; transfer = F_b, the mean recovered "
+                "bandpower over the expected one; transfer_error = its standard error"]
+    comments += [f"{k}: {' '.join(str(v).splitlines())}" for k, v in dict(metadata or {}).items()]
+    rows = [(str(int(a)), str(int(b)), repr(float(e)), repr(float(t)), repr(float(s)))
+            for a, b, e, t, s in zip(ell_min, ell_max, ell_eff, transfer, transfer_error)]
+    return write_text_table(path, TRANSFER_COLUMNS, rows, comments=comments, overwrite=overwrite)
+
+
+def read_transfer_table(path):
+    """Read a per-bin transfer table: ``(path, columns, metadata)``.
+
+    The table needs the columns ``ell_min``, ``ell_max`` and ``transfer``;
+    ``ell_eff`` (default: the middle of the bin) and ``transfer_error``
+    (default 0) are optional and other columns are ignored, so the per-bin
+    table of ``cmbtools validate`` (``summary.csv``) is accepted as well as the
+    transfer table it writes.  The bins must be whole numbers, increasing,
+    without overlaps; ``transfer`` must be finite and positive, ``transfer_error``
+    finite and >= 0.  Returned columns: ``ell_min``/``ell_max`` int64, the
+    others float64.
+
+    Raises
+    ------
+    InputFileError
+        Missing file or column, a cell that is not a number, bad bins, a
+        transfer that is not positive (the message names the line).
+    """
+    table = read_text_table(path, what="a transfer table")
+    p = table.path
+    if table.names is None:
+        raise InputFileError(p, "has no column names (expected 'ell_min,ell_max,ell_eff,transfer,transfer_error')")
+    names = list(table.names)
+    missing = [c for c in ("ell_min", "ell_max", "transfer") if c not in names]
+    if missing:
+        raise InputFileError(p, f"line {table.header_line}: no {', '.join(repr(c) for c in missing)} column "
+                                f"(a transfer table has the columns {','.join(TRANSFER_COLUMNS)}; found {','.join(names)})")
+    for c in set(names):
+        if names.count(c) > 1:
+            raise InputFileError(p, f"line {table.header_line}: the column {c!r} appears twice")
+    if not table.rows:
+        raise InputFileError(p, "has column names but no data rows")
+    wanted = [c for c in TRANSFER_COLUMNS if c in names]
+    values = {c: np.empty(len(table.rows)) for c in wanted}
+    for j, (number, cells) in enumerate(table.rows):
+        if len(cells) != len(names):
+            raise InputFileError(p, f"line {number}: {len(cells)} cells, but the header names {len(names)} columns")
+        for c in wanted:
+            v = number_cell(p, cells[names.index(c)], f"line {number}: {c}")
+            if not math.isfinite(v):
+                raise InputFileError(p, f"line {number}: {c} = {cells[names.index(c)]!r} is not finite")
+            if c in ("ell_min", "ell_max") and (v != int(v) or v < 0 or v > LARGEST_ELL):
+                raise InputFileError(p, f"line {number}: {c} = {cells[names.index(c)]!r} is not a whole number "
+                                        f"in [0, {LARGEST_ELL}]")
+            if c == "transfer" and not v > 0:
+                raise InputFileError(p, f"line {number}: transfer = {cells[names.index(c)]!r} is not positive (the "
+                                        "bin keeps no signal: it cannot be corrected; drop or widen it)")
+            if c == "transfer_error" and v < 0:
+                raise InputFileError(p, f"line {number}: transfer_error = {cells[names.index(c)]!r} is negative")
+            values[c][j] = v
+    lo, hi = values["ell_min"].astype(np.int64), values["ell_max"].astype(np.int64)
+    lines = [number for number, _ in table.rows]
+    for j in range(lo.size):
+        if hi[j] < lo[j]:
+            raise InputFileError(p, f"line {lines[j]}: ell_max {hi[j]} is below ell_min {lo[j]}")
+        if j and lo[j] <= hi[j - 1]:
+            raise InputFileError(p, f"line {lines[j]}: the bin {lo[j]}-{hi[j]} starts inside or before the one "
+                                    f"above it ({lo[j - 1]}-{hi[j - 1]}); bins must increase without overlaps")
+    cols = {"ell_min": lo, "ell_max": hi,
+            "ell_eff": values.get("ell_eff", 0.5 * (lo + hi)),
+            "transfer": values["transfer"],
+            "transfer_error": values.get("transfer_error", np.zeros(lo.size))}
+    return p, cols, table.metadata()
+
+
+def read_filter_table(path) -> np.ndarray:
+    """Read a harmonic filter table: the factor ``f_l`` that multiplies every ``a_lm`` of multipole ``l``.
+
+    Columns ``ell`` (every multipole from 0, once, in increasing order) and
+    ``factor`` (finite, dimensionless); other columns are ignored.  The power
+    of the filtered sky is ``f_l^2 C_l``.
+
+    Returns
+    -------
+    ndarray of shape (ell_max+1,)
+        ``f_l`` from ell = 0.
+
+    Raises
+    ------
+    InputFileError
+        Missing file or column, a cell that is not a number or not finite,
+        ells that do not run 0, 1, 2, ... (the message names the line).
+    """
+    table = read_text_table(path, what="a filter table")
+    p = table.path
+    if table.names is None:
+        raise InputFileError(p, "has no column names (expected 'ell,factor')")
+    names = list(table.names)
+    missing = [c for c in ("ell", "factor") if c not in names]
+    if missing or names.count("ell") > 1 or names.count("factor") > 1:
+        raise InputFileError(p, f"line {table.header_line}: a filter table has one 'ell' and one 'factor' column "
+                                f"(found {','.join(names)})")
+    if not table.rows:
+        raise InputFileError(p, "has column names but no data rows")
+    i_ell, i_f = names.index("ell"), names.index("factor")
+    out = np.empty(len(table.rows))
+    for j, (number, cells) in enumerate(table.rows):
+        if len(cells) != len(names):
+            raise InputFileError(p, f"line {number}: {len(cells)} cells, but the header names {len(names)} columns")
+        ell = number_cell(p, cells[i_ell], f"line {number}: ell")
+        if ell != j:
+            raise InputFileError(p, f"line {number}: ell = {cells[i_ell]!r} where {j} was expected (the table lists "
+                                    "every ell from 0 once, in increasing order)")
+        v = number_cell(p, cells[i_f], f"line {number}: factor")
+        if not math.isfinite(v):
+            raise InputFileError(p, f"line {number}: factor = {cells[i_f]!r} is not finite")
+        out[j] = v
+        if j > LARGEST_ELL:
+            raise InputFileError(p, f"line {number}: ell is above the largest ell, {LARGEST_ELL}")
+    return out

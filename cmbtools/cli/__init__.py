@@ -75,9 +75,10 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 _INPUT_OPTIONS = ("template", "map", "map2", "mask", "mask2", "info", "from_mask", "from_map", "holes", "beam", "beam2",
                   "theory",
                   "noise_spectrum", "noise_maps", "half_difference", "spectrum", "hits", "pol_mask",
-                  "pol_mask2", "hits2", "noise_variance", "noise_variance2", "covariance_from")
+                  "pol_mask2", "hits2", "noise_variance", "noise_variance2", "covariance_from",
+                  "harmonic_filter", "transfer")
 _OUTPUT_OPTIONS = ("output", "fits", "figure", "table", "json_file", "write_spectrum", "write_noise_spectrum",
-                   "operator_cache", "covariance")
+                   "operator_cache", "covariance", "transfer_table")
 
 
 def _refuse_inputs_as_outputs(args):

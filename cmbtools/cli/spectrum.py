@@ -83,6 +83,10 @@ def add_arguments(parser):
                         help="band limit of the sky whose power above the bins is modelled from the guess spectrum "
                              "(--theory, else the built-in fiducial one); real skies: 4 nside - 1 (default: lmax, "
                              "a sky without power above lmax)")
+    parser.add_argument("--transfer", metavar="FILE",
+                        help="per-bin transfer function table (transfer.csv of `cmbtools validate`, same bins): "
+                             "divide the bandpowers, their errors and covariance by it, undoing a filtering of the "
+                             "map that the estimator does not model")
     add_error_options(parser)
     add_polarization_options(parser)
     parser.add_argument("--fast-coupling", action="store_true",
@@ -172,6 +176,8 @@ def run(args) -> int:
     from cmbtools.cli.polarized_spectrum import is_polarized_input, run_polarized
 
     if is_polarized_input(args.map):
+        if args.transfer is not None:
+            raise InvalidInputError("--transfer applies to temperature spectra only.")
         if args.covariance is not None or args.covariance_from is not None:
             raise InvalidInputError("--covariance and --covariance-from apply to temperature spectra only.")
         return run_polarized(args, seen)
@@ -202,6 +208,13 @@ def run(args) -> int:
     theory = read_spectrum_table(args.theory) if args.theory is not None else None
 
     binning = binning_from_args(args, lmax, float(np.mean(w1)))
+    transfer = None
+    if args.transfer is not None:
+        transfer = sp.BandpowerTransfer.read_csv(args.transfer)
+        try:
+            transfer.check_bins(binning)
+        except InvalidInputError as exc:
+            raise InvalidInputError(f"{args.transfer}: {exc}") from None
     if theory is not None and theory.size < binning.lmax + 1:
         # the figure needs it: found now, before any work, not after the table is written
         raise InvalidInputError(
@@ -256,8 +269,31 @@ def run(args) -> int:
     else:
         bp, raw = subtract_noise(est, m1, noise_kind, noise_value, args)
     noise_maps_for_errors = noise_value if noise_kind == "maps" else None
-    bp, covariance, errors_text = apply_error_model(args, est, bp, raw, theory, noise_maps_for_errors,
+    filtered_theory = theory
+    if transfer is not None and theory is not None:
+        # the error model describes the measured (filtered) bandpowers: its signal is the theory times F_b
+        filtered_theory = theory.copy()
+        for lo, hi, f in zip(transfer.ell_min, transfer.ell_max, transfer.transfer):
+            filtered_theory[lo: hi + 1] *= f
+    bp, covariance, errors_text = apply_error_model(args, est, bp, raw, filtered_theory, noise_maps_for_errors,
                                                     cross=m2 is not None, nside=nside)
+    measured = bp  # before the transfer correction: the noise bias table is of the measured power
+    corrected_key = None if covariance is None else covariance.settings.get("bandpower_transfer_key")
+    if corrected_key is not None and (transfer is None or corrected_key != transfer.key):
+        # a simulated covariance of `validate --transfer`: already of corrected bandpowers
+        raise InvalidInputError(
+            f"{args.covariance_from}: the covariance is of bandpowers divided by a transfer function "
+            f"(key {corrected_key}); give the same table with --transfer"
+            + ("." if transfer is None else f" (the --transfer table has key {transfer.key}).")
+        )
+    if transfer is not None:
+        bp = transfer.apply(bp).with_metadata(transfer_file=str(args.transfer),
+                                              transfer_file_sha256=sha256_file(args.transfer))
+        if corrected_key is not None:  # the errors and covariance describe the corrected bandpowers already
+            bp = dataclasses.replace(bp, cl_err=measured.cl_err, dl_err=measured.dl_err,
+                                     covariance=measured.covariance)
+        elif covariance is not None:
+            covariance = transfer.apply_to_covariance(covariance)
 
     # 3. record the files
     meta = {"map": str(args.map), "map_sha256": info1.sha256, "mask_file": str(args.mask),
@@ -299,7 +335,7 @@ def run(args) -> int:
                 covariance = dataclasses.replace(covariance, windows=windows)
             written.append(covariance.write(args.covariance, overwrite=args.overwrite))
         if args.write_noise_spectrum is not None:
-            table = noise_bias_table(est, bp, raw, noise_kind, args)
+            table = noise_bias_table(est, measured, raw, noise_kind, args)
             written.append(table.write_csv(args.write_noise_spectrum, overwrite=args.overwrite, unit=args.unit))
     except BaseException:
         for p in written:
@@ -324,6 +360,9 @@ def run(args) -> int:
                   f"half-difference of {args.half_difference[0]} and {args.half_difference[1]}")
         print(f"  noise bias subtracted: {source}")
     print(f"  errors: {errors_text}")
+    if transfer is not None:
+        print(f"  transfer: bandpowers, errors and covariance divided by F_b of {args.transfer} "
+              f"({float(transfer.transfer.min()):.4g} to {float(transfer.transfer.max()):.4g})")
     if args.operator_cache is not None:
         print(f"  operator cache: {cache_text}")
     for p in written:

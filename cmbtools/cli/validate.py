@@ -30,9 +30,20 @@ starts over).  Simulation i always uses the same random numbers for a given
 
 Outputs (by default in the run directory): summary.csv (one row per bin, a
 '# key: value' header with the settings), summary.json (the headline numbers
-n_sims, max_abs_bias_sigma, median_error_ratio, ... and the per-bin columns)
-and validation.png (input against the mean recovered D_l with scatter bands,
-and the bias per bin).
+n_sims, max_abs_bias_sigma, median_error_ratio, ... and the per-bin columns),
+validation.png (input against the mean recovered D_l with scatter bands,
+and the bias per bin), transfer.csv (the per-bin transfer function F_b = mean /
+expected with its standard error, which 'cmbtools spectrum --transfer' divides
+out) and covariance.npz (the simulated covariance of the bandpowers).
+
+Filtering: --harmonic-filter FILE multiplies every simulated sky's harmonic
+coefficients by a factor per multipole (a table with columns ell,factor from
+ell 0), a stand-in for the filtering of a real survey's maps; transfer.csv
+then measures what it does to each bin.  --transfer FILE divides such a table
+out of every simulation's bandpowers and errors (as 'cmbtools spectrum
+--transfer' does), to check the corrected pipeline with another --seed: the
+bias and the transfer column then describe what is left, transfer.csv still
+holds the whole F_b and covariance.npz is of the corrected bandpowers.
 
 The memory of the estimator and of the simulations (one per local worker at
 a time) is estimated before they start; the command stops if it exceeds what
@@ -43,6 +54,8 @@ examples:
       --sims 200 --seed 1 --run-dir tern_validation
   cmbtools validate mask.fits --lmax 300 --bin-width 20 --spectrum model.csv --sims 500 \\
       --scheduler tcp://10.0.0.5:8786 --run-dir big_run
+  cmbtools validate tern_mask.fits --beam-fwhm 25 --harmonic-filter high_pass.csv --sims 100 \\
+      --run-dir filtered   # then: cmbtools spectrum ... --transfer filtered/transfer.csv
 """
 
 
@@ -82,6 +95,14 @@ def add_arguments(parser):
     noise.add_argument("--noise-knee", type=positive_float, metavar="ELL",
                        help="knee multipole of correlated noise N_l = N_white (1 + (ELL/l)^SLOPE)")
     noise.add_argument("--noise-slope", type=positive_float, metavar="SLOPE", help="slope of the correlated noise")
+    parser.add_argument("--harmonic-filter", metavar="FILE",
+                        help="multiply every simulated sky's harmonic coefficients by a factor per multipole "
+                             "(table with columns ell,factor from ell 0 to the skies' band limit): a stand-in for the "
+                             "filtering of the real maps, measured in transfer.csv")
+    parser.add_argument("--transfer", metavar="FILE",
+                        help="per-bin transfer function table (transfer.csv of an earlier run, same bins) divided "
+                             "out of every simulation's bandpowers, as 'cmbtools spectrum --transfer' does: checks the "
+                             "corrected pipeline (use another --seed)")
     parser.add_argument("--spectrum", metavar="FILE",
                         help="input sky spectrum table (columns ell and cl or dl; default: the built-in fiducial spectrum)")
     sims = parser.add_argument_group("simulations")
@@ -104,6 +125,9 @@ def add_arguments(parser):
     out.add_argument("--table", metavar="FILE.csv", help="per-bin table (default RUN_DIR/summary.csv)")
     out.add_argument("--json-file", metavar="FILE.json", help="summary as JSON (default RUN_DIR/summary.json)")
     out.add_argument("--figure", metavar="FIG.png", help="figure, PNG or PDF (default RUN_DIR/validation.png)")
+    out.add_argument("--transfer-table", metavar="FILE.csv",
+                     help="per-bin transfer function table, read by 'cmbtools spectrum --transfer' "
+                          "(default RUN_DIR/transfer.csv)")
     out.add_argument("--unit", choices=("uK", "K"), default="uK", help="unit of the table's spectra: uK^2 (default) or K^2")
     add_overwrite(parser)
     add_force(parser)
@@ -149,7 +173,8 @@ def run(args) -> int:
     outputs = []
     seen = {}
     for what, given, default in (("table", args.table, "summary.csv"), ("JSON summary", args.json_file, "summary.json"),
-                                 ("figure", args.figure, "validation.png")):
+                                 ("figure", args.figure, "validation.png"),
+                                 ("transfer table", args.transfer_table, "transfer.csv")):
         # files inside the run directory belong to the run and are rewritten on every run
         path = Path(given) if given is not None else run_dir / default
         overwrite = args.overwrite or given is None
@@ -210,6 +235,13 @@ def run(args) -> int:
         mask2 = maps.read_mask(args.mask2, force=args.force)
         check_same_nside(mask, mask2, args.mask, args.mask2)
     binning = binning_from_args(args, lmax, float(np.mean(mask)))
+    transfer = None
+    if args.transfer is not None:
+        transfer = sp.BandpowerTransfer.read_csv(args.transfer)
+        try:
+            transfer.check_bins(binning, "the validation")
+        except InvalidInputError as exc:
+            raise InvalidInputError(f"{args.transfer}: {exc}") from None
     sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
     top = (8 if args.pixelise else 4) * nside - 1
     if cross:
@@ -223,6 +255,16 @@ def run(args) -> int:
                 f"{sky_lmax} (give a longer table or a lower --sky-lmax)."
             )
         cl = fiducial_cl(sky_lmax)
+    harmonic_filter = None
+    if args.harmonic_filter is not None:
+        from cmbtools._core.tables import read_filter_table
+
+        harmonic_filter = read_filter_table(args.harmonic_filter)
+        if harmonic_filter.size < sky_lmax + 1:
+            raise InvalidInputError(
+                f"The filter table {args.harmonic_filter!r} stops at ell={harmonic_filter.size - 1}; the skies go "
+                f"to ell={sky_lmax} (give the factor up to there, or a lower --sky-lmax)."
+            )
     removal = not args.keep_monopole_dipole
     monopole = (100.0 if removal else 0.0) if args.monopole is None else args.monopole
     dipole_uk = (3000.0 if removal else 0.0) if args.dipole is None else args.dipole
@@ -253,7 +295,7 @@ def run(args) -> int:
             est, cl, n_sims=args.sims, seed=args.seed, noise=noise, run_dir=run_dir, executor=client,
             workers=None if client is not None else n_workers, threads_per_worker=args.threads or None,
             progress=False if args.no_progress else None, restart=args.restart, force=args.force, cross=cross,
-            monopole=monopole * 1e-6, dipole=dipole,
+            monopole=monopole * 1e-6, dipole=dipole, harmonic_filter=harmonic_filter, bandpower_transfer=transfer,
             **({} if cross else {"sky_lmax": sky_lmax, "pixelise": bool(args.pixelise)}),
         )
     finally:
@@ -270,6 +312,11 @@ def run(args) -> int:
                  "pixel_window": "no" if args.no_pixel_window else "yes"})
     if args.hits is not None:
         meta["hits_file"] = str(args.hits)
+    if args.harmonic_filter is not None:
+        meta["harmonic_filter_file"] = str(args.harmonic_filter)
+        meta["harmonic_filter_file_sha256"] = sha256_file(args.harmonic_filter)
+    if args.transfer is not None:
+        meta["transfer_file"] = str(args.transfer)
     import dataclasses
 
     result = dataclasses.replace(result, metadata=meta)
@@ -279,6 +326,15 @@ def run(args) -> int:
             written.append(result.write_csv(path, overwrite=overwrite, unit=args.unit))
         elif what == "JSON summary":
             written.append(result.write_json(path, overwrite=overwrite))
+        elif what == "transfer table":
+            measured = sp.BandpowerTransfer.from_validation(result)
+            if transfer is not None:  # the whole F_b of the pipeline: what is left times what was divided out
+                measured = dataclasses.replace(
+                    measured, transfer=measured.transfer * transfer.transfer,
+                    transfer_error=measured.transfer_error * transfer.transfer,
+                    metadata={**measured.metadata, "measured_by": "Monte Carlo validation (mean / expected per bin, "
+                              f"with {args.transfer} divided out and multiplied back)"})
+            written.append(measured.write_csv(path, overwrite=overwrite))
         else:
             written.append(result.plot(path, overwrite=overwrite))
     # the simulated covariance of the bandpowers, usable by `cmbtools spectrum --covariance-from`
@@ -288,7 +344,9 @@ def run(args) -> int:
     simulated = simulated_covariance(
         result.samples, ell_min=result.ell_min, ell_max=result.ell_max, ell_eff=result.ell_eff, windows=windows,
         settings={"spectrum": "cross" if cross else "auto", "seed": int(result.seed),
-                  "estimator_key": meta.get("estimator_key", "")})
+                  "estimator_key": meta.get("estimator_key", ""),
+                  **({} if transfer is None else {"bandpower_transfer_key": transfer.key,
+                                                  "bandpower_transfer": f"divided out ({args.transfer})"})})
     written.append(simulated.write(run_dir / "covariance.npz", overwrite=True))
 
     s = result.summary()
@@ -319,6 +377,11 @@ def run(args) -> int:
     print(f"  error bars ({meta.get('error_model', 'analytic')}): scatter / error = "
           f"{num('median_error_ratio', '.3f')} (median; {num('min_error_ratio', '.3f')} to "
           f"{num('max_error_ratio', '.3f')} over the bins)")
-    print(f"  transfer (mean / expected): median {num('median_transfer', '.4f')}")
+    if transfer is not None:
+        print(f"  bandpowers and errors divided by F_b of {args.transfer} "
+              f"({float(transfer.transfer.min()):.4g} to {float(transfer.transfer.max()):.4g})")
+    print(f"  transfer (mean / expected): median {num('median_transfer', '.4f')}"
+          + (f", from {float(np.nanmin(result.transfer)):.4f} to {float(np.nanmax(result.transfer)):.4f} "
+             f"(harmonic filter {args.harmonic_filter})" if args.harmonic_filter else ""))
     print("  wrote " + ", ".join(str(p) for p in written))
     return 0

@@ -39,6 +39,7 @@ class _ValidationSetup:
     sky_beam2: np.ndarray | None = None
     sky_lmax: int | None = None  # band limit of the skies when above the estimator's lmax (sky_beam goes there)
     pixelise: bool = False  # synthesize at 2 nside (sky_beam then carries that grid's window) and average
+    dipole_factor: float = 1.0  # a harmonic filter's f_1 (f_l is folded into sky_beam, f_0 into monopole)
 
 
 def _validation_memory(estimator, noise, with_dipole, with_filter) -> int:
@@ -78,7 +79,7 @@ def _simulate_and_estimate(index, rng, setup):
     # pixels on rings the mask does not touch never reach the bandpowers: they are not simulated (the
     # pixels that are have their full-sky values); a sky filter sees the whole sky
     rings = est._occupied_rings() if setup.sky_filter is None else None
-    dip = None if setup.dipole is None else _dipole_vector(setup.dipole)
+    dip = None if setup.dipole is None else _dipole_vector(setup.dipole) * setup.dipole_factor
     rng_sky2 = copy.deepcopy(rng) if setup.cross and setup.sky_beam2 is not None else None
     sky_lmax = lmax if setup.sky_lmax is None else setup.sky_lmax
     if setup.pixelise:
@@ -157,6 +158,8 @@ def validate_estimator(
     monopole=0.0,
     dipole=None,
     sky_filter=None,
+    harmonic_filter=None,
+    bandpower_transfer=None,
     record_pseudo_spectra=False,
     run_dir=None,
     executor=None,
@@ -207,6 +210,22 @@ def validate_estimator(
         per-bin ``transfer`` of the result then measures its effect, and
         ``record_pseudo_spectra`` lets :func:`transfer_from_pseudo_spectrum`
         measure it per multipole.  Must be picklable for process workers.
+    harmonic_filter : array_like of shape (>= sky_lmax+1,), optional
+        A filter in harmonic space, ``f_l`` from ell = 0 (a stand-in for the
+        time-stream filtering of a real survey, which suppresses large scales):
+        every ``a_lm`` of the sky (monopole and dipole included) is multiplied
+        by ``f_l`` before noise is added, so the sky's power becomes
+        ``f_l^2 C_l``.  Folded into the synthesis: it costs nothing.  The
+        per-bin ``transfer`` of the result measures its effect;
+        :meth:`cmbtools.spectrum.BandpowerTransfer.from_validation` turns it
+        into the correction of bandpowers measured on maps filtered alike.
+    bandpower_transfer : BandpowerTransfer, optional
+        A per-bin transfer function (with the estimator's bins) divided out
+        of every simulation's bandpowers and error bars, as
+        ``cmbtools spectrum --transfer`` does: checks the corrected pipeline
+        (use another ``seed`` than the run that measured it).  The result's
+        ``transfer`` is then what is left after the correction (1 when it is
+        right); the simulation records on disk keep the measured bandpowers.
     record_pseudo_spectra : bool, default=False
         Also record the pseudo-spectrum of each masked sky before noise (one
         more transform per simulation); the result's ``mean_pseudo_cl``.
@@ -306,6 +325,21 @@ def validate_estimator(
         noise_cl = noise_spectrum(noise, lmax, nside)
     if errors not in ("gaussian", "knox"):
         raise InvalidInputError(f"The 'errors' parameter must be 'gaussian' or 'knox'. Got {errors!r} instead.")
+    filter_text = "none"
+    if harmonic_filter is not None:
+        band = sky_lmax if not cross else lmax
+        harmonic_filter = check_cl(harmonic_filter, "harmonic_filter", lmax=band, allow_negative=True)[: band + 1]
+        from cmbtools._core.files import sha256_arrays
+
+        filter_text = (f"f_l table sha256={sha256_arrays(harmonic_filter)[:16]} (f_l from "
+                       f"{float(np.min(harmonic_filter)):.4g} to {float(np.max(harmonic_filter)):.4g})")
+    if bandpower_transfer is not None:
+        from cmbtools.spectrum.transfer import BandpowerTransfer
+
+        if not isinstance(bandpower_transfer, BandpowerTransfer):
+            raise InvalidInputError("The 'bandpower_transfer' parameter must be a cmbtools.spectrum.BandpowerTransfer "
+                                    f"or None. Got {type(bandpower_transfer).__name__} instead.")
+        bandpower_transfer.check_bins(estimator.binning, "the estimator")
     if sky_filter is not None and not callable(sky_filter):
         raise InvalidInputError(f"The 'sky_filter' parameter must be a callable or None. Got {sky_filter!r} instead.")
     if not isinstance(cross, (bool, np.bool_)):
@@ -323,11 +357,18 @@ def validate_estimator(
         if cross:
             raise InvalidInputError("The 'sky_lmax' and 'pixelise' parameters are not available with cross=True.")
         sky_beam = _sky_amplitude(estimator, sky_lmax, bool(pixelise))
+    dipole_factor, sky_monopole = 1.0, float(monopole)
+    if harmonic_filter is not None:  # the filter multiplies every a_lm: the synthesis amplitude, monopole, dipole
+        sky_beam = sky_beam * harmonic_filter[: sky_beam.size]
+        if sky_beam2 is not None:
+            sky_beam2 = sky_beam2 * harmonic_filter[: sky_beam2.size]
+        sky_monopole = float(monopole) * float(harmonic_filter[0])
+        dipole_factor = float(harmonic_filter[1]) if harmonic_filter.size > 1 else 0.0
     setup = _ValidationSetup(
         estimator=estimator, cl=cl, sky_beam=sky_beam, noise=noise, noise_cl=noise_cl,
-        monopole=float(monopole), dipole=None if dipole is None else dipole, sky_filter=sky_filter,
+        monopole=sky_monopole, dipole=None if dipole is None else dipole, sky_filter=sky_filter,
         record_pseudo=bool(record_pseudo_spectra), cross=bool(cross), sky_beam2=sky_beam2,
-        sky_lmax=sky_lmax if realistic else None, pixelise=bool(pixelise),
+        sky_lmax=sky_lmax if realistic else None, pixelise=bool(pixelise), dipole_factor=dipole_factor,
     )
     sims = run_simulations(
         _simulate_and_estimate, n_sims, seed=seed, context=setup, run_dir=run_dir, executor=executor,
@@ -351,6 +392,7 @@ def validate_estimator(
         "monopole_K": float(monopole),
         "dipole": "none" if dipole is None else repr(dipole),
         "sky_filter": "none" if sky_filter is None else _function_name(sky_filter),
+        "harmonic_filter": filter_text,
         "sky_lmax": int(sky_lmax),
         "pixelised": "yes (synthesized at 2 nside, averaged into the pixels)" if pixelise else "no",
         "estimator_key": getattr(estimator, "cache_key", ""),
@@ -364,10 +406,17 @@ def validate_estimator(
         pixel_noise = None if noise is None else PixelNoise.from_model(noise, nside, lmax)
         gauss = GaussianCovariance(estimator, noise=pixel_noise, noise2=pixel_noise if cross else None,
                                    cross=bool(cross))
-        reported = np.tile(gauss.covariance(cl[: lmax + 1]).errors, (sims["cl"].shape[0], 1))
-    metadata["error_model"] = "Gaussian covariance of the input spectrum" if errors == "gaussian" else "Knox formula"
+        signal = cl[: lmax + 1] if harmonic_filter is None else cl[: lmax + 1] * harmonic_filter[: lmax + 1] ** 2
+        reported = np.tile(gauss.covariance(signal).errors, (sims["cl"].shape[0], 1))
+    samples = sims["cl"]
+    if bandpower_transfer is not None:
+        samples = samples / bandpower_transfer.transfer
+        reported = reported / bandpower_transfer.transfer
+        metadata.update(bandpower_transfer.record())
+    metadata["error_model"] = ("Knox formula" if errors != "gaussian" else "Gaussian covariance of the input spectrum"
+                               + ("" if harmonic_filter is None else " times the filter's f_l^2"))
     return ValidationResult.from_samples(
-        sims["cl"], reported,
+        samples, reported,
         binning.bin_spectrum(cl) if realistic else estimator.expected_bandpowers(cl[: lmax + 1], cross=bool(cross)),
         ell_min=binning.ell_min, ell_max=binning.ell_max, ell_eff=binning.ell_eff, dl_factor=binning.dl_factor,
         seed=sims.seed, mean_pseudo_cl=sims["pseudo_cl"].mean(axis=0) if record_pseudo_spectra else None,

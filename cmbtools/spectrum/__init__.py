@@ -7,7 +7,10 @@ settings (this computes the mode-coupling matrix once), then apply it to any
 number of maps with :meth:`SpectrumEstimator.estimate`, which returns
 :class:`Bandpowers` (``cl``/``dl`` with Knox errors, optional covariance, and
 a record of the inputs that the CSV/FITS writers put in their headers).
-:func:`estimate_spectrum` does both steps in one call.
+:func:`estimate_spectrum` does both steps in one call.  Bandpowers of maps
+that went through a processing step the estimator does not model (a filter)
+are corrected with the per-bin transfer function a validation run measured:
+:class:`BandpowerTransfer` (``BandpowerTransfer.read_csv(path).apply(bp)``).
 
 Beams and the pixel window are re-exported here: :func:`gaussian_beam`,
 :func:`read_beam`, :func:`write_beam` and :func:`pixel_window` (computed by
@@ -49,6 +52,7 @@ from cmbtools.spectrum.one_call import estimate_spectrum
 from cmbtools.spectrum.pixel_windows import pixel_window, polarization_pixel_window
 from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator, estimate_polarized_spectra
 from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
+from cmbtools.spectrum.transfer import BandpowerTransfer
 
 __all__ = [
     "Binning",
@@ -74,4 +78,5 @@ __all__ = [
     "PolarizedBandpowers",
     "estimate_polarized_spectra",
     "SPECTRA",
+    "BandpowerTransfer",
 ]

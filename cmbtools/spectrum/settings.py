@@ -88,6 +88,11 @@ def _window_array(pixel_window, nside, lmax, nthreads):
 def _transfer_array(transfer, lmax, name):
     if transfer is None:
         return np.ones(lmax + 1), "none"
+    if hasattr(transfer, "apply") and hasattr(transfer, "ell_min"):  # a BandpowerTransfer: per bin, not per l
+        raise InvalidInputError(
+            f"The {name!r} parameter is a per-multipole T_l; a per-bin transfer (BandpowerTransfer) corrects "
+            "the bandpowers instead: transfer.apply(estimator.estimate(map))."
+        )
     t = check_cl(transfer, name, lmax=lmax)[: lmax + 1].copy()
     return t, f"table sha256={_io.sha256_arrays(t)[:16]}"
 

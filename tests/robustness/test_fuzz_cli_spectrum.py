@@ -143,6 +143,22 @@ def _make_inputs():
     (d / "beam_bad.csv").write_text("ell,b_ell\n0,1\n1,-0.5\n")
     f["beam_bad"] = d / "beam_bad.csv"
 
+    # per-bin transfer tables: the default bins of nside 16 (width 16 to lmax 47), others, a non-positive one
+    (d / "transfer.csv").write_text("ell_min,ell_max,ell_eff,transfer,transfer_error\n2,17,9.5,0.3,0.01\n"
+                                    "18,33,25.5,0.9,0.01\n34,47,40.5,1.0,0\n")
+    f["transfer"] = d / "transfer.csv"
+    (d / "transfer_bins.csv").write_text("ell_min,ell_max,transfer\n2,9,0.5\n")
+    f["transfer_bins"] = d / "transfer_bins.csv"
+    (d / "transfer_zero.csv").write_text("ell_min,ell_max,transfer\n2,17,0\n18,33,1\n34,47,1\n")
+    f["transfer_zero"] = d / "transfer_zero.csv"
+    # harmonic filter tables: to 4 nside - 1 of nside 16, too short, bad
+    (d / "filter.csv").write_text("ell,factor\n" + "".join(f"{l},{min(1.0, l / 20.0)!r}\n" for l in range(64)))
+    f["filter"] = d / "filter.csv"
+    (d / "filter_short.csv").write_text("ell,factor\n0,0\n1,0.5\n")
+    f["filter_short"] = d / "filter_short.csv"
+    (d / "filter_bad.csv").write_text("ell,factor\n0,0\n2,0.5\n")
+    f["filter_bad"] = d / "filter_bad.csv"
+
     (d / "edges.txt").write_text("# bin edges\n2 10 20\n30, 45\n")
     f["edges"] = d / "edges.txt"
     (d / "edges_bad.txt").write_text("2 ten 20\n")
@@ -260,6 +276,7 @@ def spectrum_argv(draw):
                                    "noise_huge_ell", "cl", "dl", "map16", "missing"),
         "--fast-coupling": st.none(),
         "--theory": inputs("cl", "dl", "cl_short", "cl_gap", "cl_negative", "cl_huge_ell", "noise", "missing"),
+        "--transfer": inputs("transfer", "transfer_bins", "transfer_zero", "cl", "map16", "missing"),
         # a copy of a cache (a stale or corrupt one is replaced) or of a map (that must never be replaced)
         "--operator-cache": st.one_of(st.sampled_from(["cache_valid", "cache_stale", "cache_corrupt", "map16"]).map(copy_of),
                                       inputs("directory"), output_paths(".npz")),
@@ -401,6 +418,7 @@ def validate_argv(draw):
         "--noise-knee": number(1.0, 100.0),
         "--noise-slope": number(0.5, 4.0),
         "--spectrum": inputs("cl", "dl", "cl_zero", "cl_short", "cl_gap", "cl_huge_ell", "missing"),
+        "--harmonic-filter": inputs("filter", "filter_short", "filter_bad", "cl", "missing"),
         "--sims": st.one_of(st.sampled_from(["0", "1", "2", "3", "4"]), _BAD_INT),
         "--seed": st.one_of(st.integers(0, 2**64).map(str), _BAD_INT),
         "--workers": st.one_of(st.sampled_from(["0", "1", "2", "1000"]), _BAD_INT),
@@ -411,6 +429,7 @@ def validate_argv(draw):
         "--table": output_paths(".csv"),
         "--json-file": output_paths(".json"),
         "--figure": output_paths(".png"),
+        "--transfer-table": output_paths(".csv"),
         "--unit": st.sampled_from(["uK", "K", "nK"]),
         "--overwrite": st.none(),
     }

@@ -1,7 +1,8 @@
 """Property-based tests of the table readers: any input loads correctly or raises the documented error.
 
 Covered: ``simulate.read_spectrum_table`` (spectrum tables), ``spectrum.read_beam``
-(text and FITS beam tables) and ``Bandpowers.read_csv`` (bandpower tables).
+(text and FITS beam tables), ``Bandpowers.read_csv`` (bandpower tables), ``BandpowerTransfer.read_csv``
+(per-bin transfer tables) and ``read_filter_table`` (harmonic filter tables).
 Each reader gets random text and bytes, and near-valid tables built from a
 known spectrum or beam with damage drawn at random: missing, renamed or
 repeated columns, non-numeric, non-finite and negative cells, ells that skip,
@@ -661,3 +662,89 @@ def test_an_undamaged_bandpower_table_with_bom_and_crlf_loads():
     path.write_bytes(b"\xef\xbb\xbf" + path.read_bytes().replace(b"\n", b"\r\n"))
     got = Bandpowers.read_csv(path)
     np.testing.assert_allclose(got.cl, bp.cl, rtol=1e-15, atol=0)
+
+
+# =============================================================== transfer and harmonic filter tables
+
+def _reference_transfer(seed):
+    from cmbtools.spectrum import BandpowerTransfer
+
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(1, 8))
+    lo = 2 + 10 * np.arange(n)
+    return BandpowerTransfer(lo, lo + 9, lo + 4.5, rng.uniform(0.01, 1.1, n), rng.uniform(0.0, 0.05, n),
+                             {"n_sims": 40, "mask_file": "tern mask.fits"})
+
+
+def _damaged_text(lines, damage, newline, bom):
+    encoding, cut = "utf-8", None
+    for d in damage:
+        if d[0] == "delete_line" and lines:
+            del lines[d[1] % len(lines)]
+        elif d[0] == "replace_cell" and lines:
+            k = d[1] % len(lines)
+            cells = lines[k].split(",")
+            cells[d[2] % len(cells)] = d[3]
+            lines[k] = ",".join(cells)
+        elif d[0] == "truncate":
+            cut = d[1]
+        elif d[0] == "encoding":
+            encoding = d[1]
+    data = _join(lines, newline, bom, True).encode(encoding, errors="replace")
+    return data if cut is None else data[:cut]
+
+
+_TABLE_DAMAGE = st.one_of(
+    st.tuples(st.just("delete_line"), st.integers(0, 50)),
+    st.tuples(st.just("replace_cell"), st.integers(0, 50), st.integers(0, 4),
+              st.one_of(st.sampled_from(_JUNK + _NONFINITE + ["", "2.5", "-3", "0", "1e300", "7"]),
+                        st.floats().map(repr))),
+    st.tuples(st.just("truncate"), st.integers(0, 2000)),
+    st.tuples(st.just("encoding"), st.sampled_from(["utf-16", "latin-1"])),
+)
+
+
+@fuzz_settings(120)
+@given(seed=st.integers(0, 2**32 - 1), damage=st.lists(_TABLE_DAMAGE, max_size=3), bom=st.booleans(),
+       newline=st.sampled_from(_NEWLINES))
+def test_transfer_tables_load_or_raise(seed, damage, bom, newline):
+    from cmbtools.spectrum import BandpowerTransfer
+
+    t = _reference_transfer(seed)
+    path = new_path(".csv")
+    t.write_csv(path)
+    path.write_bytes(_damaged_text(path.read_text(encoding="utf-8").splitlines(), damage, newline, bom))
+    got, err, caught = attempt(BandpowerTransfer.read_csv, path)
+    only_our_warnings(caught)
+    if err is not None:
+        assert isinstance(err, InputFileError) and err.path == str(path), err
+        assert damage, f"an undamaged table was refused: {err}"
+        return
+    assert got.n_bins >= 1 and np.all(got.transfer > 0) and np.all(got.transfer_error >= 0)
+    assert np.all(got.ell_min[1:] > got.ell_max[:-1])
+    if not damage:
+        for name in ("ell_min", "ell_max", "ell_eff", "transfer", "transfer_error"):
+            np.testing.assert_array_equal(getattr(got, name), getattr(t, name), err_msg=name)
+        assert got.metadata["mask_file"] == "tern mask.fits"
+
+
+@fuzz_settings(120)
+@given(seed=st.integers(0, 2**32 - 1), damage=st.lists(_TABLE_DAMAGE, max_size=3), bom=st.booleans(),
+       newline=st.sampled_from(_NEWLINES))
+def test_harmonic_filter_tables_load_or_raise(seed, damage, bom, newline):
+    from cmbtools._core.tables import read_filter_table, write_text_table
+
+    rng = np.random.default_rng(seed)
+    f = rng.uniform(-0.1, 1.0, int(rng.integers(1, 30)))
+    path = write_text_table(new_path(".csv"), ("ell", "factor"), [(str(i), repr(float(v))) for i, v in enumerate(f)],
+                            comments=["a high-pass"])
+    path.write_bytes(_damaged_text(path.read_text(encoding="utf-8").splitlines(), damage, newline, bom))
+    got, err, caught = attempt(read_filter_table, path)
+    only_our_warnings(caught)
+    if err is not None:
+        assert isinstance(err, InputFileError) and err.path == str(path), err
+        assert damage, f"an undamaged table was refused: {err}"
+        return
+    assert got.ndim == 1 and got.size >= 1 and np.all(np.isfinite(got))
+    if not damage:
+        np.testing.assert_array_equal(got, f)
