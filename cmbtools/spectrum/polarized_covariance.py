@@ -278,12 +278,21 @@ def _kernel_key(model, u, v):
     return tuple(sorted((_ident(model, u), _ident(model, v))))
 
 
+def _is_leak(key):
+    return any(kind in ("d", "h") for part in key for kind, _ in part)
+
+
+def _field_map(model, field):
+    return model.base(field[0], "t" if field[1] == "T" else "p")
+
+
 def _structure(est, name):
     """The terms of every covariance block: which per-mode terms multiply which window-product kernel.
 
-    Returns (per-mode pairs in order, number of terms of each, blocks) where a block (i, j) is a list of
-    (kernel key, indices of the first terms, indices of the second terms, factors).  Depends only on the
-    masks, the pair and the purification, so it is built once.
+    Returns (per-mode pairs in order, blocks) where a block (i, j) is a list of (kernel key, reference
+    key, indices of the first terms, indices of the second terms, factors, (u, v), (u_ref, v_ref)); the
+    reference is the main kernel of the pairing (the fields' own windows).  Depends only on the masks,
+    the pair and the purification, so it is built once.
     """
     def make():
         model = _Model(est, name, None, structure_only=True)
@@ -307,33 +316,27 @@ def _structure(est, name):
                 for wi, x, y in est._parts(ci):
                     for wj, z, w in est._parts(comps[j]):
                         for (p, q), (r, t) in (((x, z), (y, w)), ((x, w), (y, z))):
+                            ref = ((_field_map(model, p), _field_map(model, q)),
+                                   (_field_map(model, r), _field_map(model, t)))
+                            ref_key = _kernel_key(model, *ref)
                             for i1, t1, u in per_mode(p, q):
                                 for i2, t2, v in per_mode(r, t):
                                     f = _ANGULAR.get((t1, t2))
                                     if f is None:
                                         continue
                                     key = _kernel_key(model, u, v)
-                                    g = groups.setdefault(key, ([], [], [], (u, v)))
+                                    g = groups.setdefault((key, ref_key), ([], [], [], (u, v), ref))
                                     g[0].append(i1)
                                     g[1].append(i2)
                                     g[2].append(wi * wj * f)
-                blocks[(i, j)] = [(k, np.array(a), np.array(b), np.array(c), uv) for k, (a, b, c, uv) in groups.items()]
+                blocks[(i, j)] = [(k, rk, np.array(a), np.array(b), np.array(c), uv, ref)
+                                  for (k, rk), (a, b, c, uv, ref) in groups.items()]
         return order, blocks
 
     return est._cached(("covariance_structure", name), make)
 
 
-def covariance_requests(est, name):
-    """(keys, spectra) of the window-product kernels the covariance of a pair needs and the cache lacks."""
-    order, blocks = _structure(est, name)
-    model = _Model(est, name, None, structure_only=True)
-    missing = {}
-    for items in blocks.values():
-        for key, _, _, _, (u, v) in items:
-            if ("cov_kernel",) + key not in est._cache and key not in missing:
-                missing[key] = (u, v)
-    lmax = est.lmax
-    nthreads = est._threads()
+def _products(model):
     products = {}
 
     def product(maps):
@@ -345,16 +348,106 @@ def covariance_requests(est, name):
             products[i] = prod
         return products[i]
 
-    keys, spectra = [], []
-    for key, (u, v) in missing.items():
-        a, b = product(u), product(v)
-        rings = _sht.occupied_rings(a) | _sht.occupied_rings(b)
-        if _ident(model, u) == _ident(model, v):
-            spectra.append(_sht.map_spectra([a], lmax, nthreads=nthreads, rings=rings)[0])
-        else:
-            spectra.append(_sht.map_spectra([a, b], lmax, nthreads=nthreads, rings=rings)[2])
-        keys.append(key)
+    return product
+
+
+def _pair_spectrum(model, product, u, v, lmax, nthreads):
+    a, b = product(u), product(v)
+    rings = _sht.occupied_rings(a) | _sht.occupied_rings(b)
+    if _ident(model, u) == _ident(model, v):
+        return _sht.map_spectra([a], lmax, nthreads=nthreads, rings=rings)[0]
+    return _sht.map_spectra([a, b], lmax, nthreads=nthreads, rings=rings)[2]
+
+
+def covariance_requests(est, name):
+    """(keys, spectra) of the main window-product kernels (no gradient) the pair needs and the cache lacks.
+
+    These are computed to lmax in the estimator's kernel call; the leakage kernels are made by
+    :func:`_leak_kernels`.
+    """
+    order, blocks = _structure(est, name)
+    model = _Model(est, name, None, structure_only=True)
+    missing = {}
+    for items in blocks.values():
+        for key, ref_key, _, _, _, uv, ref in items:
+            for k, pair in ((key, uv), (ref_key, ref)):
+                if not _is_leak(k) and ("cov_kernel",) + k not in est._cache and k not in missing:
+                    missing[k] = pair
+    product = _products(model)
+    keys = list(missing)
+    spectra = [_pair_spectrum(model, product, u, v, est.lmax, est._threads()) for u, v in missing.values()]
     return keys, spectra
+
+
+#: The leakage's share of the pseudo-power, ~2 <|eth w|^2> / (l^2 <w^2>), below which its kernels are taken as
+#: the main ones scaled by the means of the window products (their exact shape matters only where they count).
+_LEAK_EXACT_DOWN_TO = 1e-3
+
+
+def _leak_lmax(est, name, model):
+    """Largest multipole of the exact leakage kernels: the end of the last bin where the leakage counts."""
+    ratios = []
+    for side in ("a", "b"):
+        d = model.base(side, "d")
+        p = model.base(side, "p")
+        ratios.append(model.moment((d, d)) / max(model.moment((p, p)), 1e-300))
+    ell_cut = np.sqrt(2.0 * max(ratios) / _LEAK_EXACT_DOWN_TO)
+    b = est.binning
+    exact = b.ell_max <= ell_cut
+    if not np.any(exact):
+        return -1, exact
+    return int(b.ell_max[exact].max()), exact
+
+
+def _leak_kernels(est, name):
+    """The binned leakage kernels: exact below the cut (one kernel call), scaled main kernels above."""
+    done = ("leak_kernels_done", name)
+    if done in est._cache:
+        return
+    from cmbtools.spectrum import coupling as coupling_pol
+    from cmbtools.spectrum.errors import _reduce_cols, _reduce_rows
+
+    order, blocks = _structure(est, name)
+    model = _Model(est, name, None, structure_only=True)
+    lc, exact = _leak_lmax(est, name, model)
+    wanted = {}
+    for items in blocks.values():
+        for key, ref_key, _, _, _, uv, ref in items:
+            if _is_leak(key):
+                wanted.setdefault(key, uv)
+    exact_kernels = {}
+    if lc >= 0 and wanted:
+        product = _products(model)
+        keys = list(wanted)
+        # the taper's products have broad kernels: their spectra to 2 lc, all the kernel can use
+        spectra = [_pair_spectrum(model, product, u, v, 2 * lc, est._threads()) for u, v in wanted.values()]
+        mats = coupling_pol.coupling_matrices([("00", w) for w in spectra], lc, nthreads=est._threads())
+        b = est.binning
+        r = np.zeros(lc + 1)
+        idx = b.bin_index[: lc + 1]
+        sel = np.nonzero(idx >= 0)[0]
+        r[sel] = 1.0 / b.n_ell[idx[sel]]
+        starts = b.ell_min[exact]
+        inv_cols = 1.0 / (2.0 * np.arange(lc + 1) + 1.0)
+        for k, xi in zip(keys, mats):
+            xi = xi * inv_cols[None, :]
+            g = _reduce_cols(_reduce_rows(xi, r, starts), r, starts)
+            exact_kernels[k] = 0.5 * (g + g.T)
+    n_exact = int(np.count_nonzero(exact))
+    for items in blocks.values():
+        for key, ref_key, _, _, _, uv, ref in items:
+            ck = ("leak_kernel", key, ref_key)
+            if not _is_leak(key) or ck in est._cache:
+                continue
+            main = est._cache[("cov_kernel",) + ref_key]
+            scale = model.moment(uv[0] + uv[1]) / model.moment(ref[0] + ref[1])
+            g = main * scale
+            if key in exact_kernels:
+                g = g.copy()
+                g[:n_exact, :n_exact] = exact_kernels[key]
+            g.setflags(write=False)
+            est._cache[ck] = g
+    est._cache[done] = True
 
 
 def pseudo_covariance(est, name, spectra_of):
@@ -379,6 +472,7 @@ def pseudo_covariance(est, name, spectra_of):
         if keys:
             est._kernels(set(), covariance=(keys, spectra))
         est._cache[("covariance_kernels_done", name)] = True
+    _leak_kernels(est, name)
     model = _Model(est, name, spectra_of)
     values = np.array([t[1] for xz in order for t in model.per_mode(*xz)])
     nb = model.nb
@@ -386,11 +480,12 @@ def pseudo_covariance(est, name, spectra_of):
     cov = np.zeros((n * nb, n * nb))
     for (i, j), items in blocks.items():
         block = np.zeros((nb, nb))
-        for key, first, second, factors, _ in items:
+        for key, ref_key, first, second, factors, _, _ in items:
             a = values[first] * factors[:, None]
             b = values[second]
             s = a.T @ b
-            block += 0.5 * (s + s.T) * est._cache[("cov_kernel",) + key]
+            kernel = est._cache[("leak_kernel", key, ref_key) if _is_leak(key) else ("cov_kernel",) + key]
+            block += 0.5 * (s + s.T) * kernel
         cov[i * nb:(i + 1) * nb, j * nb:(j + 1) * nb] = block
         cov[j * nb:(j + 1) * nb, i * nb:(i + 1) * nb] = block.T
     return cov
