@@ -50,11 +50,11 @@ a time) is estimated before they start; the command stops if it exceeds what
 the machine has available, and --force goes ahead anyway.
 
 examples:
-  cmbtools validate tern_mask.fits --beam-fwhm 25 --noise-depth 35 --hits tern_hits.fits \\
+  cmbtools validate tern_mask.fits --beam-fwhm 60 --noise-depth 35 --hits tern_hits.fits \\
       --sims 200 --seed 1 --run-dir tern_validation
   cmbtools validate mask.fits --lmax 300 --bin-width 20 --spectrum model.csv --sims 500 \\
       --scheduler tcp://10.0.0.5:8786 --run-dir big_run
-  cmbtools validate tern_mask.fits --beam-fwhm 25 --harmonic-filter high_pass.csv --sims 100 \\
+  cmbtools validate tern_mask.fits --beam-fwhm 60 --harmonic-filter high_pass.csv --sims 100 \\
       --run-dir filtered   # then: cmbtools spectrum ... --transfer filtered/transfer.csv
 """
 
