@@ -90,6 +90,13 @@ def window_derivative_maps(window, lmax, *, nthreads=None):
     return np.hypot(d[0], d[1]), lap
 
 
+def _per_unit(mean, moment):
+    """Scale of a window-gradient map whose mean is ``mean`` (zero without a gradient: the full sky)."""
+    if not moment > 0.0:
+        return np.zeros_like(mean)
+    return mean / moment
+
+
 class _Model:
     """The per-mode covariances of one pair of maps, as sums of local window terms."""
 
@@ -164,7 +171,7 @@ class _Model:
         if key not in self._c:
             pa, pb = self.mask(sa, "p"), self.mask(sb, "p")
             mean_q = self.row_mean("--", pa, pb)
-            self._c[key] = (mean_q, mean_q / self.moment((self.base(sa, "d"), self.base(sb, "d"))))
+            self._c[key] = (mean_q, _per_unit(mean_q, self.moment((self.base(sa, "d"), self.base(sb, "d")))))
         return self._c[key]
 
     def extra(self, sa, sb):
@@ -175,7 +182,7 @@ class _Model:
         if key not in self._c:
             pa, pb = self.mask(sa, "p"), self.mask(sb, "p")
             q = self.row_mean("00RR", pa, pb) - self.est._moments(pa, pb)
-            self._c[key] = (q, q / self.moment((self.base(sa, "d"), self.base(sb, "d"))))
+            self._c[key] = (q, _per_unit(q, self.moment((self.base(sa, "d"), self.base(sb, "d")))))
         return self._c[key]
 
     # ----------------------------------------------------------------- coupled spectra
