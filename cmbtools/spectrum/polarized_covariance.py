@@ -481,6 +481,15 @@ def pseudo_covariance(est, name, spectra_of):
         est._cache[("covariance_kernels_done", name)] = True
     _leak_kernels(est, name)
     model = _Model(est, name, spectra_of)
+    if ("window_maps_dropped", name) not in est._cache:
+        # what the per-bin amplitudes need of the gradient maps, then the maps go (an estimator sent to
+        # worker processes carries only per-bin arrays and numbers)
+        for sa in ("a", "b"):
+            for sb in ("a", "b"):
+                model.moment((model.base(sa, "d"), model.base(sb, "d")))
+        for key in [k for k in est._cache if k[0] == "window_derivative_maps"]:
+            del est._cache[key]
+        est._cache[("window_maps_dropped", name)] = True
     values = np.array([t[1] for xz in order for t in model.per_mode(*xz)])
     nb = model.nb
     n = len(est.components_of(name))
