@@ -117,9 +117,9 @@ def test_polarized_bandpowers_unbiased_with_right_errors():
             # errors, as 120 bins are judged (a 3-sigma bound would fail by chance in ~25 % of seeds)
             assert np.all(np.abs(z_bias[judged]) < 3.5), (pure, s, z_bias)
             # errors: the simulated scatter within 10 % of the reported error in every bin of every spectrum,
-            # beyond twice the ratio's own Monte Carlo error (measured with this seed: 0.93-1.12, largest in
-            # the first bin; the previous Knox-like model gave 0.70 for the purified EB and 1.41 for the
-            # standard EB there)
+            # beyond twice the ratio's own Monte Carlo error (``ratio`` is mean reported error / scatter; measured
+            # with this seed: 0.93-1.12, largest in the first bin; the previous model without the leakage gave
+            # 0.70 for the purified EB and 1.41 for the standard EB there, with 1000 skies)
             assert np.all(np.abs(ratio[i] - 1.0) < 0.1 + 2.0 * ratio_err[i]), (pure, s, ratio[i], ratio_err[i])
     # purification lowers the BB scatter (the factor is reported in the README)
     factor = report[(False, "BB")][3] / report[(True, "BB")][3]
