@@ -585,7 +585,7 @@ class PolarizedSpectrumEstimator:
 
     # ------------------------------------------------------------------ errors
     @staticmethod
-    def components_of(name):
+    def _components_of(name):
         """The components measured for map 1 x map 1 ('11') or map 1 x map 2 ('12')."""
         return _COMPONENTS_AUTO if name == "11" else _COMPONENTS_CROSS
 

@@ -315,7 +315,7 @@ def _structure(est, name):
                 terms_of[(x, z)] = terms
             return [(offsets[(x, z)] + k, t[0], t[2]) for k, t in enumerate(terms_of[(x, z)])]
 
-        comps = est.components_of(name)
+        comps = est._components_of(name)
         blocks = {}
         for i, ci in enumerate(comps):
             for j in range(i, len(comps)):
@@ -492,7 +492,7 @@ def pseudo_covariance(est, name, spectra_of):
         est._cache[("window_maps_dropped", name)] = True
     values = np.array([t[1] for xz in order for t in model.per_mode(*xz)])
     nb = model.nb
-    n = len(est.components_of(name))
+    n = len(est._components_of(name))
     cov = np.zeros((n * nb, n * nb))
     for (i, j), items in blocks.items():
         block = np.zeros((nb, nb))
