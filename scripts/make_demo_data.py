@@ -2,7 +2,7 @@
 
 The Tern Sky Survey is a fictional ground-based survey at 145 GHz that maps
 one circular patch, the Tern Field: radius 50 degrees around galactic
-(l, b) = (250, -55) degrees, nside 128, Gaussian beam of FWHM 25 arcmin, white
+(l, b) = (250, -55) degrees, nside 128, Gaussian beam of FWHM 60 arcmin (about two 27.5-arcmin pixels), white
 noise of 35 uK-arcmin, deeper towards the centre (from a hits map), with 15
 invented point sources cut out by 1-degree discs.  Everything is drawn from
 one fixed seed, so the files are reproducible (to float32 precision on any
@@ -40,7 +40,7 @@ SEED = 1450
 NSIDE = 128
 LMAX = 4 * NSIDE - 1
 FIELD_LON, FIELD_LAT, FIELD_RADIUS = 250.0, -55.0, 50.0
-BEAM_FWHM_ARCMIN = 25.0
+BEAM_FWHM_ARCMIN = 60.0
 DEPTH_UK_ARCMIN = 35.0
 N_SOURCES = 15
 HOLE_RADIUS_DEG = 1.0
@@ -112,7 +112,7 @@ def write_sources_csv(path, lon, lat, peak, overwrite):
     from cmbtools._core.files import atomic_output
 
     lines = ["# invented point sources of the Tern Field (Tern Sky Survey demo data; not real objects)",
-             "# lon_deg, lat_deg: galactic position; peak_uk: peak brightness after the 25' beam, uK_CMB",
+             "# lon_deg, lat_deg: galactic position; peak_uk: peak brightness after the 60' beam, uK_CMB",
              "lon_deg,lat_deg,peak_uk"]
     lines += [f"{a:.4f},{b:.4f},{c:.1f}" for a, b, c in zip(lon, lat, peak)]
     with atomic_output(path, overwrite=overwrite) as tmp:
@@ -138,7 +138,7 @@ def make_demo_data(output_dir, *, overwrite=False, nthreads=None, log=print):
                                   header={"source": "cmbtools built-in fiducial spectrum, Planck18 cosmology, default extras"})
     beam = gaussian_beam(BEAM_FWHM_ARCMIN, LMAX)
     write_beam(paths["tern_beam.csv"], beam, overwrite=overwrite,
-               header="Tern Sky Survey (invented demo data): Gaussian beam, FWHM 25 arcmin")
+               header=f"Tern Sky Survey (invented demo data): Gaussian beam, FWHM {BEAM_FWHM_ARCMIN:g} arcmin")
 
     lon, lat, peak = invent_sources(simulate.simulation_rng(SEED, STREAM_SOURCES))
     write_sources_csv(paths["tern_sources.csv"], lon, lat, peak, overwrite)

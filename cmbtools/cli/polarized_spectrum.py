@@ -82,6 +82,16 @@ def run_polarized(args, outputs_checked) -> int:
     binning = binning_from_args(args, lmax, float(np.mean(p1)))
     if binning.lmin < 2:
         raise InvalidInputError(f"The bins start at ell={binning.lmin}; polarized spectra need bins from ell >= 2.")
+    theory = None
+    if args.theory is not None:  # read and checked now: a command writes all of its outputs or none
+        from cmbtools.simulate import read_polarized_spectrum_table
+
+        theory = {k: v for k, v in read_polarized_spectrum_table(args.theory).items() if k in sp.SPECTRA}
+        if theory["TT"].size < binning.lmax + 1:
+            raise InvalidInputError(
+                f"The theory table {str(args.theory)!r} stops at ell={theory['TT'].size - 1}; the bins go to "
+                f"ell={binning.lmax} (give a longer table or end the bins lower)."
+            )
 
     # missing pixels inside a mask: dropped from that mask, with a warning (the library's one rule)
     w1 = drop_missing_pixels(m1[0], w1, f"{args.map} (I)", "mask", stacklevel=2)
@@ -116,12 +126,6 @@ def run_polarized(args, outputs_checked) -> int:
     if m2 is not None:
         meta.update({"map2": str(args.map2), "map2_sha256": info2.sha256})
     bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, bp.cl_err, bp.dl, bp.dl_err, bp.covariance, meta)
-
-    theory = None
-    if args.theory is not None:
-        from cmbtools._core.tables import read_polarized_spectrum_table
-
-        theory = {k: v for k, v in read_polarized_spectrum_table(args.theory).items() if k in sp.SPECTRA}
 
     written = []
     try:

@@ -25,7 +25,7 @@ noise would need more memory than the machine has available, the command
 stops before computing anything; --force goes ahead anyway.
 
 examples:
-  cmbtools simulate --nside 128 --beam-fwhm 25 --noise-depth 35 --seed 1 --sims 10 \\
+  cmbtools simulate --nside 128 --beam-fwhm 60 --noise-depth 35 --seed 1 --sims 10 \\
                     --output-dir sims --prefix sky
   cmbtools simulate --spectrum my_cl.csv --nside 64 --seed 7 --output-dir sims
   cmbtools simulate --write-spectrum fiducial_cl.csv --lmax 2000 --sims 0

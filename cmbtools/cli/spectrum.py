@@ -45,10 +45,10 @@ memory is estimated; the command stops if it exceeds what the machine has
 available, and --force goes ahead anyway.
 
 examples:
-  cmbtools spectrum tern_map.fits --mask tern_mask.fits --beam-fwhm 25 -o tern_spectrum.csv
-  cmbtools spectrum half1.fits half2.fits --mask tern_mask.fits --beam-fwhm 25 \\
+  cmbtools spectrum tern_map.fits --mask tern_mask.fits --beam-fwhm 60 -o tern_spectrum.csv
+  cmbtools spectrum half1.fits half2.fits --mask tern_mask.fits --beam-fwhm 60 \\
       --bin-width 20 -o cross.csv --figure cross.png
-  cmbtools spectrum tern_map.fits --mask tern_mask.fits --beam-fwhm 25 \\
+  cmbtools spectrum tern_map.fits --mask tern_mask.fits --beam-fwhm 60 \\
       --half-difference half1.fits half2.fits --write-noise-spectrum noise.csv -o auto.csv
 """
 

@@ -28,6 +28,15 @@ run continues where it stopped when the same command is run again (--restart
 starts over).  Simulation i always uses the same random numbers for a given
 --seed, whatever the number of workers.
 
+--polarized checks the polarized estimator the same way: I, Q, U skies drawn
+from TT, EE, BB, TE (the built-in spectra with lensing-like B modes and
+--tensor-ratio, or a polarized --spectrum table), Q and U noise sqrt(2) times
+the I noise per pixel, the temperature MASK and the polarization mask
+--pol-mask (--pol-mask2 for the second split), optionally --purify-b; the
+bias and the error ratio are reported per spectrum and bin, the table gains a
+'spectrum' column, summary.json per-spectrum keys under "spectra", and the
+figure one panel per spectrum.
+
 Outputs (by default in the run directory): summary.csv (one row per bin, a
 '# key: value' header with the settings), summary.json (the headline numbers
 n_sims, max_abs_bias_sigma, median_error_ratio, ... and the per-bin columns),
@@ -50,11 +59,13 @@ a time) is estimated before they start; the command stops if it exceeds what
 the machine has available, and --force goes ahead anyway.
 
 examples:
-  cmbtools validate tern_mask.fits --beam-fwhm 25 --noise-depth 35 --hits tern_hits.fits \\
+  cmbtools validate tern_mask.fits --beam-fwhm 60 --noise-depth 35 --hits tern_hits.fits \\
       --sims 200 --seed 1 --run-dir tern_validation
   cmbtools validate mask.fits --lmax 300 --bin-width 20 --spectrum model.csv --sims 500 \\
       --scheduler tcp://10.0.0.5:8786 --run-dir big_run
-  cmbtools validate tern_mask.fits --beam-fwhm 25 --harmonic-filter high_pass.csv --sims 100 \\
+  cmbtools validate tern_mask.fits --polarized --pol-mask tern_pol_mask.fits --purify-b --beam-fwhm 60 \\
+      --noise-depth 35 --hits tern_hits.fits --lmax 255 --bin-width 16 --sims 200 --run-dir tern_pol_validation
+  cmbtools validate tern_mask.fits --beam-fwhm 60 --harmonic-filter high_pass.csv --sims 100 \\
       --run-dir filtered   # then: cmbtools spectrum ... --transfer filtered/transfer.csv
 """
 
@@ -129,6 +140,9 @@ def add_arguments(parser):
                      help="per-bin transfer function table, read by 'cmbtools spectrum --transfer' "
                           "(default RUN_DIR/transfer.csv)")
     out.add_argument("--unit", choices=("uK", "K"), default="uK", help="unit of the table's spectra: uK^2 (default) or K^2")
+    from cmbtools.cli.polarized_validate import add_polarization_options
+
+    add_polarization_options(parser)
     add_overwrite(parser)
     add_force(parser)
 
@@ -200,6 +214,23 @@ def run(args) -> int:
         raise InvalidInputError("--noise-knee needs --noise-depth (the white level of the noise).")
     if args.sims < 2:
         raise InvalidInputError(f"--sims must be at least 2 to measure a scatter. Got {args.sims} instead.")
+    from cmbtools.cli.polarized_validate import check_polarization_options, run_polarized
+
+    check_polarization_options(args)
+    if args.polarized:
+        client = None
+        if args.scheduler is not None:
+            client = _dask_client(args.scheduler)
+            n_workers = len(client.scheduler_info(n_workers=-1).get("workers", {}))
+            where = (client, None, f"the dask cluster at {args.scheduler} ({n_workers} workers)")
+        else:
+            n_workers = args.workers or resolve_nthreads(None)
+            where = (None, n_workers, f"{n_workers} local worker process{'es' if n_workers != 1 else ''}")
+        try:
+            return run_polarized(args, outputs, run_dir, where)
+        finally:
+            if client is not None:
+                client.close()
 
     # 2. inputs
     mask = maps.read_mask(args.mask, force=args.force)

@@ -12,11 +12,13 @@
   from an astropy cosmology and :class:`~cmbtools.physics.CosmologyExtras`;
 * :func:`read_spectrum_table`, :func:`write_spectrum_table` - plain-text
   spectrum tables;
-* :func:`run_simulations`, :func:`validate_estimator`, ... - the Monte Carlo engine.
+* :func:`run_simulations`, :func:`validate_estimator`, ... - the Monte Carlo engine;
+  :func:`validate_polarized_estimator` (:class:`PolarizedValidationResult`) checks
+  the polarized estimator on I, Q, U skies.
 
 The implementation lives in one module per job (``random_streams``, ``skies``,
 ``noise``, ``theory_spectrum``, ``engine``, ``run_directory``, ``validation``,
-``validation_result``); this package only re-exports their public names.
+``validation_result``, ``polarized_validation``, ``polarized_validation_result``, ...); this package only re-exports their public names.
 
 Examples
 --------
@@ -43,6 +45,8 @@ from cmbtools.simulate.polarized_skies import (
 )
 from cmbtools.simulate.skies import Dipole, dipole_map, gaussian_alm, gaussian_sky
 from cmbtools.simulate.theory_spectrum import FIDUCIAL_LMAX_LIMIT, fiducial_cl, fiducial_dl
+from cmbtools.simulate.polarized_validation import validate_polarized_estimator
+from cmbtools.simulate.polarized_validation_result import PolarizedValidationResult
 from cmbtools.simulate.validation import validate_estimator, validate_pipeline
 from cmbtools.simulate.validation_result import ValidationResult
 from cmbtools.spectrum.transfer import transfer_from_pseudo_spectrum
@@ -86,5 +90,7 @@ __all__ = [
     "ValidationResult",
     "validate_estimator",
     "validate_pipeline",
+    "PolarizedValidationResult",
+    "validate_polarized_estimator",
     "transfer_from_pseudo_spectrum",
 ]

@@ -173,7 +173,8 @@ def validate_estimator(
     cross=False,
     sky_lmax=None,
     pixelise=False,
-) -> ValidationResult:
+    sky_beam=None,
+):
     """Check a spectrum estimator on simulated skies: bias, error bars and transfer per bin.
 
     Each simulation draws a Gaussian sky from ``cl``, convolves it with the
@@ -187,9 +188,11 @@ def validate_estimator(
 
     Parameters
     ----------
-    estimator : SpectrumEstimator
+    estimator : SpectrumEstimator or PolarizedSpectrumEstimator
         The estimator to check (auto-spectra).  Build it with ``nthreads=None``
-        so that each worker uses its share of the cores.
+        so that each worker uses its share of the cores.  A polarized one is
+        checked by :func:`validate_polarized_estimator` (with ``cl`` its dict
+        of spectra), which returns a :class:`PolarizedValidationResult`.
     cl : array_like of shape (>= lmax+1,), optional
         Input sky spectrum C_l in K^2 from ell = 0; default: the built-in
         fiducial spectrum :func:`cmbtools.simulate.fiducial_cl`.
@@ -262,10 +265,13 @@ def validate_estimator(
         detector's map is made, instead of sampling the pixel centres with the
         pixel window applied.  Needs an estimator that deconvolves the HEALPix
         pixel window; the mean is compared with the bin averages of ``cl``.
+    sky_beam : float, array_like or (array_like, array_like), optional
+        Polarized estimator only: the beam of the skies to ``sky_lmax`` (see
+        :func:`validate_polarized_estimator`).
 
     Returns
     -------
-    ValidationResult
+    ValidationResult or PolarizedValidationResult
 
     See Also
     --------
@@ -274,7 +280,24 @@ def validate_estimator(
     """
     from cmbtools.simulate.noise import NoiseModel, noise_spectrum
     from cmbtools._core.checks import check_cl
+    from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator
 
+    if isinstance(estimator, PolarizedSpectrumEstimator):
+        from cmbtools.simulate.polarized_validation import validate_polarized_estimator
+
+        if sky_filter is not None or record_pseudo_spectra or errors != "gaussian":
+            raise InvalidInputError(
+                "The 'sky_filter', 'record_pseudo_spectra' and 'errors' parameters are not available for a "
+                "polarized estimator (its reported errors are compared with the scatter)."
+            )
+        return validate_polarized_estimator(
+            estimator, cl, n_sims=n_sims, seed=seed, noise=noise, monopole=monopole, dipole=dipole, run_dir=run_dir,
+            executor=executor, workers=workers, threads_per_worker=threads_per_worker, progress=progress,
+            restart=restart, max_restarts=max_restarts, force=force, cross=cross, sky_lmax=sky_lmax,
+            pixelise=pixelise, sky_beam=sky_beam,
+        )
+    if sky_beam is not None:
+        raise InvalidInputError("The 'sky_beam' parameter applies to a polarized estimator only.")
     for attr in ("estimate", "expected_bandpowers", "pseudo_spectrum", "mask", "beam", "pixel_window", "nside", "lmax"):
         if not hasattr(estimator, attr):
             raise InvalidInputError(

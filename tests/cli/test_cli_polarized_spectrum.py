@@ -72,3 +72,28 @@ def test_iqu_refuses_temperature_only_options(iqu_files, tmp_path, capsys):
     assert code == 2
     assert "--fast-coupling applies to temperature maps only" in capsys.readouterr().err
     assert not (tmp_path / "x.csv").exists()
+
+
+@pytest.mark.parametrize("table, message", [
+    ("ell,cl_tt_k2,cl_ee_k2,cl_bb_k2,cl_te_k2\n" + "".join(f"{ell},1e-10,1e-11,0,1e-12\n" for ell in range(30)),
+     "stops at ell=29; the bins go to ell=64"),
+    ("ell,cl_tt_k2,cl_ee_k2\n0,1e-10,1e-11\n", "TE"),
+    ("ell,cl_tt_k2,cl_ee_k2,cl_bb_k2,cl_te_k2\n0,1e-10,-1e-11,0,0\n", "line"),
+])
+def test_iqu_theory_table_is_checked_before_any_computing(iqu_files, tmp_path, capsys, monkeypatch, table, message):
+    import cmbtools.spectrum as sp
+
+    def never(*args, **kwargs):
+        raise AssertionError("the estimator was built before the theory table was checked")
+
+    monkeypatch.setattr(sp, "PolarizedSpectrumEstimator", never)
+    theory = tmp_path / "theory.csv"
+    theory.write_text(table)
+    out, fig = tmp_path / "pol.csv", tmp_path / "pol.png"
+    code = main(["spectrum", str(iqu_files["half1"]), str(iqu_files["half2"]), "--mask", str(iqu_files["mask"]),
+                 "--bin-width", "8", "--lmax", "64", "--theory", str(theory), "-o", str(out), "--figure", str(fig),
+                 "--threads", "1"])
+    assert code == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and message in err[0], err
+    assert not out.exists() and not fig.exists()

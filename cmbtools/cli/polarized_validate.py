@@ -1,0 +1,212 @@
+"""The polarized branch of ``cmbtools validate`` (``--polarized``): I, Q, U skies, the six spectra checked.
+
+The options mean what they mean for temperature; ``--pol-mask``/``--pol-mask2`` give the polarization masks
+(default: the temperature masks), ``--purify-b`` the B-mode purification, ``--tensor-ratio`` the tensor part of
+the built-in spectra, ``--spectrum`` a polarized spectrum table.
+"""
+
+from __future__ import annotations
+
+__all__ = ["add_polarization_options", "check_polarization_options", "run_polarized"]
+
+_POLARIZED_ONLY = ("--pol-mask", "--pol-mask2", "--purify-b", "--tensor-ratio")
+
+
+def add_polarization_options(parser):
+    from cmbtools.cli.common import finite_float
+
+    pol = parser.add_argument_group("polarization (--polarized: I, Q, U skies, the six spectra)")
+    pol.add_argument("--polarized", action="store_true",
+                     help="simulate I, Q, U skies (Q, U noise sqrt(2) times the I noise) and check TT, TE, TB, EE, "
+                          "EB, BB per bin")
+    pol.add_argument("--pol-mask", metavar="MASK", help="mask of Q and U (default: MASK)")
+    pol.add_argument("--pol-mask2", metavar="MASK2", help="mask of the second split's Q and U (default: --pol-mask, "
+                                                         "else --mask2)")
+    pol.add_argument("--purify-b", action="store_true",
+                     help="measure B with the pure-B estimator (the polarization mask must be apodized; accurate "
+                          "up to lmax = 2 nside)")
+    pol.add_argument("--tensor-ratio", type=finite_float, default=None, metavar="R",
+                     help="tensor-to-scalar ratio of the built-in spectra's B modes (default 0; their lensing-like "
+                          "B modes are always in)")
+
+
+def check_polarization_options(args):
+    """Refuse the polarized options without --polarized, and the temperature-only ones with it (before any work)."""
+    from cmbtools.exceptions import InvalidInputError
+
+    if not args.polarized:
+        given = [flag for flag, v in zip(_POLARIZED_ONLY, (args.pol_mask, args.pol_mask2, args.purify_b,
+                                                            args.tensor_ratio is not None)) if v]
+        if given:
+            raise InvalidInputError(f"{', '.join(given)} need{'s' if len(given) == 1 else ''} --polarized.")
+        return
+    if args.fast_coupling:
+        raise InvalidInputError("--fast-coupling is not available with --polarized (its couplings are exact).")
+    for flag, given in (("--harmonic-filter", getattr(args, "harmonic_filter", None)),
+                        ("--transfer", getattr(args, "transfer", None)),
+                        ("--transfer-table", getattr(args, "transfer_table", None))):
+        if given is not None:
+            raise InvalidInputError(f"{flag} applies to temperature validation only; it is not available with "
+                                    "--polarized.")
+    if args.tensor_ratio is not None:
+        if args.spectrum is not None:
+            raise InvalidInputError("--tensor-ratio sets the built-in spectra; it cannot be combined with --spectrum.")
+        if not 0.0 <= args.tensor_ratio <= 10.0:
+            raise InvalidInputError(f"--tensor-ratio must be in [0, 10]. Got {args.tensor_ratio!r} instead.")
+
+
+def run_polarized(args, outputs, run_dir, where) -> int:
+    """Read and check the inputs, run the polarized validation, write ``outputs`` and print the summary.
+
+    ``outputs``: (what, path, overwrite) of the table, the JSON summary and the figure, already checked;
+    ``where``: (executor, workers, description) of the simulations.
+    """
+    import dataclasses
+
+    import numpy as np
+
+    from cmbtools import maps
+    from cmbtools import spectrum as sp
+    from cmbtools._core.checks import check_same_nside
+    from cmbtools._core.files import sha256_file
+    from cmbtools.cli.common import binning_from_args, describe_binning
+    from cmbtools.exceptions import InvalidInputError
+    from cmbtools.simulate import Dipole, NoiseModel, validate_polarized_estimator
+
+    # inputs, all read and checked before the estimator is built
+    mask = maps.read_mask(args.mask, force=args.force)
+    nside = int(round(np.sqrt(mask.size / 12)))
+    pol_mask = None
+    if args.pol_mask is not None:
+        pol_mask = maps.read_mask(args.pol_mask, force=args.force)
+        check_same_nside(mask, pol_mask, args.mask, args.pol_mask)
+    cross = args.cross or args.mask2 is not None or args.pol_mask2 is not None
+    mask2 = pol_mask2 = None
+    if args.mask2 is not None:
+        mask2 = maps.read_mask(args.mask2, force=args.force)
+        check_same_nside(mask, mask2, args.mask, args.mask2)
+    if args.pol_mask2 is not None:
+        pol_mask2 = maps.read_mask(args.pol_mask2, force=args.force)
+        check_same_nside(mask, pol_mask2, args.mask, args.pol_mask2)
+    lmax = 3 * nside - 1 if args.lmax is None else args.lmax
+    if lmax > 4 * nside - 1:
+        raise InvalidInputError(f"--lmax must be at most 4*nside-1 = {4 * nside - 1}. Got {lmax} instead.")
+    if args.lmin > lmax:
+        raise InvalidInputError(f"--lmin ({args.lmin}) must not exceed lmax ({lmax}).")
+    top = (8 if args.pixelise else 4) * nside - 1
+    sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
+    if cross and (args.sky_lmax is not None or args.pixelise):
+        raise InvalidInputError("--sky-lmax and --pixelise are not available with a cross-spectrum (--cross, --mask2).")
+    if sky_lmax < lmax or sky_lmax > top:
+        raise InvalidInputError(f"--sky-lmax must be in [{lmax}, {top}]. Got {sky_lmax} instead.")
+    beam = sky_beam = None
+    beam_text = "none"
+    if args.beam_fwhm is not None:
+        beam = sky_beam = float(args.beam_fwhm)
+        beam_text = f"Gaussian FWHM {args.beam_fwhm:g} arcmin (spin-2 form for E and B)"
+    elif args.beam is not None:
+        sky_beam = np.asarray(sp.read_beam(args.beam, lmax=sky_lmax), dtype=np.float64)
+        beam = sky_beam[: lmax + 1]
+        beam_text = f"table {args.beam} (for I and for Q, U)"
+    elif sky_lmax > lmax or args.pixelise:
+        sky_beam = np.ones(sky_lmax + 1)
+    binning = binning_from_args(args, lmax, float(np.mean(mask if pol_mask is None else np.minimum(mask, pol_mask))))
+    if binning.lmin < 2:
+        raise InvalidInputError(f"The bins start at ell={binning.lmin}; polarized spectra need bins from ell >= 2.")
+    noise = None
+    if args.noise_depth is not None:
+        hits = None
+        if args.hits is not None:
+            hits, _info = maps.read_sky_map(args.hits, unit="K", force=args.force)
+        noise = NoiseModel(depth_uk_arcmin=args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
+    if args.spectrum is not None:
+        from cmbtools._core.tables import read_polarized_spectrum_table
+
+        spectra = read_polarized_spectrum_table(args.spectrum)
+        if spectra["TT"].size < sky_lmax + 1:
+            raise InvalidInputError(
+                f"The spectrum table {args.spectrum!r} stops at ell={spectra['TT'].size - 1}; the skies go to ell "
+                f"{sky_lmax} (give a longer table, or a lower --lmax / --sky-lmax)."
+            )
+        spectrum_text = f"{args.spectrum} (sha256 {sha256_file(args.spectrum)[:16]}...)"
+    else:
+        from cmbtools.simulate import fiducial_spectra
+
+        r = 0.0 if args.tensor_ratio is None else float(args.tensor_ratio)
+        spectra = fiducial_spectra(sky_lmax, tensor_ratio=r, lensing_bb=True)
+        spectrum_text = f"built-in fiducial spectra (r = {r:g}, lensing-like BB)"
+    from cmbtools.simulate import check_spectra
+
+    spectra = check_spectra(spectra, sky_lmax)
+    removal = not args.keep_monopole_dipole
+    monopole = (100.0 if removal else 0.0) if args.monopole is None else args.monopole
+    dipole_uk = (3000.0 if removal else 0.0) if args.dipole is None else args.dipole
+    for name, value in (("--monopole", monopole), ("--dipole", dipole_uk)):
+        if not np.isfinite(value) or abs(value) > 1e9:
+            raise InvalidInputError(f"{name} must be a finite number of uK below 1e9. Got {value!r} instead.")
+    dipole = Dipole(abs(dipole_uk) * 1e-6, 60.0, 30.0) if dipole_uk else None
+    est = sp.PolarizedSpectrumEstimator(
+        mask, binning, pol_mask=pol_mask, lmax=lmax, mask2=mask2, pol_mask2=pol_mask2, beam=beam,
+        pixel_window=not args.no_pixel_window, remove_monopole_dipole=removal, purify_b=args.purify_b,
+        force=args.force,
+    )
+
+    executor, workers, where_text = where
+    result = validate_polarized_estimator(
+        est, spectra, n_sims=args.sims, seed=args.seed, noise=noise, run_dir=run_dir, executor=executor,
+        workers=workers, threads_per_worker=args.threads or None, progress=False if args.no_progress else None,
+        restart=args.restart, force=args.force, cross=cross, monopole=monopole * 1e-6, dipole=dipole,
+        sky_lmax=sky_lmax, sky_beam=sky_beam, pixelise=bool(args.pixelise),
+    )
+
+    meta = dict(result.metadata)
+    meta.update({"mask_file": str(args.mask), "mask_file_sha256": sha256_file(args.mask),
+                 "input_spectrum": spectrum_text, "beam": beam_text,
+                 "pixel_window": "no" if args.no_pixel_window else "yes"})
+    for key, path in (("pol_mask_file", args.pol_mask), ("mask2_file", args.mask2), ("pol_mask2_file", args.pol_mask2)):
+        if path is not None:
+            meta.update({key: str(path), key + "_sha256": sha256_file(path)})
+    if args.hits is not None:
+        meta["hits_file"] = str(args.hits)
+    result = dataclasses.replace(result, metadata=meta)
+    written = []
+    for what, path, overwrite in outputs:
+        if what == "table":
+            written.append(result.write_csv(path, overwrite=overwrite, unit=args.unit))
+        elif what == "JSON summary":
+            written.append(result.write_json(path, overwrite=overwrite))
+        elif what == "figure":
+            written.append(result.plot(path, overwrite=overwrite))
+
+    s = result.summary()
+
+    def num(v, spec):
+        return "n/a" if v is None else format(v, spec)
+
+    ran = result.n_sims - int(meta.get("n_resumed", 0))
+    print(f"validated the polarized spectrum estimator on {result.n_sims} simulations (seed {result.seed}) "
+          f"on {where_text}")
+    if meta.get("n_resumed"):
+        print(f"  resumed {meta['n_resumed']} finished simulations from {run_dir}; ran {ran}")
+    print(f"  nside {nside}, lmax {lmax}, {describe_binning(binning)}")
+    sky = f"temperature f_sky {est.f_sky:.3f}, polarization f_sky {est.pol_f_sky:.3f}"
+    print(f"  sky fraction: {sky}" + ("; cross-spectra of two splits" if cross else ""))
+    noise_text = "none" if noise is None else (
+        f"{args.noise_depth:g} uK-arcmin in I" + (" shaped by the hits map" if args.hits else "")
+        + (f", knee at ell {args.noise_knee:g} (slope {args.noise_slope:g})" if args.noise_knee else "")
+        + ", sqrt(2) times that in Q and U")
+    print(f"  input: {spectrum_text}; beam: {beam_text}; noise: {noise_text}")
+    print(f"  skies to ell {sky_lmax}" + (", pixelised (averaged from 2 nside)" if args.pixelise else "")
+          + f"; B-mode purification: {'yes' if args.purify_b else 'no'}")
+    worst = result.worst_bin()
+    where_worst = "" if worst is None else (
+        f" ({worst[0]}, ell {int(result.ell_min[worst[1]])}-{int(result.ell_max[worst[1]])})")
+    print(f"  bias: max |bias| {num(s['max_abs_bias_sigma'], '.2f')} sigma{where_worst}, rms "
+          f"{num(s['rms_bias_sigma'], '.2f')} sigma over {6 * s['n_bins']} bins; scatter / reported error "
+          f"{num(s['min_error_ratio'], '.3f')} to {num(s['max_error_ratio'], '.3f')}")
+    for name, v in s["spectra"].items():
+        print(f"    {name}: max |bias| {num(v['max_abs_bias_sigma'], '5.2f')} sigma, rms "
+              f"{num(v['rms_bias_sigma'], '4.2f')}; scatter / error {num(v['min_error_ratio'], '.3f')} to "
+              f"{num(v['max_error_ratio'], '.3f')} (median {num(v['median_error_ratio'], '.3f')})")
+    print("  wrote " + ", ".join(str(p) for p in written))
+    return 0
