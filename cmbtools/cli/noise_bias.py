@@ -50,7 +50,8 @@ def check_noise_options(args):
 
 
 def _is_bandpower_table(path):
-    from cmbtools._core.tables import BANDPOWER_COLUMNS, read_text_table
+    from cmbtools._core.binned_tables import BANDPOWER_COLUMNS
+    from cmbtools._core.tables import read_text_table
 
     table = read_text_table(path, what="a noise spectrum table", inline_comments=True)
     return table.names is not None and tuple(n.lower() for n in table.names) == tuple(BANDPOWER_COLUMNS)
@@ -62,7 +63,8 @@ def read_noise_inputs(args, nside, force):
 
     from cmbtools import maps
     from cmbtools._core.checks import UNSEEN, missing_pixels
-    from cmbtools._core.tables import read_bandpower_table, read_noise_spectrum_table
+    from cmbtools._core.binned_tables import read_bandpower_table
+    from cmbtools._core.spectrum_tables import read_noise_spectrum_table
     from cmbtools.exceptions import ResolutionMismatchError
 
     def read(path):

@@ -23,7 +23,7 @@ def add_polarization_options(parser):
 def is_polarized_input(path) -> bool:
     """Whether ``path`` is an I, Q, U map file (the maps package decides; unreadable files are left to it)."""
     try:
-        from cmbtools.maps.fits import is_iqu_file
+        from cmbtools.maps.polarized_fits import is_iqu_file
     except ImportError:  # the maps package reads I, Q, U files once the maps side of polarization is in place
         return False
     try:
@@ -45,7 +45,7 @@ def run_polarized(args, outputs_checked) -> int:
     from cmbtools._core.files import sha256_file
     from cmbtools.cli.common import binning_from_args, describe_binning
     from cmbtools.exceptions import InvalidInputError
-    from cmbtools.maps.fits import read_iqu
+    from cmbtools.maps.polarized_fits import read_iqu
     from cmbtools.spectrum.one_call import drop_missing_pixels
 
     for flag, given in (("--noise-spectrum", args.noise_spectrum), ("--operator-cache", args.operator_cache),

@@ -120,7 +120,7 @@ def run_polarized(args, outputs, run_dir, where) -> int:
             hits, _info = maps.read_sky_map(args.hits, unit="K", force=args.force)
         noise = NoiseModel(depth_uk_arcmin=args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
     if args.spectrum is not None:
-        from cmbtools._core.tables import read_polarized_spectrum_table
+        from cmbtools._core.spectrum_tables import read_polarized_spectrum_table
 
         spectra = read_polarized_spectrum_table(args.spectrum)
         if spectra["TT"].size < sky_lmax + 1:

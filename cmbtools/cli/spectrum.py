@@ -132,7 +132,7 @@ def run(args) -> int:
     from cmbtools import spectrum as sp
     from cmbtools._core.files import check_output_path, sha256_file
     from cmbtools._core.checks import check_same_nside
-    from cmbtools._core.tables import read_spectrum_table
+    from cmbtools._core.spectrum_tables import read_spectrum_table
     from cmbtools.cli.noise_bias import (
         check_noise_options, noise_bias_table, read_noise_inputs, subtract_noise,
     )

@@ -248,7 +248,7 @@ def run(args) -> int:
             hits, _info = maps.read_sky_map(args.hits, unit="K", force=args.force)
         noise = NoiseModel(depth_uk_arcmin=args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
     if args.spectrum is not None:
-        from cmbtools._core.tables import read_spectrum_table
+        from cmbtools._core.spectrum_tables import read_spectrum_table
 
         cl = np.asarray(read_spectrum_table(args.spectrum), dtype=np.float64)
         if cl.size < lmax + 1:
@@ -293,7 +293,7 @@ def run(args) -> int:
         cl = fiducial_cl(sky_lmax)
     harmonic_filter = None
     if args.harmonic_filter is not None:
-        from cmbtools._core.tables import read_filter_table
+        from cmbtools._core.binned_tables import read_filter_table
 
         harmonic_filter = read_filter_table(args.harmonic_filter)
         if harmonic_filter.size < sky_lmax + 1:
@@ -374,7 +374,7 @@ def run(args) -> int:
         else:
             written.append(result.plot(path, overwrite=overwrite))
     # the simulated covariance of the bandpowers, usable by `cmbtools spectrum --covariance-from`
-    from cmbtools.spectrum.covariance import simulated_covariance
+    from cmbtools.spectrum.bandpower_covariance import simulated_covariance
 
     windows = est.cross_bandpower_windows if cross else est.bandpower_windows
     simulated = simulated_covariance(

@@ -120,7 +120,7 @@ def change_resolution(m, nside_out, *, min_valid_fraction=0.5, force=False):
 
 
 def _coord_pair(coord_in, coord_out):
-    from cmbtools.maps.fits import normalize_coord
+    from cmbtools.maps.healpix_table import normalize_coord
 
     return normalize_coord(coord_in, "coord_in"), normalize_coord(coord_out, "coord_out")
 
@@ -332,14 +332,9 @@ def smooth_map(m, *, fwhm_arcmin=None, beam=None, lmax=None, fill_missing=None, 
 
 def _as_iqu_map(m, name="map", *, allow_missing=True):
     """(3, npix) float64 I, Q, U maps with a valid HEALPix size."""
-    try:
-        a = np.asarray(m, dtype=np.float64)
-    except (TypeError, ValueError):
-        raise InvalidInputError(f"The {name!r} parameter must be an array of numbers.") from None
-    if a.ndim != 2 or a.shape[0] != 3:
-        raise InvalidInputError(
-            f"The {name!r} parameter must hold three maps I, Q, U, shape (3, 12*nside**2). Got shape {a.shape} instead."
-        )
+    from cmbtools.maps.polarized_fits import _as_iqu
+
+    a = _as_iqu(m, name)
     rows = [as_map(a[i], f"{name} ({'IQU'[i]})", allow_missing=allow_missing) for i in range(3)]
     return np.stack(rows)
 

@@ -20,7 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from cmbtools.maps.monopole_dipole import _CHUNK, _pixel_vectors
-from cmbtools.maps.fits import normalize_coord
+from cmbtools.maps.healpix_table import normalize_coord
 from cmbtools.maps.conversions import _regrade
 from cmbtools._core.checks import (
     as_map,

@@ -30,7 +30,7 @@ Examples
 (3072,)
 """
 
-from cmbtools._core.tables import read_polarized_spectrum_table, read_spectrum_table, write_spectrum_table
+from cmbtools._core.spectrum_tables import read_polarized_spectrum_table, read_spectrum_table, write_spectrum_table
 from cmbtools.simulate.engine import SimulationSet, run_simulations
 from cmbtools.simulate.noise import NoiseModel, depth_to_white_noise, noise_map, noise_spectrum, white_noise_map
 from cmbtools.simulate.polarized_theory import fiducial_spectra, lensing_bb_template

@@ -424,7 +424,8 @@ def validate_estimator(
     }
     reported = sims["cl_err"]
     if errors == "gaussian":
-        from cmbtools.spectrum.covariance import GaussianCovariance, PixelNoise
+        from cmbtools.spectrum.covariance import GaussianCovariance
+        from cmbtools.spectrum.pixel_noise import PixelNoise
 
         pixel_noise = None if noise is None else PixelNoise.from_model(noise, nside, lmax)
         gauss = GaussianCovariance(estimator, noise=pixel_noise, noise2=pixel_noise if cross else None,

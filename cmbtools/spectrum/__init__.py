@@ -38,19 +38,19 @@ True
 from cmbtools.spectrum.bandpowers import Bandpowers
 from cmbtools.spectrum.beams import GaussianBeam, gaussian_beam, gaussian_polarized_beam, read_beam, write_beam
 from cmbtools.spectrum.binning import Binning
-from cmbtools.spectrum.covariance import (
+from cmbtools.spectrum.bandpower_covariance import (
     BandpowerCovariance,
-    GaussianCovariance,
-    PixelNoise,
     hartlap_factor,
     read_covariance,
     simulated_covariance,
     write_covariance,
 )
+from cmbtools.spectrum.covariance import GaussianCovariance
 from cmbtools.spectrum.estimator import MAX_CONDITION_NUMBER, SpectrumEstimator
-from cmbtools.spectrum.one_call import estimate_spectrum
+from cmbtools.spectrum.one_call import estimate_polarized_spectra, estimate_spectrum
+from cmbtools.spectrum.pixel_noise import PixelNoise
 from cmbtools.spectrum.pixel_windows import pixel_window, polarization_pixel_window
-from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator, estimate_polarized_spectra
+from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator
 from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
 from cmbtools.spectrum.transfer import BandpowerTransfer
 

@@ -32,13 +32,8 @@ from cmbtools._core.figures import (
     save_figure,
     style_axes,
 )
-from cmbtools._core.tables import (
-    BANDPOWER_COLUMNS,
-    metadata_comments,
-    power_unit_scale,
-    read_bandpower_table,
-    write_text_table,
-)
+from cmbtools._core.binned_tables import BANDPOWER_COLUMNS, read_bandpower_table
+from cmbtools._core.tables import metadata_comments, power_unit_scale, write_text_table
 from cmbtools.spectrum.binning import Binning
 from cmbtools._core.checks import check_cl
 from cmbtools.exceptions import InputFileError, InvalidInputError
@@ -50,18 +45,60 @@ COLUMNS = BANDPOWER_COLUMNS
 _SPECTRUM_COLUMNS = ("cl", "cl_err", "dl", "dl_err")
 
 
-def _clean_value(key, value):
-    if isinstance(value, (bool, np.bool_)):
-        return "yes" if value else "no"
-    if isinstance(value, numbers.Integral):
-        return int(value)
-    if isinstance(value, numbers.Real):
-        return float(value)
-    if isinstance(value, str):
-        return " ".join(value.splitlines())
-    raise InvalidInputError(
-        f"Bandpowers.metadata[{key!r}] must be a string or a number. Got {type(value).__name__} instead."
-    )
+def clean_metadata(owner, metadata) -> dict:
+    """The metadata of a result (``owner``: its class name, for messages) with checked keys and plain values.
+
+    Keys are non-empty strings without ':' or line breaks; values become str (one line), int or float
+    (booleans 'yes'/'no').
+    """
+    if not isinstance(metadata, dict):
+        raise InvalidInputError(f"{owner}.metadata must be a dict of str to str or number.")
+    meta = {}
+    for key, value in metadata.items():
+        if not isinstance(key, str) or not key or any(c in key for c in ":\n\r"):
+            raise InvalidInputError(f"{owner}.metadata keys must be non-empty strings without ':'. Got {key!r}.")
+        if isinstance(value, (bool, np.bool_)):
+            value = "yes" if value else "no"
+        elif isinstance(value, numbers.Integral):
+            value = int(value)
+        elif isinstance(value, numbers.Real):
+            value = float(value)
+        elif isinstance(value, str):
+            value = " ".join(value.splitlines())
+        else:
+            raise InvalidInputError(
+                f"{owner}.metadata[{key!r}] must be a string or a number. Got {type(value).__name__} instead."
+            )
+        meta[key] = value
+    return meta
+
+
+def write_bandpower_fits(path, columns, values, metadata, covariance, *, unit, overwrite) -> Path:
+    """Write a bandpower FITS file: a ``BANDPOWERS`` table and, with a covariance, a ``COVARIANCE`` image.
+
+    ``columns``: the leading (name, FITS format, array) columns (bins, spectrum names); ``values``: the
+    spectrum columns (name -> array in K^2), written in ``unit``^2; the metadata go into ``HIERARCH CMBTOOLS
+    <KEY>`` cards; the covariance (K^4) is written in ``unit``^4.
+    """
+    from astropy.io import fits
+
+    scale = power_unit_scale(unit)
+    out = _io.check_output_path(path, overwrite=overwrite)
+    cols = [fits.Column(name=name, format=form, array=array) for name, form, array in columns]
+    for name, array in values.items():
+        cols.append(fits.Column(name=name, format="D", unit=f"{unit}^2", array=array * scale))
+    table = fits.BinTableHDU.from_columns(cols, name="BANDPOWERS")
+    table.header["HIERARCH CMBTOOLS UNIT"] = f"{unit}^2"
+    for k, v in metadata.items():
+        if k != "unit":
+            table.header[f"HIERARCH CMBTOOLS {k.upper()}"] = v
+    hdus = [fits.PrimaryHDU(), table]
+    if covariance is not None:
+        hdus.append(fits.ImageHDU(covariance * scale * scale, name="COVARIANCE"))
+        hdus[-1].header["BUNIT"] = f"{unit}^4"
+    with _io.atomic_output(out, overwrite=overwrite) as tmp:
+        fits.HDUList(hdus).writeto(tmp, overwrite=True)
+    return out
 
 
 @dataclasses.dataclass(frozen=True, eq=False)
@@ -117,13 +154,7 @@ class Bandpowers:
                 raise InvalidInputError(f"Bandpowers.covariance must have shape ({n}, {n}). Got {c.shape} instead.")
             c.setflags(write=False)
             object.__setattr__(self, "covariance", c)
-        if not isinstance(self.metadata, dict):
-            raise InvalidInputError("Bandpowers.metadata must be a dict of str to str or number.")
-        meta = {}
-        for k, v in self.metadata.items():
-            if not isinstance(k, str) or not k or any(c in k for c in ":\n\r"):
-                raise InvalidInputError(f"Bandpowers.metadata keys must be non-empty strings without ':'. Got {k!r}.")
-            meta[k] = _clean_value(k, v)
+        meta = clean_metadata("Bandpowers", self.metadata)
         object.__setattr__(self, "metadata", meta)
 
     @property
@@ -240,31 +271,9 @@ class Bandpowers:
         -------
         Path
         """
-        from astropy.io import fits
-
-        scale = power_unit_scale(unit)
-        out = _io.check_output_path(path, overwrite=overwrite)
-        cols = [
-            fits.Column(name="ell_min", format="K", array=self.ell_min),
-            fits.Column(name="ell_max", format="K", array=self.ell_max),
-            fits.Column(name="ell_eff", format="D", array=self.ell_eff),
-        ]
-        for c in _SPECTRUM_COLUMNS:
-            cols.append(fits.Column(name=c, format="D", unit=f"{unit}^2", array=getattr(self, c) * scale))
-        table = fits.BinTableHDU.from_columns(cols, name="BANDPOWERS")
-        hdr = table.header
-        hdr["HIERARCH CMBTOOLS UNIT"] = f"{unit}^2"
-        for k, v in self.metadata.items():
-            if k == "unit":
-                continue
-            hdr[f"HIERARCH CMBTOOLS {k.upper()}"] = v
-        hdus = [fits.PrimaryHDU(), table]
-        if self.covariance is not None:
-            hdus.append(fits.ImageHDU(self.covariance * scale * scale, name="COVARIANCE"))
-            hdus[-1].header["BUNIT"] = f"{unit}^4"
-        with _io.atomic_output(out, overwrite=overwrite) as tmp:
-            fits.HDUList(hdus).writeto(tmp, overwrite=True)
-        return out
+        bins = [("ell_min", "K", self.ell_min), ("ell_max", "K", self.ell_max), ("ell_eff", "D", self.ell_eff)]
+        values = {c: getattr(self, c) for c in _SPECTRUM_COLUMNS}
+        return write_bandpower_fits(path, bins, values, self.metadata, self.covariance, unit=unit, overwrite=overwrite)
 
     # ------------------------------------------------------------------ figure
     def plot(self, path, *, theory_cl=None, overwrite=False, title=None) -> Path:

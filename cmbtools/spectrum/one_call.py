@@ -1,8 +1,10 @@
-"""The one-call form of the estimator, and the one rule for missing pixels inside a mask.
+"""The one-call forms of the estimators, and the one rule for missing pixels inside a mask.
 
 :func:`estimate_spectrum` builds a :class:`~cmbtools.spectrum.SpectrumEstimator`
-and applies it once; unlike a prebuilt estimator it accepts missing pixels
-inside the mask, which :func:`drop_missing_pixels` leaves out.
+and applies it once, :func:`estimate_polarized_spectra` the same for a
+:class:`~cmbtools.spectrum.PolarizedSpectrumEstimator`; unlike a prebuilt
+estimator they accept missing pixels inside the mask, which
+:func:`drop_missing_pixels` leaves out.
 """
 
 from __future__ import annotations
@@ -15,7 +17,7 @@ from cmbtools._core.checks import as_map, check_mask, check_same_nside, missing_
 from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
 from cmbtools.spectrum.estimator import SpectrumEstimator
 
-__all__ = ["estimate_spectrum"]
+__all__ = ["estimate_spectrum", "estimate_polarized_spectra"]
 
 
 def estimate_spectrum(map1, mask, binning, *, map2=None, mask2=None, noise_cl=None, noise_maps=None, **estimator_kwargs):
@@ -103,3 +105,47 @@ def drop_missing_pixels(m, w, map_name, mask_name, *, stacklevel=3):
         if not np.any(w > 0):
             raise InvalidInputError(f"Every pixel of {map_name!r} inside the {mask_name!r} is missing.")
     return w
+
+
+def estimate_polarized_spectra(maps1, mask, binning, *, pol_mask=None, maps2=None, mask2=None, pol_mask2=None,
+                               noise_cl=None, noise_maps=None, **estimator_kwargs):
+    """TT, TE, TB, EE, EB, BB bandpowers of an IQU map (or the cross-spectra of two) in one call.
+
+    Missing pixels (UNSEEN/NaN/inf) inside a mask are allowed here: the mask is set to zero there (a
+    :class:`~cmbtools.exceptions.CmbtoolsWarning` says how many), as for the temperature one-call function.
+
+    Parameters
+    ----------
+    maps1 : ndarray of shape (3, 12*nside**2)
+        I, Q, U (K_CMB, RING, HEALPix polarization convention).
+    mask : ndarray of shape (12*nside**2,)
+        Temperature weights.
+    binning : Binning
+        The bins.
+    pol_mask : ndarray, optional
+        Polarization weights (default ``mask``).
+    maps2 : ndarray of shape (3, 12*nside**2), optional
+        Second map: cross-spectra.
+    mask2, pol_mask2 : ndarray, optional
+        Weights of the second map.
+    noise_cl, noise_maps : optional
+        Noise bias of auto-spectra (see :meth:`PolarizedSpectrumEstimator.estimate`).
+    **estimator_kwargs
+        Any other keyword of :class:`PolarizedSpectrumEstimator`.
+
+    Returns
+    -------
+    PolarizedBandpowers
+    """
+    from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator
+
+    mask = np.asarray(mask, dtype=np.float64)
+    pol_mask = mask if pol_mask is None else np.asarray(pol_mask, dtype=np.float64)
+    m1 = np.asarray(maps1, dtype=np.float64)
+    if m1.ndim == 2 and m1.shape[0] == 3 and m1.shape[1] == mask.size:
+        mask = drop_missing_pixels(m1[0], mask, "maps1[I]", "mask")
+        pol_mask = drop_missing_pixels(m1[1], pol_mask, "maps1[Q]", "pol_mask")
+        pol_mask = drop_missing_pixels(m1[2], pol_mask, "maps1[U]", "pol_mask")
+    est = PolarizedSpectrumEstimator(mask, binning, pol_mask=pol_mask, mask2=mask2, pol_mask2=pol_mask2,
+                                     **estimator_kwargs)
+    return est.estimate(maps1, maps2, noise_cl=noise_cl, noise_maps=noise_maps)

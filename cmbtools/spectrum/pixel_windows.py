@@ -322,37 +322,46 @@ def _diagonal_weight(nside, order, pole_depth) -> float:
     return total
 
 
-def _pair_histogram(nside: int, order: int, bins_per_unit: int, pole_depth: int, nthreads: int):
-    """Histogram over all pixels of node-pair chords, in bins of width 1/(bins_per_unit * nside).
+def pair_histograms(nside, order, bins_per_unit, pole_depth, nthreads, tally):
+    """Chord histograms over all pixels, in bins of width 1/(bins_per_unit * nside).
 
-    Blocks are summed in a fixed order, so the result does not depend on
-    thread timing; at most ``2 * nthreads`` blocks are in flight.
+    ``tally(vectors, pair_i, pair_j, pair_weight, scale)`` returns the histograms of one block (a tuple:
+    the plain pair weights first, then any weighted ones); every histogram gets the weight of the points
+    paired with themselves (chord 0, where chi = 0 too).  Blocks are summed in a fixed order, so the result
+    does not depend on thread timing; at most ``2 * nthreads`` blocks are in flight.
     """
     scale = float(bins_per_unit * nside)
 
     def run(item):
         face, bx, by, mult, a, b, pi, pj, pw = item
         vec = face_to_vectors((bx[:, None] + a[None, :]) / nside, (by[:, None] + b[None, :]) / nside, face)
-        return mult, _tally_block(vec, pi, pj, pw, scale)
+        return mult, tally(vec, pi, pj, pw, scale)
 
-    total = np.zeros(2)
+    totals = None
+
+    def add(mult, hists):
+        nonlocal totals
+        if totals is None:
+            totals = [np.zeros(2) for _ in hists]
+        for i, hist in enumerate(hists):
+            totals[i] = _add_into(totals[i], hist, mult)
+
     if nthreads > 1:
         with ThreadPoolExecutor(max_workers=nthreads) as pool:
             pending = collections.deque()
             for item in _blocks(nside, order, pole_depth):
                 pending.append(pool.submit(run, item))
                 while len(pending) >= 2 * nthreads:
-                    mult, hist = pending.popleft().result()
-                    total = _add_into(total, hist, mult)
+                    add(*pending.popleft().result())
             for future in pending:
-                mult, hist = future.result()
-                total = _add_into(total, hist, mult)
+                add(*future.result())
     else:
         for item in _blocks(nside, order, pole_depth):
-            mult, hist = run(item)
-            total = _add_into(total, hist, mult)
-    total[0] += _diagonal_weight(nside, order, pole_depth)
-    return total
+            add(*run(item))
+    diag = _diagonal_weight(nside, order, pole_depth)
+    for total in totals:
+        total[0] += diag
+    return totals
 
 
 def _legendre_sums(hist: np.ndarray, chord: np.ndarray, lmax: int) -> np.ndarray:
@@ -378,7 +387,8 @@ def _compute_window_squared(nside, lmax, *, order=None, bins_per_unit=None, pole
     """w_l**2 for l = 0..lmax by the method of the module docstring (no cache, no checks)."""
     order = _gauss_order(lmax, nside) if order is None else order
     bins_per_unit = _bins_per_unit(lmax, nside) if bins_per_unit is None else bins_per_unit
-    hist = _pair_histogram(nside, order, bins_per_unit, pole_depth, nthreads)
+    (hist,) = pair_histograms(nside, order, bins_per_unit, pole_depth, nthreads,
+                              lambda *block: (_tally_block(*block),))
     chord = np.arange(hist.size) / (bins_per_unit * nside)
     return _legendre_sums(hist, chord, lmax)
 
@@ -391,12 +401,12 @@ def cache_path(nside: int) -> Path:
     return _io.cache_dir() / f"pixel_window_nside{int(nside)}_v{ALGORITHM_VERSION}.npz"
 
 
-def _inputs_hash(nside: int, lmax: int) -> str:
-    return _io.sha256_arrays("pixel_window", int(nside), int(lmax), int(ALGORITHM_VERSION))
+def load_cached_window(path: Path, nside: int, lmax: int, *, kind: str, version: int, what: str):
+    """The cached window sliced to ``lmax``, or None (with a warning if the file is bad or stale).
 
-
-def _load_cached(path: Path, nside: int, lmax: int):
-    """The cached window sliced to ``lmax``, or None (with a warning if the file is bad or stale)."""
+    ``kind`` names the window in the inputs hash, ``version`` is its ALGORITHM_VERSION, ``what`` names it
+    in the warnings ('pixel-window', 'polarization pixel-window').
+    """
     if not path.exists():
         return None
     try:
@@ -409,26 +419,28 @@ def _load_cached(path: Path, nside: int, lmax: int):
             f_inputs = str(data["inputs_sha256"])
             f_checksum = str(data["checksum_sha256"])
     except Exception as exc:  # any file that cannot be parsed is corrupt (BadZipFile, KeyError, ...)
-        warnings.warn(f"{path}: corrupt pixel-window cache ({type(exc).__name__}: {exc}); recomputing.", CmbtoolsWarning, stacklevel=3)
+        warnings.warn(f"{path}: corrupt {what} cache ({type(exc).__name__}: {exc}); recomputing.", CmbtoolsWarning,
+                      stacklevel=4)
         return None
     problem = None
-    if f_version != ALGORITHM_VERSION:
-        problem = f"written by algorithm version {f_version}, not {ALGORITHM_VERSION}"
+    if f_version != version:
+        problem = f"written by algorithm version {f_version}, not {version}"
     elif f_nside != nside:
         problem = f"holds nside {f_nside}, not {nside}"
-    elif f_inputs != _inputs_hash(f_nside, f_lmax):
+    elif f_inputs != _io.sha256_arrays(kind, int(f_nside), int(f_lmax), int(version)):
         problem = "its recorded inputs do not match their hash"
     elif window.shape != (f_lmax + 1,) or _io.sha256_arrays(window) != f_checksum:
         problem = "its contents do not match their checksum"
     if problem is not None:
-        warnings.warn(f"{path}: stale or corrupt pixel-window cache ({problem}); recomputing.", CmbtoolsWarning, stacklevel=3)
+        warnings.warn(f"{path}: stale or corrupt {what} cache ({problem}); recomputing.", CmbtoolsWarning, stacklevel=4)
         return None
     if f_lmax < lmax:
         return None  # valid but too short: recompute to the larger lmax
     return window[: lmax + 1].copy()
 
 
-def _store(path: Path, nside: int, lmax: int, window: np.ndarray) -> None:
+def store_window(path: Path, nside: int, lmax: int, window: np.ndarray, *, kind: str, version: int, what: str) -> None:
+    """Write a window table to the cache (atomically; a failure only warns).  Arguments as for the loader."""
     try:
         with _io.atomic_output(path, overwrite=True) as tmp:
             with open(tmp, "wb") as fh:
@@ -437,12 +449,40 @@ def _store(path: Path, nside: int, lmax: int, window: np.ndarray) -> None:
                     window=window,
                     nside=np.int64(nside),
                     lmax=np.int64(lmax),
-                    version=np.int64(ALGORITHM_VERSION),
-                    inputs_sha256=np.str_(_inputs_hash(nside, lmax)),
+                    version=np.int64(version),
+                    inputs_sha256=np.str_(_io.sha256_arrays(kind, int(nside), int(lmax), int(version))),
                     checksum_sha256=np.str_(_io.sha256_arrays(window)),
                 )
     except OSError as exc:
-        warnings.warn(f"could not write the pixel-window cache {path} ({exc}); the result is not cached.", CmbtoolsWarning, stacklevel=3)
+        warnings.warn(f"could not write the {what} cache {path} ({exc}); the result is not cached.", CmbtoolsWarning,
+                      stacklevel=4)
+
+
+def cached_window(nside, lmax, use_cache, nthreads, *, path_of, compute_squared, kind, version, what):
+    """The body of a public window function: check the arguments, read the cache or compute and store.
+
+    ``path_of(nside)`` is the cache file, ``compute_squared(nside, lmax, nthreads=...)`` the squared window.
+    The table is always computed to at least ``4 * nside`` and sliced.
+    """
+    nside = check_nside(nside)
+    lmax = 4 * nside if lmax is None else check_int(lmax, "lmax", minimum=0, maximum=MAX_LMAX_FACTOR * nside)
+    nthreads = resolve_nthreads(nthreads)
+    lmax_table = max(lmax, 4 * nside)
+    path = None
+    if use_cache:
+        try:
+            path = path_of(nside)
+        except OSError as exc:
+            warnings.warn(f"the cache directory is not usable ({exc}); the pixel window is not cached.", CmbtoolsWarning,
+                          stacklevel=3)
+        if path is not None:
+            cached = load_cached_window(path, nside, lmax, kind=kind, version=version, what=what)
+            if cached is not None:
+                return cached
+    window = np.sqrt(np.maximum(compute_squared(nside, lmax_table, nthreads=nthreads), 0.0))
+    if path is not None:
+        store_window(path, nside, lmax_table, window, kind=kind, version=version, what=what)
+    return window[: lmax + 1].copy()
 
 
 # --------------------------------------------------------------------------- public
@@ -489,24 +529,8 @@ def pixel_window(nside, lmax=None, *, use_cache=True, nthreads=None) -> np.ndarr
     >>> round(float(w[32]), 6)
     0.822523
     """
-    nside = check_nside(nside)
-    lmax = 4 * nside if lmax is None else check_int(lmax, "lmax", minimum=0, maximum=MAX_LMAX_FACTOR * nside)
-    nthreads = resolve_nthreads(nthreads)
-    lmax_table = max(lmax, 4 * nside)
-    path = None
-    if use_cache:
-        try:
-            path = cache_path(nside)
-        except OSError as exc:
-            warnings.warn(f"the cache directory is not usable ({exc}); the pixel window is not cached.", CmbtoolsWarning, stacklevel=2)
-        if path is not None:
-            cached = _load_cached(path, nside, lmax)
-            if cached is not None:
-                return cached
-    window = np.sqrt(np.maximum(_compute_window_squared(nside, lmax_table, nthreads=nthreads), 0.0))
-    if path is not None:
-        _store(path, nside, lmax_table, window)
-    return window[: lmax + 1].copy()
+    return cached_window(nside, lmax, use_cache, nthreads, path_of=cache_path, compute_squared=_compute_window_squared,
+                         kind="pixel_window", version=ALGORITHM_VERSION, what="pixel-window")
 
 
 # The polarization window lives in its own module (it reuses the quadrature above); its name is

@@ -6,19 +6,10 @@ coupling matrices, their binned form with the beams, pixel windows and transfer 
 inverse of the whole coupled system); :meth:`PolarizedSpectrumEstimator.estimate` then costs one spin-0
 and one spin-2 transform per map (two more with B-mode purification).
 
-The coupled system (Kogut et al. 2003, ApJS 148, 161; Hivon et al. 2002, ApJ 567, 2, eq. A31 extended to
-spin 2; the kernels are listed in the coupling module) is, for the pseudo-spectra ``X~`` of the masked
-maps and the sky spectra ``X`` times ``F^X_l = B^a_l B^b_l p^a_l p^b_l T^X_l``::
-
-    TT~ = M00 TT     TE~ = M02 TE     TB~ = M02 TB
-    EE~ = M++ EE + M-- BB      BB~ = M-- EE + M++ BB      EB~ = (M++ - M--) EB
-
-With B-mode purification (Smith 2006, PRD 74, 083002) the B coefficients are the pure ones and the rows
-involving B become ``TB~ = R.M00 TB``, ``EB~ = R.M02 EB``, ``BB~ = R^2.M00 BB`` with
-``R_ll' = N_l / N_l'`` (see :func:`pure_b_ratio`): no E leaks into B.  Binned with the averaging
-operator ``P`` and the piecewise-flat model ``Q``, the system is a square matrix of
-``n_spectra x n_bins`` rows whose inverse gives the bandpowers; the EE/BB block is solved jointly, which
-removes the E/B mixing of the mask on average.
+The coupled system, its binned form and inverse are built by the base class
+(:mod:`cmbtools.spectrum.polarized_operator`); the beams, pixel windows and transfer functions are checked
+in :mod:`cmbtools.spectrum.polarized_settings`; the one-call function
+:func:`~cmbtools.spectrum.estimate_polarized_spectra` is in :mod:`cmbtools.spectrum.one_call`.
 
 For a cross-spectrum of maps a and b the estimator measures T_a E_b and E_a T_b (and T_a B_b, B_a T_b)
 separately, each with its own masks and beams, and reports their mean as TE (TB); EB is the mean of
@@ -27,7 +18,6 @@ E_a B_b and B_a E_b, which is what the mask couples without mixing in the anti-s
 
 from __future__ import annotations
 
-import dataclasses
 import warnings
 
 import numpy as np
@@ -39,127 +29,23 @@ from cmbtools._core.checks import (
     nside_from_npix, resolve_nthreads,
 )
 from cmbtools._version import __version__
-from cmbtools.exceptions import CmbtoolsWarning, IllConditionedError, InvalidInputError
+from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
 from cmbtools.spectrum import coupling as coupling_pol
 from cmbtools.spectrum import purification
 from cmbtools.spectrum.binning import Binning
 from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
-from cmbtools.spectrum.errors import _reduce_cols, _reduce_rows
-from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, _beam_array, _transfer_array
+from cmbtools.spectrum.errors import _reduce_rows
+from cmbtools.spectrum.map_preparation import _LARGEST_MAP_VALUE
+from cmbtools.spectrum.polarized_operator import (
+    _COMPONENTS_AUTO, _COMPONENTS_CROSS, _FIELD, _SKY, _PolarizedOperator, _freeze,
+)
+from cmbtools.spectrum.polarized_settings import _check_memory, _pixel_windows, _pol_beam_array, _transfers
+from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, _beam_array
 
-__all__ = ["PolarizedSpectrumEstimator", "estimate_polarized_spectra"]
-
-
-#: The spectra measured for a pair of maps a, b ('ET' is E_a x T_b, 'BT' is B_a x T_b); the sky spectrum
-#: each one estimates, and the two fields (index 0..2 for T, E, B of map a and of map b).
-_COMPONENTS_AUTO = ("TT", "TE", "TB", "EE", "EB", "BB")
-_COMPONENTS_CROSS = ("TT", "TE", "ET", "TB", "BT", "EE", "EB", "BB")
-_SKY = {"TT": "TT", "TE": "TE", "ET": "TE", "TB": "TB", "BT": "TB", "EE": "EE", "EB": "EB", "BB": "BB"}
-_FIELD = {"T": 0, "E": 1, "B": 2}
-_LARGEST_MAP_VALUE = 1e100
+__all__ = ["PolarizedSpectrumEstimator"]
 
 
-def _pixel_windows(pixel_window, nside, lmax, nthreads):
-    """(p^T_l, p^P_l, description) from True/False or a table (used for T and P alike)."""
-    if pixel_window is True:
-        from cmbtools.spectrum.pixel_windows import pixel_window as _pw
-
-        pt = np.asarray(_pw(nside, lmax, nthreads=nthreads), dtype=np.float64)[: lmax + 1].copy()
-        try:  # the polarization window from its definition, when the maps side provides it
-            from cmbtools.spectrum.spin2_pixel_window import polarization_pixel_window as _ppw
-        except ImportError:
-            pp, desc = pt.copy(), f"healpix nside={nside} (temperature window for T and P)"
-        else:
-            pp = np.asarray(_ppw(nside, lmax, nthreads=nthreads), dtype=np.float64)[: lmax + 1].copy()
-            desc = f"healpix nside={nside} (T and P)"
-        return pt, pp, desc
-    if pixel_window is False or pixel_window is None:
-        return np.ones(lmax + 1), np.ones(lmax + 1), "none"
-    if isinstance(pixel_window, (tuple, list)) and len(pixel_window) == 2:
-        pt = check_cl(pixel_window[0], "pixel_window[0]", lmax=lmax, allow_negative=True)[: lmax + 1].copy()
-        pp = check_cl(pixel_window[1], "pixel_window[1]", lmax=lmax, allow_negative=True)[: lmax + 1].copy()
-        return pt, pp, f"tables sha256={_io.sha256_arrays(pt, pp)[:16]}"
-    pt = check_cl(pixel_window, "pixel_window", lmax=lmax, allow_negative=True)[: lmax + 1].copy()
-    return pt, pt.copy(), f"table sha256={_io.sha256_arrays(pt)[:16]}"
-
-
-def _check_memory(mask, lmax, others, purify, force):
-    """Refuse, before any large allocation, an estimator that would not fit in memory (see the class doc)."""
-    from cmbtools._core.memory import check_memory, estimate_alm_bytes, estimate_coupling_bytes, estimate_map_bytes
-    from cmbtools.exceptions import CmbtoolsError
-
-    try:
-        nside = nside_from_npix(np.size(mask), "mask")
-        lmax = 3 * nside - 1 if lmax is None else check_lmax(lmax, nside)
-    except CmbtoolsError:
-        return None  # refused later with its own message
-    n_masks = 1 + len(others)
-    masks = estimate_map_bytes(nside, 2 * n_masks)
-    derivatives = estimate_map_bytes(nside, 4 * min(2, n_masks)) if purify else 0
-    transform = 3 * estimate_alm_bytes(2 * lmax) + _sht._leg_bytes(nside, 2 * lmax)
-    kernels = estimate_coupling_bytes(lmax, 2 + 4 * n_masks)
-    need = masks + derivatives + max(transform, kernels)
-    return check_memory(need, f"Building the polarized spectrum estimator at nside {nside} with lmax {lmax}",
-                        force=force)
-
-
-def _pol_beam_array(beam, name, table=None, description=None, lmax=None):
-    """B^P_l: for a Gaussian FWHM the spin-2 Gaussian beam (Challinor et al. 2000, PRD 62, 123002:
-    ``exp(-(l(l+1) - 4) sigma^2 / 2)``); a table is used as given (``table``: already checked)."""
-    if beam is None or np.ndim(beam) != 0:
-        if table is not None:
-            return table, description
-        return _beam_array(beam, lmax, name)
-    n = table.size - 1 if table is not None else lmax
-    fwhm = check_positive(beam, f"{name} (FWHM in arcmin)", allow_zero=True)
-    try:
-        from cmbtools.spectrum.beams import gaussian_polarized_beam
-    except ImportError:  # the spin-2 form written out (the maps side adds it to the beams module)
-        ell = np.arange(n + 1, dtype=np.float64)
-        sigma = np.radians(fwhm / 60.0) / np.sqrt(8.0 * np.log(2.0))
-        b = np.where(ell >= 2, np.exp(-0.5 * (ell * (ell + 1.0) - 4.0) * sigma**2), 0.0)
-    else:
-        b = np.asarray(gaussian_polarized_beam(fwhm, n), dtype=np.float64)[: n + 1]
-    return b, f"gaussian spin-2 fwhm_arcmin={fwhm:g}"
-
-
-def _transfers(transfer, lmax):
-    """Per-spectrum transfer functions T^X_l (dict of the six spectra) and a description."""
-    out = {s: np.ones(lmax + 1) for s in SPECTRA}
-    if transfer is None:
-        return out, "none"
-    if not isinstance(transfer, dict):
-        t, d = _transfer_array(transfer, lmax, "transfer")
-        return {s: t.copy() for s in SPECTRA}, d
-    unknown = sorted(set(transfer) - set(SPECTRA))
-    if unknown:
-        raise InvalidInputError(
-            f"The 'transfer' parameter has unknown spectra {unknown}; the keys must be among {', '.join(SPECTRA)}."
-        )
-    parts = []
-    for s, t in transfer.items():
-        out[s], d = _transfer_array(t, lmax, f"transfer[{s!r}]")
-        parts.append(f"{s} {d}")
-    return out, "; ".join(parts)
-
-
-#: Components solved together (the EE/BB block); every other component is decoupled alone.
-_GROUPS_AUTO = (("TT",), ("TE",), ("TB",), ("EE", "BB"), ("EB",))
-_GROUPS_CROSS = (("TT",), ("TE",), ("ET",), ("TB",), ("BT",), ("EE", "BB"), ("EB",))
-
-
-@dataclasses.dataclass(frozen=True, eq=False)
-class _Pair:
-    """The binned operator of one pair of maps (a, b)."""
-
-    components: tuple
-    ainv: np.ndarray  # (n_comp * n_bins, n_comp * n_bins)
-    pmf: dict  # component -> list of (column component, (n_bins, lmax+1) P M F)
-    pm: dict  # component -> list of (column component, (n_bins, lmax+1) P M), for the noise bias
-    condition_number: float
-
-
-class PolarizedSpectrumEstimator:
+class PolarizedSpectrumEstimator(_PolarizedOperator):
     r"""Masked-sky TT, TE, TB, EE, EB, BB bandpowers of I, Q, U maps (pseudo-Cl with MASTER), built once.
 
     Parameters
@@ -364,217 +250,6 @@ class PolarizedSpectrumEstimator:
         self._set("pol_f_sky", momp.f_sky)
         self._set("pol_f_sky_eff", momp.f_sky_eff)
         self._set("condition_number", self._pair("11").condition_number)
-
-    # ------------------------------------------------------------------ state
-    def _set(self, name, value):
-        object.__setattr__(self, name, value)
-
-    def __setattr__(self, name, value):
-        raise AttributeError(f"PolarizedSpectrumEstimator is immutable; cannot set {name!r}")
-
-    def __getstate__(self):
-        state = dict(self.__dict__)
-        state["_nthreads"] = None  # a worker process uses its own thread budget
-        return state
-
-    def __setstate__(self, state):
-        for k, v in state.items():
-            object.__setattr__(self, k, v)
-
-    def _cached(self, key, make):
-        """A derived quantity of the masks and settings, computed on first use and kept."""
-        c = self._cache
-        if key not in c:
-            c[key] = make()
-        return c[key]
-
-    def _threads(self):
-        return resolve_nthreads(self._nthreads)
-
-    def _moments(self, *keys):
-        """mean of the product of the named masks ('t1', 'p2', ...)."""
-        idx = tuple(sorted(self._key_of[k] for k in keys))
-
-        def make():
-            prod = np.ones(self.masks["t1"].size)
-            for i in idx:
-                prod = prod * self._unique[i]
-            return float(np.mean(prod))
-
-        return self._cached(("moment",) + idx, make)
-
-    # ------------------------------------------------------------------ couplings
-    def _mask_spectrum(self, i, j):
-        """Cross-spectrum (plain quadrature, to 2 lmax) of unique masks i and j."""
-        i, j = sorted((i, j))
-
-        def make():
-            u = self._unique
-            lw = 2 * self.lmax
-            nthreads = self._threads()
-            if i == j:
-                return _sht.map_spectra([u[i]], lw, nthreads=nthreads, rings=_sht.occupied_rings(u[i]))[0]
-            rings = _sht.occupied_rings(u[i]) | _sht.occupied_rings(u[j])
-            s = _sht.map_spectra([u[i], u[j]], lw, nthreads=nthreads, rings=rings)
-            self._cache.setdefault(("mask_spectrum", i, i), s[0])
-            self._cache.setdefault(("mask_spectrum", j, j), s[1])
-            return s[2]
-
-        return self._cached(("mask_spectrum", i, j), make)
-
-    def _kernels(self, wanted, covariance=None):
-        """P-reduced coupling matrices (n_bins, lmax+1) for keys (kind, i, j); missing ones in one kernel call.
-
-        Kinds: '00', '02', '++', '--', '+-' (= ++ minus --), and for the pure B '00R' (R.M00), '00RR'
-        (R^2.M00), '02R' (R.M02), with ``R = N_l / N_l'`` (:func:`pure_b_ratio`).  ``covariance``: the
-        (keys, spectra) of covariance kernels to compute in the same kernel call (ducc0 evaluates the 3j
-        symbols once for all the matrices of a call).
-        """
-        missing = sorted({k for k in wanted if ("kernel",) + k not in self._cache})
-        cov_keys, cov_spectra = covariance if covariance is not None else ((), ())
-        if not missing and not cov_keys:
-            return {k: self._cache[("kernel",) + k] for k in wanted}
-        base = {}
-        for kind, i, j in missing:
-            b = {"00": "00", "00R": "00", "00RR": "00", "02": "02", "02R": "02"}.get(kind, "+-")
-            base.setdefault((b, i, j), []).append(kind)
-        requests = list(base)
-        mats = coupling_pol.coupling_matrices(
-            [(b, self._mask_spectrum(i, j)) for b, i, j in requests] + [("00", w) for w in cov_spectra],
-            self.lmax, nthreads=self._threads(),
-        )
-        p_w = self.binning.averaging_weights(self.lmax)
-        starts = self.binning.ell_min
-        ratio = coupling_pol.pure_b_ratio(self.lmax) if any(k[0].endswith("R") for k in missing) else None
-        pos = 0
-        for (b, i, j) in requests:
-            if b == "+-":
-                mpp, mmm = mats[pos], mats[pos + 1]
-                pos += 2
-                made = {"++": mpp, "--": mmm, "+-": None}
-            else:
-                made = {b: mats[pos]}
-                pos += 1
-            for kind in base[(b, i, j)]:
-                if kind == "+-":
-                    m = mpp - mmm
-                elif kind.endswith("RR"):
-                    m = made[b] * (ratio * ratio)
-                elif kind.endswith("R"):
-                    m = made[b] * ratio
-                else:
-                    m = made[kind].copy()
-                self._cache[("kernel", kind, i, j)] = _freeze(_reduce_rows(m, p_w, starts))
-        if cov_keys:
-            b = self.binning
-            r = np.zeros(self.lmax + 1)
-            idx = b.bin_index
-            sel = np.nonzero(idx >= 0)[0]
-            r[sel] = 1.0 / b.n_ell[idx[sel]]
-            inv_cols = 1.0 / (2.0 * np.arange(self.lmax + 1) + 1.0)
-            for k, xi in zip(cov_keys, mats[pos:]):
-                xi = xi * inv_cols[None, :]
-                g = _reduce_cols(_reduce_rows(xi, r, b.ell_min), r, b.ell_min)
-                self._cache[("cov_kernel",) + k] = _freeze(0.5 * (g + g.T))
-        del mats
-        return {k: self._cache[("kernel",) + k] for k in wanted}
-
-    def _terms(self, comp, a, b):
-        """[(column component, kernel key)] of one pseudo-spectrum component of maps a x b."""
-        k = self._key_of
-
-        def key(kind, x, y):
-            i, j = sorted((k[x], k[y]))
-            return (kind, i, j)
-
-        ta, pa, tb, pb = "t" + a, "p" + a, "t" + b, "p" + b
-        pure = self.purify_b
-        if comp == "TT":
-            return [("TT", key("00", ta, tb))]
-        if comp == "TE":
-            return [("TE", key("02", ta, pb))]
-        if comp == "ET":
-            return [("ET", key("02", pa, tb))]
-        if comp in ("TB", "BT"):
-            x, y = (ta, pb) if comp == "TB" else (pa, tb)
-            return [(comp, key("00R", x, y) if pure else key("02", x, y))]
-        if comp == "EE":
-            return [("EE", key("++", pa, pb)), ("BB", key("--", pa, pb))]
-        if comp == "BB":
-            if pure:
-                return [("BB", key("00RR", pa, pb))]
-            return [("EE", key("--", pa, pb)), ("BB", key("++", pa, pb))]
-        if comp == "EB":
-            return [("EB", key("02R", pa, pb) if pure else key("+-", pa, pb))]
-        raise KeyError(comp)
-
-    def _factor(self, col, a, b):
-        """``F_l`` of a column component: beams times pixel windows of its two fields, times the transfer."""
-        fa = self._factors[("t" if col[0] == "T" else "p") + a]
-        fb = self._factors[("t" if col[1] == "T" else "p") + b]
-        return fa * fb * self._transfer[_SKY[col]]
-
-    def _pair(self, name):
-        """The binned operator of map 1 x map 1 ('11') or map 1 x map 2 ('12'), built on first use."""
-        return self._cached(("pair", name), lambda: self._build_pair(*name))
-
-    def _build_pair(self, a, b):
-        comps = _COMPONENTS_AUTO if a == b else _COMPONENTS_CROSS
-        groups = _GROUPS_AUTO if a == b else _GROUPS_CROSS
-        binning, lmax = self.binning, self.lmax
-        nb = binning.n_bins
-        terms = {c: self._terms(c, a, b) for c in comps}
-        kernels = self._kernels({key for t in terms.values() for _, key in t})
-        q = binning.model_weights(lmax)
-        u = np.zeros(lmax + 1)
-        idx = binning.bin_index
-        sel = np.nonzero(idx >= 0)[0]
-        u[sel] = 1.0 / binning.n_ell[idx[sel]]
-        pmf, pm = {}, {}
-        for c in comps:
-            pmf[c] = [(col, _freeze(kernels[key] * self._factor(col, a, b)[None, :])) for col, key in terms[c]]
-            pm[c] = [(col, kernels[key]) for col, key in terms[c]]
-        ainv = np.zeros((len(comps) * nb, len(comps) * nb))
-        sigmas = []
-        for group in groups:
-            n = len(group)
-            block = np.zeros((n * nb, n * nb))
-            scale = np.zeros(n * nb)
-            for r, c in enumerate(group):
-                for col, km in pmf[c]:
-                    s = group.index(col)
-                    block[r * nb:(r + 1) * nb, s * nb:(s + 1) * nb] += _reduce_cols(km.copy(), q, binning.ell_min)
-                f_mean = np.add.reduceat(self._factor(c, a, b) * u, binning.ell_min)
-                if np.any(~(np.abs(f_mean) > 1e-300)):
-                    bad = int(np.argmax(~(np.abs(f_mean) > 1e-300)))
-                    raise IllConditionedError(
-                        f"The binned coupled system of {_SKY[c]} is singular (condition number inf): the beam, pixel "
-                        f"window or transfer function is zero over bin {bad} (ell {int(binning.ell_min[bad])}-"
-                        f"{int(binning.ell_max[bad])}); lower lmax or end the bins before that multipole.",
-                        np.inf,
-                    )
-                scale[r * nb:(r + 1) * nb] = f_mean
-            normalised = block / scale[None, :]
-            if not np.all(np.isfinite(normalised)):
-                raise IllConditionedError("The binned coupled system has non-finite entries (condition number inf).", np.inf)
-            sigmas.append(np.linalg.svd(normalised, compute_uv=False))
-            where = [comps.index(c) for c in group]
-            inv = np.linalg.inv(block)
-            for r, cr in enumerate(where):
-                for s, cs in enumerate(where):
-                    ainv[cr * nb:(cr + 1) * nb, cs * nb:(cs + 1) * nb] = inv[r * nb:(r + 1) * nb, s * nb:(s + 1) * nb]
-        sv = np.concatenate(sigmas)
-        cond = float(sv.max() / sv.min()) if sv.min() > 0 else np.inf
-        if not np.isfinite(cond) or cond > self._max_cond:
-            narrow = int(binning.n_ell.min())
-            raise IllConditionedError(
-                f"The binned coupled system of the polarized spectra is ill-conditioned: condition number "
-                f"{cond:.3g} (the limit is {self._max_cond:.3g}); the bandpowers cannot be told apart on these "
-                f"masks. Use wider bins (the narrowest has {narrow} multipole{'s' if narrow != 1 else ''}), "
-                f"apodize the masks more, or lower lmax.",
-                cond,
-            )
-        return _Pair(tuple(comps), _freeze(ainv), pmf, pm, cond)
 
     # ------------------------------------------------------------------ errors
     @staticmethod
@@ -996,53 +671,3 @@ class PolarizedSpectrumEstimator:
             f"PolarizedSpectrumEstimator(nside={self.nside}, lmax={self.lmax}, {self.binning!r}, "
             f"f_sky={self.f_sky:.3f}, purify_b={self.purify_b})"
         )
-
-
-def _freeze(a):
-    a = np.ascontiguousarray(a)
-    a.setflags(write=False)
-    return a
-
-
-def estimate_polarized_spectra(maps1, mask, binning, *, pol_mask=None, maps2=None, mask2=None, pol_mask2=None,
-                               noise_cl=None, noise_maps=None, **estimator_kwargs):
-    """TT, TE, TB, EE, EB, BB bandpowers of an IQU map (or the cross-spectra of two) in one call.
-
-    Missing pixels (UNSEEN/NaN/inf) inside a mask are allowed here: the mask is set to zero there (a
-    :class:`~cmbtools.exceptions.CmbtoolsWarning` says how many), as for the temperature one-call function.
-
-    Parameters
-    ----------
-    maps1 : ndarray of shape (3, 12*nside**2)
-        I, Q, U (K_CMB, RING, HEALPix polarization convention).
-    mask : ndarray of shape (12*nside**2,)
-        Temperature weights.
-    binning : Binning
-        The bins.
-    pol_mask : ndarray, optional
-        Polarization weights (default ``mask``).
-    maps2 : ndarray of shape (3, 12*nside**2), optional
-        Second map: cross-spectra.
-    mask2, pol_mask2 : ndarray, optional
-        Weights of the second map.
-    noise_cl, noise_maps : optional
-        Noise bias of auto-spectra (see :meth:`PolarizedSpectrumEstimator.estimate`).
-    **estimator_kwargs
-        Any other keyword of :class:`PolarizedSpectrumEstimator`.
-
-    Returns
-    -------
-    PolarizedBandpowers
-    """
-    from cmbtools.spectrum.one_call import drop_missing_pixels
-
-    mask = np.asarray(mask, dtype=np.float64)
-    pol_mask = mask if pol_mask is None else np.asarray(pol_mask, dtype=np.float64)
-    m1 = np.asarray(maps1, dtype=np.float64)
-    if m1.ndim == 2 and m1.shape[0] == 3 and m1.shape[1] == mask.size:
-        mask = drop_missing_pixels(m1[0], mask, "maps1[I]", "mask")
-        pol_mask = drop_missing_pixels(m1[1], pol_mask, "maps1[Q]", "pol_mask")
-        pol_mask = drop_missing_pixels(m1[2], pol_mask, "maps1[U]", "pol_mask")
-    est = PolarizedSpectrumEstimator(mask, binning, pol_mask=pol_mask, mask2=mask2, pol_mask2=pol_mask2,
-                                     **estimator_kwargs)
-    return est.estimate(maps1, maps2, noise_cl=noise_cl, noise_maps=noise_maps)

@@ -12,15 +12,16 @@ temperature-style :class:`~cmbtools.spectrum.Bandpowers` of that spectrum.
 from __future__ import annotations
 
 import dataclasses
-import numbers
 from pathlib import Path
 
 import numpy as np
 
 from cmbtools._core import files as _io
 from cmbtools._core.checks import check_cl
-from cmbtools._core.tables import POWER_UNITS, metadata_comments, power_unit_scale, read_text_table, write_text_table
+from cmbtools._core.binned_tables import result_metadata, result_unit_scale
+from cmbtools._core.tables import metadata_comments, power_unit_scale, read_text_table, write_text_table
 from cmbtools.exceptions import InputFileError, InvalidInputError
+from cmbtools.spectrum.bandpowers import clean_metadata, write_bandpower_fits
 
 __all__ = ["SPECTRA", "POLARIZED_COLUMNS", "PolarizedBandpowers"]
 
@@ -29,18 +30,6 @@ SPECTRA = ("TT", "TE", "TB", "EE", "EB", "BB")
 #: The columns of a polarized bandpower table.
 POLARIZED_COLUMNS = ("spectrum", "ell_min", "ell_max", "ell_eff", "cl", "cl_err", "dl", "dl_err")
 _VALUES = ("cl", "cl_err", "dl", "dl_err")
-
-
-def _clean(key, value):
-    if isinstance(value, (bool, np.bool_)):
-        return "yes" if value else "no"
-    if isinstance(value, numbers.Integral):
-        return int(value)
-    if isinstance(value, numbers.Real):
-        return float(value)
-    if isinstance(value, str):
-        return " ".join(value.splitlines())
-    raise InvalidInputError(f"PolarizedBandpowers.metadata[{key!r}] must be a string or a number.")
 
 
 @dataclasses.dataclass(frozen=True, eq=False)
@@ -94,13 +83,7 @@ class PolarizedBandpowers:
                 raise InvalidInputError(f"PolarizedBandpowers.covariance must have shape ({6 * n}, {6 * n}).")
             c.setflags(write=False)
             object.__setattr__(self, "covariance", c)
-        if not isinstance(self.metadata, dict):
-            raise InvalidInputError("PolarizedBandpowers.metadata must be a dict of str to str or number.")
-        meta = {}
-        for k, v in self.metadata.items():
-            if not isinstance(k, str) or not k or any(ch in k for ch in ":\n\r"):
-                raise InvalidInputError(f"PolarizedBandpowers.metadata keys must be non-empty strings without ':'. Got {k!r}.")
-            meta[k] = _clean(k, v)
+        meta = clean_metadata("PolarizedBandpowers", self.metadata)
         object.__setattr__(self, "metadata", meta)
 
     @classmethod
@@ -195,17 +178,10 @@ class PolarizedBandpowers:
         """
         table = read_text_table(path, what="a polarized bandpower table", separator=",")
         p = table.path
-        meta = {}
-        for _, body in table.comments:
-            if ":" in body:
-                k, v = body.split(":", 1)
-                meta[k.strip()] = _parse(v)
+        meta = result_metadata(table)
         if table.names != POLARIZED_COLUMNS:
             raise InputFileError(p, f"expected the columns {','.join(POLARIZED_COLUMNS)}")
-        unit_text = str(meta.pop("unit", "uK^2"))
-        unit = unit_text[:-2] if unit_text.endswith("^2") else unit_text
-        if unit not in POWER_UNITS:
-            raise InputFileError(p, f"unknown unit {unit_text!r} (expected uK^2 or K^2)")
+        scale = result_unit_scale(p, meta)
         names, values = [], []
         for lineno, cells in table.rows:
             if len(cells) != len(POLARIZED_COLUMNS):
@@ -226,7 +202,6 @@ class PolarizedBandpowers:
         lims = a[0, :, :2]
         if not np.all(np.isfinite(lims)) or np.any(lims != np.round(lims)) or np.any(np.abs(lims) > 2**62):
             raise InputFileError(p, "ell_min and ell_max must be whole numbers")
-        scale = POWER_UNITS[unit]
         try:
             return cls(a[0, :, 0].astype(np.int64), a[0, :, 1].astype(np.int64), a[0, :, 2],
                        a[:, :, 3] / scale, a[:, :, 4] / scale, a[:, :, 5] / scale, a[:, :, 6] / scale, None, meta)
@@ -249,31 +224,15 @@ class PolarizedBandpowers:
         -------
         Path
         """
-        from astropy.io import fits
-
-        scale = power_unit_scale(unit)
-        out = _io.check_output_path(path, overwrite=overwrite)
         nb = self.n_bins
-        cols = [
-            fits.Column(name="spectrum", format="2A", array=np.repeat(np.array(SPECTRA), nb)),
-            fits.Column(name="ell_min", format="K", array=np.tile(self.ell_min, len(SPECTRA))),
-            fits.Column(name="ell_max", format="K", array=np.tile(self.ell_max, len(SPECTRA))),
-            fits.Column(name="ell_eff", format="D", array=np.tile(self.ell_eff, len(SPECTRA))),
+        keys = [
+            ("spectrum", "2A", np.repeat(np.array(SPECTRA), nb)),
+            ("ell_min", "K", np.tile(self.ell_min, len(SPECTRA))),
+            ("ell_max", "K", np.tile(self.ell_max, len(SPECTRA))),
+            ("ell_eff", "D", np.tile(self.ell_eff, len(SPECTRA))),
         ]
-        for c in _VALUES:
-            cols.append(fits.Column(name=c, format="D", unit=f"{unit}^2", array=getattr(self, c).ravel() * scale))
-        table = fits.BinTableHDU.from_columns(cols, name="BANDPOWERS")
-        table.header["HIERARCH CMBTOOLS UNIT"] = f"{unit}^2"
-        for k, v in self.metadata.items():
-            if k != "unit":
-                table.header[f"HIERARCH CMBTOOLS {k.upper()}"] = v
-        hdus = [fits.PrimaryHDU(), table]
-        if self.covariance is not None:
-            hdus.append(fits.ImageHDU(self.covariance * scale * scale, name="COVARIANCE"))
-            hdus[-1].header["BUNIT"] = f"{unit}^4"
-        with _io.atomic_output(out, overwrite=overwrite) as tmp:
-            fits.HDUList(hdus).writeto(tmp, overwrite=True)
-        return out
+        values = {c: getattr(self, c).ravel() for c in _VALUES}
+        return write_bandpower_fits(path, keys, values, self.metadata, self.covariance, unit=unit, overwrite=overwrite)
 
     # ------------------------------------------------------------------ figure
     def plot(self, path, *, theory=None, overwrite=False, title=None) -> Path:
@@ -356,12 +315,3 @@ class PolarizedBandpowers:
         return (f"PolarizedBandpowers(n_bins={self.n_bins}, ell {int(self.ell_min[0])}..{int(self.ell_max[-1])}, "
                 f"spectrum={self.metadata.get('spectrum', '?')!r})")
 
-
-def _parse(text):
-    t = text.strip()
-    for kind in (int, float):
-        try:
-            return kind(t)
-        except ValueError:
-            pass
-    return t

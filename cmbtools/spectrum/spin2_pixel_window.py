@@ -45,16 +45,11 @@ temperature window.
 
 from __future__ import annotations
 
-import collections
-import warnings
-from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
 
 from cmbtools._core import files as _io
-from cmbtools._core.checks import check_int, check_nside, resolve_nthreads
-from cmbtools.exceptions import CmbtoolsWarning
 from cmbtools.spectrum import pixel_windows as _pixwin
 
 __all__ = ["polarization_pixel_window"]
@@ -118,39 +113,6 @@ def _tally_block_spin2(vectors, pair_i, pair_j, pair_weight, scale):
     return out
 
 
-def _pair_histograms(nside, order, bins_per_unit, pole_depth, nthreads):
-    """(H, Hcos): chord histograms over all pixels (plain and cos(2 chi)-weighted), fixed summation order."""
-    scale = float(bins_per_unit * nside)
-
-    def run(item):
-        face, bx, by, mult, a, b, pi, pj, pw = item
-        vec = _pixwin.face_to_vectors((bx[:, None] + a[None, :]) / nside, (by[:, None] + b[None, :]) / nside, face)
-        return mult, _tally_block_spin2(vec, pi, pj, pw, scale)
-
-    totals = [np.zeros(2), np.zeros(2)]
-
-    def add(mult, hists):
-        for i in range(2):
-            totals[i] = _pixwin._add_into(totals[i], hists[i], mult)
-
-    if nthreads > 1:
-        with ThreadPoolExecutor(max_workers=nthreads) as pool:
-            pending = collections.deque()
-            for item in _pixwin._blocks(nside, order, pole_depth):
-                pending.append(pool.submit(run, item))
-                while len(pending) >= 2 * nthreads:
-                    add(*pending.popleft().result())
-            for future in pending:
-                add(*future.result())
-    else:
-        for item in _pixwin._blocks(nside, order, pole_depth):
-            add(*run(item))
-    diag = _pixwin._diagonal_weight(nside, order, pole_depth)
-    totals[0][0] += diag
-    totals[1][0] += diag  # a point with itself: chi = 0
-    return totals
-
-
 def wigner_d22(cos_beta, lmax):
     """Wigner small-d ``d^l_22(beta)`` for l = 0..lmax at the given cos(beta): array (lmax+1, n).
 
@@ -199,7 +161,7 @@ def _compute_window_squared(nside, lmax, *, order=None, bins_per_unit=None, pole
     """(w^P_l)**2 for l = 0..lmax (no cache, no checks)."""
     order = _pixwin._gauss_order(lmax, nside) if order is None else order
     bins_per_unit = _pixwin._bins_per_unit(lmax, nside) if bins_per_unit is None else bins_per_unit
-    hist, hist_cos = _pair_histograms(nside, order, bins_per_unit, pole_depth, nthreads)
+    hist, hist_cos = _pixwin.pair_histograms(nside, order, bins_per_unit, pole_depth, nthreads, _tally_block_spin2)
     chord = np.arange(hist.size) / (bins_per_unit * nside)
     if hist_cos.size < hist.size:
         hist_cos = np.concatenate([hist_cos, np.zeros(hist.size - hist_cos.size)])
@@ -209,56 +171,6 @@ def _compute_window_squared(nside, lmax, *, order=None, bins_per_unit=None, pole
 def cache_path(nside: int) -> Path:
     """Path of the cached polarization pixel-window table for ``nside``."""
     return _io.cache_dir() / f"pixel_window_pol_nside{int(nside)}_v{ALGORITHM_VERSION}.npz"
-
-
-def _inputs_hash(nside: int, lmax: int) -> str:
-    return _io.sha256_arrays("pixel_window_pol", int(nside), int(lmax), int(ALGORITHM_VERSION))
-
-
-def _load_cached(path: Path, nside: int, lmax: int):
-    """The cached window sliced to ``lmax``, or None (with a warning if the file is bad or stale)."""
-    if not path.exists():
-        return None
-    try:
-        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as data:
-            window = np.array(data["window"], dtype=np.float64)
-            f_nside = int(data["nside"])
-            f_lmax = int(data["lmax"])
-            f_version = int(data["version"])
-            f_inputs = str(data["inputs_sha256"])
-            f_checksum = str(data["checksum_sha256"])
-    except Exception as exc:  # any file that cannot be parsed is corrupt (BadZipFile, KeyError, ...)
-        warnings.warn(f"{path}: corrupt polarization pixel-window cache ({type(exc).__name__}: {exc}); recomputing.",
-                      CmbtoolsWarning, stacklevel=3)
-        return None
-    problem = None
-    if f_version != ALGORITHM_VERSION:
-        problem = f"written by algorithm version {f_version}, not {ALGORITHM_VERSION}"
-    elif f_nside != nside:
-        problem = f"holds nside {f_nside}, not {nside}"
-    elif f_inputs != _inputs_hash(f_nside, f_lmax):
-        problem = "its recorded inputs do not match their hash"
-    elif window.shape != (f_lmax + 1,) or _io.sha256_arrays(window) != f_checksum:
-        problem = "its contents do not match their checksum"
-    if problem is not None:
-        warnings.warn(f"{path}: stale or corrupt polarization pixel-window cache ({problem}); recomputing.",
-                      CmbtoolsWarning, stacklevel=3)
-        return None
-    if f_lmax < lmax:
-        return None
-    return window[: lmax + 1].copy()
-
-
-def _store(path: Path, nside: int, lmax: int, window: np.ndarray) -> None:
-    try:
-        with _io.atomic_output(path, overwrite=True) as tmp:
-            with open(tmp, "wb") as fh:
-                np.savez(fh, window=window, nside=np.int64(nside), lmax=np.int64(lmax),
-                         version=np.int64(ALGORITHM_VERSION), inputs_sha256=np.str_(_inputs_hash(nside, lmax)),
-                         checksum_sha256=np.str_(_io.sha256_arrays(window)))
-    except OSError as exc:
-        warnings.warn(f"could not write the polarization pixel-window cache {path} ({exc}); the result is not cached.",
-                      CmbtoolsWarning, stacklevel=3)
 
 
 def polarization_pixel_window(nside, lmax=None, *, use_cache=True, nthreads=None) -> np.ndarray:
@@ -297,23 +209,6 @@ def polarization_pixel_window(nside, lmax=None, *, use_cache=True, nthreads=None
     >>> round(float(w[32]), 4)
     0.8219
     """
-    nside = check_nside(nside)
-    lmax = 4 * nside if lmax is None else check_int(lmax, "lmax", minimum=0, maximum=_pixwin.MAX_LMAX_FACTOR * nside)
-    nthreads = resolve_nthreads(nthreads)
-    lmax_table = max(lmax, 4 * nside)
-
-    path = None
-    if use_cache:
-        try:
-            path = cache_path(nside)
-        except OSError as exc:
-            warnings.warn(f"the cache directory is not usable ({exc}); the pixel window is not cached.",
-                          CmbtoolsWarning, stacklevel=2)
-        if path is not None:
-            cached = _load_cached(path, nside, lmax)
-            if cached is not None:
-                return cached
-    window = np.sqrt(np.maximum(_compute_window_squared(nside, lmax_table, nthreads=nthreads), 0.0))
-    if path is not None:
-        _store(path, nside, lmax_table, window)
-    return window[: lmax + 1].copy()
+    return _pixwin.cached_window(nside, lmax, use_cache, nthreads, path_of=cache_path,
+                                 compute_squared=_compute_window_squared, kind="pixel_window_pol",
+                                 version=ALGORITHM_VERSION, what="polarization pixel-window")

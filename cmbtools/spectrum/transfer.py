@@ -7,7 +7,7 @@ Two forms, both from the MASTER treatment of filtering (Hivon et al. 2002, ApJ 5
 * per bin, :class:`BandpowerTransfer` (``F_b``, the mean recovered bandpower over the
   expected one, as ``cmbtools validate`` measures it): the corrected bandpowers are
   ``cl / F_b``, their errors ``cl_err / F_b`` and their covariance ``C_bb' / (F_b F_b')``.
-  Its table (:func:`cmbtools._core.tables.write_transfer_table`) is what
+  Its table (:func:`cmbtools._core.binned_tables.write_transfer_table`) is what
   ``cmbtools validate`` writes and ``cmbtools spectrum --transfer`` reads.
 """
 
@@ -133,7 +133,7 @@ class BandpowerTransfer:
 
     def write_csv(self, path, *, overwrite=False):
         """Write the table (columns ``ell_min,ell_max,ell_eff,transfer,transfer_error``; see
-        :func:`cmbtools._core.tables.write_transfer_table`).
+        :func:`cmbtools._core.binned_tables.write_transfer_table`).
 
         Parameters
         ----------
@@ -146,7 +146,7 @@ class BandpowerTransfer:
         -------
         Path
         """
-        from cmbtools._core.tables import write_transfer_table
+        from cmbtools._core.binned_tables import write_transfer_table
 
         return write_transfer_table(path, self.ell_min, self.ell_max, self.ell_eff, self.transfer,
                                     self.transfer_error, metadata=self.metadata, overwrite=overwrite)
@@ -164,7 +164,7 @@ class BandpowerTransfer:
         -------
         BandpowerTransfer
         """
-        from cmbtools._core.tables import read_transfer_table
+        from cmbtools._core.binned_tables import read_transfer_table
 
         p, cols, meta = read_transfer_table(path)
         return cls(cols["ell_min"], cols["ell_max"], cols["ell_eff"], cols["transfer"], cols["transfer_error"],

@@ -1,35 +1,21 @@
 """``cmbtools spectrum`` on I, Q, U files: the six spectra in one table, refused options, temperature unchanged.
 
-When the maps package has no I, Q, U reader yet, a stand-in built on healpy's FITS reader is used (the
-command's wiring is what is checked here; the reader has its own tests in the maps package).
+The command's wiring is what is checked here; the I, Q, U reader has its own tests in the maps package.
 """
 
 from __future__ import annotations
-
-import hashlib
 
 import healpy as hp
 import numpy as np
 import pytest
 
 from cmbtools.cli import main
-from cmbtools.maps import fits as map_fits
 from cmbtools.maps.masks import apodize_mask, cap_mask
 from cmbtools.spectrum import SPECTRA, PolarizedBandpowers
 
 
-class _Info:
-    def __init__(self, path):
-        self.sha256 = hashlib.sha256(open(path, "rb").read()).hexdigest()
-
-
 @pytest.fixture
-def iqu_files(tmp_path, monkeypatch):
-    if not hasattr(map_fits, "read_iqu"):
-        monkeypatch.setattr(map_fits, "is_iqu_file", lambda p: len(hp.read_map(p, field=None, dtype=None)) == 3
-                            if np.ndim(hp.read_map(p, field=None, dtype=None)) == 2 else False, raising=False)
-        monkeypatch.setattr(map_fits, "read_iqu", lambda p, force=False: (
-            np.array(hp.read_map(p, field=(0, 1, 2), dtype=np.float64)), _Info(p)), raising=False)
+def iqu_files(tmp_path):
     nside, lmax = 32, 64
     rng = np.random.default_rng(11)
     ell = np.arange(lmax + 1.0)

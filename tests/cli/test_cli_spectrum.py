@@ -65,7 +65,7 @@ def test_auto_spectrum_end_to_end(files, tmp_path, capsys):
     # the same numbers as the library call with the same settings
     m1, _, mask = files["arrays"]
     # (--theory is also the guess spectrum of the deprojection-bias correction)
-    from cmbtools._core.tables import read_spectrum_table
+    from cmbtools._core.spectrum_tables import read_spectrum_table
 
     est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 12), beam=FWHM, nthreads=1,
                             guess_cl=read_spectrum_table(files["theory"]))

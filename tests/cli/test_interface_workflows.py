@@ -285,7 +285,7 @@ def test_a_spectrum_table_written_by_cmbtools_is_accepted_as_a_noise_spectrum(tm
     from cmbtools.simulate import NoiseModel, noise_spectrum
 
     expected = noise_spectrum(NoiseModel(35.0), 383, 128)
-    from cmbtools._core.tables import read_noise_spectrum_table
+    from cmbtools._core.spectrum_tables import read_noise_spectrum_table
 
     np.testing.assert_allclose(read_noise_spectrum_table(tmp_path / "nl.csv"), expected, rtol=1e-10)
     out = cmbtools("spectrum", MAPS / "tern_sky.fits", "--mask", MAPS / "tern_mask.fits", "--beam-fwhm", 25,

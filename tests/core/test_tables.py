@@ -120,7 +120,7 @@ def test_write_validation(tmp_path):
 
 
 def test_every_spectrum_table_cmbtools_writes_is_a_valid_noise_spectrum(tmp_path):
-    from cmbtools._core.tables import read_noise_spectrum_table
+    from cmbtools._core.spectrum_tables import read_noise_spectrum_table
     from cmbtools.spectrum import Bandpowers
 
     cl = _cl()
@@ -144,7 +144,7 @@ def test_every_spectrum_table_cmbtools_writes_is_a_valid_noise_spectrum(tmp_path
 
 
 def test_the_noise_reader_prefers_an_nl_column(tmp_path):
-    from cmbtools._core.tables import read_noise_spectrum_table
+    from cmbtools._core.spectrum_tables import read_noise_spectrum_table
 
     path = tmp_path / "both.txt"
     path.write_text("# unit: uK^2\nell cl nl\n0 0 0\n1 5 2\n2 7 3\n")

@@ -732,7 +732,8 @@ def test_transfer_tables_load_or_raise(seed, damage, bom, newline):
 @given(seed=st.integers(0, 2**32 - 1), damage=st.lists(_TABLE_DAMAGE, max_size=3), bom=st.booleans(),
        newline=st.sampled_from(_NEWLINES))
 def test_harmonic_filter_tables_load_or_raise(seed, damage, bom, newline):
-    from cmbtools._core.tables import read_filter_table, write_text_table
+    from cmbtools._core.binned_tables import read_filter_table
+    from cmbtools._core.tables import write_text_table
 
     rng = np.random.default_rng(seed)
     f = rng.uniform(-0.1, 1.0, int(rng.integers(1, 30)))

@@ -22,7 +22,8 @@ from cmbtools.spectrum import (
     read_covariance,
     simulated_covariance,
 )
-from cmbtools.spectrum.covariance import BandpowerCovariance, coupled_spectrum
+from cmbtools.spectrum.bandpower_covariance import BandpowerCovariance
+from cmbtools.spectrum.covariance import coupled_spectrum
 from cmbtools._core import sht
 
 

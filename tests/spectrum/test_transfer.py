@@ -8,7 +8,8 @@ import numpy as np
 import pytest
 
 from cmbtools._core import sht as _sht
-from cmbtools._core.tables import read_filter_table, read_transfer_table, write_text_table
+from cmbtools._core.binned_tables import read_filter_table, read_transfer_table
+from cmbtools._core.tables import write_text_table
 from cmbtools.exceptions import InputFileError, InvalidInputError
 from cmbtools.simulate import Dipole, NoiseModel, fiducial_cl, gaussian_alm, noise_map, noise_spectrum, validate_estimator
 from cmbtools.spectrum import (

@@ -1,0 +1,326 @@
+"""The bandpower covariance as an object and a file; the covariance from simulations.
+
+:class:`BandpowerCovariance` holds a covariance with its bins and window
+functions, whether analytic (:class:`~cmbtools.spectrum.GaussianCovariance`)
+or simulated.
+
+Simulated covariance
+--------------------
+:func:`simulated_covariance` turns the bandpowers of a Monte Carlo run into a
+covariance file; its inverse carries the Hartlap et al. (2007, A&A 464, 399,
+eq. 17) factor ``(n - p - 2) / (n - 1)`` for ``n`` simulations and ``p`` bins.
+
+Files
+-----
+:func:`write_covariance` / :func:`read_covariance` (``.npz`` without pickle,
+or FITS); layout in :func:`write_covariance`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+from pathlib import Path
+
+import numpy as np
+
+from cmbtools._core.files import atomic_output, check_input_file, check_output_path
+from cmbtools._version import __version__
+from cmbtools.exceptions import InputFileError, InvalidInputError
+
+__all__ = [
+    "BandpowerCovariance",
+    "simulated_covariance",
+    "hartlap_factor",
+    "write_covariance",
+    "read_covariance",
+]
+
+_FORMAT = "cmbtools-bandpower-covariance-1"
+
+
+def hartlap_factor(n_sims, n_bins) -> float:
+    """``(n - p - 2) / (n - 1)``, the factor that debiases the inverse of a simulated covariance.
+
+    Hartlap, Simon & Schneider (2007, A&A 464, 399, eq. 17).
+
+    Parameters
+    ----------
+    n_sims : int
+        Number of simulations.
+    n_bins : int
+        Number of bins (the dimension of the covariance).
+
+    Returns
+    -------
+    float
+    """
+    n, p = int(n_sims), int(n_bins)
+    if n < p + 3:
+        raise InvalidInputError(
+            f"A simulated covariance of {p} bins needs at least {p + 3} simulations to be inverted. Got {n} instead."
+        )
+    return (n - p - 2) / (n - 1)
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class BandpowerCovariance:
+    """A bandpower covariance with its bins and window functions (what the covariance files hold).
+
+    Parameters
+    ----------
+    ell_min, ell_max : array_like of int, shape (n_bins,)
+        Bin limits (inclusive).
+    ell_eff : array_like of shape (n_bins,)
+        Effective multipole of each bin.
+    matrix : array_like of shape (n_bins, n_bins)
+        Covariance of the ``cl`` bandpowers, K^4.
+    windows : array_like of shape (n_bins, lmax+1), optional
+        Bandpower window functions ``E[cl] = windows @ C_l``.
+    kind : {'gaussian', 'simulation', 'knox'}, default='gaussian'
+        How it was obtained.
+    n_sims : int, default=0
+        Number of simulations of a simulated covariance.
+    settings : dict, optional
+        Recorded settings (str or number values).
+    """
+
+    ell_min: np.ndarray
+    ell_max: np.ndarray
+    ell_eff: np.ndarray
+    matrix: np.ndarray
+    windows: np.ndarray | None = None
+    kind: str = "gaussian"
+    n_sims: int = 0
+    settings: dict = dataclasses.field(default_factory=dict)
+
+    def __post_init__(self):
+        lo = np.array(self.ell_min, dtype=np.int64)
+        nb = lo.size
+        hi = np.array(self.ell_max, dtype=np.int64)
+        eff = np.array(self.ell_eff, dtype=np.float64)
+        m = np.array(self.matrix, dtype=np.float64)
+        if lo.ndim != 1 or nb == 0 or hi.shape != (nb,) or eff.shape != (nb,):
+            raise InvalidInputError("The bins of a covariance must be three 1-d arrays of the same length.")
+        if m.shape != (nb, nb) or not np.all(np.isfinite(m)):
+            raise InvalidInputError(f"The covariance matrix must be a finite ({nb}, {nb}) array. Got shape {m.shape} instead.")
+        if not np.allclose(m, m.T, rtol=1e-8, atol=0.0):
+            raise InvalidInputError("The covariance matrix is not symmetric.")
+        if np.any(np.diag(m) < 0):
+            raise InvalidInputError("The covariance matrix has negative variances on its diagonal.")
+        if self.kind not in ("gaussian", "simulation", "knox"):
+            raise InvalidInputError(f"The covariance 'kind' must be 'gaussian', 'simulation' or 'knox'. Got {self.kind!r} instead.")
+        for name, arr in (("ell_min", lo), ("ell_max", hi), ("ell_eff", eff), ("matrix", m)):
+            arr.setflags(write=False)
+            object.__setattr__(self, name, arr)
+        if self.windows is not None:
+            w = np.array(self.windows, dtype=np.float64)
+            if w.ndim != 2 or w.shape[0] != nb:
+                raise InvalidInputError(f"The window functions must have shape ({nb}, lmax+1). Got {w.shape} instead.")
+            w.setflags(write=False)
+            object.__setattr__(self, "windows", w)
+        object.__setattr__(self, "n_sims", int(self.n_sims))
+        object.__setattr__(self, "settings", {str(k): v for k, v in dict(self.settings).items()})
+
+    @property
+    def n_bins(self) -> int:
+        """Number of bins."""
+        return int(self.ell_min.size)
+
+    @property
+    def errors(self) -> np.ndarray:
+        """Square roots of the diagonal: the error bars of the ``cl`` bandpowers, K^2."""
+        return np.sqrt(np.diag(self.matrix))
+
+    @property
+    def correlation(self) -> np.ndarray:
+        """Correlation coefficients ``C_ij / sqrt(C_ii C_jj)``."""
+        e = self.errors
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return self.matrix / np.outer(e, e)
+
+    def inverse(self) -> np.ndarray:
+        """The inverse for a likelihood; a simulated covariance is debiased with :func:`hartlap_factor`.
+
+        Returns
+        -------
+        ndarray of shape (n_bins, n_bins)
+        """
+        inv = np.linalg.inv(self.matrix)
+        if self.kind == "simulation":
+            inv *= hartlap_factor(self.n_sims, self.n_bins)
+        return 0.5 * (inv + inv.T)
+
+    def matches(self, binning) -> bool:
+        """Whether the covariance has the bins of ``binning`` (a Binning or Bandpowers).
+
+        Parameters
+        ----------
+        binning : Binning or Bandpowers
+            Anything with ``ell_min`` and ``ell_max``.
+
+        Returns
+        -------
+        bool
+        """
+        return (np.array_equal(np.asarray(binning.ell_min), self.ell_min)
+                and np.array_equal(np.asarray(binning.ell_max), self.ell_max))
+
+    def write(self, path, *, overwrite=False) -> Path:
+        """Write to ``.npz`` or ``.fits`` (see :func:`write_covariance`).
+
+        Parameters
+        ----------
+        path : str or path-like
+            Output file, ``.npz`` or ``.fits``.
+        overwrite : bool, default=False
+            Replace an existing file.
+
+        Returns
+        -------
+        Path
+        """
+        return write_covariance(path, self, overwrite=overwrite)
+
+
+def simulated_covariance(samples, *, ell_min, ell_max, ell_eff, windows=None, settings=None) -> BandpowerCovariance:
+    """The sample covariance (``ddof=1``) of simulated bandpowers.
+
+    Its :meth:`BandpowerCovariance.inverse` applies the Hartlap et al. (2007)
+    factor.
+
+    Parameters
+    ----------
+    samples : array_like of shape (n_sims, n_bins)
+        ``cl`` bandpowers of every simulation, K^2.
+    ell_min, ell_max, ell_eff : array_like of shape (n_bins,)
+        The bins.
+    windows : array_like of shape (n_bins, lmax+1), optional
+        Bandpower window functions to store with it.
+    settings : dict, optional
+        Settings to record.
+
+    Returns
+    -------
+    BandpowerCovariance
+    """
+    x = np.asarray(samples, dtype=np.float64)
+    if x.ndim != 2 or x.shape[0] < 2:
+        raise InvalidInputError(f"The 'samples' must have shape (n_sims, n_bins) with n_sims >= 2. Got {x.shape} instead.")
+    cov = np.atleast_2d(np.cov(x, rowvar=False, ddof=1))
+    return BandpowerCovariance(ell_min, ell_max, ell_eff, 0.5 * (cov + cov.T), windows, kind="simulation",
+                               n_sims=x.shape[0], settings=dict(settings or {}))
+
+
+def write_covariance(path, covariance, *, overwrite=False) -> Path:
+    """Write a :class:`BandpowerCovariance` to ``.npz`` (no pickle) or ``.fits``, atomically.
+
+    Layout (both formats; C_l bandpowers, K^4 for the matrix):
+
+    * ``.npz``: arrays ``ell_min``, ``ell_max``, ``ell_eff`` (n_bins,),
+      ``covariance`` (n_bins, n_bins), ``windows`` (n_bins, lmax+1, present when
+      known) and ``settings``, a JSON string with ``format``, ``software``,
+      ``kind`` ('gaussian', 'simulation' or 'knox'), ``n_sims``, ``unit``
+      ('K^4') and the recorded settings.
+    * ``.fits``: primary header with ``CMBFMT``, ``KIND``, ``NSIMS``, ``BUNIT``
+      and the settings as ``HIERARCH`` cards; extension ``BINS`` (table
+      ``ELL_MIN``, ``ELL_MAX``, ``ELL_EFF``), image ``COVARIANCE`` and image
+      ``WINDOWS`` (rows = bins, columns = ell from 0).
+
+    Parameters
+    ----------
+    path : str or path-like
+        ``.npz`` or ``.fits`` file.
+    covariance : BandpowerCovariance
+        What to write.
+    overwrite : bool, default=False
+        Replace an existing file.
+
+    Returns
+    -------
+    Path
+    """
+    out = check_output_path(path, overwrite=overwrite)
+    suffix = out.suffix.lower()
+    if suffix not in (".npz", ".fits"):
+        raise InvalidInputError(f"A covariance file must end in .npz or .fits. Got {str(path)!r} instead.")
+    c = covariance
+    meta = {"format": _FORMAT, "software": f"cmbtools {__version__}", "kind": c.kind, "n_sims": c.n_sims,
+            "unit": "K^4", **c.settings}
+    if suffix == ".npz":
+        arrays = {"ell_min": c.ell_min, "ell_max": c.ell_max, "ell_eff": c.ell_eff, "covariance": c.matrix}
+        if c.windows is not None:
+            arrays["windows"] = c.windows
+        with atomic_output(out, overwrite=overwrite, suffix=".npz") as tmp:
+            with open(tmp, "wb") as fh:
+                np.savez(fh, settings=np.array(json.dumps(meta, sort_keys=True)), **arrays)
+        return out
+    from astropy.io import fits
+
+    primary = fits.PrimaryHDU()
+    primary.header["CMBFMT"] = _FORMAT
+    primary.header["KIND"] = c.kind
+    primary.header["NSIMS"] = c.n_sims
+    primary.header["BUNIT"] = "K^4"
+    for k, v in c.settings.items():
+        text = v if isinstance(v, (int, float)) else " ".join(str(v).splitlines())[:60]
+        primary.header[f"HIERARCH {k.upper()}"[:60]] = text
+    bins = fits.BinTableHDU.from_columns([
+        fits.Column(name="ELL_MIN", format="K", array=c.ell_min),
+        fits.Column(name="ELL_MAX", format="K", array=c.ell_max),
+        fits.Column(name="ELL_EFF", format="D", array=c.ell_eff),
+    ], name="BINS")
+    hdus = [primary, bins, fits.ImageHDU(np.asarray(c.matrix), name="COVARIANCE")]
+    if c.windows is not None:
+        hdus.append(fits.ImageHDU(np.asarray(c.windows), name="WINDOWS"))
+    with atomic_output(out, overwrite=overwrite, suffix=".fits") as tmp:
+        fits.HDUList(hdus).writeto(tmp)
+    return out
+
+
+def read_covariance(path) -> BandpowerCovariance:
+    """Read a covariance file written by :func:`write_covariance` (``.npz`` or ``.fits``).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The file.
+
+    Returns
+    -------
+    BandpowerCovariance
+
+    Raises
+    ------
+    InputFileError
+        If the file is missing, unreadable or not a cmbtools covariance file.
+    """
+    p = check_input_file(path)
+    try:
+        if p.suffix.lower() == ".npz":
+            with open(p, "rb") as fh, np.load(fh, allow_pickle=False) as z:
+                meta = json.loads(str(z["settings"][()]))
+                if meta.get("format") != _FORMAT:
+                    raise InputFileError(p, "not a cmbtools covariance file")
+                windows = z["windows"] if "windows" in z.files else None
+                arrays = (z["ell_min"], z["ell_max"], z["ell_eff"], z["covariance"])
+        else:
+            from astropy.io import fits
+
+            with fits.open(p, memmap=False) as hdul:
+                if hdul[0].header.get("CMBFMT") != _FORMAT:
+                    raise InputFileError(p, "not a cmbtools covariance file")
+                t = hdul["BINS"].data
+                arrays = (np.array(t["ELL_MIN"]), np.array(t["ELL_MAX"]), np.array(t["ELL_EFF"]),
+                          np.array(hdul["COVARIANCE"].data, dtype=np.float64))
+                windows = np.array(hdul["WINDOWS"].data, dtype=np.float64) if "WINDOWS" in hdul else None
+                meta = {"kind": hdul[0].header["KIND"], "n_sims": int(hdul[0].header["NSIMS"])}
+    except InputFileError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - any decoding failure: not a readable covariance file
+        raise InputFileError(p, f"cannot be read as a covariance file ({type(exc).__name__}: {exc})") from None
+    settings = {k: v for k, v in meta.items() if k not in ("format", "software", "kind", "n_sims", "unit")}
+    try:
+        return BandpowerCovariance(*arrays, windows, kind=meta["kind"], n_sims=int(meta["n_sims"]), settings=settings)
+    except (InvalidInputError, KeyError) as exc:
+        raise InputFileError(p, f"is not a valid covariance file ({exc})") from None

@@ -1,0 +1,284 @@
+"""The binned coupled system of the polarized spectra and its inverse, built once per pair of maps.
+
+The coupled system (Kogut et al. 2003, ApJS 148, 161; Hivon et al. 2002, ApJ 567, 2, eq. A31 extended to
+spin 2; the kernels are listed in the coupling module) is, for the pseudo-spectra ``X~`` of the masked
+maps and the sky spectra ``X`` times ``F^X_l = B^a_l B^b_l p^a_l p^b_l T^X_l``::
+
+    TT~ = M00 TT     TE~ = M02 TE     TB~ = M02 TB
+    EE~ = M++ EE + M-- BB      BB~ = M-- EE + M++ BB      EB~ = (M++ - M--) EB
+
+With B-mode purification (Smith 2006, PRD 74, 083002) the B coefficients are the pure ones and the rows
+involving B become ``TB~ = R.M00 TB``, ``EB~ = R.M02 EB``, ``BB~ = R^2.M00 BB`` with
+``R_ll' = N_l / N_l'`` (see :func:`~cmbtools.spectrum.coupling.pure_b_ratio`): no E leaks into B.  Binned
+with the averaging operator ``P`` and the piecewise-flat model ``Q``, the system is a square matrix of
+``n_spectra x n_bins`` rows whose inverse gives the bandpowers; the EE/BB block is solved jointly, which
+removes the E/B mixing of the mask on average.
+
+:class:`_PolarizedOperator` is the base of :class:`~cmbtools.spectrum.PolarizedSpectrumEstimator`: its
+immutable state, the masks' spectra and moments, every coupling kernel (one ducc0 kernel call for all the
+matrices the estimator needs) and the binned operator :class:`_Pair` of map 1 x map 1 and map 1 x map 2.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from cmbtools._core import sht as _sht
+from cmbtools._core.checks import resolve_nthreads
+from cmbtools.exceptions import IllConditionedError
+from cmbtools.spectrum import coupling as coupling_pol
+from cmbtools.spectrum.errors import _reduce_cols, _reduce_rows
+
+__all__ = []
+
+
+#: The spectra measured for a pair of maps a, b ('ET' is E_a x T_b, 'BT' is B_a x T_b); the sky spectrum
+#: each one estimates, and the two fields (index 0..2 for T, E, B of map a and of map b).
+_COMPONENTS_AUTO = ("TT", "TE", "TB", "EE", "EB", "BB")
+_COMPONENTS_CROSS = ("TT", "TE", "ET", "TB", "BT", "EE", "EB", "BB")
+_SKY = {"TT": "TT", "TE": "TE", "ET": "TE", "TB": "TB", "BT": "TB", "EE": "EE", "EB": "EB", "BB": "BB"}
+_FIELD = {"T": 0, "E": 1, "B": 2}
+
+
+#: Components solved together (the EE/BB block); every other component is decoupled alone.
+_GROUPS_AUTO = (("TT",), ("TE",), ("TB",), ("EE", "BB"), ("EB",))
+_GROUPS_CROSS = (("TT",), ("TE",), ("ET",), ("TB",), ("BT",), ("EE", "BB"), ("EB",))
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class _Pair:
+    """The binned operator of one pair of maps (a, b)."""
+
+    components: tuple
+    ainv: np.ndarray  # (n_comp * n_bins, n_comp * n_bins)
+    pmf: dict  # component -> list of (column component, (n_bins, lmax+1) P M F)
+    pm: dict  # component -> list of (column component, (n_bins, lmax+1) P M), for the noise bias
+    condition_number: float
+
+
+def _freeze(a):
+    a = np.ascontiguousarray(a)
+    a.setflags(write=False)
+    return a
+
+
+class _PolarizedOperator:
+    """State, mask spectra, coupling kernels and binned operators of the polarized estimator (its base class).
+
+    The subclass's constructor sets, with :meth:`_set`: ``lmax``, ``binning``, ``purify_b``, ``_unique``
+    (the distinct masks), ``_key_of`` (mask name 't1', 'p1', 't2', 'p2' -> index in ``_unique``),
+    ``_factors`` (beam times pixel window of each mask name), ``_transfer`` (per sky spectrum),
+    ``_max_cond``, ``_nthreads`` and ``_cache``.
+    """
+
+    def _set(self, name, value):
+        object.__setattr__(self, name, value)
+
+    def __setattr__(self, name, value):
+        raise AttributeError(f"PolarizedSpectrumEstimator is immutable; cannot set {name!r}")
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state["_nthreads"] = None  # a worker process uses its own thread budget
+        return state
+
+    def __setstate__(self, state):
+        for k, v in state.items():
+            object.__setattr__(self, k, v)
+
+    def _cached(self, key, make):
+        """A derived quantity of the masks and settings, computed on first use and kept."""
+        c = self._cache
+        if key not in c:
+            c[key] = make()
+        return c[key]
+
+    def _threads(self):
+        return resolve_nthreads(self._nthreads)
+
+    def _moments(self, *keys):
+        """mean of the product of the named masks ('t1', 'p2', ...)."""
+        idx = tuple(sorted(self._key_of[k] for k in keys))
+
+        def make():
+            prod = np.ones(self.masks["t1"].size)
+            for i in idx:
+                prod = prod * self._unique[i]
+            return float(np.mean(prod))
+
+        return self._cached(("moment",) + idx, make)
+
+    # ------------------------------------------------------------------ couplings
+    def _mask_spectrum(self, i, j):
+        """Cross-spectrum (plain quadrature, to 2 lmax) of unique masks i and j."""
+        i, j = sorted((i, j))
+
+        def make():
+            u = self._unique
+            lw = 2 * self.lmax
+            nthreads = self._threads()
+            if i == j:
+                return _sht.map_spectra([u[i]], lw, nthreads=nthreads, rings=_sht.occupied_rings(u[i]))[0]
+            rings = _sht.occupied_rings(u[i]) | _sht.occupied_rings(u[j])
+            s = _sht.map_spectra([u[i], u[j]], lw, nthreads=nthreads, rings=rings)
+            self._cache.setdefault(("mask_spectrum", i, i), s[0])
+            self._cache.setdefault(("mask_spectrum", j, j), s[1])
+            return s[2]
+
+        return self._cached(("mask_spectrum", i, j), make)
+
+    def _kernels(self, wanted, covariance=None):
+        """P-reduced coupling matrices (n_bins, lmax+1) for keys (kind, i, j); missing ones in one kernel call.
+
+        Kinds: '00', '02', '++', '--', '+-' (= ++ minus --), and for the pure B '00R' (R.M00), '00RR'
+        (R^2.M00), '02R' (R.M02), with ``R = N_l / N_l'`` (:func:`pure_b_ratio`).  ``covariance``: the
+        (keys, spectra) of covariance kernels to compute in the same kernel call (ducc0 evaluates the 3j
+        symbols once for all the matrices of a call).
+        """
+        missing = sorted({k for k in wanted if ("kernel",) + k not in self._cache})
+        cov_keys, cov_spectra = covariance if covariance is not None else ((), ())
+        if not missing and not cov_keys:
+            return {k: self._cache[("kernel",) + k] for k in wanted}
+        base = {}
+        for kind, i, j in missing:
+            b = {"00": "00", "00R": "00", "00RR": "00", "02": "02", "02R": "02"}.get(kind, "+-")
+            base.setdefault((b, i, j), []).append(kind)
+        requests = list(base)
+        mats = coupling_pol.coupling_matrices(
+            [(b, self._mask_spectrum(i, j)) for b, i, j in requests] + [("00", w) for w in cov_spectra],
+            self.lmax, nthreads=self._threads(),
+        )
+        p_w = self.binning.averaging_weights(self.lmax)
+        starts = self.binning.ell_min
+        ratio = coupling_pol.pure_b_ratio(self.lmax) if any(k[0].endswith("R") for k in missing) else None
+        pos = 0
+        for (b, i, j) in requests:
+            if b == "+-":
+                mpp, mmm = mats[pos], mats[pos + 1]
+                pos += 2
+                made = {"++": mpp, "--": mmm, "+-": None}
+            else:
+                made = {b: mats[pos]}
+                pos += 1
+            for kind in base[(b, i, j)]:
+                if kind == "+-":
+                    m = mpp - mmm
+                elif kind.endswith("RR"):
+                    m = made[b] * (ratio * ratio)
+                elif kind.endswith("R"):
+                    m = made[b] * ratio
+                else:
+                    m = made[kind].copy()
+                self._cache[("kernel", kind, i, j)] = _freeze(_reduce_rows(m, p_w, starts))
+        if cov_keys:
+            b = self.binning
+            r = np.zeros(self.lmax + 1)
+            idx = b.bin_index
+            sel = np.nonzero(idx >= 0)[0]
+            r[sel] = 1.0 / b.n_ell[idx[sel]]
+            inv_cols = 1.0 / (2.0 * np.arange(self.lmax + 1) + 1.0)
+            for k, xi in zip(cov_keys, mats[pos:]):
+                xi = xi * inv_cols[None, :]
+                g = _reduce_cols(_reduce_rows(xi, r, b.ell_min), r, b.ell_min)
+                self._cache[("cov_kernel",) + k] = _freeze(0.5 * (g + g.T))
+        del mats
+        return {k: self._cache[("kernel",) + k] for k in wanted}
+
+    def _terms(self, comp, a, b):
+        """[(column component, kernel key)] of one pseudo-spectrum component of maps a x b."""
+        k = self._key_of
+
+        def key(kind, x, y):
+            i, j = sorted((k[x], k[y]))
+            return (kind, i, j)
+
+        ta, pa, tb, pb = "t" + a, "p" + a, "t" + b, "p" + b
+        pure = self.purify_b
+        if comp == "TT":
+            return [("TT", key("00", ta, tb))]
+        if comp == "TE":
+            return [("TE", key("02", ta, pb))]
+        if comp == "ET":
+            return [("ET", key("02", pa, tb))]
+        if comp in ("TB", "BT"):
+            x, y = (ta, pb) if comp == "TB" else (pa, tb)
+            return [(comp, key("00R", x, y) if pure else key("02", x, y))]
+        if comp == "EE":
+            return [("EE", key("++", pa, pb)), ("BB", key("--", pa, pb))]
+        if comp == "BB":
+            if pure:
+                return [("BB", key("00RR", pa, pb))]
+            return [("EE", key("--", pa, pb)), ("BB", key("++", pa, pb))]
+        if comp == "EB":
+            return [("EB", key("02R", pa, pb) if pure else key("+-", pa, pb))]
+        raise KeyError(comp)
+
+    def _factor(self, col, a, b):
+        """``F_l`` of a column component: beams times pixel windows of its two fields, times the transfer."""
+        fa = self._factors[("t" if col[0] == "T" else "p") + a]
+        fb = self._factors[("t" if col[1] == "T" else "p") + b]
+        return fa * fb * self._transfer[_SKY[col]]
+
+    def _pair(self, name):
+        """The binned operator of map 1 x map 1 ('11') or map 1 x map 2 ('12'), built on first use."""
+        return self._cached(("pair", name), lambda: self._build_pair(*name))
+
+    def _build_pair(self, a, b):
+        comps = _COMPONENTS_AUTO if a == b else _COMPONENTS_CROSS
+        groups = _GROUPS_AUTO if a == b else _GROUPS_CROSS
+        binning, lmax = self.binning, self.lmax
+        nb = binning.n_bins
+        terms = {c: self._terms(c, a, b) for c in comps}
+        kernels = self._kernels({key for t in terms.values() for _, key in t})
+        q = binning.model_weights(lmax)
+        u = np.zeros(lmax + 1)
+        idx = binning.bin_index
+        sel = np.nonzero(idx >= 0)[0]
+        u[sel] = 1.0 / binning.n_ell[idx[sel]]
+        pmf, pm = {}, {}
+        for c in comps:
+            pmf[c] = [(col, _freeze(kernels[key] * self._factor(col, a, b)[None, :])) for col, key in terms[c]]
+            pm[c] = [(col, kernels[key]) for col, key in terms[c]]
+        ainv = np.zeros((len(comps) * nb, len(comps) * nb))
+        sigmas = []
+        for group in groups:
+            n = len(group)
+            block = np.zeros((n * nb, n * nb))
+            scale = np.zeros(n * nb)
+            for r, c in enumerate(group):
+                for col, km in pmf[c]:
+                    s = group.index(col)
+                    block[r * nb:(r + 1) * nb, s * nb:(s + 1) * nb] += _reduce_cols(km.copy(), q, binning.ell_min)
+                f_mean = np.add.reduceat(self._factor(c, a, b) * u, binning.ell_min)
+                if np.any(~(np.abs(f_mean) > 1e-300)):
+                    bad = int(np.argmax(~(np.abs(f_mean) > 1e-300)))
+                    raise IllConditionedError(
+                        f"The binned coupled system of {_SKY[c]} is singular (condition number inf): the beam, pixel "
+                        f"window or transfer function is zero over bin {bad} (ell {int(binning.ell_min[bad])}-"
+                        f"{int(binning.ell_max[bad])}); lower lmax or end the bins before that multipole.",
+                        np.inf,
+                    )
+                scale[r * nb:(r + 1) * nb] = f_mean
+            normalised = block / scale[None, :]
+            if not np.all(np.isfinite(normalised)):
+                raise IllConditionedError("The binned coupled system has non-finite entries (condition number inf).", np.inf)
+            sigmas.append(np.linalg.svd(normalised, compute_uv=False))
+            where = [comps.index(c) for c in group]
+            inv = np.linalg.inv(block)
+            for r, cr in enumerate(where):
+                for s, cs in enumerate(where):
+                    ainv[cr * nb:(cr + 1) * nb, cs * nb:(cs + 1) * nb] = inv[r * nb:(r + 1) * nb, s * nb:(s + 1) * nb]
+        sv = np.concatenate(sigmas)
+        cond = float(sv.max() / sv.min()) if sv.min() > 0 else np.inf
+        if not np.isfinite(cond) or cond > self._max_cond:
+            narrow = int(binning.n_ell.min())
+            raise IllConditionedError(
+                f"The binned coupled system of the polarized spectra is ill-conditioned: condition number "
+                f"{cond:.3g} (the limit is {self._max_cond:.3g}); the bandpowers cannot be told apart on these "
+                f"masks. Use wider bins (the narrowest has {narrow} multipole{'s' if narrow != 1 else ''}), "
+                f"apodize the masks more, or lower lmax.",
+                cond,
+            )
+        return _Pair(tuple(comps), _freeze(ainv), pmf, pm, cond)
