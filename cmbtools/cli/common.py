@@ -6,7 +6,7 @@ import argparse
 
 __all__ = [
     "add_overwrite", "add_force", "add_threads", "positive_float", "positive_int", "non_negative_int", "finite_float",
-    "bounded_int", "add_binning", "binning_from_args", "bin_edges", "deprecated_alias", "MAX_THREADS", "MAX_SIMULATIONS",
+    "bounded_int", "add_binning", "binning_from_args", "bins_top", "print_range_warning", "bin_edges", "deprecated_alias", "MAX_THREADS", "MAX_SIMULATIONS",
 ]
 
 
@@ -108,11 +108,15 @@ def add_binning(parser):
     """The bin options shared by ``spectrum`` and ``validate``."""
     bins = parser.add_argument_group("bins (one of; default --bin-width 16)")
     choice = bins.add_mutually_exclusive_group()
-    choice.add_argument("--bin-width", type=positive_int, metavar="W", help="bins of W multipoles from --lmin to lmax")
+    choice.add_argument("--bin-width", type=positive_int, metavar="W",
+                        help="bins of W multipoles from --lmin to --lmax; without --lmax they end at the default top "
+                             "of the range: 2.5 nside, or earlier where the beam keeps less than 1e-3 of the sky's "
+                             "power (B_l^2), or 2 nside for a beam narrower than two pixels or none")
     choice.add_argument("--bin-edges", metavar="FILE_OR_LIST",
                         help="bin edges: bin b is edge[b] <= ell < edge[b+1]; a comma-separated list or a file of numbers")
     choice.add_argument("--log-bins", type=positive_int, metavar="N",
-                        help="about N bins evenly spaced in log(ell), none narrower than --min-bin-width")
+                        help="about N bins evenly spaced in log(ell) from --lmin to --lmax (without --lmax: to the "
+                             "default top of the range, as --bin-width), none narrower than --min-bin-width")
     bins.add_argument("--min-bin-width", type=positive_int, metavar="W",
                       help="smallest width of --log-bins bins (default: 1/(2 f_sky) of the mask, at least 2)")
     bins.add_argument("--lmin", type=non_negative_int, default=2, metavar="L",
@@ -139,8 +143,53 @@ def bin_edges(text):
         ) from None
 
 
+def bins_top(args, nside, lmax, beam, beam2=None):
+    """Where the bins of --bin-width/--log-bins end: lmax when --lmax is given, else the default top of the range.
+
+    The default top (:func:`cmbtools.spectrum.sampling.default_bins_lmax`) is where the grid and the beam keep
+    the estimator exact: 2.5 nside, or where B_l^2 falls below 1e-3, or 2 nside for a beam narrower than two
+    pixels (or none).  Such a beam also gets one warning line, whatever the range (the aliasing is in the map):
+    kept in ``args`` and printed by :func:`print_range_warning` once the command has succeeded (bad input stays
+    one error line).  An explicit --lmax or --bin-edges always wins over the default.  ``beam2``: the second
+    map's beam when it has its own (the narrower beam decides).
+    """
+    from cmbtools.exceptions import InvalidInputError
+    from cmbtools.spectrum.sampling import default_bins_lmax, narrow_beam_message
+
+    explicit = None
+    if getattr(args, "bin_edges", None) is not None:
+        explicit = "--bin-edges"
+    elif args.lmax is not None:
+        explicit = f"--lmax {lmax}"
+    beams = [beam] if beam2 is None else [beam, beam2]
+    message = next((m for m in (narrow_beam_message(nside, b) for b in beams) if m is not None), None)
+    if message is not None:
+        args.range_warning = message + ("" if explicit is None else f" (the bins of {explicit} are used)")
+    if explicit is not None:
+        return lmax
+    top = min(default_bins_lmax(nside, b, lmax) for b in beams)
+    if args.lmin > top:
+        raise InvalidInputError(
+            f"--lmin ({args.lmin}) is above the default top of the bins ({top}, see --bin-width); give --lmax to "
+            "set the range yourself."
+        )
+    return top
+
+
+def print_range_warning(args):
+    """The narrow-beam warning line of :func:`bins_top`, if any, on standard error (at the end of a command)."""
+    import sys
+
+    message = getattr(args, "range_warning", None)
+    if message is not None:
+        print(f"cmbtools: warning: {message}", file=sys.stderr)
+
+
 def binning_from_args(args, lmax, f_sky):
-    """The Binning the options of :func:`add_binning` ask for; ``f_sky`` sets the default smallest log-bin width."""
+    """The Binning the options of :func:`add_binning` ask for; ``f_sky`` sets the default smallest log-bin width.
+
+    ``lmax`` is where the bins end (:func:`bins_top`).
+    """
     import math
 
     from cmbtools.exceptions import InvalidInputError

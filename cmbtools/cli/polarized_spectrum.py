@@ -43,7 +43,7 @@ def run_polarized(args, outputs_checked) -> int:
     from cmbtools import spectrum as sp
     from cmbtools._core.checks import check_same_nside
     from cmbtools._core.files import sha256_file
-    from cmbtools.cli.common import binning_from_args, describe_binning
+    from cmbtools.cli.common import binning_from_args, bins_top, describe_binning, print_range_warning
     from cmbtools.exceptions import InvalidInputError
     from cmbtools.maps.polarized_fits import read_iqu
     from cmbtools.spectrum.one_call import drop_missing_pixels
@@ -79,7 +79,7 @@ def run_polarized(args, outputs_checked) -> int:
 
     beam1 = beam_of(args.beam_fwhm, args.beam)
     beam2 = beam_of(args.beam2_fwhm, args.beam2) if args.map2 is not None else None
-    binning = binning_from_args(args, lmax, float(np.mean(p1)))
+    binning = binning_from_args(args, bins_top(args, nside, lmax, beam1, beam2), float(np.mean(p1)))
     if binning.lmin < 2:
         raise InvalidInputError(f"The bins start at ell={binning.lmin}; polarized spectra need bins from ell >= 2.")
     theory = None
@@ -151,4 +151,5 @@ def run_polarized(args, outputs_checked) -> int:
         print(f"  noise bias subtracted: {meta['noise_bias_subtracted']}")
     for p in written:
         print(f"  wrote {p}")
+    print_range_warning(args)
     return 0

@@ -69,7 +69,7 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     from cmbtools import spectrum as sp
     from cmbtools._core.checks import check_same_nside
     from cmbtools._core.files import sha256_file
-    from cmbtools.cli.common import binning_from_args, describe_binning
+    from cmbtools.cli.common import binning_from_args, bins_top, describe_binning, print_range_warning
     from cmbtools.exceptions import InvalidInputError
     from cmbtools.simulate import Dipole, NoiseModel, validate_polarized_estimator
 
@@ -94,7 +94,8 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     if args.lmin > lmax:
         raise InvalidInputError(f"--lmin ({args.lmin}) must not exceed lmax ({lmax}).")
     top = (8 if args.pixelise else 4) * nside - 1
-    sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
+    # real skies have power above lmax: 4 nside - 1 by default (a cross-spectrum's splits stop at lmax)
+    sky_lmax = (lmax if cross else max(lmax, 4 * nside - 1)) if args.sky_lmax is None else args.sky_lmax
     if cross and (args.sky_lmax is not None or args.pixelise):
         raise InvalidInputError("--sky-lmax and --pixelise are not available with a cross-spectrum (--cross, --mask2).")
     if sky_lmax < lmax or sky_lmax > top:
@@ -110,7 +111,8 @@ def run_polarized(args, outputs, run_dir, where) -> int:
         beam_text = f"table {args.beam} (for I and for Q, U)"
     elif sky_lmax > lmax or args.pixelise:
         sky_beam = np.ones(sky_lmax + 1)
-    binning = binning_from_args(args, lmax, float(np.mean(mask if pol_mask is None else np.minimum(mask, pol_mask))))
+    binning = binning_from_args(args, bins_top(args, nside, lmax, beam),
+                                float(np.mean(mask if pol_mask is None else np.minimum(mask, pol_mask))))
     if binning.lmin < 2:
         raise InvalidInputError(f"The bins start at ell={binning.lmin}; polarized spectra need bins from ell >= 2.")
     noise = None
@@ -123,6 +125,10 @@ def run_polarized(args, outputs, run_dir, where) -> int:
         from cmbtools._core.spectrum_tables import read_polarized_spectrum_table
 
         spectra = read_polarized_spectrum_table(args.spectrum)
+        if args.sky_lmax is None and not cross and lmax + 1 <= spectra["TT"].size < sky_lmax + 1:
+            sky_lmax = spectra["TT"].size - 1  # a user spectrum that stops earlier sets the default band limit
+            if isinstance(sky_beam, np.ndarray):
+                sky_beam = sky_beam[: sky_lmax + 1]
         if spectra["TT"].size < sky_lmax + 1:
             raise InvalidInputError(
                 f"The spectrum table {args.spectrum!r} stops at ell={spectra['TT'].size - 1}; the skies go to ell "
@@ -209,4 +215,5 @@ def run_polarized(args, outputs, run_dir, where) -> int:
               f"{num(v['rms_bias_sigma'], '4.2f')}; scatter / error {num(v['min_error_ratio'], '.3f')} to "
               f"{num(v['max_error_ratio'], '.3f')} (median {num(v['median_error_ratio'], '.3f')})")
     print("  wrote " + ", ".join(str(p) for p in written))
+    print_range_warning(args)
     return 0

@@ -8,8 +8,8 @@ from cmbtools.cli.error_model import add_error_options
 from cmbtools.cli.noise_bias import add_noise_options
 from cmbtools.cli.polarized_spectrum import add_polarization_options
 from cmbtools.cli.common import (
-    add_binning, add_force, add_overwrite, add_threads, binning_from_args, describe_binning, positive_float,
-    positive_int,
+    add_binning, add_force, add_overwrite, add_threads, binning_from_args, bins_top, describe_binning, positive_float,
+    positive_int, print_range_warning,
 )
 
 HELP = "measure the angular power spectrum of a masked map (pseudo-Cl with mode-coupling correction)"
@@ -60,7 +60,8 @@ def add_arguments(parser):
     parser.add_argument("--mask", metavar="MASK", required=True, help="mask (weights in [0, 1]) of MAP")
     parser.add_argument("--mask2", metavar="MASK2", help="mask of MAP2 (default: the same as MAP's)")
     parser.add_argument("--lmax", type=positive_int, metavar="N",
-                        help="largest multipole of the transforms (default 3*nside-1)")
+                        help="largest multipole of the transforms and of the bins (default: transforms to "
+                             "3*nside-1, bins to the default top of the range, see --bin-width)")
     add_binning(parser)
     beam = parser.add_argument_group("beams (default: none)")
     b1 = beam.add_mutually_exclusive_group()
@@ -81,8 +82,8 @@ def add_arguments(parser):
                         help="do not correct the bias that removing the monopole, dipole and templates causes")
     parser.add_argument("--sky-lmax", type=positive_int, metavar="N",
                         help="band limit of the sky whose power above the bins is modelled from the guess spectrum "
-                             "(--theory, else the built-in fiducial one); real skies: 4 nside - 1 (default: lmax, "
-                             "a sky without power above lmax)")
+                             "(--theory, else the built-in fiducial one); real skies: 4 nside - 1 (default: lmax; "
+                             "the multipoles between the last bin and lmax are modelled in any case)")
     parser.add_argument("--transfer", metavar="FILE",
                         help="per-bin transfer function table (transfer.csv of `cmbtools validate`, same bins): "
                              "divide the bandpowers, their errors and covariance by it, undoing a filtering of the "
@@ -207,7 +208,7 @@ def run(args) -> int:
     noise_kind, noise_value = read_noise_inputs(args, nside, args.force)
     theory = read_spectrum_table(args.theory) if args.theory is not None else None
 
-    binning = binning_from_args(args, lmax, float(np.mean(w1)))
+    binning = binning_from_args(args, bins_top(args, nside, lmax, beam1, beam2), float(np.mean(w1)))
     transfer = None
     if args.transfer is not None:
         transfer = sp.BandpowerTransfer.read_csv(args.transfer)
@@ -367,4 +368,5 @@ def run(args) -> int:
         print(f"  operator cache: {cache_text}")
     for p in written:
         print(f"  wrote {p}")
+    print_range_warning(args)
     return 0

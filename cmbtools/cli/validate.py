@@ -5,8 +5,8 @@ from __future__ import annotations
 import argparse
 
 from cmbtools.cli.common import (
-    MAX_SIMULATIONS, MAX_THREADS, add_binning, add_force, add_overwrite, binning_from_args, bounded_int,
-    deprecated_alias, describe_binning, non_negative_int, positive_float, positive_int,
+    MAX_SIMULATIONS, MAX_THREADS, add_binning, add_force, add_overwrite, binning_from_args, bins_top, bounded_int,
+    deprecated_alias, describe_binning, non_negative_int, positive_float, positive_int, print_range_warning,
 )
 
 HELP = "check the spectrum estimator on simulated skies with your mask, beam and noise (Monte Carlo)"
@@ -74,7 +74,8 @@ def add_arguments(parser):
     parser.formatter_class = argparse.RawDescriptionHelpFormatter
     parser.add_argument("mask", metavar="MASK", help="mask (weights in [0, 1]) as a HEALPix FITS file; sets nside")
     parser.add_argument("--lmax", type=positive_int, metavar="N",
-                        help="largest multipole of the simulations, transforms and bins (default 3*nside-1)")
+                        help="largest multipole of the transforms and of the bins (default: transforms to 3*nside-1, "
+                             "bins to the default top of the range, see --bin-width)")
     parser.add_argument("--mask2", metavar="MASK2",
                         help="mask of a second split: check the cross-spectrum of two splits (implies --cross)")
     parser.add_argument("--cross", action="store_true",
@@ -89,7 +90,8 @@ def add_arguments(parser):
                         help="do not fit and remove the monopole and dipole before the transform")
     parser.add_argument("--sky-lmax", type=positive_int, metavar="N",
                         help="band limit of the simulated skies, whose power above the bins the estimator models "
-                             "(real skies: 4 nside - 1; default: lmax)")
+                             "(default 4 nside - 1, as real skies; lmax for --cross; at most 4 nside - 1, 8 nside - 1 "
+                             "with --pixelise)")
     parser.add_argument("--pixelise", action="store_true",
                         help="synthesize every sky at twice the nside and average it into the pixels, as a detector does")
     parser.add_argument("--monopole", type=float, metavar="UK",
@@ -270,7 +272,7 @@ def run(args) -> int:
 
         mask2 = maps.read_mask(args.mask2, force=args.force)
         check_same_nside(mask, mask2, args.mask, args.mask2)
-    binning = binning_from_args(args, lmax, float(np.mean(mask)))
+    binning = binning_from_args(args, bins_top(args, nside, lmax, beam), float(np.mean(mask)))
     transfer = None
     if args.transfer is not None:
         transfer = sp.BandpowerTransfer.read_csv(args.transfer)
@@ -278,12 +280,15 @@ def run(args) -> int:
             transfer.check_bins(binning, "the validation")
         except InvalidInputError as exc:
             raise InvalidInputError(f"{args.transfer}: {exc}") from None
-    sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
+    # real skies have power above lmax: simulated to 4 nside - 1 by default, and modelled by the estimator
+    sky_lmax = max(lmax, 4 * nside - 1) if args.sky_lmax is None else args.sky_lmax
     top = (8 if args.pixelise else 4) * nside - 1
     if cross:
         sky_lmax = lmax  # the split simulations of a cross-spectrum are band-limited at lmax
     elif sky_lmax < lmax or sky_lmax > top:
         raise InvalidInputError(f"--sky-lmax must be in [{lmax}, {top}]. Got {sky_lmax} instead.")
+    if args.sky_lmax is None and not cross and args.spectrum is not None and cl.size < sky_lmax + 1:
+        sky_lmax = max(lmax, cl.size - 1)  # a user spectrum that stops earlier sets the default band limit
     if cl.size < sky_lmax + 1:
         if args.spectrum is not None:
             raise InvalidInputError(
@@ -296,6 +301,9 @@ def run(args) -> int:
         from cmbtools._core.binned_tables import read_filter_table
 
         harmonic_filter = read_filter_table(args.harmonic_filter)
+        if args.sky_lmax is None and not cross and lmax + 1 <= harmonic_filter.size < sky_lmax + 1:
+            sky_lmax = harmonic_filter.size - 1  # a filter that stops earlier sets the default band limit
+            cl = cl[: sky_lmax + 1]
         if harmonic_filter.size < sky_lmax + 1:
             raise InvalidInputError(
                 f"The filter table {args.harmonic_filter!r} stops at ell={harmonic_filter.size - 1}; the skies go "
@@ -407,7 +415,8 @@ def run(args) -> int:
     noise_text = "none" if noise is None else (
         f"{args.noise_depth:g} uK-arcmin" + (" shaped by the hits map" if args.hits else "")
         + (f", knee at ell {args.noise_knee:g} (slope {args.noise_slope:g})" if args.noise_knee else ""))
-    print(f"  input: {spectrum_text}; beam: {meta['beam']}; noise: {noise_text}")
+    print(f"  input: {spectrum_text} to ell {sky_lmax}" + (" (pixelised)" if args.pixelise else "")
+          + f"; beam: {meta['beam']}; noise: {noise_text}")
     print(f"  bias: max |bias| {num('max_abs_bias_sigma', '.2f')} sigma (ell {int(result.ell_min[worst])}-"
           f"{int(result.ell_max[worst])}), rms {num('rms_bias_sigma', '.2f')} sigma over {s['n_bins']} bins")
     print(f"  error bars ({meta.get('error_model', 'analytic')}): scatter / error = "
@@ -420,4 +429,5 @@ def run(args) -> int:
           + (f", from {float(np.nanmin(result.transfer)):.4f} to {float(np.nanmax(result.transfer)):.4f} "
              f"(harmonic filter {args.harmonic_filter})" if args.harmonic_filter else ""))
     print("  wrote " + ", ".join(str(p) for p in written))
+    print_range_warning(args)
     return 0

@@ -56,8 +56,15 @@ def test_auto_spectrum_end_to_end(files, tmp_path, capsys):
         "--theory", str(files["theory"]), "--threads", "1",
     ])
     assert code == 0
-    text = capsys.readouterr().out
-    assert "auto-spectrum" in text and "f_sky" in text and "wrote" in text and "8 bins" in text
+    captured = capsys.readouterr()
+    text = captured.out
+    # the 90 arcmin beam is narrower than two 110-arcmin pixels: the default bins end at 2 nside = 64, not at
+    # lmax = 95, and one warning line says why (the power the beam keeps at 3 nside: exp(-l(l+1) sigma^2) = 0.32)
+    assert "auto-spectrum" in text and "f_sky" in text and "wrote" in text
+    assert "5 bins of 12-15 multipoles (ell 2-64)" in text
+    warning = captured.err.strip().splitlines()
+    assert len(warning) == 1 and warning[0].startswith("cmbtools: warning: a beam narrower than two pixels")
+    assert "keeps 0.32 of the sky's power" in warning[0] and "2*nside = 64" in warning[0]
     bp = Bandpowers.read_csv(out)
     assert bp.metadata["map"] == str(files["map"])
     assert len(bp.metadata["map_sha256"]) == 64
@@ -67,7 +74,7 @@ def test_auto_spectrum_end_to_end(files, tmp_path, capsys):
     # (--theory is also the guess spectrum of the deprojection-bias correction)
     from cmbtools._core.spectrum_tables import read_spectrum_table
 
-    est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 12), beam=FWHM, nthreads=1,
+    est = SpectrumEstimator(mask, Binning.uniform(2, 2 * NSIDE, 12), lmax=LMAX, beam=FWHM, nthreads=1,
                             guess_cl=read_spectrum_table(files["theory"]))
     nl = np.full(LMAX + 1, (1e-6) ** 2 * 4 * np.pi / m1.size)
     ref = est.estimate(maps.read_sky_map(files["map"])[0], noise_cl=nl)
@@ -152,9 +159,12 @@ def test_missing_pixels_are_dropped_with_a_warning(files, tmp_path, capsys):
     assert code == 0
     err = capsys.readouterr().err
     assert "warning:" in err and "4 missing pixels inside the mask" in err
+    # no beam: the default bins end at 2 nside = 64, with a warning line
+    assert "cmbtools: warning: no beam (109.9 arcmin at nside 32)" in err and "2*nside = 64" in err
     eff = mask.copy()
     eff[np.flatnonzero(mask > 0.5)[:4]] = 0.0
-    ref = SpectrumEstimator(eff, Binning.uniform(2, LMAX, 16), nthreads=1).estimate(np.where(eff > 0, holed, 0.0))
+    ref = SpectrumEstimator(eff, Binning.uniform(2, 2 * NSIDE, 16), lmax=LMAX, nthreads=1).estimate(
+        np.where(eff > 0, holed, 0.0))
     np.testing.assert_allclose(Bandpowers.read_csv(tmp_path / "t.csv").cl, ref.cl, rtol=1e-12)
 
 
@@ -179,7 +189,7 @@ def test_a_spectrum_table_written_by_cmbtools_is_accepted_as_the_noise_spectrum(
                  "--bin-width", "12", "--noise-spectrum", str(noise), "-o", str(out), "--threads", "1"])
     assert code == 0, capsys.readouterr().err
     m1, _, mask = files["arrays"]
-    est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 12), beam=FWHM, nthreads=1)
+    est = SpectrumEstimator(mask, Binning.uniform(2, 2 * NSIDE, 12), lmax=LMAX, beam=FWHM, nthreads=1)
     ref = est.estimate(maps.read_sky_map(files["map"])[0], noise_cl=nl)
     # the table keeps 11 significant digits of N_l: the bandpowers agree to well below their errors
     np.testing.assert_allclose(Bandpowers.read_csv(out).cl, ref.cl, rtol=1e-9, atol=1e-9 * float(np.max(ref.cl_err)))

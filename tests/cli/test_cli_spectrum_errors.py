@@ -52,8 +52,11 @@ def test_default_errors_are_the_diagonal_of_the_gaussian_covariance(files, tmp_p
     cov = read_covariance(cov_path)
     assert cov.kind == "gaussian" and cov.windows.shape == (bp.n_bins, LMAX + 1)
     np.testing.assert_allclose(bp.cl_err, cov.errors, rtol=1e-9)
-    # the same covariance from the library, with the noise as a variance map
-    est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 8), mask2=mask, pixel_window=False, nthreads=1)
+    # the same covariance from the library, with the noise as a variance map (no beam: the default bins end at
+    # 2 nside = 32)
+    assert bp.ell_max[-1] == 2 * NSIDE
+    est = SpectrumEstimator(mask, Binning.uniform(2, 2 * NSIDE, 8), lmax=LMAX, mask2=mask, pixel_window=False,
+                            nthreads=1)
     noise = PixelNoise.from_hits(hits, 100.0)
     ref = GaussianCovariance(est, noise=noise, noise2=noise, cross=True, nthreads=1).covariance(bp)
     np.testing.assert_allclose(cov.matrix, ref.matrix, rtol=1e-6)

@@ -48,6 +48,8 @@ def test_validate_writes_outputs_matches_the_library_and_resumes(files, capsys, 
     out = capsys.readouterr().out
     assert "validated the spectrum estimator on 6 simulations (seed 4) on 1 local worker process" in out
     assert "max |bias|" in out and "scatter / error" in out
+    # the skies go to 4 nside - 1 = 63 by default, but the --spectrum table stops at ell 60: its end it is
+    assert f"input: {tmp / 'model.csv'} (sha256 " in out and "...) to ell 60; beam" in out
     for name in ("summary.csv", "summary.json", "validation.png", "run.json", "covariance.npz"):
         assert (run_dir / name).is_file()
     assert len(list(run_dir.glob("sim_*.npz"))) == 6
@@ -64,13 +66,15 @@ def test_validate_writes_outputs_matches_the_library_and_resumes(files, capsys, 
     np.testing.assert_allclose(np.sqrt(np.diag(simulated.matrix)), np.array(doc["bins"]["std"]), rtol=1e-9)
 
     # the same run through the library, on threads: the same numbers
-    # (the command injects a 100 uK monopole and a 3 mK dipole and uses the input spectrum as the guess)
+    # (the command injects a 100 uK monopole and a 3 mK dipole, uses the input spectrum as the guess, and
+    # simulates and models the skies to the end of that spectrum, ell 60)
     from cmbtools.simulate import Dipole
 
-    est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 8), lmax=LMAX, beam=30.0, guess_cl=_spectrum(LMAX))
+    est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 8), lmax=LMAX, beam=30.0, guess_cl=_spectrum(60),
+                            sky_lmax=60)
     with ThreadPoolExecutor(2) as pool:
-        ref = validate_estimator(est, _spectrum(LMAX), n_sims=6, seed=4, noise=NoiseModel(30.0), executor=pool,
-                                 progress=False, monopole=100e-6, dipole=Dipole(3e-3, 60.0, 30.0), sky_lmax=LMAX)
+        ref = validate_estimator(est, _spectrum(60), n_sims=6, seed=4, noise=NoiseModel(30.0), executor=pool,
+                                 progress=False, monopole=100e-6, dipole=Dipole(3e-3, 60.0, 30.0), sky_lmax=60)
     np.testing.assert_allclose(doc["bins"]["mean"], ref.mean, rtol=1e-12)
     np.testing.assert_allclose(doc["bins"]["bias_sigma"], ref.bias_sigma, rtol=1e-9, atol=1e-12)
     assert doc["max_abs_bias_sigma"] == pytest.approx(ref.summary()["max_abs_bias_sigma"], rel=1e-9)

@@ -56,7 +56,8 @@ def test_a_theory_table_too_short_for_the_figure_fails_before_anything_is_writte
     out = cmbtools(*argv, cwd=tmp_path)
     assert out.returncode == 2
     assert out.stderr.startswith("cmbtools spectrum: error: The --theory table 'short.csv' stops at ell=")
-    assert "the bins reach ell=383" in out.stderr
+    # no beam on an nside-128 map: the default bins end at 2 nside = 256 (lmax is 383)
+    assert "the bins reach ell=256" in out.stderr and len(out.stderr.splitlines()) == 1
     assert sorted(p.name for p in tmp_path.iterdir()) == ["short.csv"]  # all outputs or none
 
 
@@ -147,7 +148,9 @@ def test_validate_takes_the_binning_options_of_spectrum(tmp_path):
     summary = json.loads((tmp_path / "r2" / "summary.json").read_text())
     bins = summary["bins"]
     widths = np.array(bins["ell_max"]) - np.array(bins["ell_min"]) + 1
-    assert bins["ell_min"][0] == 2 and bins["ell_max"][-1] == 47 and widths.min() >= 4
+    # no beam: the default bins end at 2 nside = 32 (not at lmax = 47), with one warning line
+    assert bins["ell_min"][0] == 2 and bins["ell_max"][-1] == 32 and widths.min() >= 4
+    assert out.stderr.startswith("cmbtools: warning: no beam") and "2*nside = 32" in out.stderr
 
 
 def test_validate_cross_mode_with_two_masks_has_no_noise_bias(tmp_path):
