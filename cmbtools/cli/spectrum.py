@@ -22,6 +22,12 @@ With two maps it measures their cross-spectrum, which has no noise bias when
 the two noises are independent.  Error bars: Knox formula with the effective
 sky fraction of the mask.
 
+Top of the range: the transforms go to 3*nside-1, but without --lmax the
+bins end at 2.5 nside, or earlier where the beam keeps less than 1e-3 of the
+sky's power, or at 2 nside under a beam narrower than two pixels (or none,
+with one warning line): above that the grid's aliasing makes the error bars
+too small.  --lmax N or --bin-edges set the range yourself.
+
 On I, Q, U maps (three map columns) it measures the six spectra TT, TE, TB,
 EE, EB, BB with the polarized mode-coupling correction (E/B mixing undone),
 optional B-mode purification (--purify-b), and writes one table with a

@@ -13,13 +13,15 @@ HELP = "check the spectrum estimator on simulated skies with your mask, beam and
 DESCRIPTION = """\
 Check the spectrum estimator end to end on simulations made for your survey:
 Gaussian skies drawn from a spectrum (the built-in fiducial spectrum unless
---spectrum is given), convolved with the beam and the HEALPix pixel window,
-plus noise (white at --noise-depth, shaped by a hits map, optionally with a
-1/f knee), are masked and measured exactly as 'cmbtools spectrum' would
-measure the real map.  The mean of the recovered bandpowers is compared with
-the input: the bias of each bin in units of its standard error, the ratio of
-the scatter over the simulations to the reported (analytic) error bars, and
-the transfer function (mean / expected) per bin.
+--spectrum is given) with power up to 4*nside-1 as real skies (--sky-lmax),
+convolved with the beam and the HEALPix pixel window, plus noise (white at
+--noise-depth, shaped by a hits map, optionally with a 1/f knee), are masked
+and measured exactly as 'cmbtools spectrum' would measure the real map.  The
+mean of the recovered bandpowers is compared with the input (the bins of
+'cmbtools spectrum', by default ending at the same default top of the range,
+see --bin-width): the bias of each bin in units of its standard error, the
+ratio of the scatter over the simulations to the reported (analytic) error
+bars, and the transfer function (mean / expected) per bin.
 
 The simulations run in parallel: on all cores of this machine by default
 (--workers), or on a dask cluster (--scheduler, needs the 'dask' extra).  Each
