@@ -14,7 +14,9 @@ W1  nside 1024, lmax 3071, a galactic-latitude cut apodized to f_sky ~ 0.6,
     floor of its own kernels, called bare in the same process (ducc0's
     analysis of the map at lmax, ducc0's analysis of the mask to 2 lmax,
     ducc0's coupling kernel; target 1.15) and against ``anafast`` with no
-    iteration (one transform; reported, no target).  *Reuse*: the built
+    iteration (one transform; reported, no target); ``first_call_profile``:
+    where one first call spends its time (cProfile; each step in seconds and
+    as a fraction of the bare kernels).  *Reuse*: the built
     estimator applied to a new map.  *Coupling build*: cmbtools' coupling
     matrix against ducc0's compiled kernel called directly on the same mask
     spectrum.  *Fast accuracy*: largest relative bandpower difference, fast vs
@@ -198,6 +200,9 @@ def workload_1(nside, repeats, threads, seed):
     t_exact_k, t_kernels, _ = _paired(first_call("exact"), bare_kernels, repeats)
     t_exact_0, t_anafast0, _ = _paired(first_call("exact"), anafast_no_iteration, repeats)
 
+    _log("W1: profile of one first call (exact)")
+    profile = _first_call_profile(first_call("exact"), t_kernels)
+
     _log("W1: reuse")
     t_reuse, t_ref3, _ = _paired(lambda: est_exact.estimate(map2), anafast, repeats)
 
@@ -259,7 +264,43 @@ def workload_1(nside, repeats, threads, seed):
         "banded_max_rel_diff_all_bins": float(f"{rel_banded.max():.3g}"),
         "banded_max_rel_diff_below_2nside": float(f"{rel_banded[low].max():.3g}"),
         "pixel_window_first_computation_s": round(pixwin_first, 3),
+        "first_call_profile": profile,
     }
+
+
+#: Where a first call (exact coupling) spends its time: (label, function in the profile).  Indented labels are
+#: parts of the step above them.
+_FIRST_CALL_STEPS = (
+    ("settings", "resolve_settings"),  # checks, hashes, pixel window (cached), guess spectrum
+    ("settings.guess_spectrum", "fiducial_cl"),
+    ("operator", "build_operator"),
+    ("operator.mask_spectrum", "map_spectra"),  # (also counts the map's pseudo-spectrum in estimate)
+    ("operator.coupling_kernel", "<built-in method ducc0.misc.experimental.coupling_matrix_rect>"),
+    ("operator.deprojection_bias_and_row_factors", "_correction_rows"),
+    ("operator.binned_inverse", "_binned_operator"),
+    ("estimate", "estimate"),
+    ("estimate.monopole_dipole_removal", "masked_without_monopole_dipole"),
+)
+
+
+def _first_call_profile(run_first_call, t_kernels):
+    """Seconds of one first call in each step (cProfile, cumulative), and as a fraction of the bare kernels."""
+    import cProfile
+    import pstats
+
+    prof = cProfile.Profile()
+    t0 = time.perf_counter()
+    prof.enable()
+    run_first_call()
+    prof.disable()
+    wall = time.perf_counter() - t0
+    stats = pstats.Stats(prof).stats
+    out = {"first_call_s": round(wall, 3), "floor_bare_kernels_s": round(t_kernels, 3)}
+    for label, name in _FIRST_CALL_STEPS:
+        cum = sum(v[3] for k, v in stats.items() if k[2] == name)
+        out[f"{label}_s"] = round(cum, 3)
+        out[f"{label}_of_floor"] = round(cum / t_kernels, 3)
+    return out
 
 
 def workload_2(nside, repeats, threads, seed, n_pool_sims):

@@ -18,10 +18,17 @@ machine).  Files written:
   tern_sources.csv     the 15 invented sources (lon_deg, lat_deg, peak_uk)
   tern_beam.csv        the beam transfer function B_l, l = 0..511
   fiducial_cl.csv      the built-in fiducial spectrum, l = 0..511
+  tern_iqu_half1.fits  the first half as I, Q, U maps (HEALPix angle convention): I is tern_half1.fits;
+                       Q and U hold the polarized sky (the built-in TE, EE and lensing-like BB) with noise
+                       sqrt(2) times that of I per pixel (the same detectors, differenced)
+  tern_iqu_half2.fits  the second half as I, Q, U maps
+  tern_pol_mask.fits   the polarization mask: the same cap without source holes (the invented sources are not
+                       polarized), with a 6-degree cosine taper (smooth enough for B-mode purification)
+  fiducial_pol_cl.csv  the built-in polarized spectra of the demo sky (TT, EE, BB, TE), l = 0..511
 
 Maps are float32; the survey maps and the hits map are partial-sky files
 (only the observed pixels, with an explicit pixel index), so the whole set is
-about 2 MB.
+about 3.5 MB.
 
 usage: python scripts/make_demo_data.py [--output-dir maps] [--overwrite]
 """
@@ -51,8 +58,13 @@ DIPOLE_UK = (150.0, 60.0, 30.0)  # amplitude, lon, lat (galactic)
 #: Random streams (simulation indices of simulation_rng(SEED, i)).
 STREAM_SKY, STREAM_NOISE_1, STREAM_NOISE_2, STREAM_SOURCES = 0, 1, 2, 3
 
+#: Random streams of the Q and U noise of each half (I keeps the noise of the temperature halves).
+STREAM_POL_NOISE_1, STREAM_POL_NOISE_2 = 4, 5
+POL_APODIZATION_DEG = 6.0
+
 FILES = ("tern_sky.fits", "tern_half1.fits", "tern_half2.fits", "tern_hits.fits", "tern_mask.fits",
-         "tern_sources.csv", "tern_beam.csv", "fiducial_cl.csv")
+         "tern_sources.csv", "tern_beam.csv", "fiducial_cl.csv", "tern_iqu_half1.fits", "tern_iqu_half2.fits",
+         "tern_pol_mask.fits", "fiducial_pol_cl.csv")
 
 
 def _angle_to_centre(nside):
@@ -170,9 +182,48 @@ def make_demo_data(output_dir, *, overwrite=False, nthreads=None, log=print):
         depth = DEPTH_UK_ARCMIN * (1.0 if name == "tern_sky.fits" else math.sqrt(2.0))
         maps.write_sky_map(paths[name], m, coordinates="G", overwrite=overwrite, dtype="float32", observed_only=True,
                        header=header + [("CMBDEPTH", round(depth, 4), "white-noise depth, uK-arcmin")])
+    _write_polarized(paths, header, hits, n1, n2, source_map(NSIDE, lon, lat, peak), half_noise, overwrite, nthreads)
     for p in paths.values():
         log(f"wrote {p} ({p.stat().st_size / 1024:.0f} KiB)")
     return paths
+
+
+def _write_polarized(paths, header, hits, n1, n2, sources, half_noise, overwrite, nthreads):
+    """The I, Q, U halves, the polarization mask and the polarized spectra.
+
+    The T, E, B coefficients come from the temperature sky's random stream (:func:`gaussian_iqu_alm` draws its
+    first field exactly as the temperature sky does, and the built-in TT is the temperature spectrum), so I is
+    the temperature half map; Q and U get their own noise streams.
+    """
+    from cmbtools import maps, simulate
+
+    spectra = simulate.fiducial_spectra(LMAX, lensing_bb=True)
+    simulate.write_spectrum_table(paths["fiducial_pol_cl.csv"], {k: spectra[k] for k in ("TT", "EE", "BB", "TE")},
+                                  overwrite=overwrite,
+                                  header={"source": "cmbtools built-in fiducial spectra, Planck18 cosmology, default "
+                                                    "extras, r = 0, lensing-like BB template"})
+    iqu = simulate.gaussian_iqu_sky(
+        spectra, NSIDE, lmax=LMAX, beam=BEAM_FWHM_ARCMIN, pixel_window=True, monopole=MONOPOLE_UK * 1e-6,
+        dipole=simulate.Dipole(DIPOLE_UK[0] * 1e-6, DIPOLE_UK[1], DIPOLE_UK[2]),
+        rng=simulate.simulation_rng(SEED, STREAM_SKY), nthreads=nthreads,
+    )
+    iqu[0] += sources
+    seen = hits > 0
+    for name, n_i, stream in (("tern_iqu_half1.fits", n1, STREAM_POL_NOISE_1),
+                              ("tern_iqu_half2.fits", n2, STREAM_POL_NOISE_2)):
+        rng = simulate.simulation_rng(SEED, stream)
+        m = np.full(iqu.shape, np.nan)
+        m[0, seen] = iqu[0, seen] + n_i[seen]
+        for k in (1, 2):  # Q, then U: sqrt(2) times the temperature noise of the half, per pixel
+            n_p = simulate.noise_map(half_noise, NSIDE, rng=rng)
+            m[k, seen] = iqu[k, seen] + math.sqrt(2.0) * n_p[seen]
+        maps.write_iqu(paths[name], m, coordinates="G", overwrite=overwrite, dtype="float32", observed_only=True,
+                       header=header + [("CMBDEPTH", round(DEPTH_UK_ARCMIN * math.sqrt(2.0), 4),
+                                         "I noise, uK-arcmin; Q, U: sqrt(2) x")])
+    field = maps.cap_mask(NSIDE, FIELD_LON, FIELD_LAT, FIELD_RADIUS)
+    pol_mask = maps.apodize_mask(field, POL_APODIZATION_DEG, taper="cosine", nthreads=nthreads)
+    maps.write_mask(paths["tern_pol_mask.fits"], pol_mask, coordinates="G", overwrite=overwrite, header=header,
+                    dtype="float32")
 
 
 def main(argv=None) -> int:

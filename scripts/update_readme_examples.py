@@ -3,7 +3,8 @@
 Each fenced block of README.md that starts with ``$ cmbtools ...`` holds one or more commands, each followed by
 the lines it prints (``tests/cli/test_readme_examples.py`` checks them).  This script runs the commands of every
 block, in order, in a scratch directory holding the demo ``maps/`` and an empty ``demo_output/``, and replaces the
-shown lines by the actual output.  A block whose shown output ends with ``...`` keeps that many lines.
+shown lines by the actual output.  A block whose shown output ends with ``...`` keeps that many lines.  A figure
+written into ``demo_output/NAME.png`` that the README shows as ``docs/NAME.png`` is copied there.
 
     python scripts/update_readme_examples.py            # rewrite README.md
     python scripts/update_readme_examples.py --skip validate   # leave the slow example alone
@@ -15,6 +16,7 @@ import argparse
 import os
 import re
 import shlex
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -23,7 +25,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def _run_block(block, skip, env):
+def _run_block(block, skip, env, figures=()):
     lines = block.rstrip("\n").split("\n")
     out_lines = []
     with tempfile.TemporaryDirectory() as tmp:
@@ -54,6 +56,11 @@ def _run_block(block, skip, env):
             if shown and shown[-1] == "...":
                 printed = printed[: len(shown) - 1] + ["..."]
             out_lines += printed
+        for name in figures:  # the README's pictures that these commands drew: copied to docs/
+            made = tmp / "demo_output" / name
+            if made.exists() and argv[1] not in skip:
+                shutil.copyfile(made, ROOT / "docs" / name)
+                print(f"docs/{name}: updated")
     return "\n".join(out_lines) + "\n"
 
 
@@ -64,8 +71,9 @@ def main(argv=None):
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
     readme = ROOT / "README.md"
     text = readme.read_text()
-    new = re.sub(r"```\n(\$ cmbtools .*?)```", lambda m: "```\n" + _run_block(m.group(1), set(args.skip), env) + "```",
-                 text, flags=re.S)
+    figures = re.findall(r"!\[[^\]]*\]\(docs/([^)/]+\.png)\)", text)
+    new = re.sub(r"```\n(\$ cmbtools .*?)```",
+                 lambda m: "```\n" + _run_block(m.group(1), set(args.skip), env, figures) + "```", text, flags=re.S)
     if new != text:
         readme.write_text(new)
         print("README.md: example outputs updated")

@@ -40,6 +40,7 @@ __all__ = [
     "estimate_map_transform_bytes",
     "estimate_simulated_maps_bytes",
     "estimate_estimator_bytes",
+    "estimate_deprojection_bias_bytes",
     "estimate_synthesis_bytes",
     "estimate_sky_bytes",
     "estimate_noise_bytes",
@@ -371,7 +372,28 @@ def estimate_dipole_map_bytes(nside) -> int:
 # --------------------------------------------------------------------------- the spectrum estimator
 
 
-def estimate_estimator_bytes(nside, lmax, *, n_bins, mask_lmax, cross=False, refine=False, covariance=False) -> int:
+def estimate_deprojection_bias_bytes(nside, lmax, *, n_templates, sky_lmax=None, cross=False, grid_nside=None) -> int:
+    """Peak bytes of the deprojection-bias correction of a spectrum estimator.
+
+    Per template and map (two maps for a cross-spectrum): its pixel sums and
+    their weighted copies up to the sky's band limit (three sets of
+    coefficients) and two sets up to lmax, plus the template maps and two
+    working maps.  ``grid_nside``: the grid the bias is computed on when it is
+    coarser than the map's (then to lmax ``2 grid_nside`` and band limit
+    ``3 grid_nside - 1``, and the fine mask read in chunks).
+    """
+    if n_templates <= 0:
+        return 0
+    lw = max(lmax, sky_lmax if sky_lmax is not None else lmax)
+    top = lmax
+    if grid_nside is not None and grid_nside < nside:
+        nside, lw, top = grid_nside, 3 * grid_nside - 1, min(lmax, 2 * grid_nside)
+    per_map = n_templates * (3 * estimate_alm_bytes(lw) + 2 * estimate_alm_bytes(top))
+    return (2 if cross else 1) * per_map + estimate_map_bytes(nside, n_templates + 2)
+
+
+def estimate_estimator_bytes(nside, lmax, *, n_bins, mask_lmax, cross=False, refine=False, covariance=False,
+                             bias_bytes=0) -> int:
     """Peak bytes of building a spectrum estimator, phase by phase (the largest wins).
 
     The copies of the masks; a mask transform up to ``mask_lmax`` (about
@@ -380,8 +402,9 @@ def estimate_estimator_bytes(nside, lmax, *, n_bins, mask_lmax, cross=False, ref
     the pieces of the split transform of :func:`cmbtools._core.sht.map_spectra`);
     the dense ``(lmax+1) x (lmax+1)`` coupling matrix (one at a time; two for
     the covariance of an auto-spectrum; ``coupling='fast'`` fills a dense
-    matrix too); and the binned ``(n_bins, lmax+1)`` and ``(n_bins, n_bins)``
-    results.
+    matrix too); the binned ``(n_bins, lmax+1)`` and ``(n_bins, n_bins)``
+    results; and ``bias_bytes`` (:func:`estimate_deprojection_bias_bytes`)
+    next to one coupling matrix.
     """
     from cmbtools._core import sht as _sht
 
@@ -402,6 +425,7 @@ def estimate_estimator_bytes(nside, lmax, *, n_bins, mask_lmax, cross=False, ref
     phases = [
         masks + transform,  # the transforms of the masks
         masks + matrix + results + row + 4 * square,  # one coupling matrix, then its binned inverse
+        masks + matrix + results + bias_bytes,  # the deprojection-bias correction of its rows
     ]
     if covariance:  # the squared mask (and mask1 * mask2): a map, its transform, one or two matrices
         extra = estimate_map_bytes(nside, 1)

@@ -290,6 +290,10 @@ def map_spectra(maps, lmax: int, *, nthreads: int | None = None, rings=None) -> 
     return [cl / norm for cl in cls]
 
 
+#: Coefficients summed per step by alm2cl.
+_CL_CHUNK = 1 << 16
+
+
 def alm2cl(alm1, alm2=None, lmax: int | None = None) -> np.ndarray:
     """Angular (cross-)power spectrum ``C_l = sum_m a1_lm a2*_lm / (2l+1)`` (real part)."""
     alm1 = np.asarray(alm1)
@@ -301,22 +305,32 @@ def alm2cl(alm1, alm2=None, lmax: int | None = None) -> np.ndarray:
         alm2 = np.asarray(alm2)
         if alm2.size != alm1.size:
             raise ValueError(f"the two alm have {alm1.size} and {alm2.size} coefficients")
-    # m-block by m-block (healpy's layout stores l = m..lmax of each m contiguously): no temporary
-    # larger than lmax + 1 values, where a vectorised sum would hold several coefficient-sized arrays
+    # groups of m-blocks (healpy's layout stores l = m..lmax of each m contiguously), each summed into ell
+    # with one bincount: temporaries of at most _CL_CHUNK coefficients, few Python steps
     cl = np.zeros(lmax + 1)
+    m = 0
     start = 0
-    for m in range(lmax + 1):
-        stop = start + lmax + 1 - m
+    while m <= lmax:
+        m_stop, stop = m, start
+        while m_stop <= lmax and (stop - start < _CL_CHUNK or m_stop == m):
+            stop += lmax + 1 - m_stop
+            m_stop += 1
         a = alm1[start:stop]
         if alm2 is None:
             p = a.real * a.real + a.imag * a.imag
         else:
             b = alm2[start:stop]
             p = a.real * b.real + a.imag * b.imag
-        if m:
-            p *= 2.0  # the m < 0 half
-        cl[m:] += p
-        start = stop
+        ms = np.arange(m, m_stop)
+        sizes = lmax + 1 - ms
+        offsets = np.cumsum(sizes) - sizes
+        ell = np.arange(stop - start) + np.repeat(ms - offsets, sizes)
+        if m == 0:
+            p[sizes[0]:] *= 2.0  # the m < 0 half
+        else:
+            p *= 2.0
+        cl += np.bincount(ell, weights=p, minlength=lmax + 1)
+        m, start = m_stop, stop
     return cl / (2.0 * np.arange(lmax + 1) + 1.0)
 
 

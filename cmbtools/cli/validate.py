@@ -199,6 +199,11 @@ def run(args) -> int:
             raise InvalidInputError(f"The {what} and the {seen[key]} would both be written to {str(path)!r}.")
         seen[key] = what
         outputs.append((what, path, overwrite))
+    for given in (args.transfer, args.harmonic_filter, args.spectrum):
+        # inputs are never replaced: not even by the files a run writes in its own directory
+        if given is not None and os.path.abspath(given) in seen:
+            raise InvalidInputError(f"{given} is an input, but this run would write its {seen[os.path.abspath(given)]} "
+                                    "there; copy it elsewhere or use another --run-dir.")
     if Path(outputs[2][1]).suffix.lower() not in (".png", ".pdf"):
         raise InvalidInputError(f"The figure file must end in .png or .pdf. Got {str(outputs[2][1])!r} instead.")
     if args.hits is not None and args.noise_depth is None:

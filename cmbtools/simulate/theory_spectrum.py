@@ -97,8 +97,9 @@ from scipy import integrate
 from scipy.interpolate import CubicSpline
 
 from cmbtools.physics.parameters import resolve_cosmology, resolve_extras
+from cmbtools._core import files as _io
 from cmbtools._core.checks import check_lmax
-from cmbtools.exceptions import InvalidInputError
+from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
 
 __all__ = ["fiducial_cl", "fiducial_dl", "FIDUCIAL_LMAX_LIMIT"]
 
@@ -484,15 +485,62 @@ def _compute_dl(model: _Model, lmax: int) -> np.ndarray:
     return dl * model.t0**2
 
 
-def _model_for(cosmo, extras):
+def _model_for(cosmo, extras, *, build=True):
+    """The cache entry of a (cosmology, extras): its model (built now unless ``build`` is False) and spectra."""
     key = (_cosmo_key(cosmo), tuple(sorted(extras.to_dict().items())))
     entry = _cache.get(key)
     if entry is None:
         if len(_cache) >= _CACHE_SIZE:
             _cache.pop(next(iter(_cache)))
-        entry = {"model": _Model(cosmo, extras), "dl": {}}
+        entry = {"model": None, "dl": {}, "disk_key": _disk_key(key), "inputs": (cosmo, extras)}
         _cache[key] = entry
+    if build and entry["model"] is None:
+        entry["model"] = _Model(*entry["inputs"])
     return entry
+
+
+def _model_sources_hash() -> str:
+    """Hash of the source code the spectrum depends on (this module and the physics package)."""
+    from pathlib import Path
+
+    import cmbtools.physics as physics
+
+    files = [Path(__file__)] + sorted(Path(physics.__file__).parent.glob("*.py"))
+    return _io.sha256_arrays(*[f.read_bytes().decode("utf-8", "replace") for f in files])
+
+
+def _disk_key(model_key) -> str:
+    return _io.sha256_arrays("fiducial_dl", repr(model_key), _model_sources_hash())
+
+
+def _disk_path(disk_key, l_calc):
+    return _io.cache_dir() / f"fiducial_dl_{disk_key[:24]}_lmax{int(l_calc)}.npz"
+
+
+def _read_disk_cache(disk_key, l_calc):
+    """D_l computed to ``l_calc`` from the disk cache (a file written for the same model and code), or None."""
+    try:
+        path = _disk_path(disk_key, l_calc)
+        if not path.exists():
+            return None
+        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as data:
+            dl = np.array(data["dl"], dtype=np.float64)
+            ok = str(data["model_sha256"]) == disk_key and str(data["checksum_sha256"]) == _io.sha256_arrays(dl)
+    except Exception:  # an unreadable or foreign file: computed again (and rewritten)
+        return None
+    if not ok or dl.size != l_calc + 1:
+        return None
+    return dl
+
+
+def _write_disk_cache(disk_key, dl):
+    try:
+        with _io.atomic_output(_disk_path(disk_key, dl.size - 1), overwrite=True) as tmp:
+            with open(tmp, "wb") as fh:
+                np.savez(fh, dl=dl, model_sha256=np.str_(disk_key), checksum_sha256=np.str_(_io.sha256_arrays(dl)))
+    except OSError as exc:
+        warnings.warn(f"could not write the fiducial-spectrum cache ({exc}); the result is not cached.",
+                      CmbtoolsWarning, stacklevel=3)
 
 
 def fiducial_dl(lmax, *, cosmo=None, extras=None) -> np.ndarray:
@@ -522,7 +570,7 @@ def fiducial_dl(lmax, *, cosmo=None, extras=None) -> np.ndarray:
         )
     cosmo = resolve_cosmology(cosmo)
     extras = resolve_extras(extras)
-    entry = _model_for(cosmo, extras)
+    entry = _model_for(cosmo, extras, build=False)  # (built only if the spectrum is not on disk)
     # compute on a grid that does not depend on the requested lmax below 2500,
     # so that fiducial_cl(100) is fiducial_cl(2000)[:101]
     l_calc = max(2500, lmax)
@@ -532,7 +580,10 @@ def fiducial_dl(lmax, *, cosmo=None, extras=None) -> np.ndarray:
         if bigger:
             dl = bigger[0]
         else:
-            dl = _compute_dl(entry["model"], l_calc)
+            dl = _read_disk_cache(entry["disk_key"], l_calc)
+            if dl is None:
+                dl = _compute_dl(_model_for(cosmo, extras)["model"], l_calc)
+                _write_disk_cache(entry["disk_key"], dl)
             dl.setflags(write=False)
             entry["dl"][l_calc] = dl
     return np.array(dl[: lmax + 1])
@@ -572,7 +623,9 @@ def fiducial_cl(lmax, *, cosmo=None, extras=None) -> np.ndarray:
     -----
     The first call for a cosmology takes a few seconds (ionization history and
     perturbation equations); results are kept in memory per (cosmology,
-    extras), so later calls are immediate.  The spectrum up to l = 2500 is
+    extras), so later calls are immediate, and in cmbtools' cache directory
+    (``cmbtools._core.files.cache_dir()``, one file per cosmology, extras,
+    computed lmax and version of the model's source code), so a new process reads them.  The spectrum up to l = 2500 is
     always computed on the same grid, so a shorter ``lmax`` returns a prefix
     of a longer one.
     """

@@ -181,7 +181,8 @@ def validate_estimator(
     estimator's own beam and pixel window, adds the optional monopole and
     dipole, applies the optional ``sky_filter``, adds noise drawn from
     ``noise``, and measures the bandpowers with ``estimator`` (subtracting the
-    model noise spectrum :func:`cmbtools.simulate.noise_spectrum`).  The mean
+    model noise spectrum :func:`cmbtools.simulate.noise_spectrum` under the
+    estimator's mask, ``weights=estimator.mask``).  The mean
     over simulations is compared with ``estimator.expected_bandpowers(cl)``.
     Simulation ``i`` draws its sky and then its noise from
     ``simulation_rng(seed, i)``.
@@ -252,7 +253,10 @@ def validate_estimator(
         ``mask2``), with no noise bias to subtract; the expectation is
         ``estimator.expected_bandpowers(cl, cross=True)``.
     sky_lmax : int, optional
-        Band limit of the simulated skies (default: the estimator's lmax).
+        Band limit of the simulated skies (default: the band limit the
+        estimator models, its ``sky_lmax``: 4 nside - 1 for the estimators of
+        ``cmbtools spectrum`` and ``validate``; the estimator's lmax if it
+        models no power above it).
         Real skies have power above the analysis lmax: give ``4 * nside - 1``
         (at most ``4 nside - 1``, or ``8 nside - 1`` with ``pixelise``) to
         check that the estimator models its leakage; the estimator must then
@@ -307,6 +311,11 @@ def validate_estimator(
     n_sims = check_int(n_sims, "n_sims", minimum=2, maximum=MAX_SIMULATIONS)
     if not isinstance(pixelise, (bool, np.bool_)):
         raise InvalidInputError(f"The 'pixelise' parameter must be True or False. Got {pixelise!r} instead.")
+    if sky_lmax is None and not cross:
+        # an estimator built to model the sky's power above its lmax is checked on such skies by default
+        own = getattr(getattr(estimator, "_inputs", None), "sky_lmax", None)
+        if own is not None and int(own) > lmax:
+            sky_lmax = min(int(own), (8 if pixelise else 4) * nside - 1)
     realistic = sky_lmax is not None or bool(pixelise)
     sky_lmax = lmax if sky_lmax is None else check_int(
         sky_lmax, "sky_lmax", minimum=lmax, maximum=(8 if pixelise else 4) * nside - 1
@@ -345,7 +354,7 @@ def validate_estimator(
                     f"The mask is non-zero in {uncovered} pixels that the noise model's hits map does not cover "
                     "(hits <= 0); zero the mask there (e.g. multiply it by hits > 0) and build the estimator again."
                 )
-        noise_cl = noise_spectrum(noise, lmax, nside)
+        noise_cl = noise_spectrum(noise, lmax, nside, weights=estimator.mask)  # the noise bias under this mask
     if errors not in ("gaussian", "knox"):
         raise InvalidInputError(f"The 'errors' parameter must be 'gaussian' or 'knox'. Got {errors!r} instead.")
     filter_text = "none"

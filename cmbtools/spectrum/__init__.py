@@ -52,10 +52,13 @@ from cmbtools.spectrum.pixel_noise import PixelNoise
 from cmbtools.spectrum.pixel_windows import pixel_window, polarization_pixel_window
 from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator
 from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
+from cmbtools.spectrum.sampling import default_binning, default_bins_lmax
 from cmbtools.spectrum.transfer import BandpowerTransfer
 
 __all__ = [
     "Binning",
+    "default_binning",
+    "default_bins_lmax",
     "SpectrumEstimator",
     "Bandpowers",
     "estimate_spectrum",

@@ -50,13 +50,28 @@ removes the excess of the top bins (nside 64, beam of one pixel, bins to
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 from cmbtools._core import sht as _sht
 from cmbtools._core.checks import check_mask, check_same_nside, resolve_nthreads
 from cmbtools.exceptions import IllConditionedError, InvalidInputError
 
-__all__ = ["TemplateDeprojection", "deprojection_bias", "above_bins_leakage", "row_factors"]
+__all__ = [
+    "TemplateDeprojection",
+    "deprojection_bias",
+    "coarse_grid_deprojection_bias",
+    "above_bins_leakage",
+    "row_factors",
+]
+
+#: Maps finer than this nside get the monopole/dipole deprojection bias from this grid
+#: (:func:`coarse_grid_deprojection_bias`).
+COARSE_NSIDE = 256
+
+#: Width (multipoles) of the running mean of the mask spectrum that shapes the coarse-grid bias above 2 COARSE_NSIDE.
+_TAIL_SMOOTHING = 21
 
 #: Templates whose normalised normal matrix has a larger condition number are refused (degenerate on the mask).
 MAX_TEMPLATE_CONDITION = 1e12
@@ -65,10 +80,22 @@ _CHUNK = 1 << 20
 _S0, _S10, _S11 = np.sqrt(4 * np.pi), np.sqrt(4 * np.pi / 3), np.sqrt(8 * np.pi / 3)
 
 
+@functools.lru_cache(maxsize=2)
+def _small_grid_vectors(nside):
+    """The RING pixel-centre unit vectors of a small grid (nside <= COARSE_NSIDE), shape (3, npix), read-only."""
+    import healpy as hp
+
+    v = np.array(hp.pix2vec(nside, np.arange(12 * nside * nside)))
+    v.setflags(write=False)
+    return v
+
+
 def _pixel_vector_component(nside, k):
     """Component ``k`` (0 x, 1 y, 2 z) of the RING pixel-centre unit vectors (chunked)."""
     import healpy as hp
 
+    if nside <= COARSE_NSIDE:
+        return _small_grid_vectors(nside)[k]
     npix = 12 * nside * nside
     out = np.empty(npix)
     for s in range(0, npix, _CHUNK):
@@ -295,11 +322,12 @@ def deprojection_bias(deprojection, signal_cl, lmax, *, deprojection2=None, nthr
     h2 = sums(d2) if cross else h1
     g1 = [omega * _truncate(h, lw, lmax) for h in h1]
     g2 = [omega * _truncate(h, lw, lmax) for h in h2] if cross else g1
-    two_l = 2.0 * np.arange(lw + 1) + 1.0
-    sigma = np.empty((d1.n_templates, d2.n_templates))
-    for j in range(d1.n_templates):
-        for n in range(d2.n_templates):
-            sigma[j, n] = float(np.sum(two_l * s_ext * _sht.alm2cl(h1[j], h2[n], lmax=lw)))
+    # Sigma_jn = sum_l (2l+1) S_l C_l[H_j, H_n] = sum_lm S_l Re(H_j,lm conj H_n,lm) over m = -l..l:
+    # twice the sum over the stored m >= 0 minus the m = 0 terms (the first lw+1 entries)
+    sh2 = np.array([_sht.almxfl(h, s_ext, lw) for h in h2])
+    stacked1 = np.array(h1)
+    sigma = 2.0 * (stacked1 @ sh2.conj().T).real - (stacked1[:, : lw + 1] @ sh2[:, : lw + 1].conj().T).real
+    del sh2, stacked1
 
     def covariance_times(h_list, w_other):
         # Y_j = quadrature transform of w_other * (S g_j): E[(w_other d_other)_lm (g_j . d)]
@@ -313,17 +341,106 @@ def deprojection_bias(deprojection, signal_cl, lmax, *, deprojection2=None, nthr
     y12 = covariance_times(h1, d2.mask)
     y21 = covariance_times(h2, d1.mask) if cross else y12
     a1, a2 = d1.normal_inverse, d2.normal_inverse
+    inner = a1 @ sigma @ a2
+
+    def combined(coeffs, alms):  # sum_j coeffs[j] alms[j] (real coefficients: C_l is linear in each argument)
+        out = np.zeros_like(alms[0])
+        for c, a in zip(coeffs, alms):
+            out += c * a
+        return out
+
     delta = np.zeros(lmax + 1)
     for i in range(d1.n_templates):
-        for j in range(d1.n_templates):
-            delta -= a1[i, j] * _sht.alm2cl(g1[i], y12[j], lmax=lmax)
+        delta -= _sht.alm2cl(g1[i], combined(a1[i], y12), lmax=lmax)
     for k in range(d2.n_templates):
-        for n in range(d2.n_templates):
-            delta -= a2[k, n] * _sht.alm2cl(y21[n], g2[k], lmax=lmax)
-    inner = a1 @ sigma @ a2
+        delta -= _sht.alm2cl(combined(a2[k], y21), g2[k], lmax=lmax)
     for i in range(d1.n_templates):
-        for k in range(d2.n_templates):
-            delta += inner[i, k] * _sht.alm2cl(g1[i], g2[k], lmax=lmax)
+        delta += _sht.alm2cl(g1[i], combined(inner[i], g2), lmax=lmax)
+    return delta
+
+
+def _averaged_down(w, nside_out):
+    """The RING map ``w`` averaged into the pixels of ``nside_out`` (RING): the plain mean of the sub-pixels."""
+    import healpy as hp
+
+    nside_in = int(round(np.sqrt(w.size / 12)))
+    k = (nside_in // nside_out) ** 2
+    sums = np.zeros(12 * nside_out * nside_out)
+    for s in range(0, w.size, _CHUNK):  # no full-size temporary: the NESTED parent of each RING pixel, in chunks
+        pix = np.arange(s, min(w.size, s + _CHUNK))
+        sums += np.bincount(hp.ring2nest(nside_in, pix) // k, weights=w[s:s + pix.size], minlength=sums.size)
+    return hp.reorder(sums / k, n2r=True)
+
+
+def coarse_grid_deprojection_bias(mask, signal_cl, lmax, mask_cl, *, mask2=None, coarse_nside=COARSE_NSIDE,
+                                  nthreads=None) -> np.ndarray:
+    """The monopole/dipole deprojection bias of a fine map, computed on a coarser grid (fast, approximate).
+
+    The mask(s) are averaged into the pixels of ``coarse_nside`` and
+    :func:`deprojection_bias` of the monopole and dipole removal runs there up
+    to ``2 coarse_nside`` (the guess spectrum cut at ``3 coarse_nside - 1``).
+    Above that multipole the bias is taken proportional to the mask spectrum
+    ``mask_cl`` of the fine mask averaged over 21 multipoles (the bias of a
+    removal of smooth templates is mask power at those scales), with the
+    factor fitted by least squares on ``coarse_nside .. 2 coarse_nside``.  Maps at or below ``coarse_nside``
+    get the exact :func:`deprojection_bias`.
+
+    Accuracy (nside 1024 against the exact bias on the grid, row factors
+    ``delta / (M S)`` with the fiducial spectrum): largest difference 5e-6
+    for an apodized latitude cut, 3.7e-5 for a tapered cap with tapered
+    holes, 3.3e-4 below ``2 coarse_nside`` and 4.2e-3 above it for a cap with
+    unapodized edges and holes (where the exact factor reaches 2.3e-2).  The
+    cost is that of a few transforms at ``coarse_nside`` instead of three
+    transforms per template at the map's resolution.
+
+    Parameters
+    ----------
+    mask : ndarray of shape (12*nside**2,)
+        Weights of map 1.
+    signal_cl : array_like of shape (>= lmax+1,)
+        Spectrum of the map(s) on the grid, K^2, from ell 0.
+    lmax : int
+        Largest multipole of the pseudo-spectrum.
+    mask_cl : array_like of shape (>= lmax+1,)
+        Spectrum of the mask (cross-spectrum of the two masks for a cross-spectrum) on the fine grid.
+    mask2 : ndarray, optional
+        Weights of map 2 (cross-spectra).
+    coarse_nside : int, default=COARSE_NSIDE
+        The grid of the computation.
+    nthreads : int, optional
+        Threads of the transforms.
+
+    Returns
+    -------
+    ndarray of shape (lmax+1,)
+        ``delta_l`` in K^2.
+    """
+    nthreads = resolve_nthreads(nthreads)
+    w1 = check_mask(mask, "mask")
+    nside = int(round(np.sqrt(w1.size / 12)))
+    s = np.asarray(signal_cl, dtype=np.float64)
+    if nside <= coarse_nside:
+        d1 = TemplateDeprojection(w1, nthreads=nthreads)
+        d2 = None if mask2 is None else TemplateDeprojection(mask2, nthreads=nthreads)
+        return deprojection_bias(d1, s, lmax, deprojection2=d2, nthreads=nthreads)
+    d1 = TemplateDeprojection(_averaged_down(w1, coarse_nside), nthreads=nthreads)
+    d2 = None
+    if mask2 is not None:
+        d2 = TemplateDeprojection(_averaged_down(check_mask(mask2, "mask2"), coarse_nside), nthreads=nthreads)
+    top = min(lmax, 2 * coarse_nside)
+    low = deprojection_bias(d1, s[: 3 * coarse_nside], top, deprojection2=d2, nthreads=nthreads)
+    delta = np.zeros(lmax + 1)
+    delta[: top + 1] = low
+    if lmax > top:
+        # the shape: the mask spectrum averaged over _TAIL_SMOOTHING multipoles (the bias follows its envelope,
+        # not the oscillations of a sharp-edged mask's spectrum)
+        raw = np.asarray(mask_cl, dtype=np.float64)[: lmax + 1]
+        half = _TAIL_SMOOTHING // 2
+        wl = np.convolve(np.pad(raw, half, mode="edge"), np.full(_TAIL_SMOOTHING, 1.0 / _TAIL_SMOOTHING), mode="valid")
+        fit = slice(coarse_nside, top + 1)
+        norm = float(np.dot(wl[fit], wl[fit]))
+        factor = float(np.dot(low[fit], wl[fit])) / norm if norm > 0 else 0.0
+        delta[top + 1:] = factor * wl[top + 1:]
     return delta
 
 

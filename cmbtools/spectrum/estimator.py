@@ -37,7 +37,32 @@ from cmbtools.spectrum.storage import load_estimator, load_or_build, save_estima
 __all__ = ["SpectrumEstimator", "MAX_CONDITION_NUMBER"]
 
 
-def _check_estimator_memory(mask, binning, *, lmax, mask2, n_iter, covariance, force) -> int | None:
+def _bias_bytes(nside, lmax, mask2, settings):
+    """Bytes of the deprojection-bias correction the settings ask for (0 when there is none)."""
+    from cmbtools._core.memory import estimate_deprojection_bias_bytes
+    from cmbtools.spectrum.deprojection import COARSE_NSIDE
+
+    templates = settings.get("templates")
+    remove = settings.get("remove_monopole_dipole", True) is True
+    if settings.get("correct_deprojection_bias", True) is not True:
+        return 0
+    if templates is None:
+        n_user = 0
+    elif isinstance(templates, np.ndarray) and templates.ndim < 2:
+        return 0  # refused by resolve_settings with its own message
+    else:
+        try:
+            n_user = len(templates)
+        except TypeError:
+            return 0
+    sky_lmax = settings.get("sky_lmax")
+    return estimate_deprojection_bias_bytes(
+        nside, lmax, n_templates=4 * remove + n_user, sky_lmax=sky_lmax if isinstance(sky_lmax, int) else None,
+        cross=mask2 is not None, grid_nside=COARSE_NSIDE if n_user == 0 else None,
+    )
+
+
+def _check_estimator_memory(mask, binning, *, lmax, mask2, n_iter, covariance, force, settings=None) -> int | None:
     """Refuse, before any large allocation, an estimator whose construction would not fit in memory.
 
     The byte model is :func:`cmbtools._core.memory.estimate_estimator_bytes`.
@@ -57,6 +82,7 @@ def _check_estimator_memory(mask, binning, *, lmax, mask2, n_iter, covariance, f
         cross=mask2 is not None,
         refine=refine,
         covariance=isinstance(covariance, (bool, np.bool_)) and bool(covariance),
+        bias_bytes=_bias_bytes(nside, lmax, mask2, settings or {}),
     )
     return check_memory(need, f"Building the spectrum estimator at nside {nside} with lmax {lmax}", force=force)
 
@@ -119,7 +145,11 @@ class SpectrumEstimator(_MapPreparation):
     correct_deprojection_bias : bool, default=True
         Correct the bias that removing the monopole, dipole and templates
         causes (Elsner, Leistedt & Peiris 2016, MNRAS 456, 2095; see
-        :mod:`cmbtools.spectrum.deprojection`), from ``guess_cl``.
+        :mod:`cmbtools.spectrum.deprojection`), from ``guess_cl``.  Exact
+        on the map's grid; above nside 256, without templates, the monopole
+        and dipole's bias comes from the mask averaged to nside 256
+        (:func:`~cmbtools.spectrum.deprojection.coarse_grid_deprojection_bias`,
+        accurate to a few 1e-5 of the pseudo-power on tapered masks).
     coupling : {'exact', 'fast'}, default='exact'
         ``'fast'`` uses the approximation of Louis et al. 2020 (PRD 102,
         123538) for large lmax: exact rows below ``fast_exact_below``, a band of
@@ -235,6 +265,7 @@ class SpectrumEstimator(_MapPreparation):
         _check_estimator_memory(
             mask, binning, lmax=settings.get("lmax"), mask2=settings.get("mask2"),
             n_iter=settings.get("n_iter", 0), covariance=settings.get("covariance", False), force=force,
+            settings=settings,
         )
         inputs = resolve_settings(mask, binning, nthreads=nthreads, **settings)
         state = build_operator(inputs, nthreads)

@@ -9,6 +9,7 @@ estimator they accept missing pixels inside the mask, which
 
 from __future__ import annotations
 
+import math
 import warnings
 
 import numpy as np
@@ -20,10 +21,14 @@ from cmbtools.spectrum.estimator import SpectrumEstimator
 __all__ = ["estimate_spectrum", "estimate_polarized_spectra"]
 
 
-def estimate_spectrum(map1, mask, binning, *, map2=None, mask2=None, noise_cl=None, noise_maps=None, **estimator_kwargs):
+def estimate_spectrum(map1, mask, binning=None, *, map2=None, mask2=None, noise_cl=None, noise_maps=None, errors="gaussian",
+                      noise=None, noise2=None, theory_cl=None, **estimator_kwargs):
     """Bandpowers of a map (or the cross-spectrum of two maps) in one call.
 
-    Builds a :class:`SpectrumEstimator` and applies it once.  Unlike a
+    Builds a :class:`SpectrumEstimator` and applies it once.  The error bars
+    are, as in ``cmbtools spectrum``, the diagonal of the
+    :class:`~cmbtools.spectrum.GaussianCovariance` of the bandpowers (which is
+    also returned as ``covariance``), or the Knox errors with ``errors="knox"``.  Unlike a
     prebuilt estimator, missing pixels (UNSEEN/NaN/inf) inside the mask are
     allowed: the effective mask becomes ``mask * (pixel valid)`` and a
     :class:`~cmbtools.exceptions.CmbtoolsWarning` says how many pixels were
@@ -36,12 +41,24 @@ def estimate_spectrum(map1, mask, binning, *, map2=None, mask2=None, noise_cl=No
         RING map, K_CMB.
     mask : ndarray of shape (12*nside**2,)
         Weights of map 1.
-    binning : Binning
-        The bins of the bandpowers.
+    binning : Binning, optional
+        The bins of the bandpowers (default: :func:`~cmbtools.spectrum.sampling.default_binning`
+        for the map's nside and ``beam``, which warns when the beam is narrower than two pixels).
     map2, mask2 : ndarray of shape (12*nside**2,), optional
         Second map for a cross-spectrum, and its mask (default ``mask``).
     noise_cl, noise_maps : optional
         Noise bias of an auto-spectrum (see :meth:`SpectrumEstimator.estimate`).
+    errors : {'gaussian', 'knox'}, default='gaussian'
+        Error model: the Gaussian covariance (with the per-pixel noise
+        ``noise``/``noise2``; for an auto-spectrum without it, the measured
+        power with its noise, as if uniform), or the Knox formula with
+        f_sky_eff.  A cross-spectrum without both ``noise`` and ``noise2``
+        keeps the Knox errors (its noise is not known).
+    noise, noise2 : PixelNoise, optional
+        Per-pixel noise of map 1 and map 2, for the Gaussian covariance.
+    theory_cl : array_like of shape (>= lmax+1,), optional
+        Sky spectrum (K^2) of the Gaussian covariance instead of the measured
+        bandpowers.
     **estimator_kwargs
         Any keyword of :class:`SpectrumEstimator` (lmax, beam, beam2,
         pixel_window, transfer, coupling, nthreads, ...).
@@ -77,8 +94,43 @@ def estimate_spectrum(map1, mask, binning, *, map2=None, mask2=None, noise_cl=No
     else:
         a2 = None
         w2 = None if mask2 is None else check_mask(mask2, "mask2")
+    if errors not in ("gaussian", "knox"):
+        raise InvalidInputError(f"The 'errors' parameter must be 'gaussian' or 'knox'. Got {errors!r} instead.")
+    if binning is None:
+        from cmbtools.spectrum.sampling import default_binning
+
+        nside = int(round(math.sqrt(w1.size / 12)))
+        binning = default_binning(nside, estimator_kwargs.get("beam"), lmax=estimator_kwargs.get("lmax"))
     est = SpectrumEstimator(w1, binning, mask2=w2, **estimator_kwargs)
-    return est.estimate(a1, a2, noise_cl=noise_cl, noise_maps=noise_maps)
+    bp = est.estimate(a1, a2, noise_cl=noise_cl, noise_maps=noise_maps)
+    cross = a2 is not None
+    if errors == "knox" or (cross and (noise is None or noise2 is None)):
+        return bp.with_metadata(errors="Knox formula with f_sky_eff")
+    return _with_gaussian_errors(est, bp, a1, noise, noise2, theory_cl, cross, estimator_kwargs.get("nthreads"))
+
+
+def _with_gaussian_errors(est, bp, map1, noise, noise2, theory_cl, cross, nthreads):
+    """``bp`` with the diagonal of the Gaussian covariance as its errors and the covariance attached."""
+    import dataclasses
+
+    from cmbtools.spectrum.covariance import GaussianCovariance
+
+    gauss = GaussianCovariance(est, noise=noise, noise2=noise2 if cross else None, cross=cross, nthreads=nthreads)
+    if theory_cl is not None:
+        signal, source = theory_cl, "the given theory spectrum"
+    elif not cross and noise is None:
+        # the measured power with its noise (the noise bias, if subtracted, is put back)
+        signal, source = (est.estimate(map1) if bp.metadata.get("noise_bias_subtracted") else bp), \
+            "the measured bandpowers with their noise"
+    elif not cross and not bp.metadata.get("noise_bias_subtracted"):
+        signal = dataclasses.replace(bp, cl=bp.cl - gauss.noise_bandpowers())
+        source = "the measured bandpowers less the described noise"
+    else:
+        signal, source = bp, "the measured bandpowers"
+    cov = gauss.covariance(signal)
+    err = np.asarray(cov.errors)
+    out = dataclasses.replace(bp, cl_err=err, dl_err=err * est.binning.dl_factor, covariance=np.array(cov.matrix))
+    return out.with_metadata(errors=f"Gaussian covariance of {source}")
 
 
 def drop_missing_pixels(m, w, map_name, mask_name, *, stacklevel=3):

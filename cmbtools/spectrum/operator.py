@@ -93,11 +93,15 @@ def build_operator(inp, nthreads) -> dict:
     def pm_of(w, which):
         # P (1 + r) M for the windows and the noise; P (1 + r + t) M for the binned matrix (t: power above the bins)
         m = _coupling.coupling_matrix(w, lmax, fast=fast, nthreads=nthreads)
-        rows = _correction_rows(inp, m, which, deps, nthreads)
+        rows = _correction_rows(inp, m, which, deps, nthreads, mask_cl=w)
         if rows is None:
             pm = _reduce_rows(m, p, binning.ell_min)
             return pm, pm
         bias_rows, leak_rows = rows  # (reduce_rows scales its argument in place: one copy, then m itself)
+        if np.array_equal(bias_rows, leak_rows):  # no power above the bins: no second matrix
+            m *= bias_rows[:, None]
+            pm = _reduce_rows(m, p, binning.ell_min)
+            return pm, pm
         pm_leak = _reduce_rows(m * leak_rows[:, None], p, binning.ell_min)
         m *= bias_rows[:, None]
         return _reduce_rows(m, p, binning.ell_min), pm_leak
@@ -214,8 +218,14 @@ def deprojections(inp, nthreads):
     return d1, d2
 
 
-def _correction_rows(inp, m, which, deps, nthreads):
-    """Row factors of the coupling matrix ``m`` for the deprojection bias and the power above the bins, or None."""
+def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None):
+    """Row factors of the coupling matrix ``m`` for the deprojection bias and the power above the bins, or None.
+
+    With the monopole/dipole removal alone on a grid finer than
+    :data:`~cmbtools.spectrum.deprojection.COARSE_NSIDE`, the bias comes from
+    :func:`~cmbtools.spectrum.deprojection.coarse_grid_deprojection_bias` (``mask_cl``: the
+    masks' spectrum); user templates always get the exact bias.
+    """
     if inp.sky_factors is None:
         return None
     from cmbtools.spectrum import deprojection as _dep
@@ -226,7 +236,12 @@ def _correction_rows(inp, m, which, deps, nthreads):
     mask_a = inp.mask2 if which == "22" else inp.mask1
     mask_b = inp.mask1 if which == "11" else (inp.mask2 if inp.mask2 is not None else inp.mask1)
     bias = None
-    if inp.deprojects and inp.correct_deprojection_bias:
+    coarse = (not inp.templates and mask_cl is not None and inp.nside > _dep.COARSE_NSIDE)
+    if inp.deprojects and inp.correct_deprojection_bias and coarse:
+        bias = _dep.coarse_grid_deprojection_bias(
+            mask_a, signal, lmax, mask_cl, mask2=None if mask_b is mask_a else mask_b, nthreads=nthreads
+        )
+    elif inp.deprojects and inp.correct_deprojection_bias:
         built = list(deps)
 
         def dep_of(index):

@@ -34,6 +34,8 @@ from cmbtools.spectrum import coupling as coupling_pol
 from cmbtools.spectrum import purification
 from cmbtools.spectrum.binning import Binning
 from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
+from cmbtools.spectrum.polarized_covariance import covariance_requests as _covariance_requests
+from cmbtools.spectrum.polarized_covariance import pseudo_covariance as _pseudo_cov
 from cmbtools.spectrum.errors import _reduce_rows
 from cmbtools.spectrum.map_preparation import _LARGEST_MAP_VALUE
 from cmbtools.spectrum.polarized_operator import (
@@ -98,15 +100,19 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
 
     Notes
     -----
-    Errors: the Gaussian covariance of the binned pseudo-spectra in the narrow-kernel approximation
-    (Efstathiou 2004, MNRAS 349, 603; for several fields and masks as in Garcia-Garcia et al. 2019,
-    JCAP 10, 043), ``Cov(X~Y, Z~W)_ll' = O^XZ O^YW Xi(w_x w_z, w_y w_w)_ll' + O^XW O^YZ Xi(w_x w_w, w_y w_z)_ll'``
-    with ``Xi(u, v) = M00[u x v] / (2 l' + 1)`` (spin-0 kernels for E and B too) and the observed spectra
-    ``O`` taken from the binned pseudo-spectra, propagated through the inverse coupled system.  On the
-    full sky it is the Knox formula.  The pseudo-spectra include the E power that the mask leaks into B,
-    so the BB errors of the standard estimator carry the leakage's variance; it is spread over the taper
-    region rather than the whole patch, which this approximation does not model: validate BB errors
-    with simulations (``purify_b`` removes the leakage).
+    Errors: the Gaussian covariance of the binned pseudo-spectra (Efstathiou 2004, MNRAS 349, 603)
+    in the improved narrow-kernel approximation (Garcia-Garcia, Alonso & Bellini 2019, JCAP: coupled
+    spectra from the measured pseudo-spectra, kernels ``Xi(u, v) = M00[u x v] / (2 l' + 1)`` of the window
+    products), with the E-to-B leakage of the standard estimator counted where it happens: the leaked E
+    power is an extra field in B (and the leaked B in E) seen through the window's gradient ``|eth w|``
+    (Smith 2006's counter-terms), normalised per bin by the exact ``M--`` row sums, correlated with the
+    E modes it comes from; the pure B's extra power from the ``N_l / N_l'`` weighting is counted the same
+    way (see :mod:`cmbtools.spectrum.polarized_covariance`).  Propagated through the inverse coupled
+    system.  On the full sky it is the Knox formula.  Measured against 1000 simulations of a 10-degree
+    tapered cap with holes (``tests/spectrum/test_polarization_montecarlo.py``): simulated scatter /
+    reported error within 0.93-1.06 for TE, TB, EE, EB, BB with and without purification; TT's top bin
+    near lmax = 2 nside and its first bin above ell = 10 (after the monopole/dipole removal) are 10 and 8 %
+    off.
     """
 
     def __init__(
@@ -233,7 +239,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                   for _, key in self._terms(c, n[0], n[1])}
         keys, spectra = [], []
         for n in names:
-            k, w = self._covariance_requests(n)
+            k, w = _covariance_requests(self, n)
             for kk, ww in zip(k, w):
                 if kk not in keys:
                     keys.append(kk)
@@ -264,96 +270,10 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         which = "1" if side == "a" or name == "11" else "2"
         return ("t" if f == "T" else "p") + which
 
-    def _covariance_requests(self, name):
-        """(keys, spectra) of the narrow covariance kernels of a pair of maps not computed yet."""
-        comps = _COMPONENTS_AUTO if name == "11" else _COMPONENTS_CROSS
-        wanted = set()
-        for ci in comps:
-            for cj in comps:
-                for _, x, y in self._parts(ci):
-                    for _, z, w in self._parts(cj):
-                        for (p, q_), (r, s) in (((x, z), (y, w)), ((x, w), (y, z))):
-                            wanted.add(self._product_key(self._mask_of(p, name), self._mask_of(q_, name),
-                                                         self._mask_of(r, name), self._mask_of(s, name)))
-        missing = sorted(k for k in wanted if ("cov_kernel",) + k not in self._cache)
-        lmax = self.lmax
-        nthreads = self._threads()
-        products = {}
-        for k in missing:
-            for prod in k:
-                if prod not in products:
-                    products[prod] = self._unique[prod[0]] * self._unique[prod[1]]
-        spectra = []
-        for u, v in missing:  # product masks' spectra up to lmax (the kernel is narrow: enough for it)
-            if u == v:
-                spectra.append(_sht.map_spectra([products[u]], lmax, nthreads=nthreads)[0])
-            else:
-                spectra.append(_sht.map_spectra([products[u], products[v]], lmax, nthreads=nthreads)[2])
-        return missing, spectra
-
-    def _covariance_kernels(self, name):
-        """The binned narrow kernels G(u, v) every covariance term of the pair needs (computed once)."""
-        keys, spectra = self._covariance_requests(name)
-        if keys:
-            self._kernels(set(), covariance=(keys, spectra))
-
-    def _product_key(self, m1, m2, m3, m4):
-        k = self._key_of
-        u = tuple(sorted((k[m1], k[m2])))
-        v = tuple(sorted((k[m3], k[m4])))
-        return tuple(sorted((u, v)))
-
-    def _normalisation(self, mx, my, fx, fy):
-        """Per-bin ratio of a pseudo-spectrum to the observed spectrum, for a flat spectrum.
-
-        ``mean(w_x w_y)`` for the standard estimators; for spectra with a pure B, the row sums of the
-        pure kernels (the pure-B coefficients weigh the multipoles by ``N_l / N_l'``).
-        """
-        n_pure = int(self.purify_b) * ((fx == "B") + (fy == "B"))
-        if not n_pure:
-            return self._moments(mx, my)
-        kind = "00RR" if n_pure == 2 else ("00R" if "T" in (fx, fy) else "02R")
-        i, j = sorted((self._key_of[mx], self._key_of[my]))
-        kern = self._kernels({(kind, i, j)})[(kind, i, j)]
-        rows = np.add.reduceat(self.binning.averaging_weights(self.lmax), self.binning.ell_min)
-        return kern.sum(axis=1) / rows
-
-    def _pseudo_covariance(self, name, spectra_of):
-        """Gaussian covariance of the binned pseudo-spectra of the pair's components (see the class notes)."""
-        pair = self._pair(name)
-        self._covariance_kernels(name)
-        nb = self.binning.n_bins
-
-        def norm(x, y):
-            return self._normalisation(self._mask_of(x, name), self._mask_of(y, name), x[1], y[1])
-
-        def observed(x, y):
-            return spectra_of(x, y) / norm(x, y)
-
-        def kern(p, q_, r, s):
-            key = self._product_key(self._mask_of(p, name), self._mask_of(q_, name),
-                                    self._mask_of(r, name), self._mask_of(s, name))
-            return self._cache[("cov_kernel",) + key]
-
-        def sym(o1, o2):
-            return 0.5 * (np.outer(o1, o2) + np.outer(o2, o1))
-
-        comps = pair.components
-        cov = np.zeros((len(comps) * nb, len(comps) * nb))
-        for i, ci in enumerate(comps):
-            for j in range(i, len(comps)):
-                cj = comps[j]
-                block = np.zeros((nb, nb))
-                for wi, x, y in self._parts(ci):
-                    rxy = norm(x, y) / self._moments(self._mask_of(x, name), self._mask_of(y, name))
-                    for wj, z, w in self._parts(cj):
-                        rzw = norm(z, w) / self._moments(self._mask_of(z, name), self._mask_of(w, name))
-                        o = sym(observed(x, z), observed(y, w)) * kern(x, z, y, w)
-                        o += sym(observed(x, w), observed(y, z)) * kern(x, w, y, z)
-                        block += wi * wj * (np.outer(rxy * np.ones(nb), rzw * np.ones(nb)) * o)
-                cov[i * nb:(i + 1) * nb, j * nb:(j + 1) * nb] = block
-                cov[j * nb:(j + 1) * nb, i * nb:(i + 1) * nb] = block.T
-        return cov
+    @staticmethod
+    def _components_of(name):
+        """The components measured for map 1 x map 1 ('11') or map 1 x map 2 ('12')."""
+        return _COMPONENTS_AUTO if name == "11" else _COMPONENTS_CROSS
 
     # ------------------------------------------------------------------ applying
     def _fields(self, maps, which, name):
@@ -526,7 +446,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 raise InvalidInputError("The 'noise_maps' parameter is empty; give at least one noise map.")
             noise_vec = acc / count
         x = pair.ainv @ (vec if noise_vec is None else vec - noise_vec)
-        cov_x = pair.ainv @ self._pseudo_covariance(name, spectra_of) @ pair.ainv.T
+        cov_x = pair.ainv @ _pseudo_cov(self, name, spectra_of) @ pair.ainv.T
         s = self._reporting_matrix(pair.components)
         value = s @ x
         cov = s @ cov_x @ s.T
@@ -662,7 +582,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         meta["b_mode_purification"] = "yes" if self.purify_b else "no"
         meta["coupling"] = "exact"
         meta["condition_number"] = float(f"{self.condition_number:.6g}")
-        meta["errors"] = "Gaussian pseudo-spectrum covariance (Knox-like, f_sky_eff per mask pair) through the inverse coupling"
+        meta["errors"] = ("Gaussian pseudo-spectrum covariance (improved narrow-kernel approximation, E-to-B leakage "
+                          "through the window gradient) through the inverse coupling")
         meta["noise_bias_subtracted"] = "no"
         return meta
 

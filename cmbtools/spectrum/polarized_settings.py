@@ -53,6 +53,7 @@ def _check_memory(mask, lmax, others, purify, force):
     n_masks = 1 + len(others)
     masks = estimate_map_bytes(nside, 2 * n_masks)
     derivatives = estimate_map_bytes(nside, 4 * min(2, n_masks)) if purify else 0
+    derivatives += estimate_map_bytes(nside, 4)  # the covariance's |eth w|, lap w and window products
     transform = 3 * estimate_alm_bytes(2 * lmax) + _sht._leg_bytes(nside, 2 * lmax)
     kernels = estimate_coupling_bytes(lmax, 2 + 4 * n_masks)
     need = masks + derivatives + max(transform, kernels)

@@ -124,6 +124,12 @@ def test_validate_checks_the_corrected_pipeline_and_its_covariance_is_not_divide
     assert main(common + ["--seed", "3", "--run-dir", str(check), "--transfer",
                           str(tmp_path / "measure" / "transfer.csv")]) == 0
     assert "bandpowers and errors divided by F_b of" in capsys.readouterr().out
+    # the run's own transfer table as its input: refused (it would be rewritten)
+    assert main(common + ["--seed", "3", "--run-dir", str(tmp_path / "measure"), "--transfer",
+                          str(tmp_path / "measure" / "transfer.csv")]) == 2
+    err = capsys.readouterr().err
+    assert "is an input, but this run would write its transfer table there" in err and err.count("\n") == 1
+    assert BandpowerTransfer.read_csv(tmp_path / "measure" / "transfer.csv").key == first.key
     doc = json.loads((check / "summary.json").read_text())
     # the summary describes what is left; transfer.csv holds the whole F_b again (a second measurement of it)
     second = BandpowerTransfer.read_csv(check / "transfer.csv")

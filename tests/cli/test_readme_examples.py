@@ -4,7 +4,8 @@ Each fenced block of README.md that starts with ``$ cmbtools ...`` is one exampl
 their backslash continuation lines), each followed by the lines it prints.  The commands of a block run as
 written, in order, in a scratch directory that holds the demo ``maps/`` and an empty ``demo_output/``; the
 standard output of each must equal the lines shown below it, line for line.  A last line ``...`` means the README
-shows only the first lines of that output.
+shows only the first lines of that output.  A figure that an example writes into ``demo_output/`` and that the README
+shows from ``docs/`` under the same name must be that picture (``scripts/update_readme_examples.py`` copies it).
 """
 
 from __future__ import annotations
@@ -16,6 +17,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 ROOT = Path(__file__).resolve().parent
@@ -77,3 +79,29 @@ def test_a_readme_example_prints_what_the_readme_shows(tmp_path, commands):
             shown = shown[:-1]
             printed = printed[: len(shown)]
         assert printed == shown, command
+    # a figure the README shows (docs/NAME.png) that the example writes (demo_output/NAME.png) is that figure
+    for name in readme_figures():
+        made = tmp_path / "demo_output" / name
+        if made.exists():
+            _assert_same_picture(made, ROOT / "docs" / name)
+
+
+def readme_figures():
+    """Names of the pictures the README shows from docs/ (``![...](docs/NAME.png)``)."""
+    return re.findall(r"!\[[^\]]*\]\(docs/([^)/]+\.png)\)", (ROOT / "README.md").read_text())
+
+
+def _assert_same_picture(made, shown):
+    """Same size, and pixels equal up to font rendering: mean absolute difference below 1% of the range."""
+    from matplotlib.image import imread
+
+    a, b = imread(made), imread(shown)
+    assert a.shape == b.shape, (made.name, a.shape, b.shape)
+    assert float(np.mean(np.abs(a - b))) < 0.01, made.name
+
+
+def test_every_readme_figure_is_in_docs():
+    names = readme_figures()
+    assert names, "the README shows no figure"
+    for name in names:
+        assert (ROOT / "docs" / name).is_file(), name

@@ -22,7 +22,7 @@ EXPECTED = {
         "first_call_vs_anafast_no_iteration_ratio",
         "bare_kernel_s", "coupling_ratio", "fast_max_rel_diff_all_bins", "fast_max_rel_diff_below_2nside",
         "banded_max_rel_diff_all_bins", "banded_max_rel_diff_below_2nside", "first_call_banded_s",
-        "pixel_window_first_computation_s",
+        "pixel_window_first_computation_s", "first_call_profile",
     },
     "W2": {
         "nside", "lmax", "repeats", "simulation_s", "bare_synthesis_analysis_s", "simulation_ratio",
@@ -54,6 +54,11 @@ PROFILE_STEPS = (
     "random_numbers", "sky_synthesis", "analysis", "monopole_dipole_removal", "pseudo_spectrum", "map_checks_and_mask",
     "rest",
 )
+FIRST_CALL_STEPS = (
+    "settings", "settings.guess_spectrum", "operator", "operator.mask_spectrum", "operator.coupling_kernel",
+    "operator.deprojection_bias_and_row_factors", "operator.binned_inverse", "estimate",
+    "estimate.monopole_dipole_removal",
+)
 
 
 def test_quick_run_prints_every_figure(tmp_path):
@@ -79,6 +84,15 @@ def test_quick_run_prints_every_figure(tmp_path):
     steps = sum(profile[f"{step}_s"] for step in PROFILE_STEPS)
     assert abs(steps - profile["simulation_s"]) <= 0.05 * profile["simulation_s"] + 1e-3
     report["W2"]["profile"] = 0.0
+    first = report["W1"].pop("first_call_profile")
+    assert set(first) == {"first_call_s", "floor_bare_kernels_s"} | {
+        f"{label}_{unit}" for label in FIRST_CALL_STEPS for unit in ("s", "of_floor")
+    }
+    for key, value in first.items():
+        assert isinstance(value, (int, float)) and math.isfinite(value) and value >= 0, (key, value)
+    # the top-level steps of a first call fit inside it
+    assert sum(first[f"{label}_s"] for label in ("settings", "operator", "estimate")) <= 1.05 * first["first_call_s"] + 1e-3
+    report["W1"]["first_call_profile"] = 0.0
     for name, keys in EXPECTED.items():
         assert set(report[name]) == keys, name
         for key, value in report[name].items():

@@ -144,3 +144,25 @@ def test_more_baryons_raise_odd_peaks(dl_uk2):
     ratio_base = _peaks(dl_uk2, 100, 350)[1] / _peaks(dl_uk2, 450, 650)[1]
     ratio_rich = _peaks(d, 100, 350)[1] / _peaks(d, 450, 650)[1]
     assert ratio_rich > 1.1 * ratio_base
+
+
+def test_a_new_process_reads_the_spectrum_from_the_disk_cache(dl_uk2, monkeypatch):
+    # The in-memory cache emptied (as in a new process): the spectrum comes back from the cache directory,
+    # identical, without solving the model; a damaged file is ignored and the spectrum computed again.
+    from cmbtools.physics.parameters import resolve_cosmology, resolve_extras
+    from cmbtools.simulate import theory_spectrum as ts
+
+    key = ts._model_for(resolve_cosmology(None), resolve_extras(None), build=False)["disk_key"]
+    path = ts._disk_path(key, LMAX)
+    assert path.is_file()
+    monkeypatch.setattr(ts, "_cache", {})
+
+    def no_model(*args):
+        raise AssertionError("the model was solved although the spectrum is on disk")
+
+    with monkeypatch.context() as m:
+        m.setattr(ts, "_compute_dl", no_model)
+        np.testing.assert_array_equal(fiducial_dl(LMAX) * 1e12, dl_uk2)
+    path.write_bytes(b"not a cache file")
+    monkeypatch.setattr(ts, "_cache", {})
+    np.testing.assert_allclose(fiducial_dl(LMAX) * 1e12, dl_uk2, rtol=1e-12)
