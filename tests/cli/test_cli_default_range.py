@@ -116,19 +116,29 @@ def test_iqu_spectra_follow_the_same_default_range(files, tmp_path, capsys):
     assert max(int(ln.split(",")[2]) for ln in text[1:]) == 70
 
 
-def test_validate_uses_the_default_range_and_skies_to_four_nside(files, tmp_path, capsys, monkeypatch):
+def test_validate_uses_the_default_range_and_skies_to_four_nside(tmp_path, capsys, monkeypatch):
     monkeypatch.setenv("CMBTOOLS_NUM_THREADS", "1")
-    common = ["--beam-fwhm", "300", "--bin-width", "16", "--sims", "2", "--seed", "1", "--workers", "1",
+    nside = 16  # pixels of 220 arcmin; a 600 arcmin beam keeps 1e-3 of the power up to l = 34 < 2.5 nside = 40
+    assert _beam_top(600.0) == 34
+    maps.write_mask(tmp_path / "mask.fits", maps.cap_mask(nside, 0.0, 60.0, 70.0))
+    common = ["--beam-fwhm", "600", "--bin-width", "8", "--sims", "2", "--seed", "1", "--workers", "1",
               "--no-progress"]
-    assert main(["validate", str(files / "mask.fits"), *common, "--run-dir", str(tmp_path / "t")]) == 0
-    out = capsys.readouterr().out
+    assert main(["validate", str(tmp_path / "mask.fits"), *common, "--run-dir", str(tmp_path / "t")]) == 0
+    captured = capsys.readouterr()
     doc = json.loads((tmp_path / "t" / "summary.json").read_text())
-    assert doc["bins"]["ell_max"][-1] == 70 and doc["settings"]["sky_lmax"] == 4 * NSIDE - 1
-    assert "lmax 95" in out and "(ell 2-70)" in out and "to ell 127" in out
-    assert main(["validate", str(files / "mask.fits"), *common, "--polarized", "--run-dir", str(tmp_path / "p")]) == 0
+    assert doc["bins"]["ell_max"][-1] == 34 and doc["settings"]["sky_lmax"] == 4 * nside - 1
+    assert "lmax 47" in captured.out and "(ell 2-34)" in captured.out and "to ell 63" in captured.out
+    assert captured.err == ""
+    assert main(["validate", str(tmp_path / "mask.fits"), *common, "--polarized", "--run-dir",
+                 str(tmp_path / "p")]) == 0
     out = capsys.readouterr().out
     doc = json.loads((tmp_path / "p" / "summary.json").read_text())
-    assert max(doc["bins"]["ell_max"]) == 70 and "(ell 2-70)" in out and "skies to ell 127" in out
+    assert max(doc["bins"]["ell_max"]) == 34 and "(ell 2-34)" in out and "skies to ell 63" in out
+    # the user's --lmax wins, and a cross-spectrum's split skies stop at lmax
+    assert main(["validate", str(tmp_path / "mask.fits"), *common, "--lmax", "40", "--cross", "--run-dir",
+                 str(tmp_path / "x")]) == 0
+    doc = json.loads((tmp_path / "x" / "summary.json").read_text())
+    assert doc["bins"]["ell_max"][-1] == 40 and doc["settings"]["sky_lmax"] == 40
 
 
 def test_the_help_states_the_default_range():

@@ -908,7 +908,8 @@ def test_validation_refuses_before_simulating_and_force_runs(monkeypatch):
 def test_spectrum_cli_memory_refusal_and_force(tmp_path, capsys, monkeypatch):
     mask_path = maps.write_mask(tmp_path / "mask.fits", maps.cap_mask(16, 0, 30, 60))
     map_path = maps.write_sky_map(tmp_path / "map.fits", sky(16))
-    argv = ("spectrum", map_path, "--mask", mask_path, "--no-pixel-window", "--threads", 1, "-o")
+    # a beam of more than two pixels (480 arcmin at nside 16): no narrow-beam warning line besides the memory one
+    argv = ("spectrum", map_path, "--mask", mask_path, "--beam-fwhm", 480, "--no-pixel-window", "--threads", 1, "-o")
     out_path = tmp_path / "spectrum.csv"
     monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")
     code, out, err = run_cli(capsys, *argv, out_path)
@@ -960,8 +961,9 @@ def test_validate_cli_memory_refusal_and_force(tmp_path, capsys, monkeypatch):
     import json
 
     mask_path = maps.write_mask(tmp_path / "mask.fits", maps.cap_mask(16, 0, 90, 120))
-    argv = ("validate", mask_path, "--lmax", 40, "--bin-width", 8, "--no-pixel-window", "--no-progress", "--seed", 4,
-            "--spectrum", _spectrum_file(tmp_path / "cl.csv"))
+    # a beam of more than two pixels (480 arcmin at nside 16): no narrow-beam warning line besides the memory ones
+    argv = ("validate", mask_path, "--lmax", 40, "--bin-width", 8, "--beam-fwhm", 480, "--no-pixel-window",
+            "--no-progress", "--seed", 4, "--spectrum", _spectrum_file(tmp_path / "cl.csv"))
     run_dir = tmp_path / "run"
     # the estimator is refused first
     monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")
