@@ -30,6 +30,18 @@ noise, three with noise, five for the cross-spectrum of two noisy maps) come
 from one call of ducc0's kernel, which shares the Wigner 3j symbols among
 them: the cost is about that of one or two coupling matrices.
 
+Removed modes.  An estimator that removes the monopole and dipole (or
+templates) before masking changes the covariance of the lowest bins: the
+removal takes variance out of them, and the narrow-kernel term above misses
+how much.  :mod:`cmbtools.spectrum.deprojection_covariance` adds the exact
+low-rank change of the pseudo-coefficient covariance (its cross term with the
+main one in the same narrow-kernel form), bin-summed over the first bins where
+it matters; see that module for the method and its measured accuracy.  Given
+measured bandpowers of an estimator built without the deprojection-bias
+correction, the signal model adds the expected bias back first.
+:meth:`GaussianCovariance.pseudo_covariance` is the per-multipole covariance
+without the removal.
+
 The noise is described by :class:`~cmbtools.spectrum.pixel_noise.PixelNoise`;
 the result is a :class:`~cmbtools.spectrum.bandpower_covariance.BandpowerCovariance`
 (simulated covariances and the covariance files are in that module).
@@ -396,6 +408,9 @@ class GaussianCovariance:
 
     def pseudo_covariance(self, spectrum) -> np.ndarray:
         """Covariance of the pseudo-spectrum ``C~_l`` (l = 0..lmax) for a sky spectrum, K^4.
+
+        Without the monopole/dipole (template) removal's change, which :meth:`covariance` adds to the
+        first bins' sums (see the module notes).
 
         Parameters
         ----------

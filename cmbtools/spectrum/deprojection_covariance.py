@@ -71,6 +71,22 @@ def _truncated(alm, lmax_from, lmax_to):
     return alm if lmax_from == lmax_to else _truncate(alm, lmax_from, lmax_to)
 
 
+def _averaged_down(maps, nside_out):
+    """Each RING map of ``maps`` averaged into the pixels of ``nside_out`` (RING), in one pass over the pixels."""
+    import healpy as hp
+
+    nside_in = int(round(math.sqrt(maps[0].size / 12)))
+    k = (nside_in // nside_out) ** 2
+    npix_out = 12 * nside_out * nside_out
+    sums = np.zeros((len(maps), npix_out))
+    chunk = 1 << 20
+    for s in range(0, maps[0].size, chunk):  # the NESTED parent of each RING pixel, in chunks
+        parent = hp.ring2nest(nside_in, np.arange(s, min(maps[0].size, s + chunk))) // k
+        for i, m in enumerate(maps):
+            sums[i] += np.bincount(parent, weights=m[s:s + parent.size], minlength=npix_out)
+    return [hp.reorder(row / k, n2r=True) for row in sums]
+
+
 class DeprojectionCovariance:
     """The change of the binned pseudo-spectrum covariance caused by the estimator's template removal.
 
@@ -90,7 +106,7 @@ class DeprojectionCovariance:
     """
 
     def __init__(self, estimator, noise_weights, cross, nthreads):
-        from cmbtools.spectrum.deprojection import COARSE_NSIDE, TemplateDeprojection, _averaged_down
+        from cmbtools.spectrum.deprojection import COARSE_NSIDE, TemplateDeprojection
 
         inp = estimator._inputs
         self._nthreads = nthreads
@@ -99,20 +115,27 @@ class DeprojectionCovariance:
         nside = int(estimator.nside)
         coarse = nside > COARSE_NSIDE
         grid = COARSE_NSIDE if coarse else nside
-
-        def on_grid(m):
-            return _averaged_down(np.asarray(m, dtype=np.float64), grid) if coarse else np.asarray(m, dtype=np.float64)
-
-        w = {"1": on_grid(estimator.mask)}
-        if cross:
-            w["2"] = on_grid(estimator.mask2)
+        # the masks, the noise weights and the user templates on the grid of the computation
+        names, fine = [], []
+        for x in self._maps:
+            names.append(("w", x))
+            fine.append(np.asarray(estimator.mask if x == "1" else estimator.mask2, dtype=np.float64))
+            if noise_weights.get(x) is not None:
+                names.append(("n", x))
+                fine.append(np.asarray(noise_weights[x], dtype=np.float64))
+        for i, t in enumerate(inp.templates):
+            names.append(("t", i))
+            fine.append(np.asarray(t, dtype=np.float64))
+        grid_maps = dict(zip(names, _averaged_down(fine, grid) if coarse else fine))
+        del fine
+        w = {x: grid_maps[("w", x)] for x in self._maps}
         self._grid = grid
         self._omega = 4.0 * math.pi / (12 * grid * grid)
         self._lmax = int(estimator.lmax)
         self._lvec = min(self._lmax, 2 * grid) if coarse else self._lmax  # band limit of the vectors
         self._masks = w
-        self._noise = {x: (None if noise_weights.get(x) is None else on_grid(noise_weights[x])) for x in self._maps}
-        templates = [on_grid(t) for t in inp.templates]
+        self._noise = {x: grid_maps.get(("n", x)) for x in self._maps}
+        templates = [grid_maps[("t", i)] for i in range(len(inp.templates))]
         self._deps = {x: TemplateDeprojection(w[x], templates, monopole_dipole=inp.remove_monopole_dipole,
                                               nthreads=nthreads) for x in self._maps}
         self._g = {x: [self._deps[x].template_map(i) * w[x] for i in range(self._deps[x].n_templates)]
