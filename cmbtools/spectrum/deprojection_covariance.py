@@ -160,8 +160,8 @@ class DeprojectionCovariance:
     def _pixel_sums(self, lsky):
         """``H`` (exact pixel sums of ``g``) to ``lsky`` and ``U = Omega H`` to the vectors' band limit."""
         if lsky not in self._cache:
-            h = {x: [_sht.adjoint_sums(g, lsky, nthreads=self._nthreads, rings=self._rings[x]) for g in self._g[x]]
-                 for x in self._maps}
+            h = {x: np.array([_sht.adjoint_sums(g, lsky, nthreads=self._nthreads, rings=self._rings[x])
+                              for g in self._g[x]]) for x in self._maps}
             u = {x: [self._omega * _truncated(a, lsky, self._lvec) for a in h[x]] for x in self._maps}
             self._cache = {lsky: (h, u)}
         return self._cache[lsky]
@@ -185,19 +185,18 @@ class DeprojectionCovariance:
         for x in self._maps:
             for y in self._maps:
                 s = s_of(x, y)
-                hx, hy = np.array(h[x]), np.array(h[y])
-                hs = np.array([_sht.almxfl(a, s, lsky) for a in hy])
+                hs = np.array([_sht.almxfl(a, s, lsky) for a in h[x]])  # S_L H_x
+                hy = h[y]
                 # sum over all m of S_L H_x conj(H_y): twice the stored m >= 0 minus the m = 0 terms
-                sig = 2.0 * (hx @ hs.conj().T).real - (hx[:, : lsky + 1] @ hs[:, : lsky + 1].conj().T).real
-                del hy, hs
+                sig = 2.0 * (hs @ hy.conj().T).real - (hs[:, : lsky + 1] @ hy[:, : lsky + 1].conj().T).real
                 noisy = x == y and self._noise[x] is not None
                 if noisy:
                     sig = sig + self._noise_sigma[x]
                 sigma[(x, y)] = sig
                 # Y_xy,j: coefficients of w_y C^yx g_x,j
                 out = []
-                for j, a in enumerate(h[x]):
-                    m = _sht.alm2map(_sht.almxfl(a, s, lsky), self._grid, lsky, nthreads=nth, rings=self._rings[y])
+                for j, a in enumerate(hs):
+                    m = _sht.alm2map(a, self._grid, lsky, nthreads=nth, rings=self._rings[y])
                     m *= self._masks[y]
                     a = _sht.map2alm(m, lv, nthreads=nth, rings=self._rings[y])
                     out.append(a + self._noise_y[x][j] if noisy else a)
