@@ -34,9 +34,6 @@ def is_polarized_input(path) -> bool:
 
 def run_polarized(args, outputs_checked) -> int:
     """The polarized spectrum command (arguments already parsed; the output paths already checked)."""
-    import contextlib
-    import os
-
     import numpy as np
 
     from cmbtools import maps
@@ -49,7 +46,8 @@ def run_polarized(args, outputs_checked) -> int:
     from cmbtools.spectrum.one_call import drop_missing_pixels
 
     for flag, given in (("--noise-spectrum", args.noise_spectrum), ("--operator-cache", args.operator_cache),
-                        ("--fast-coupling", args.fast_coupling), ("--write-noise-spectrum", args.write_noise_spectrum)):
+                        ("--fast-coupling", args.fast_coupling), ("--write-noise-spectrum", args.write_noise_spectrum),
+                        ("--template", getattr(args, "template", None))):
         if given:
             raise InvalidInputError(f"{flag} applies to temperature maps only; MAP holds I, Q, U "
                                     "(for the noise bias of I, Q, U maps use --noise-maps or --half-difference).")
@@ -112,9 +110,14 @@ def run_polarized(args, outputs_checked) -> int:
         if n.shape != m1.shape:
             raise InvalidInputError(f"The noise maps must be I, Q, U maps of nside {nside} like MAP.")
 
+    sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
+    if sky_lmax < lmax or sky_lmax > 8 * nside:
+        raise InvalidInputError(f"--sky-lmax must be in [{lmax}, {8 * nside}] (lmax to 8 nside). Got {sky_lmax} instead.")
     est = sp.PolarizedSpectrumEstimator(
         w1, binning, pol_mask=p1, lmax=lmax, mask2=w2, pol_mask2=p2, beam=beam1, beam2=beam2,
         pixel_window=not args.no_pixel_window, remove_monopole_dipole=not args.keep_monopole_dipole,
+        sky_lmax=sky_lmax, guess_cl=theory if theory is not None and theory["TT"].size > sky_lmax else None,
+        correct_deprojection_bias=not args.no_deprojection_correction,
         purify_b=args.purify_b, nthreads=args.threads or None,
     )
     bp = est.estimate(m1, m2, noise_maps=noise_maps)
@@ -127,18 +130,16 @@ def run_polarized(args, outputs_checked) -> int:
         meta.update({"map2": str(args.map2), "map2_sha256": info2.sha256})
     bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, bp.cl_err, bp.dl, bp.dl_err, bp.covariance, meta)
 
-    written = []
-    try:
-        written.append(bp.write_csv(args.output, overwrite=args.overwrite, unit=args.unit))
+    from cmbtools._core.files import OutputGroup
+
+    ow = args.overwrite
+    with OutputGroup() as outputs:  # all of the outputs or none
+        outputs.write(args.output, lambda p: bp.write_csv(p, overwrite=True, unit=args.unit), overwrite=ow)
         if args.fits is not None:
-            written.append(bp.write_fits(args.fits, overwrite=args.overwrite, unit=args.unit))
+            outputs.write(args.fits, lambda p: bp.write_fits(p, overwrite=True, unit=args.unit), overwrite=ow)
         if args.figure is not None:
-            written.append(bp.plot(args.figure, theory=theory, overwrite=args.overwrite))
-    except BaseException:
-        for p in written:
-            with contextlib.suppress(OSError):
-                os.unlink(p)
-        raise
+            outputs.write(args.figure, lambda p: bp.plot(p, theory=theory, overwrite=True), overwrite=ow)
+    written = outputs.paths
 
     kind = "polarized cross-spectra" if m2 is not None else "polarized spectra"
     what = f"{args.map} x {args.map2}" if m2 is not None else str(args.map)

@@ -154,7 +154,7 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     est = sp.PolarizedSpectrumEstimator(
         mask, binning, pol_mask=pol_mask, lmax=lmax, mask2=mask2, pol_mask2=pol_mask2, beam=beam,
         pixel_window=not args.no_pixel_window, remove_monopole_dipole=removal, purify_b=args.purify_b,
-        force=args.force,
+        sky_lmax=sky_lmax, guess_cl=spectra, force=args.force,
     )
 
     executor, workers, where_text = where
@@ -175,14 +175,16 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     if args.hits is not None:
         meta["hits_file"] = str(args.hits)
     result = dataclasses.replace(result, metadata=meta)
-    written = []
-    for what, path, overwrite in outputs:
-        if what == "table":
-            written.append(result.write_csv(path, overwrite=overwrite, unit=args.unit))
-        elif what == "JSON summary":
-            written.append(result.write_json(path, overwrite=overwrite))
-        elif what == "figure":
-            written.append(result.plot(path, overwrite=overwrite))
+    from cmbtools._core.files import OutputGroup
+
+    writers = {"table": lambda p: result.write_csv(p, overwrite=True, unit=args.unit),
+               "JSON summary": lambda p: result.write_json(p, overwrite=True),
+               "figure": lambda p: result.plot(p, overwrite=True)}
+    with OutputGroup() as group:  # all of the outputs or none
+        for what, path, overwrite in outputs:
+            if what in writers:  # no transfer table from a polarized run (an explicit --transfer-table is refused)
+                group.write(path, writers[what], overwrite=overwrite)
+    written = group.paths
 
     s = result.summary()
 
