@@ -91,7 +91,8 @@ def add_arguments(parser):
                         help="band limit of the simulated skies, whose power above the bins the estimator models "
                              "(real skies: 4 nside - 1; default: lmax)")
     parser.add_argument("--pixelise", action="store_true",
-                        help="synthesize every sky at twice the nside and average it into the pixels, as a detector does")
+                        help="average every sky over the area of each pixel, as a detector's map does (instead of the "
+                             "pixel window at the pixel centres)")
     parser.add_argument("--monopole", type=float, metavar="UK",
                         help="monopole added to every sky, uK (default 100; 0 with --keep-monopole-dipole)")
     parser.add_argument("--dipole", type=float, metavar="UK",
