@@ -61,6 +61,10 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     ``outputs``: (what, path, overwrite) of the table, the JSON summary and the figure, already checked;
     ``where``: (executor, workers, description) of the simulations.
     """
+    if getattr(args, "averaged_pixels", False):
+        from cmbtools.exceptions import InvalidInputError as _Invalid
+
+        raise _Invalid("--averaged-pixels is available for temperature maps only (not for I, Q, U maps yet).")
     import dataclasses
 
     import numpy as np

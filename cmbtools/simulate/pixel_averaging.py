@@ -39,8 +39,10 @@ def _rule(nside, order, rings_key):
     if rings_key is not None:
         occupied = np.frombuffer(rings_key, dtype=bool)
         geom = _sht.ring_geometry(nside)
-        start, count = geom["ringstart"][occupied], geom["nphi"][occupied]
-        pixels = np.concatenate([np.arange(s, s + c) for s, c in zip(start, count)]) if start.size else np.zeros(0, int)
+        start = geom["ringstart"][occupied].astype(np.int64)
+        count = geom["nphi"][occupied].astype(np.int64)
+        pixels = (np.concatenate([np.arange(s, s + c) for s, c in zip(start, count)]) if start.size
+                  else np.zeros(0, np.int64))
     owner, theta_phi, weight = pixel_quadrature(nside, pixels, order=order)
     npix = 12 * nside * nside
     target = owner if pixels is None else pixels[owner]
