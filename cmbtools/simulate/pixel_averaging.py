@@ -18,12 +18,17 @@ frame, the definition of the polarization pixel window.
 from __future__ import annotations
 
 import functools
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
 from cmbtools._core import sht as _sht
+from cmbtools._core.checks import resolve_nthreads
 
 __all__ = ["pixel_averaged_map", "averaging_order"]
+
+#: Nodes synthesized together (on one thread).
+_NODES_PER_BLOCK = 1 << 19
 
 
 def averaging_order(nside, lmax) -> int:
@@ -78,6 +83,19 @@ def pixel_averaged_map(alms, nside, lmax, *, spin=0, rings=None, nthreads=None) 
     key = None if rings is None else np.ascontiguousarray(rings, dtype=bool).tobytes()
     target, theta_phi, weight, npix = _rule(nside, averaging_order(nside, lmax), key)
     alms = np.asarray(alms, dtype=np.complex128).reshape(1 if spin == 0 else 2, -1)
-    values = _sht.synthesis_at_points(alms, spin, lmax, theta_phi, nthreads=nthreads)
+    # fixed blocks of nodes, each synthesized on one thread: the same values for any number of threads (the
+    # reproducibility contract of the simulations)
+    starts = range(0, theta_phi.shape[0], _NODES_PER_BLOCK)
+
+    def block(start):
+        return _sht.synthesis_at_points(alms, spin, lmax, theta_phi[start : start + _NODES_PER_BLOCK], nthreads=1)
+
+    workers = min(resolve_nthreads(nthreads), len(starts))
+    if workers > 1:
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            parts = list(pool.map(block, starts))
+    else:
+        parts = [block(start) for start in starts]
+    values = np.concatenate(parts, axis=1) if parts else np.zeros((alms.shape[0], 0))
     out = np.stack([np.bincount(target, weights=v * weight, minlength=npix) for v in values])
     return out[0] if spin == 0 else out
