@@ -137,19 +137,45 @@ def _raw_couplings(spectra, lmax, nthreads):
 _COEFFICIENT_BUDGET = 2 * 2**30
 
 
-def _pair_spectra(fields, pairs, lw, nthreads, rings):
-    """Cross-spectra up to ``lw`` of the named weight maps, for every pair; each map transformed once when it fits."""
+def _pair_spectra(fields, pairs, lw, nthreads):
+    """Cross-spectra up to ``lw`` of the named weight maps, for every pair; each map transformed once when it fits.
+
+    Every transform skips the rings where its own map is zero (a product of two masks is zero wherever
+    either mask is).
+    """
     names = sorted({n for p in pairs for n in p})
+    rings = {n: _sht.occupied_rings(fields[n]) for n in names}
     if 16 * _sht.alm_size(lw) * len(names) <= _COEFFICIENT_BUDGET:
-        alms = {n: _sht.map2alm(fields[n], lw, nthreads=nthreads, rings=rings) for n in names}
+        alms = {n: _sht.map2alm(fields[n], lw, nthreads=nthreads, rings=rings[n]) for n in names}
         return {p: _sht.alm2cl(alms[p[0]], alms[p[1]], lmax=lw) for p in pairs}
     out = {}
     for p in pairs:  # lean on memory: the split transforms of map_spectra, two maps at a time
         if p[0] == p[1]:
-            out[p] = _sht.map_spectra([fields[p[0]]], lw, nthreads=nthreads, rings=rings)[0]
+            out[p] = _sht.map_spectra([fields[p[0]]], lw, nthreads=nthreads, rings=rings[p[0]])[0]
         else:
-            out[p] = _sht.map_spectra([fields[p[0]], fields[p[1]]], lw, nthreads=nthreads, rings=rings)[2]
+            both = rings[p[0]] | rings[p[1]]
+            out[p] = _sht.map_spectra([fields[p[0]], fields[p[1]]], lw, nthreads=nthreads, rings=both)[2]
     return out
+
+
+def _estimator_mask_spectra(estimator, cross, need):
+    """The masks' spectra the estimator's first call computed (plain quadrature, to ``2 lmax``), or None.
+
+    ``None`` when the estimator refined its mask transforms (``n_iter > 0``), when its spectra stop
+    below ``need`` or when it does not hold them (an estimator file from before they were kept).
+    """
+    inp = getattr(estimator, "_inputs", None)
+    w11 = getattr(estimator, "_mask_cl11", None)
+    if inp is None or w11 is None or int(inp.n_iter) != 0 or w11.size < need + 1:
+        return None
+    if not cross:
+        return {("1", "1"): w11[: need + 1]}
+    if inp.mask2 is None:  # both maps under the same mask
+        return {("1", "1"): w11[: need + 1], ("2", "2"): w11[: need + 1], ("1", "2"): w11[: need + 1]}
+    w22, w12 = getattr(estimator, "_mask_cl22", None), getattr(estimator, "_mask_cl12", None)
+    if w22 is None or w12 is None:
+        return None
+    return {("1", "1"): w11[: need + 1], ("2", "2"): w22[: need + 1], ("1", "2"): w12[: need + 1]}
 
 
 def _block_sum(matrix, starts):
@@ -248,8 +274,10 @@ class GaussianCovariance:
         pairs = (("1", "1"), ("1", "1")) if not cross else (("1", "2"), ("1", "2"))
         (a, b), (c, d) = pairs
 
+        same_mask = {"1": "1", "2": "1" if w2 is w1 else "2"}  # one field (and transform) per distinct product
+
         def s_field(x, y):
-            key = "S" + "".join(sorted(x + y))
+            key = "S" + "".join(sorted(same_mask[x] + same_mask[y]))
             if key not in fields:
                 fields[key] = self._masks[x] * self._masks[y]
             return key
@@ -271,8 +299,8 @@ class GaussianCovariance:
                 for k2, f2 in parts2:
                     terms.append((k1, k2, tuple(sorted((f1, f2)))))
         wanted = sorted({t[2] for t in terms})
-        rings = _sht.occupied_rings(w1) | _sht.occupied_rings(w2)
-        spectra = _pair_spectra(fields, wanted, 2 * lmax, nthreads, rings)
+        spectra = _pair_spectra(fields, wanted, 2 * lmax, nthreads)
+        del fields
         mats = _raw_couplings([spectra[p] for p in wanted], lmax, nthreads)
         self._mats = {p: mats[i] for i, p in enumerate(wanted)}
         self._terms = terms
@@ -282,12 +310,18 @@ class GaussianCovariance:
             lsky = 4 * int(estimator.nside) - 1 if sky_lmax is None else max(lmax, int(sky_lmax))
         self._lsky = lsky
         self._sky_factors = self._factors_to(estimator, cross, beam, beam2, lsky)
-        # the spectra of the masks for the coupled signal spectra (iNKA)
-        if cross:  # one call: both masks' spectra and their cross-spectrum
+        # the spectra of the masks for the coupled signal spectra (iNKA): the estimator's own when they reach
+        # lmax + lsky (no signal model above lmax), else transformed here
+        self._mask_cl = _estimator_mask_spectra(estimator, cross, lmax + lsky)
+        if self._mask_cl is None and cross and w2 is not w1:  # one call: both masks' spectra and their cross
+            rings = _sht.occupied_rings(w1) | _sht.occupied_rings(w2)
             w11, w22, w12 = _sht.map_spectra([w1, w2], lmax + lsky, nthreads=nthreads, rings=rings)
             self._mask_cl = {("1", "1"): w11, ("2", "2"): w22, ("1", "2"): w12}
-        else:
-            self._mask_cl = {("1", "1"): _sht.map_spectra([w1], lmax + lsky, nthreads=nthreads, rings=rings)[0]}
+        elif self._mask_cl is None:
+            w11 = _sht.map_spectra([w1], lmax + lsky, nthreads=nthreads, rings=_sht.occupied_rings(w1))[0]
+            self._mask_cl = {("1", "1"): w11}
+            if cross:  # both maps under one mask
+                self._mask_cl.update({("2", "2"): w11, ("1", "2"): w11})
         self._mean_w = {k: float(np.mean(self._masks[k[0]] * self._masks[k[1]])) for k in self._mask_cl}
         # the linear operator pseudo-spectrum -> bandpowers (C_l units)
         pm, f, ainv = estimator._pair(cross)
@@ -379,6 +413,15 @@ class GaussianCovariance:
         -------
         ndarray of shape (lmax+1, lmax+1)
         """
+        cov = sum(m * (u @ u.T) for m, u in self._grouped_terms(spectrum))
+        return 0.5 * (cov + cov.T)
+
+    def _grouped_terms(self, spectrum):
+        """``(M_p, U_p)`` for every coupling matrix: the pseudo-covariance is ``sum_p M_p * (U_p U_p^T)``.
+
+        Each product of kernels adds ``u_l M_ll' u_l'`` with ``u`` the product of two amplitudes; the
+        products that share a matrix are the columns of its ``U`` (one elementwise pass per matrix).
+        """
         cl, _ = self._signal_cl(spectrum)
         lmax = self._lmax
         c = {}
@@ -393,11 +436,10 @@ class GaussianCovariance:
                 return np.sqrt(c[tuple(sorted((x, y)))])
             return np.sqrt(shapes[x])
 
-        cov = np.zeros((lmax + 1, lmax + 1))
+        columns = {}
         for k1, k2, p in self._terms:
-            u = amp(k1) * amp(k2)
-            cov += u[:, None] * self._mats[p] * u[None, :]
-        return 0.5 * (cov + cov.T)
+            columns.setdefault(p, []).append(amp(k1) * amp(k2))
+        return [(self._mats[p], np.stack(cols, axis=1)) for p, cols in columns.items()]
 
     def covariance(self, spectrum) -> "BandpowerCovariance":
         """The covariance of the bandpowers (``cl`` column, K^4) for a sky spectrum.
@@ -414,9 +456,12 @@ class GaussianCovariance:
         BandpowerCovariance
         """
         _, source = self._signal_cl(spectrum)
-        pc = self.pseudo_covariance(spectrum)
         p = self._p
-        binned = _block_sum(pc * p[:, None] * p[None, :], self._starts)
+        binned = None
+        for m, u in self._grouped_terms(spectrum):  # the bin averages of the pseudo-covariance
+            pu = p[:, None] * u
+            part = _block_sum(m * (pu @ pu.T), self._starts)
+            binned = part if binned is None else binned + part
         cov = self._ainv @ binned @ self._ainv.T
         cov = 0.5 * (cov + cov.T)
         est = self._estimator
