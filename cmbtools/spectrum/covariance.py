@@ -57,34 +57,42 @@ def _legendre_nodes(n):
     import ducc0
 
     theta = ducc0.misc.GL_thetas(n)
-    return np.cos(theta), ducc0.misc.GL_weights(n, 1) / (2.0 * math.pi)
+    return theta, ducc0.misc.GL_weights(n, 1) / (2.0 * math.pi)
 
 
-def _legendre_sum(coef, x):
-    """``sum_L coef_L P_L(x)`` by the Clenshaw recurrence."""
-    b1 = np.zeros_like(x)
-    b2 = np.zeros_like(x)
-    for ell in range(coef.size - 1, 0, -1):
-        b0 = coef[ell] + (2 * ell + 1) / (ell + 1) * x * b1 - (ell + 1) / (ell + 2) * b2
-        b2, b1 = b1, b0
-    return coef[0] + x * b1 - 0.5 * b2
+def _nodes_geometry(theta):
+    """The Gauss-Legendre nodes as rings of one pixel each (for ducc0's transforms restricted to m = 0)."""
+    n = theta.size
+    return {"theta": theta, "nphi": np.ones(n, dtype=np.uintp), "phi0": np.zeros(n),
+            "ringstart": np.arange(n, dtype=np.uintp)}
 
 
-def _legendre_project(f, x, wts, lmax):
-    """``int P_l(x) f(x) dx`` for l = 0..lmax (Gauss-Legendre nodes ``x``, weights ``wts``)."""
-    out = np.empty(lmax + 1)
-    g = f * wts
-    p0, p1 = np.ones_like(x), x.copy()
-    out[0] = g.sum()
-    if lmax >= 1:
-        out[1] = g @ p1
-    for ell in range(2, lmax + 1):
-        p0, p1 = p1, ((2 * ell - 1) * x * p1 - (ell - 1) * p0) / ell
-        out[ell] = g @ p1
-    return out
+def _y_l0(lmax):
+    """``Y_l0 / P_l = sqrt((2l+1) / (4 pi))``."""
+    return np.sqrt((2.0 * np.arange(lmax + 1) + 1.0) / (4.0 * math.pi))
 
 
-def coupled_spectrum(mask_cl, cl, lmax) -> np.ndarray:
+def _legendre_sum(coef, theta, nthreads):
+    """``sum_L coef_L P_L(cos theta)``: ducc0's synthesis restricted to m = 0 (no Python loop over L)."""
+    import ducc0
+
+    lmax = coef.size - 1
+    alm = (coef / _y_l0(lmax)).astype(np.complex128).reshape(1, -1)
+    return ducc0.sht.experimental.synthesis(alm=alm, lmax=lmax, mmax=0, spin=0, nthreads=nthreads,
+                                            **_nodes_geometry(theta))[0]
+
+
+def _legendre_project(f, theta, wts, lmax, nthreads):
+    """``int P_l(x) f(x) dx`` for l = 0..lmax on the Gauss-Legendre nodes ``cos theta`` (weights ``wts``)."""
+    import ducc0
+
+    g = (f * wts).reshape(1, -1)
+    a = ducc0.sht.experimental.adjoint_synthesis(map=g, lmax=lmax, mmax=0, spin=0, nthreads=nthreads,
+                                                 **_nodes_geometry(theta))[0]
+    return a.real / _y_l0(lmax)
+
+
+def coupled_spectrum(mask_cl, cl, lmax, *, nthreads=1) -> np.ndarray:
     """``(M C)_l`` for l = 0..lmax: the pseudo-spectrum expected from ``cl`` under a mask of spectrum ``mask_cl``.
 
     ``M_lL = (2L+1)/(4 pi) sum_L'' (2L''+1) W_L'' (l L L''; 0 0 0)^2`` (Hivon et
@@ -100,6 +108,8 @@ def coupled_spectrum(mask_cl, cl, lmax) -> np.ndarray:
         Spectrum from ell 0 (its length sets the largest multipole used).
     lmax : int
         Largest multipole of the result.
+    nthreads : int, default=1
+        Threads of the Legendre transforms (ducc0's, restricted to m = 0).
 
     Returns
     -------
@@ -108,12 +118,12 @@ def coupled_spectrum(mask_cl, cl, lmax) -> np.ndarray:
     ls = cl.size - 1
     lw = min(mask_cl.size - 1, lmax + ls)
     n = (lmax + ls + lw) // 2 + 2
-    x, wts = _legendre_nodes(n)
+    theta, wts = _legendre_nodes(n)
     ell_w = np.arange(lw + 1)
-    xi_w = _legendre_sum((2 * ell_w + 1) / (4 * math.pi) * mask_cl[: lw + 1], x)
+    xi_w = _legendre_sum((2 * ell_w + 1) / (4 * math.pi) * mask_cl[: lw + 1], theta, nthreads)
     ell_c = np.arange(ls + 1)
-    xi_c = _legendre_sum((2 * ell_c + 1) / (4 * math.pi) * cl, x)
-    return 2.0 * math.pi * _legendre_project(xi_w * xi_c, x, wts, lmax)
+    xi_c = _legendre_sum((2 * ell_c + 1) / (4 * math.pi) * cl, theta, nthreads)
+    return 2.0 * math.pi * _legendre_project(xi_w * xi_c, theta, wts, lmax, nthreads)
 
 
 # ----------------------------------------------------------------------------- the analytic covariance
@@ -427,7 +437,8 @@ class GaussianCovariance:
         c = {}
         for key, wcl in self._mask_cl.items():
             f = self._sky_factors[key][: cl.size]
-            c[key] = np.clip(coupled_spectrum(wcl, f * cl, lmax) / self._mean_w[key], 0.0, None)
+            c[key] = np.clip(coupled_spectrum(wcl, f * cl, lmax, nthreads=self._nthreads) / self._mean_w[key],
+                             0.0, None)
         shapes = {x: (None if nz is None else nz.shape_to(lmax)) for x, nz in self._noise.items()}
 
         def amp(k):
