@@ -28,7 +28,12 @@ binned coupling), so their covariance is ``R Cov R^T``.
 All the coupling matrices a covariance needs (one for an auto-spectrum without
 noise, three with noise, five for the cross-spectrum of two noisy maps) come
 from one call of ducc0's kernel, which shares the Wigner 3j symbols among
-them: the cost is about that of one or two coupling matrices.
+them: the cost is about that of one or two coupling matrices.  Each distinct
+weight map (``w_x w_y``, ``Omega w_x^2 v_x``) is transformed once, to
+``2 lmax``; the masks' own spectra (for the coupled signal spectra) are the
+ones the estimator's first call computed and kept.  The products of kernels
+that share a matrix are summed as one low-rank product, and the Legendre
+sums of the coupled spectra are ducc0's transforms restricted to ``m = 0``.
 
 The noise is described by :class:`~cmbtools.spectrum.pixel_noise.PixelNoise`;
 the result is a :class:`~cmbtools.spectrum.bandpower_covariance.BandpowerCovariance`
