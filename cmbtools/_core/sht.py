@@ -207,11 +207,16 @@ def _m_groups(lmax: int, n_m: int, budget: int | None = None):
         m0 = m1
 
 
-def _ring_groups(nside: int, n_m: int):
-    """Groups of ring indices (north rings with their southern mirrors) whose Legendre buffer fits the budget."""
+def _ring_groups(nside: int, n_m: int, pixels_too: bool = False):
+    """Groups of ring indices (north rings with their southern mirrors) whose Legendre buffer fits the budget.
+
+    ``pixels_too``: their pixels (float64) fit in the budget too (for a map made group by group).
+    """
     n_rings = 4 * int(nside) - 1
     half = (n_rings + 1) // 2  # the northern rings and the equator
     per_ring = 2 * 16 * n_m  # a ring and its mirror
+    if pixels_too:
+        per_ring = max(per_ring, 2 * 8 * 4 * int(nside))  # (at most 4 nside pixels a ring)
     step = max(1, LEG_BUFFER_BYTES // per_ring)
     for a in range(0, half, step):
         b = min(half, a + step)
@@ -240,11 +245,20 @@ class RingBlocks:
         geom = ring_geometry(self.nside)
         rings = np.asarray(rings)
         cut = np.flatnonzero(np.diff(rings) != 1) + 1
-        pieces = [self._values(int(run[0]), int(run[-1]) + 1) for run in np.split(rings, cut)]
-        out = pieces[0] if len(pieces) == 1 else np.concatenate(pieces)
         nphi = geom["nphi"][rings].astype(np.int64)
-        starts = (np.cumsum(nphi) - nphi).astype(np.uintp)
-        return out.reshape(1, -1), starts
+        starts = np.cumsum(nphi) - nphi
+        runs = np.split(rings, cut)
+        if len(runs) == 1:
+            out = self._values(int(rings[0]), int(rings[-1]) + 1)
+        else:
+            out = np.empty(int(nphi.sum()))
+            at = 0
+            for run in runs:
+                piece = self._values(int(run[0]), int(run[-1]) + 1)
+                out[at:at + piece.size] = piece
+                at += piece.size
+                del piece
+        return out.reshape(1, -1), starts.astype(np.uintp)
 
     def full(self) -> np.ndarray:
         """The whole map."""
@@ -264,7 +278,7 @@ def _adjoint_add(acc, m, nside, lmax, m0, m1, nthreads, occupied=None):
     mstart = (np.arange(m0, m1) * (2 * lmax + 1 - np.arange(m0, m1)) // 2 - start).astype(np.uintp)
     blocks = isinstance(m, RingBlocks)
     flat = None if blocks else m.reshape(1, -1)
-    for rings in _ring_groups(nside, m1):
+    for rings in _ring_groups(nside, m1, pixels_too=blocks):
         if occupied is not None:
             rings = rings[occupied[rings]]
             if rings.size == 0:
