@@ -6,6 +6,8 @@
   temporary file in the destination directory and renames it into place, so a
   process killed mid-write leaves either the old file or the new one, never a
   partial one.  Existing files are only replaced when ``overwrite=True``.
+* :class:`OutputGroup` stages the several files of one command and publishes
+  them together at the end, so a command writes all of its outputs or none.
 * :func:`sha256_file` and :func:`sha256_arrays` give the content hashes that
   output headers and caches record.
 """
@@ -29,6 +31,7 @@ __all__ = [
     "check_input_file",
     "check_output_path",
     "atomic_output",
+    "OutputGroup",
     "sha256_file",
     "sha256_arrays",
     "cache_dir",
@@ -160,18 +163,101 @@ def atomic_output(path, *, overwrite: bool = False, suffix: str | None = None):
         raise
 
 
+class OutputGroup:
+    """The outputs of one command, published together: all of them or none.
+
+    Each :meth:`write` runs a writer on a hidden temporary file beside its
+    destination (cmbtools' own temporary-name pattern, so
+    :func:`remove_stale_temporaries` cleans up after a killed process).
+    Leaving the ``with`` block normally renames every temporary file into
+    place; an exception (including ``KeyboardInterrupt``) raised anywhere in
+    the block removes them all and leaves every destination untouched.  The
+    renames themselves are a few system calls at the very end: only a process
+    killed between two of them publishes part of the group.
+
+    Examples
+    --------
+    >>> with OutputGroup() as outputs:  # doctest: +SKIP
+    ...     outputs.write("table.csv", lambda tmp: bp.write_csv(tmp, overwrite=True))
+    ...     outputs.write("figure.png", lambda tmp: bp.plot(tmp, overwrite=True))
+    >>> outputs.paths  # doctest: +SKIP
+    [PosixPath('table.csv'), PosixPath('figure.png')]
+    """
+
+    def __init__(self):
+        self._staged = []  # (temporary, final, overwrite)
+        self.paths = []  # the published destinations, in the order written
+
+    def write(self, path, writer, *, overwrite: bool = False) -> Path:
+        """Run ``writer(temporary_path)`` now; ``path`` receives the file when the group is published.
+
+        ``writer`` must write the file at the path it is given (which keeps the
+        destination's suffix and already exists, empty: writers get
+        ``overwrite=True``).  Returns the destination.
+        """
+        final = check_output_path(path, overwrite=overwrite)
+        if any(f == final for _, f, _ in self._staged):
+            raise OutputPathError(final, "is written twice by this command")
+        parent = final.parent if str(final.parent) else Path(".")
+        remove_stale_temporaries(final)
+        fd, tmp_name = tempfile.mkstemp(prefix=f".{final.name}.", suffix=f".tmp{final.suffix}", dir=parent)
+        os.close(fd)
+        tmp = Path(tmp_name)
+        self._staged.append((tmp, final, overwrite))
+        writer(tmp)
+        return final
+
+    def _discard(self):
+        for tmp, _, _ in self._staged:
+            with contextlib.suppress(FileNotFoundError):
+                tmp.unlink()
+        self._staged = []
+
+    def _publish(self):
+        for _, final, overwrite in self._staged:  # another process may have created one meanwhile
+            if final.exists() and not overwrite:
+                raise OutputExistsError(final)
+        for tmp, final, _ in self._staged:
+            with open(tmp, "rb+") as fh:
+                os.fsync(fh.fileno())
+            try:
+                mode = stat.S_IMODE(final.stat().st_mode)
+            except FileNotFoundError:
+                mode = 0o666 & ~_umask()
+            os.chmod(tmp, mode)
+        for tmp, final, _ in self._staged:
+            os.replace(tmp, final)
+            self.paths.append(final)
+        self._staged = []
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is None:
+            try:
+                self._publish()
+            except BaseException:
+                self._discard()
+                raise
+        else:
+            self._discard()
+        return False
+
+
 def remove_stale_temporaries(path) -> int:
     """Delete the temporary files :func:`atomic_output` left beside ``path`` when a writer was killed.
 
     Only names of cmbtools' own pattern for this destination are touched
-    (``.NAME.XXXXXXXX.tmpSUFFIX`` and the ``.probe`` files of
+    (``.NAME.XXXXXXXX.tmpSUFFIX``, the same with a second leading dot, and the ``.probe`` files of
     :func:`check_output_path`); returns how many were removed.
     """
     import re
 
     final = Path(path)
     parent = final.parent if str(final.parent) else Path(".")
-    pattern = re.compile(r"^\." + re.escape(final.name) + r"\.[A-Za-z0-9_]{8}\.(?:tmp.*|probe)$")
+    # a second leading dot: the temporary file of a writer that was itself writing an OutputGroup's staged file
+    pattern = re.compile(r"^\.\.?" + re.escape(final.name) + r"\.[A-Za-z0-9_]{8}\.(?:tmp.*|probe)$")
     removed = 0
     try:
         names = os.listdir(parent)

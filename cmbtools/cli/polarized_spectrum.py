@@ -34,9 +34,6 @@ def is_polarized_input(path) -> bool:
 
 def run_polarized(args, outputs_checked) -> int:
     """The polarized spectrum command (arguments already parsed; the output paths already checked)."""
-    import contextlib
-    import os
-
     import numpy as np
 
     from cmbtools import maps
@@ -127,18 +124,16 @@ def run_polarized(args, outputs_checked) -> int:
         meta.update({"map2": str(args.map2), "map2_sha256": info2.sha256})
     bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, bp.cl_err, bp.dl, bp.dl_err, bp.covariance, meta)
 
-    written = []
-    try:
-        written.append(bp.write_csv(args.output, overwrite=args.overwrite, unit=args.unit))
+    from cmbtools._core.files import OutputGroup
+
+    ow = args.overwrite
+    with OutputGroup() as outputs:  # all of the outputs or none
+        outputs.write(args.output, lambda p: bp.write_csv(p, overwrite=True, unit=args.unit), overwrite=ow)
         if args.fits is not None:
-            written.append(bp.write_fits(args.fits, overwrite=args.overwrite, unit=args.unit))
+            outputs.write(args.fits, lambda p: bp.write_fits(p, overwrite=True, unit=args.unit), overwrite=ow)
         if args.figure is not None:
-            written.append(bp.plot(args.figure, theory=theory, overwrite=args.overwrite))
-    except BaseException:
-        for p in written:
-            with contextlib.suppress(OSError):
-                os.unlink(p)
-        raise
+            outputs.write(args.figure, lambda p: bp.plot(p, theory=theory, overwrite=True), overwrite=ow)
+    written = outputs.paths
 
     kind = "polarized cross-spectra" if m2 is not None else "polarized spectra"
     what = f"{args.map} x {args.map2}" if m2 is not None else str(args.map)

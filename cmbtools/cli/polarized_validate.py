@@ -169,14 +169,16 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     if args.hits is not None:
         meta["hits_file"] = str(args.hits)
     result = dataclasses.replace(result, metadata=meta)
-    written = []
-    for what, path, overwrite in outputs:
-        if what == "table":
-            written.append(result.write_csv(path, overwrite=overwrite, unit=args.unit))
-        elif what == "JSON summary":
-            written.append(result.write_json(path, overwrite=overwrite))
-        elif what == "figure":
-            written.append(result.plot(path, overwrite=overwrite))
+    from cmbtools._core.files import OutputGroup
+
+    writers = {"table": lambda p: result.write_csv(p, overwrite=True, unit=args.unit),
+               "JSON summary": lambda p: result.write_json(p, overwrite=True),
+               "figure": lambda p: result.plot(p, overwrite=True)}
+    with OutputGroup() as group:  # all of the outputs or none
+        for what, path, overwrite in outputs:
+            if what in writers:  # no transfer table from a polarized run (an explicit --transfer-table is refused)
+                group.write(path, writers[what], overwrite=overwrite)
+    written = group.paths
 
     s = result.summary()
 

@@ -120,7 +120,7 @@ def _remove_stale_temporaries(out_dir, prefix):
     import os
     import re
 
-    pattern = re.compile(r"^\." + re.escape(prefix) + r"_\d{4,}(?:_split\d+)?\.fits\.[A-Za-z0-9_]{8}\.(?:tmp\.fits|probe)$")
+    pattern = re.compile(r"^\.\.?" + re.escape(prefix) + r"_\d{4,}(?:_split\d+)?\.fits\.[A-Za-z0-9_]{8}\.(?:tmp\.fits.*|probe)$")
     for name in os.listdir(out_dir):
         if pattern.match(name):
             with contextlib.suppress(OSError):
@@ -128,9 +128,16 @@ def _remove_stale_temporaries(out_dir, prefix):
 
 
 def run(args) -> int:
+    from cmbtools._core.files import OutputGroup
+
     created = []
+    printed = []  # the "wrote ..." lines, printed once every file is in place
     try:
-        return _run(args, created)
+        with OutputGroup() as group:  # every map and table of the run, or none of them
+            status = _run(args, created, group, printed)
+        for line in printed:
+            print(line)
+        return status
     except BaseException:
         for d in created:  # a directory this run made and left empty goes away again
             with contextlib.suppress(OSError):
@@ -138,7 +145,7 @@ def run(args) -> int:
         raise
 
 
-def _run(args, created) -> int:
+def _run(args, created, group, printed) -> int:
     import math
     import os
     import re
@@ -194,8 +201,8 @@ def _run(args, created) -> int:
             outputs = [[out_dir / f"{n}_split{k}.fits" for k in range(1, args.splits + 1)] for n in names]
         else:
             outputs = [[out_dir / f"{n}.fits"] for n in names]
-        for group in outputs:
-            for p in group:
+        for paths in outputs:
+            for p in paths:
                 check_output_path(p, overwrite=args.overwrite)
         _remove_stale_temporaries(out_dir, args.prefix)
     if args.write_spectrum is not None:
@@ -220,7 +227,7 @@ def _run(args, created) -> int:
     if args.tensor_ratio and not args.polarized:
         raise InvalidInputError("--tensor-ratio needs --polarized")
     if args.polarized:
-        return _run_polarized(args, simulate, nside, lmax, seed, noise, outputs)
+        return _run_polarized(args, simulate, nside, lmax, seed, noise, outputs, group, printed)
     if args.spectrum is not None:
         cl = simulate.read_spectrum_table(args.spectrum)
         if cl.size < lmax + 1:
@@ -234,17 +241,17 @@ def _run(args, created) -> int:
         source = "built-in fiducial spectrum (Planck18 cosmology, default extras)"
     cl = cl[: lmax + 1]
     if args.write_spectrum is not None:
-        simulate.write_spectrum_table(args.write_spectrum, cl, overwrite=args.overwrite,
-                                      header={"source": source})
-        print(f"wrote {args.write_spectrum} (ell 0..{lmax})")
+        group.write(args.write_spectrum, lambda p: simulate.write_spectrum_table(
+            p, cl, overwrite=True, header={"source": source}), overwrite=args.overwrite)
+        printed.append(f"wrote {args.write_spectrum} (ell 0..{lmax})")
     if args.write_noise_spectrum is not None:
         nl = simulate.noise_spectrum(noise, lmax, nside)
         knee = f", knee {args.noise_knee:g}, slope {args.noise_slope:g}" if args.noise_knee else ""
-        simulate.write_spectrum_table(args.write_noise_spectrum, nl, overwrite=args.overwrite,
-                                      header={"source": f"noise model: {args.noise_depth:g} uK-arcmin{knee}"
-                                              + (f", hits {args.hits}" if args.hits else ""),
-                                              "meaning": "noise spectrum N_l as observed (not beam-deconvolved)"})
-        print(f"wrote {args.write_noise_spectrum} (noise spectrum, ell 0..{lmax})")
+        group.write(args.write_noise_spectrum, lambda p: simulate.write_spectrum_table(
+            p, nl, overwrite=True,
+            header={"source": f"noise model: {args.noise_depth:g} uK-arcmin{knee}" + (f", hits {args.hits}" if args.hits else ""),
+                    "meaning": "noise spectrum N_l as observed (not beam-deconvolved)"}), overwrite=args.overwrite)
+        printed.append(f"wrote {args.write_noise_spectrum} (noise spectrum, ell 0..{lmax})")
     if args.sims == 0:
         return 0
 
@@ -270,7 +277,7 @@ def _run(args, created) -> int:
           f"noise: {'none' if noise is None else f'{args.noise_depth:g} uK-arcmin' + (' with hits' if noise.hits is not None else '') + (f', knee {args.noise_knee:g}, slope {args.noise_slope:g}' if args.noise_knee else '')}")
     if args.splits:
         print(f"  {args.splits} splits per simulation: the same sky, independent noise in each")
-    for i, group in zip(range(args.first_index, args.first_index + args.sims), outputs):
+    for i, paths in zip(range(args.first_index, args.first_index + args.sims), outputs):
         rng = simulate.simulation_rng(seed, i)
         with warnings.catch_warnings():
             if args.force:  # the estimate above covers every map: warn once, not once per map
@@ -279,18 +286,18 @@ def _run(args, created) -> int:
                                         monopole=monopole, dipole=dipole, rng=rng, nthreads=nthreads, force=args.force)
             # split k's noise is the k-th draw after the sky: split 1 is the map a run without --splits writes
             split_maps = []
-            for _path in group:
+            for _path in paths:
                 m = sky
                 if noise is not None:
                     m = sky + simulate.noise_map(noise, nside, rng=rng, nthreads=nthreads, force=args.force)
                 split_maps.append(m)
-        for k, (path, m) in enumerate(zip(group, split_maps), start=1):
+        for k, (path, m) in enumerate(zip(paths, split_maps), start=1):
             _write_one(path, m, i, k if args.splits else None, args, seed, lmax, beam_text, noise, write_sky_map,
-                       missing_pixels)
+                       missing_pixels, group, printed)
     return 0
 
 
-def _write_one(path, m, i, split, args, seed, lmax, beam_text, noise, write_sky_map, missing_pixels):
+def _write_one(path, m, i, split, args, seed, lmax, beam_text, noise, write_sky_map, missing_pixels, group, printed):
     import math
 
     import numpy as np
@@ -305,15 +312,17 @@ def _write_one(path, m, i, split, args, seed, lmax, beam_text, noise, write_sky_
     ]
     if split is not None:
         header.append(("CMBSPLIT", split, "split number: same sky, independent noise"))
-    write_sky_map(path, m, coordinates=args.coord, overwrite=args.overwrite, header=header,
-              dtype="float32" if args.float32 else None, observed_only=noise is not None and noise.hits is not None)
+    group.write(path, lambda p: write_sky_map(p, m, coordinates=args.coord, overwrite=True, header=header,
+                                              dtype="float32" if args.float32 else None,
+                                              observed_only=noise is not None and noise.hits is not None),
+                overwrite=args.overwrite)
     good = m[~missing_pixels(m)]  # the observed pixels
     peak = float(np.max(np.abs(good), initial=0.0))
     rms = peak * math.sqrt(float(np.mean((good / peak) ** 2))) if peak > 0 else 0.0  # no overflow in m**2
-    print(f"wrote {path}  (rms {rms * 1e6:.1f} uK)")
+    printed.append(f"wrote {path}  (rms {rms * 1e6:.1f} uK)")
 
 
-def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs) -> int:
+def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs, group, printed) -> int:
     """The --polarized branch: I, Q, U maps from TT, EE, BB, TE (same seeds, beams, noise and splits)."""
     import warnings
 
@@ -338,14 +347,16 @@ def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs) -> int:
         source = f"built-in fiducial spectra (Planck18 cosmology, default extras, r = {args.tensor_ratio:g})"
     spectra = simulate.check_spectra(spectra, lmax)
     if args.write_spectrum is not None:
-        simulate.write_spectrum_table(args.write_spectrum, spectra, overwrite=args.overwrite, header={"source": source})
-        print(f"wrote {args.write_spectrum} (TT, EE, BB, TE; ell 0..{lmax})")
+        group.write(args.write_spectrum, lambda p: simulate.write_spectrum_table(
+            p, spectra, overwrite=True, header={"source": source}), overwrite=args.overwrite)
+        printed.append(f"wrote {args.write_spectrum} (TT, EE, BB, TE; ell 0..{lmax})")
     if args.write_noise_spectrum is not None:
-        simulate.write_spectrum_table(args.write_noise_spectrum, simulate.polarized_noise_spectra(noise, lmax, nside),
-                                      overwrite=args.overwrite,
-                                      header={"source": f"noise model: {args.noise_depth:g} uK-arcmin",
-                                              "meaning": "noise spectra as observed (not beam-deconvolved)"})
-        print(f"wrote {args.write_noise_spectrum} (noise spectra, ell 0..{lmax})")
+        noise_spectra = simulate.polarized_noise_spectra(noise, lmax, nside)
+        group.write(args.write_noise_spectrum, lambda p: simulate.write_spectrum_table(
+            p, noise_spectra, overwrite=True, header={"source": f"noise model: {args.noise_depth:g} uK-arcmin",
+                                                      "meaning": "noise spectra as observed (not beam-deconvolved)"}),
+            overwrite=args.overwrite)
+        printed.append(f"wrote {args.write_noise_spectrum} (noise spectra, ell 0..{lmax})")
     if args.sims == 0:
         return 0
     if args.beam_fwhm is not None:
@@ -362,7 +373,7 @@ def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs) -> int:
         dipole = simulate.Dipole(amp * 1e-6, lon, lat)
     nthreads = args.threads or None
     print(f"simulating {args.sims} I, Q, U map(s): nside {nside}, lmax {lmax}, seed {seed}, spectra: {source}")
-    for i, group in zip(range(args.first_index, args.first_index + args.sims), outputs):
+    for i, paths in zip(range(args.first_index, args.first_index + args.sims), outputs):
         rng = simulate.simulation_rng(seed, i)
         with warnings.catch_warnings():
             if args.force:
@@ -371,13 +382,13 @@ def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs) -> int:
                                             pixel_window=not args.no_pixel_window, monopole=args.monopole_uk * 1e-6,
                                             dipole=dipole, rng=rng, nthreads=nthreads, force=args.force)
             split_maps = []
-            for _path in group:
+            for _path in paths:
                 m = sky
                 if noise is not None:
                     m = sky + simulate.iqu_noise_map(noise, nside, rng=rng, nthreads=nthreads, force=args.force)
                     m[missing_pixels(m)] = UNSEEN
                 split_maps.append(m)
-        for k, (path, m) in enumerate(zip(group, split_maps), start=1):
+        for k, (path, m) in enumerate(zip(paths, split_maps), start=1):
             header = [
                 ("CMBSEED", seed, "master seed of the simulation set"),
                 ("CMBSIMID", i, "index of this simulation in the set"),
@@ -388,10 +399,11 @@ def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs) -> int:
             ]
             if args.splits:
                 header.append(("CMBSPLIT", k, "split number: same sky, independent noise"))
-            write_iqu(path, m, coordinates=args.coord, overwrite=args.overwrite, header=header,
-                      dtype="float32" if args.float32 else None,
-                      observed_only=noise is not None and noise.hits is not None)
+            group.write(path, lambda p: write_iqu(p, m, coordinates=args.coord, overwrite=True, header=header,
+                                                  dtype="float32" if args.float32 else None,
+                                                  observed_only=noise is not None and noise.hits is not None),
+                        overwrite=args.overwrite)
             good = m[:, ~missing_pixels(m[0])]
             rms = [float(np.sqrt(np.mean(x**2))) * 1e6 if x.size else 0.0 for x in good]
-            print(f"wrote {path}  (rms I {rms[0]:.1f} uK, Q {rms[1]:.2f} uK, U {rms[2]:.2f} uK)")
+            printed.append(f"wrote {path}  (rms I {rms[0]:.1f} uK, Q {rms[1]:.2f} uK, U {rms[2]:.2f} uK)")
     return 0

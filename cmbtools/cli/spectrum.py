@@ -121,7 +121,6 @@ def _file_identity(path):
 
 
 def run(args) -> int:
-    import contextlib
     import dataclasses
     import os
     from pathlib import Path
@@ -316,14 +315,16 @@ def run(args) -> int:
         meta["theory_file"] = str(args.theory)
     bp = bp.with_metadata(**meta)
 
-    # 4. outputs: all of them or none (a failure removes the ones this run already wrote)
-    written = []
-    try:
-        written.append(bp.write_csv(args.output, overwrite=args.overwrite, unit=args.unit))
+    # 4. outputs: all of them or none (staged beside their destinations, published together at the end)
+    from cmbtools._core.files import OutputGroup
+
+    ow = args.overwrite
+    with OutputGroup() as outputs:
+        outputs.write(args.output, lambda p: bp.write_csv(p, overwrite=True, unit=args.unit), overwrite=ow)
         if args.fits is not None:
-            written.append(bp.write_fits(args.fits, overwrite=args.overwrite, unit=args.unit))
+            outputs.write(args.fits, lambda p: bp.write_fits(p, overwrite=True, unit=args.unit), overwrite=ow)
         if args.figure is not None:
-            written.append(bp.plot(args.figure, theory_cl=theory, overwrite=args.overwrite))
+            outputs.write(args.figure, lambda p: bp.plot(p, theory_cl=theory, overwrite=True), overwrite=ow)
         if args.covariance is not None:
             if covariance is None:
                 from cmbtools.spectrum import BandpowerCovariance
@@ -333,15 +334,12 @@ def run(args) -> int:
             if covariance.windows is None:
                 windows = est.cross_bandpower_windows if m2 is not None else est.bandpower_windows
                 covariance = dataclasses.replace(covariance, windows=windows)
-            written.append(covariance.write(args.covariance, overwrite=args.overwrite))
+            outputs.write(args.covariance, lambda p: covariance.write(p, overwrite=True), overwrite=ow)
         if args.write_noise_spectrum is not None:
             table = noise_bias_table(est, measured, raw, noise_kind, args)
-            written.append(table.write_csv(args.write_noise_spectrum, overwrite=args.overwrite, unit=args.unit))
-    except BaseException:
-        for p in written:
-            with contextlib.suppress(OSError):
-                os.unlink(p)
-        raise
+            outputs.write(args.write_noise_spectrum, lambda p: table.write_csv(p, overwrite=True, unit=args.unit),
+                          overwrite=ow)
+    written = outputs.paths
 
     kind = "cross-spectrum" if m2 is not None else "auto-spectrum"
     what = f"{args.map} x {args.map2}" if m2 is not None else str(args.map)

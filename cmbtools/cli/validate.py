@@ -356,24 +356,18 @@ def run(args) -> int:
     import dataclasses
 
     result = dataclasses.replace(result, metadata=meta)
-    written = []
-    for what, path, overwrite in outputs:
-        if what == "table":
-            written.append(result.write_csv(path, overwrite=overwrite, unit=args.unit))
-        elif what == "JSON summary":
-            written.append(result.write_json(path, overwrite=overwrite))
-        elif what == "transfer table":
-            measured = sp.BandpowerTransfer.from_validation(result)
-            if transfer is not None:  # the whole F_b of the pipeline: what is left times what was divided out
-                measured = dataclasses.replace(
-                    measured, transfer=measured.transfer * transfer.transfer,
-                    transfer_error=measured.transfer_error * transfer.transfer,
-                    metadata={**measured.metadata, "measured_by": "Monte Carlo validation (mean / expected per bin, "
-                              f"with {args.transfer} divided out and multiplied back)"})
-            written.append(measured.write_csv(path, overwrite=overwrite))
-        else:
-            written.append(result.plot(path, overwrite=overwrite))
+    def transfer_table(p):
+        measured = sp.BandpowerTransfer.from_validation(result)
+        if transfer is not None:  # the whole F_b of the pipeline: what is left times what was divided out
+            measured = dataclasses.replace(
+                measured, transfer=measured.transfer * transfer.transfer,
+                transfer_error=measured.transfer_error * transfer.transfer,
+                metadata={**measured.metadata, "measured_by": "Monte Carlo validation (mean / expected per bin, "
+                          f"with {args.transfer} divided out and multiplied back)"})
+        return measured.write_csv(p, overwrite=True)
+
     # the simulated covariance of the bandpowers, usable by `cmbtools spectrum --covariance-from`
+    from cmbtools._core.files import OutputGroup
     from cmbtools.spectrum.bandpower_covariance import simulated_covariance
 
     windows = est.cross_bandpower_windows if cross else est.bandpower_windows
@@ -383,7 +377,15 @@ def run(args) -> int:
                   "estimator_key": meta.get("estimator_key", ""),
                   **({} if transfer is None else {"bandpower_transfer_key": transfer.key,
                                                   "bandpower_transfer": f"divided out ({args.transfer})"})})
-    written.append(simulated.write(run_dir / "covariance.npz", overwrite=True))
+    writers = {"table": lambda p: result.write_csv(p, overwrite=True, unit=args.unit),
+               "JSON summary": lambda p: result.write_json(p, overwrite=True),
+               "transfer table": transfer_table,
+               "figure": lambda p: result.plot(p, overwrite=True)}
+    with OutputGroup() as group:  # all of the outputs or none
+        for what, path, overwrite in outputs:
+            group.write(path, writers[what], overwrite=overwrite)
+        group.write(run_dir / "covariance.npz", lambda p: simulated.write(p, overwrite=True), overwrite=True)
+    written = group.paths
 
     s = result.summary()
     # a null run (zero spectrum, no noise) has no scatter: its ratios are not numbers (None in the summary)

@@ -247,6 +247,26 @@ def _local_rule(kind: str, nside: int, order: int, pole_depth: int):
 # --------------------------------------------------------------------------- pair histogram
 
 
+def centred_chords(vectors, pair_i, pair_j, scale):
+    """``(r, c)``: node vectors minus their pixel's mean, shape (B, K, 3), and ``scale |r_i - r_j|`` per pair, (B, P).
+
+    The chords of a pixel's node pairs from the Gram matrix of the centred vectors (the centring keeps the
+    differences of nearly equal unit vectors accurate).
+    """
+    r = vectors - vectors.mean(axis=1, keepdims=True)
+    k = r.shape[1]
+    gram = np.matmul(r, r.transpose(0, 2, 1)).reshape(r.shape[0], k * k)
+    sq = np.einsum("bkc,bkc->bk", r, r)
+    c = gram[:, pair_i * k + pair_j]  # |r_i - r_j|^2 = |r_i|^2 + |r_j|^2 - 2 r_i.r_j
+    c *= -2.0
+    c += sq[:, pair_i]
+    c += sq[:, pair_j]
+    np.maximum(c, 0.0, out=c)
+    np.sqrt(c, out=c)
+    c *= scale
+    return r, c
+
+
 def _tally_block(vectors, pair_i, pair_j, pair_weight, scale):
     """Cloud-in-cell histogram of scaled chords of node pairs i < j for a block of pixels.
 
@@ -266,17 +286,7 @@ def _tally_block(vectors, pair_i, pair_j, pair_weight, scale):
     ndarray
         ``hist[k]``: the weight assigned to chord ``k / scale``.
     """
-    r = vectors - vectors.mean(axis=1, keepdims=True)
-    k = r.shape[1]
-    gram = np.matmul(r, r.transpose(0, 2, 1)).reshape(r.shape[0], k * k)
-    sq = np.einsum("bkc,bkc->bk", r, r)
-    c = gram[:, pair_i * k + pair_j]  # |r_i - r_j|^2 = |r_i|^2 + |r_j|^2 - 2 r_i.r_j
-    c *= -2.0
-    c += sq[:, pair_i]
-    c += sq[:, pair_j]
-    np.maximum(c, 0.0, out=c)
-    np.sqrt(c, out=c)
-    c *= scale
+    _, c = centred_chords(vectors, pair_i, pair_j, scale)
     idx = c.astype(np.intp).ravel()
     c = c.ravel()
     c -= idx  # fractional position inside the bin

@@ -72,17 +72,8 @@ def _local_frames(v):
 
 def _tally_block_spin2(vectors, pair_i, pair_j, pair_weight, scale):
     """Chord histograms of node pairs: plain weights and weights times cos(2 chi) (see the module notes)."""
-    r = vectors - vectors.mean(axis=1, keepdims=True)
+    r, c = _pixwin.centred_chords(vectors, pair_i, pair_j, scale)
     k = r.shape[1]
-    gram = np.matmul(r, r.transpose(0, 2, 1)).reshape(r.shape[0], k * k)
-    sq = np.einsum("bkc,bkc->bk", r, r)
-    c = gram[:, pair_i * k + pair_j]
-    c *= -2.0
-    c += sq[:, pair_i]
-    c += sq[:, pair_j]
-    np.maximum(c, 0.0, out=c)
-    np.sqrt(c, out=c)
-    c *= scale
     # frames: (n_j - n_i) . e_i gives the direction from n_i towards n_j in n_i's frame
     e_t, e_p = _local_frames(vectors)
     dt = np.matmul(e_t, r.transpose(0, 2, 1))  # [b, i, j] = e_theta_i . r_j
