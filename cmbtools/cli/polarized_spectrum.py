@@ -46,7 +46,8 @@ def run_polarized(args, outputs_checked) -> int:
     from cmbtools.spectrum.one_call import drop_missing_pixels
 
     for flag, given in (("--noise-spectrum", args.noise_spectrum), ("--operator-cache", args.operator_cache),
-                        ("--fast-coupling", args.fast_coupling), ("--write-noise-spectrum", args.write_noise_spectrum)):
+                        ("--fast-coupling", args.fast_coupling), ("--write-noise-spectrum", args.write_noise_spectrum),
+                        ("--template", getattr(args, "template", None))):
         if given:
             raise InvalidInputError(f"{flag} applies to temperature maps only; MAP holds I, Q, U "
                                     "(for the noise bias of I, Q, U maps use --noise-maps or --half-difference).")
@@ -109,9 +110,14 @@ def run_polarized(args, outputs_checked) -> int:
         if n.shape != m1.shape:
             raise InvalidInputError(f"The noise maps must be I, Q, U maps of nside {nside} like MAP.")
 
+    sky_lmax = lmax if args.sky_lmax is None else args.sky_lmax
+    if sky_lmax < lmax or sky_lmax > 8 * nside:
+        raise InvalidInputError(f"--sky-lmax must be in [{lmax}, {8 * nside}] (lmax to 8 nside). Got {sky_lmax} instead.")
     est = sp.PolarizedSpectrumEstimator(
         w1, binning, pol_mask=p1, lmax=lmax, mask2=w2, pol_mask2=p2, beam=beam1, beam2=beam2,
         pixel_window=not args.no_pixel_window, remove_monopole_dipole=not args.keep_monopole_dipole,
+        sky_lmax=sky_lmax, guess_cl=theory if theory is not None and theory["TT"].size > sky_lmax else None,
+        correct_deprojection_bias=not args.no_deprojection_correction,
         purify_b=args.purify_b, nthreads=args.threads or None,
     )
     bp = est.estimate(m1, m2, noise_maps=noise_maps)

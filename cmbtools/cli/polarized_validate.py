@@ -148,7 +148,7 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     est = sp.PolarizedSpectrumEstimator(
         mask, binning, pol_mask=pol_mask, lmax=lmax, mask2=mask2, pol_mask2=pol_mask2, beam=beam,
         pixel_window=not args.no_pixel_window, remove_monopole_dipole=removal, purify_b=args.purify_b,
-        force=args.force,
+        sky_lmax=sky_lmax, guess_cl=spectra, force=args.force,
     )
 
     executor, workers, where_text = where

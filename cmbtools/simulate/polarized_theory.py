@@ -279,6 +279,60 @@ def _entry(cosmo, extras):
     return _fiducial._model_for(cosmo, extras)
 
 
+def _scalar_disk_key(entry):
+    """The disk-cache key of the scalar polarized spectra: the temperature model's key and this module's source."""
+    from pathlib import Path
+
+    from cmbtools._core import files as _io
+
+    return _io.sha256_arrays("fiducial_polarized_dl", entry["disk_key"], Path(__file__).read_bytes().decode(
+        "utf-8", "replace"))
+
+
+def _scalar_cache_path(key, l_calc):
+    from cmbtools._core import files as _io
+
+    return _io.cache_dir() / f"fiducial_pol_dl_{key[:24]}_lmax{int(l_calc)}.npz"
+
+
+def _read_scalar_cache(entry, l_calc):
+    """The scalar D^TT, D^EE, D^TE to ``l_calc`` from the disk cache (same model and code), or None."""
+    from cmbtools._core import files as _io
+
+    key = _scalar_disk_key(entry)
+    try:
+        path = _scalar_cache_path(key, l_calc)
+        if not path.exists():
+            return None
+        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as data:
+            out = {k: np.array(data[k], dtype=np.float64) for k in ("TT", "EE", "TE")}
+            ok = (str(data["model_sha256"]) == key
+                  and str(data["checksum_sha256"]) == _io.sha256_arrays(out["TT"], out["EE"], out["TE"]))
+    except Exception:  # an unreadable or foreign file: computed again (and rewritten)
+        return None
+    if not ok or any(v.size != l_calc + 1 for v in out.values()):
+        return None
+    return out
+
+
+def _write_scalar_cache(entry, scalar):
+    import warnings
+
+    from cmbtools._core import files as _io
+    from cmbtools.exceptions import CmbtoolsWarning
+
+    key = _scalar_disk_key(entry)
+    arrays = {k: np.asarray(scalar[k], dtype=np.float64) for k in ("TT", "EE", "TE")}
+    try:
+        with _io.atomic_output(_scalar_cache_path(key, arrays["TT"].size - 1), overwrite=True) as tmp:
+            with open(tmp, "wb") as fh:
+                np.savez(fh, **arrays, model_sha256=np.str_(key),
+                         checksum_sha256=np.str_(_io.sha256_arrays(arrays["TT"], arrays["EE"], arrays["TE"])))
+    except OSError as exc:
+        warnings.warn(f"could not write the polarized fiducial-spectrum cache ({exc}); the result is not cached.",
+                      CmbtoolsWarning, stacklevel=3)
+
+
 def fiducial_spectra(lmax, *, cosmo=None, extras=None, tensor_ratio=0.0, lensing_bb=False) -> dict:
     """The built-in polarized fiducial spectra C_l in K^2: TT, EE, BB, TE (and zero TB, EB).
 
@@ -313,7 +367,9 @@ def fiducial_spectra(lmax, *, cosmo=None, extras=None, tensor_ratio=0.0, lensing
     Notes
     -----
     The first call for a cosmology takes some seconds; results are kept in
-    memory per (cosmology, extras, r).
+    memory per (cosmology, extras, r), and the scalar spectra also on disk in
+    ``cmbtools._core.files.cache_dir()`` (``fiducial_pol_dl_<hash>_lmax<L>.npz``, the hash covering the
+    temperature model's key and the source of this module).
     """
     lmax = check_lmax(lmax)
     if lmax > _fiducial.FIDUCIAL_LMAX_LIMIT:
@@ -330,16 +386,20 @@ def fiducial_spectra(lmax, *, cosmo=None, extras=None, tensor_ratio=0.0, lensing
         lens_amp = check_positive(lensing_bb, "lensing_bb", allow_zero=True)
     cosmo = resolve_cosmology(cosmo)
     extras = resolve_extras(extras)
-    entry = _entry(cosmo, extras)
+    entry = _fiducial._model_for(cosmo, extras, build=False)  # (built only if the spectra are not cached)
     l_calc = max(2500, lmax)
     scalar = entry.setdefault("polarized", {}).get(l_calc)
     if scalar is None:
         bigger = [v for key, v in entry["polarized"].items() if key >= l_calc]
-        scalar = bigger[0] if bigger else _scalar_dl(entry["model"], l_calc)
+        scalar = bigger[0] if bigger else _read_scalar_cache(entry, l_calc)
+        if scalar is None:
+            scalar = _scalar_dl(_entry(cosmo, extras)["model"], l_calc)
+            _write_scalar_cache(entry, scalar)
         entry["polarized"][l_calc] = scalar
     tensors = entry.setdefault("tensor_bb", {})
     if r not in tensors:
-        tensors[r] = _tensor_bb_dl(entry["model"], _TENSOR_LMAX, r)
+        tensors[r] = np.zeros(_TENSOR_LMAX + 1) if r == 0.0 else _tensor_bb_dl(_entry(cosmo, extras)["model"],
+                                                                              _TENSOR_LMAX, r)
     ell = np.arange(lmax + 1, dtype=float)
     to_cl = np.zeros(lmax + 1)
     to_cl[2:] = 2.0 * math.pi / (ell[2:] * (ell[2:] + 1.0))

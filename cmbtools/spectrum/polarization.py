@@ -25,7 +25,7 @@ import numpy as np
 from cmbtools._core import files as _io
 from cmbtools._core import sht as _sht
 from cmbtools._core.checks import (
-    as_map, check_cl, check_lmax, check_mask, check_positive, check_same_nside, missing_pixels,
+    as_map, check_cl, check_int, check_lmax, check_mask, check_positive, check_same_nside, missing_pixels,
     nside_from_npix, resolve_nthreads,
 )
 from cmbtools._version import __version__
@@ -38,10 +38,13 @@ from cmbtools.spectrum.polarized_covariance import covariance_requests as _covar
 from cmbtools.spectrum.polarized_covariance import pseudo_covariance as _pseudo_cov
 from cmbtools.spectrum.errors import _reduce_rows
 from cmbtools.spectrum.map_preparation import _LARGEST_MAP_VALUE
+from cmbtools.spectrum.polarized_corrections import binned_columns
 from cmbtools.spectrum.polarized_operator import (
     _COMPONENTS_AUTO, _COMPONENTS_CROSS, _FIELD, _SKY, _PolarizedOperator, _freeze,
 )
-from cmbtools.spectrum.polarized_settings import _check_memory, _pixel_windows, _pol_beam_array, _transfers
+from cmbtools.spectrum.polarized_settings import (
+    _check_memory, _guess_spectra, _pixel_windows, _pol_beam_array, _sky_factors, _transfers,
+)
 from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, _beam_array
 
 __all__ = ["PolarizedSpectrumEstimator"]
@@ -75,7 +78,21 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         Transfer function ``T_l`` of the power spectra: one table for all six, or a dict keyed by spectrum
         ('TT', 'TE', 'TB', 'EE', 'EB', 'BB'; missing keys mean 1).
     remove_monopole_dipole : bool, default=True
-        Fit and remove the monopole and dipole of the temperature map on its masked sky.
+        Fit and remove the monopole and dipole of the temperature map on its masked sky.  Q and U get no
+        removal: a spin-2 field has no monopole or dipole (E and B start at ell = 2).
+    guess_cl : dict, optional
+        Guess of the sky spectra (K^2, from ell 0, to ``sky_lmax``) under the keys 'TT', 'TE', 'TB', 'EE',
+        'EB', 'BB' (missing keys are zero) for the corrections below; default: the built-in polarized
+        fiducial spectra with the lensing-like B modes.  Only each spectrum's shape matters (the corrections
+        are exact for skies whose spectra are the guesses times one constant per spectrum), and the bins'
+        model follows that shape inside every bin where it keeps one sign.
+    sky_lmax : int, optional
+        Band limit of the sky (default: lmax).  The sky's power from the last bin up to ``sky_lmax`` leaks
+        into the bins through the mask; it is modelled from ``guess_cl`` (the couplings of the columns above
+        the bins, a rectangular kernel above lmax), as in the temperature estimator; real skies: ``4 nside - 1``.
+    correct_deprojection_bias : bool, default=True
+        Correct the bias that removing the monopole and dipole of I leaves in TT, TE and TB (Elsner, Leistedt &
+        Peiris 2016, MNRAS 456, 2095; see :mod:`cmbtools.spectrum.polarized_corrections`), from ``guess_cl``.
     purify_b : bool, default=False
         Measure B with the pure-B estimator (Smith 2006): no E-to-B leakage from the mask, at the price of
         one spin-1 and one spin-0 transform more per map.  Accurate up to ``lmax = 2 nside``; above, the
@@ -113,6 +130,11 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
     reported error within 0.93-1.06 for TE, TB, EE, EB, BB with and without purification; TT's top bin
     near lmax = 2 nside and its first bin above ell = 10 (after the monopole/dipole removal) are 10 and 8 %
     off.
+
+    Corrections (:mod:`cmbtools.spectrum.polarized_corrections`): the monopole/dipole removal's bias of TT,
+    TE, TB and the power above the bins, as one factor per bin on the rows of each spectrum's coupled system,
+    computed from the guess spectra; :meth:`expected_bandpowers` is then the bandpower windows applied inside
+    the bins (exact for skies of the guesses' shapes).
     """
 
     def __init__(
@@ -131,6 +153,9 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         pixel_window=True,
         transfer=None,
         remove_monopole_dipole=True,
+        guess_cl=None,
+        sky_lmax=None,
+        correct_deprojection_bias=True,
         purify_b=False,
         nthreads=None,
         max_condition_number=MAX_CONDITION_NUMBER,
@@ -190,6 +215,25 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
             bp2, d_bp2 = bp1, d_bp1
         pt, pp, d_pw = _pixel_windows(pixel_window, nside, lmax, nthreads_now)
         tr, d_tr = _transfers(transfer, lmax)
+        if not isinstance(correct_deprojection_bias, (bool, np.bool_)):
+            raise InvalidInputError(
+                f"The 'correct_deprojection_bias' parameter must be True or False. Got {correct_deprojection_bias!r} "
+                "instead."
+            )
+        sky_lmax = lmax if sky_lmax is None else check_int(sky_lmax, "sky_lmax", minimum=lmax, maximum=8 * nside)
+        needs = (remove_monopole_dipole and correct_deprojection_bias) or sky_lmax > binning.lmax
+        guess, d_guess = _guess_spectra(guess_cl, sky_lmax, needs)
+        if guess is not None and sky_lmax > lmax:
+            sky_factors = _sky_factors(
+                {"t1": beam, "p1": beam if pol_beam is None else pol_beam,
+                 "t2": beam if beam2 is None else beam2,
+                 "p2": ((beam if pol_beam is None else pol_beam) if beam2 is None and pol_beam2 is None
+                        else (beam2 if pol_beam2 is None else pol_beam2))},
+                pixel_window, nside, sky_lmax, nthreads_now,
+            )
+            sky_transfer = {k: np.concatenate([v, np.full(sky_lmax - lmax, v[-1])]) for k, v in tr.items()}
+        else:
+            sky_factors = sky_transfer = None
 
         masks = {"t1": t1, "p1": p1, "t2": t2, "p2": p2}
         unique, key_of = [], {}
@@ -217,6 +261,14 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
             "t1": _freeze(bt1 * pt), "p1": _freeze(bp1 * pp), "t2": _freeze(bt2 * pt), "p2": _freeze(bp2 * pp)
         })
         self._set("_transfer", {k: _freeze(v) for k, v in tr.items()})
+        self._set("sky_lmax", int(sky_lmax))
+        self._set("correct_deprojection_bias", bool(correct_deprojection_bias))
+        self._set("_guess", None if guess is None else {k: _freeze(v) for k, v in guess.items()})
+        self.descriptions["guess_cl"] = d_guess
+        if guess is not None:
+            self._set("_sky_factors", {k: _freeze(v) for k, v in (sky_factors or {
+                "t1": bt1 * pt, "p1": bp1 * pp, "t2": bt2 * pt, "p2": bp2 * pp}).items()})
+            self._set("_sky_transfer", {k: _freeze(v) for k, v in (sky_transfer or tr).items()})
         self._set("_max_cond", max_cond)
         self._set("_nthreads", nthreads)
         self._set("_cache", {})
@@ -529,6 +581,11 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
     def expected_bandpowers(self, spectra, *, cross=False) -> dict:
         """What :meth:`estimate` returns on average for a sky with the given spectra (``cl`` column, K^2).
 
+        With the corrections (a guess; see the class notes) this is the bandpower windows applied to the
+        spectra inside the bins, scaled by each bin's correction factor: exact for spectra of the guesses'
+        shapes, whose power above the bins and removal bias the corrections model.  Without them, the power
+        up to lmax is coupled in as the mask does.
+
         Parameters
         ----------
         spectra : dict
@@ -550,7 +607,14 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         if self.remove_monopole_dipole:
             cl["TT"][:2] = 0.0
         pair = self._pair("12" if cross else "11")
-        vec = np.concatenate([sum(k @ cl[_SKY[col]] for col, k in pair.pmf[c]) for c in pair.components])
+        # with the corrections, the power above the bins and the removal's bias are modelled (exactly for
+        # spectra of the guess's shape): the expectation is the bandpower windows applied inside the bins
+        inside = np.ones(lmax + 1, bool) if pair.rows is None else binned_columns(self.binning, lmax)
+        parts = []
+        for c in pair.components:
+            v = sum(k @ np.where(inside, cl[_SKY[col]], 0.0) for col, k in pair.pmf[c])
+            parts.append(v if pair.rows is None else v * pair.rows[c])
+        vec = np.concatenate(parts)
         value = self._reporting_matrix(pair.components) @ (pair.ainv @ vec)
         nb = self.binning.n_bins
         b = self.binning
@@ -576,9 +640,16 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
             meta["pol_mask2_sha256"] = self._hashes["p2"]
         meta.update(b.as_dict())
         for k, v in self.descriptions.items():
-            if cross or not k.endswith("2"):
+            if k != "guess_cl" and (cross or not k.endswith("2")):
                 meta[k] = v
         meta["monopole_dipole_removed"] = "yes" if self.remove_monopole_dipole else "no"
+        if self.remove_monopole_dipole:
+            meta["deprojection_bias"] = (
+                "corrected (Elsner, Leistedt & Peiris 2016) with the guess spectra (TT, TE, TB)"
+                if self.correct_deprojection_bias else "not corrected"
+            )
+        meta["sky_lmax"] = self.sky_lmax
+        meta["guess_spectrum"] = self.descriptions.get("guess_cl", "none")
         meta["b_mode_purification"] = "yes" if self.purify_b else "no"
         meta["coupling"] = "exact"
         meta["condition_number"] = float(f"{self.condition_number:.6g}")

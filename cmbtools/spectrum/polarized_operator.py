@@ -29,6 +29,7 @@ from cmbtools._core import sht as _sht
 from cmbtools._core.checks import resolve_nthreads
 from cmbtools.exceptions import IllConditionedError
 from cmbtools.spectrum import coupling as coupling_pol
+from cmbtools.spectrum import polarized_corrections as _corrections
 from cmbtools.spectrum.errors import _reduce_cols, _reduce_rows
 
 __all__ = []
@@ -56,6 +57,7 @@ class _Pair:
     pmf: dict  # component -> list of (column component, (n_bins, lmax+1) P M F)
     pm: dict  # component -> list of (column component, (n_bins, lmax+1) P M), for the noise bias
     condition_number: float
+    rows: dict | None = None  # component -> (n_bins,) row factors of the corrections (None: no correction)
 
 
 def _freeze(a):
@@ -233,6 +235,8 @@ class _PolarizedOperator:
         terms = {c: self._terms(c, a, b) for c in comps}
         kernels = self._kernels({key for t in terms.values() for _, key in t})
         q = binning.model_weights(lmax)
+        rows = _corrections.row_factors(self, a, b, comps, terms, kernels)
+        shapes = self._in_bin_shapes()
         u = np.zeros(lmax + 1)
         idx = binning.bin_index
         sel = np.nonzero(idx >= 0)[0]
@@ -250,7 +254,11 @@ class _PolarizedOperator:
             for r, c in enumerate(group):
                 for col, km in pmf[c]:
                     s = group.index(col)
-                    block[r * nb:(r + 1) * nb, s * nb:(s + 1) * nb] += _reduce_cols(km.copy(), q, binning.ell_min)
+                    qc = q if shapes is None else q * shapes[_SKY[col]]
+                    part = _reduce_cols(km.copy(), qc, binning.ell_min)
+                    if rows is not None:
+                        part *= rows[c][:, None]
+                    block[r * nb:(r + 1) * nb, s * nb:(s + 1) * nb] += part
                 f_mean = np.add.reduceat(self._factor(c, a, b) * u, binning.ell_min)
                 if np.any(~(np.abs(f_mean) > 1e-300)):
                     bad = int(np.argmax(~(np.abs(f_mean) > 1e-300)))
@@ -281,4 +289,12 @@ class _PolarizedOperator:
                 f"apodize the masks more, or lower lmax.",
                 cond,
             )
-        return _Pair(tuple(comps), _freeze(ainv), pmf, pm, cond)
+        return _Pair(tuple(comps), _freeze(ainv), pmf, pm, cond,
+                     None if rows is None else {c: _freeze(v) for c, v in rows.items()})
+
+    def _in_bin_shapes(self):
+        """Per sky spectrum, the guess's shape inside each bin (None without a guess); see polarized_corrections."""
+        if self._guess is None:
+            return None
+        return self._cached(("in_bin_shapes",), lambda: {
+            k: _freeze(v) for k, v in _corrections.in_bin_shapes(self.binning, self.lmax, self._guess).items()})

@@ -92,3 +92,77 @@ def _transfers(transfer, lmax):
         out[s], d = _transfer_array(t, lmax, f"transfer[{s!r}]")
         parts.append(f"{s} {d}")
     return out, "; ".join(parts)
+
+
+def _guess_spectra(guess_cl, sky_lmax, needed):
+    """The guess of the sky spectra (dict of the six, K^2, to sky_lmax) for the corrections, and a description.
+
+    None when no correction needs it (a given guess is still checked); default: the built-in polarized fiducial
+    spectra with the lensing-like B modes (:func:`cmbtools.simulate.fiducial_spectra`).
+    """
+    if guess_cl is not None and not isinstance(guess_cl, dict):
+        raise InvalidInputError(
+            "The 'guess_cl' parameter must be a dict of spectra under the keys 'TT', 'TE', 'TB', 'EE', 'EB', 'BB' "
+            f"(K^2, from ell 0). Got {type(guess_cl).__name__} instead."
+        )
+    if guess_cl is None:
+        if not needed:
+            return None, "none"
+        from cmbtools.simulate.polarized_theory import fiducial_spectra
+
+        spectra = fiducial_spectra(sky_lmax, lensing_bb=True)
+        return {s: np.asarray(spectra[s], dtype=np.float64)[: sky_lmax + 1].copy() for s in SPECTRA}, \
+            "built-in fiducial spectra"
+    unknown = sorted(set(guess_cl) - set(SPECTRA))
+    if unknown:
+        raise InvalidInputError(f"The 'guess_cl' parameter has unknown spectra {unknown}; use {', '.join(SPECTRA)}.")
+    out = {s: np.zeros(sky_lmax + 1) for s in SPECTRA}
+    for s, v in guess_cl.items():
+        out[s] = check_cl(v, f"guess_cl[{s!r}]", lmax=sky_lmax, allow_negative=s not in ("TT", "EE", "BB"))[
+            : sky_lmax + 1].copy()
+    if not needed:
+        return None, "none"
+    return out, f"tables sha256={_io.sha256_arrays(*(out[s] for s in SPECTRA))[:16]}"
+
+
+def _padded(a, n):
+    out = np.zeros(n)
+    k = min(n, np.size(a))
+    out[:k] = np.asarray(a, dtype=np.float64)[:k]
+    return out
+
+
+def _sky_factors(beams, pixel_window, nside, sky_lmax, nthreads):
+    """Beam times pixel window of each mask name ('t1', 'p1', 't2', 'p2') to ``sky_lmax`` (beyond lmax).
+
+    Gaussian beams (spin-2 for 'p') and the computed pixel windows are evaluated to ``sky_lmax``; tables
+    shorter than that count as zero beyond their end (like the temperature estimator's corrections).
+    """
+    from cmbtools.spectrum.beams import GaussianBeam, gaussian_beam
+
+    n = sky_lmax + 1
+    if pixel_window is True:
+        from cmbtools.spectrum.pixel_windows import pixel_window as _pw
+        from cmbtools.spectrum.spin2_pixel_window import polarization_pixel_window as _ppw
+
+        wt = _padded(_pw(nside, sky_lmax, nthreads=nthreads), n)
+        wp = _padded(_ppw(nside, sky_lmax, nthreads=nthreads), n)
+    elif pixel_window is False or pixel_window is None:
+        wt = wp = np.ones(n)
+    elif isinstance(pixel_window, (tuple, list)) and len(pixel_window) == 2:
+        wt, wp = _padded(pixel_window[0], n), _padded(pixel_window[1], n)
+    else:
+        wt = wp = _padded(pixel_window, n)
+    out = {}
+    for key, beam in beams.items():
+        if isinstance(beam, GaussianBeam):
+            beam = beam.fwhm_arcmin
+        if beam is None:
+            b = np.ones(n)
+        elif np.ndim(beam) == 0:
+            fwhm = float(beam)
+            b = _padded(gaussian_polarized_beam(fwhm, sky_lmax) if key[0] == "p" else gaussian_beam(fwhm, sky_lmax), n)
+        else:
+            b = _padded(beam, n)
+        out[key] = b * (wt if key[0] == "t" else wp)
+    return out

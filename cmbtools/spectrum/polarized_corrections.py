@@ -1,0 +1,276 @@
+"""The polarized estimator's corrections from a guess of the sky spectra: monopole/dipole removal and power above the bins.
+
+The temperature estimator's two corrections (:mod:`cmbtools.spectrum.deprojection`) carried over to the
+coupled TT..BB system of :mod:`cmbtools.spectrum.polarized_operator`:
+
+* **Deprojection bias** (Elsner, Leistedt & Peiris 2016, MNRAS 456, 2095).  The monopole and dipole of I
+  are fitted on the masked sky and removed; Q and U have no monopole or dipole (they are spin-2 fields) and
+  get no removal.  TT's bias is the temperature estimator's (:func:`~cmbtools.spectrum.deprojection.
+  deprojection_bias`, on grids above ``COARSE_NSIDE`` :func:`~cmbtools.spectrum.deprojection.
+  coarse_grid_deprojection_bias`).  TE and TB (only their T side is removed) get the one-sided term of the
+  same formula, ``delta_l = - sum_ij (A^-1)_ij C_l[G_i, Y_j]`` with ``Y_j`` the E (B) coefficients that the
+  estimator's own polarization transform (standard or pure B) gives of the mask times the Q, U field whose
+  E and B coefficients are ``S^TE_l H_j,lm`` and ``S^TB_l H_j,lm`` (``H_j`` the exact pixel sums of the
+  template times the temperature mask): exact on the grid for the guess.  Above ``COARSE_NSIDE`` it is
+  computed on the masks averaged to that grid up to ``2 COARSE_NSIDE`` and taken as zero above (the bias of
+  a smooth removal lives at the largest scales).
+* **Power above the bins**: the sky's multipoles from the last bin to ``sky_lmax`` leak into the bins
+  through every kernel of the coupled system (the columns above the bins of the same P-reduced kernels up
+  to lmax, a rectangular kernel call above lmax).
+
+Both enter as a factor per bin on the rows of each component of the binned system,
+``1 + P(delta + leak)_b / (P M F S_guess)_b`` (columns within the bins; the multipoles below the first bin,
+such as the monopole and dipole left by an imperfect removal, count with the leakage): exact when the sky spectra are the
+guess times one constant per spectrum, like the temperature estimator's per-multipole row factors.  A
+component whose guess gives no pseudo-power in a bin (TB, EB with zero guesses; TE where its bin average
+is below 1 % of the largest) is left uncorrected there.  The model of the spectrum inside a bin follows
+the guess's shape where the guess keeps one sign over the bin (:func:`in_bin_shapes`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from cmbtools._core import sht as _sht
+from cmbtools.spectrum import coupling as _coupling
+from cmbtools.spectrum import deprojection as _dep
+from cmbtools.spectrum.errors import _reduce_rows
+
+__all__ = []
+
+#: Bins where a component's guess pseudo-power is below this fraction of its largest get no row factor.
+SMALL_BASE = 1e-2
+
+
+#: A bin's guess shape is used when its average is at least this fraction of the average of its absolute value.
+SHAPE_CANCELLATION = 0.25
+
+
+def in_bin_shapes(binning, lmax, guess):
+    """Per sky spectrum, ``g_l / (Q P g)_l`` inside every bin where the guess's average is not a cancellation.
+
+    The binned system then models the spectrum inside a bin as the guess's shape scaled to the bandpower
+    (as :func:`cmbtools.spectrum.operator.in_bin_shape` for temperature), so that a sky whose spectrum is
+    the guess gets the bin averages of its spectrum, not those of a flat approximation.  A bin where the
+    guess (TE) changes sign so much that its average is below ``SHAPE_CANCELLATION`` of the average of its
+    absolute value keeps the flat model (the shape would divide by a near-zero average), as do zero guesses.
+    """
+    p = binning.averaging_weights(lmax)
+    q = binning.model_weights(lmax)
+    out = {}
+    for name, g in guess.items():
+        g = np.asarray(g, dtype=np.float64)[: lmax + 1]
+        shape = np.ones(lmax + 1)
+        binned = np.add.reduceat(p * g, binning.ell_min)
+        magnitude = np.add.reduceat(p * np.abs(g), binning.ell_min)
+        for b in range(binning.n_bins):
+            lo, hi = int(binning.ell_min[b]), int(binning.ell_max[b])
+            seg = g[lo:hi + 1]
+            if magnitude[b] > 0 and abs(binned[b]) >= SHAPE_CANCELLATION * magnitude[b]:
+                model = q[lo:hi + 1] * binned[b]
+                shape[lo:hi + 1] = seg / model
+        out[name] = shape
+    return out
+
+
+def _coarse_masks(est, names):
+    from cmbtools.spectrum.deprojection import _averaged_down
+
+    return {k: _averaged_down(est.masks[k], _dep.COARSE_NSIDE) for k in names}
+
+
+def _deprojection_of(est, key, mask=None):
+    """The monopole/dipole removal of a temperature mask ('t1', 't2'; ``mask``: a coarse version), cached."""
+    tag = ("deprojection", key, "coarse" if mask is not None else "fine")
+    return est._cached(tag, lambda: _dep.TemplateDeprojection(
+        est.masks[key] if mask is None else mask, nthreads=est._threads()))
+
+
+def _tt_bias(est, a, b, signal):
+    """delta^TT_l of maps a x b for the grid spectrum ``signal`` (to sky_lmax)."""
+    lmax = est.lmax
+    ta, tb = "t" + a, "t" + b
+    same = est._key_of[ta] == est._key_of[tb]
+    if est.nside > _dep.COARSE_NSIDE:
+        mask_cl = est._mask_spectrum(est._key_of[ta], est._key_of[tb])
+        return _dep.coarse_grid_deprojection_bias(
+            est.masks[ta], signal, lmax, mask_cl, mask2=None if same else est.masks[tb], nthreads=est._threads()
+        )
+    da = _deprojection_of(est, ta)
+    db = da if same else _deprojection_of(est, tb)
+    return _dep.deprojection_bias(da, signal, lmax, deprojection2=None if same else db, nthreads=est._threads())
+
+
+def _one_sided_bias(est, t_key, p_key, s_te, s_tb):
+    """(delta^TE_l, delta^TB_l): the bias of removing T's monopole/dipole (mask ``t_key``) in T x (E, B) of ``p_key``.
+
+    ``s_te``, ``s_tb``: the grid spectra (to sky_lmax) between the removed T and the polarization field.
+    """
+    lmax = est.lmax
+    nthreads = est._threads()
+    coarse = est.nside > _dep.COARSE_NSIDE
+    if coarse:
+        masks = est._cached(("coarse_masks", t_key, p_key), lambda: _coarse_masks(est, (t_key, p_key)))
+        dep = _deprojection_of(est, t_key, masks[t_key])
+        p_mask = masks[p_key]
+        nside = _dep.COARSE_NSIDE
+        top = min(lmax, 2 * nside)
+        lw = min(np.size(s_te) - 1, 3 * nside - 1)
+    else:
+        dep = _deprojection_of(est, t_key)
+        p_mask = est.masks[p_key]
+        nside = est.nside
+        top = lmax
+        lw = max(np.size(s_te) - 1, lmax)
+    s_e = np.zeros(lw + 1)
+    s_b = np.zeros(lw + 1)
+    n = min(lw + 1, np.size(s_te))
+    s_e[:n] = np.asarray(s_te, dtype=np.float64)[:n]
+    s_b[:n] = np.asarray(s_tb, dtype=np.float64)[:n]
+    omega = 4.0 * np.pi / dep.mask.size
+    rings = _sht.occupied_rings(p_mask)
+    pure = est.purify_b and not coarse
+    if pure:
+        eth_w, eth2_w = est._derivs[est._key_of[p_key]]
+    ye, yb, g = [], [], []
+    for i in range(dep.n_templates):
+        h = _sht.adjoint_sums(dep.template_map(i) * dep.mask, lw, nthreads=nthreads)
+        g.append(omega * _dep._truncate(h, lw, top))
+        q, u = _sht.alm2map_spin2(_sht.almxfl(h, s_e, lw), _sht.almxfl(h, s_b, lw), nside, lw, nthreads=nthreads)
+        if pure:
+            e, bb = _purified(q, u, p_mask, eth_w, eth2_w, top, nthreads, rings)
+        else:
+            e, bb = _sht.map2alm_spin2(q * p_mask, u * p_mask, top, nthreads=nthreads, rings=rings)
+        ye.append(e)
+        yb.append(bb)
+    a_inv = dep.normal_inverse
+    d_te = np.zeros(lmax + 1)
+    d_tb = np.zeros(lmax + 1)
+    for i in range(dep.n_templates):
+        ce = sum(a_inv[i, j] * ye[j] for j in range(dep.n_templates))
+        cb = sum(a_inv[i, j] * yb[j] for j in range(dep.n_templates))
+        d_te[: top + 1] -= _sht.alm2cl(g[i], ce, lmax=top)
+        d_tb[: top + 1] -= _sht.alm2cl(g[i], cb, lmax=top)
+    return d_te, d_tb
+
+
+def _purified(q, u, window, eth_w, eth2_w, lmax, nthreads, rings):
+    from cmbtools.spectrum import purification
+
+    return purification.pure_eb_alm(q, u, window, eth_w, eth2_w, lmax, nthreads=nthreads, rings=rings)
+
+
+def _rect_kernels(est, wanted):
+    """P-reduced kernels of columns lmax+1..sky_lmax for the keys (kind, i, j): one kernel call, cached."""
+    lmax, lc = est.lmax, est.sky_lmax
+    missing = sorted({k for k in wanted if ("rect_kernel",) + k not in est._cache})
+    if missing:
+        nthreads = est._threads()
+        base = {}
+        for kind, i, j in missing:
+            bkind = {"00": "00", "00R": "00", "00RR": "00", "02": "02", "02R": "02"}.get(kind, "+-")
+            base.setdefault((bkind, i, j), []).append(kind)
+        spectra = {}
+        for _, i, j in base:
+            if (i, j) not in spectra:
+                u = est._unique
+                if i == j:
+                    spectra[(i, j)] = _sht.map_spectra([u[i]], lmax + lc, nthreads=nthreads)[0]
+                else:
+                    spectra[(i, j)] = _sht.map_spectra([u[i], u[j]], lmax + lc, nthreads=nthreads)[2]
+        requests = list(base)
+        mats = _coupling.coupling_matrices([(b, spectra[(i, j)]) for b, i, j in requests], lmax, nthreads=nthreads,
+                                           lmax_columns=lc)
+        ratio = _coupling.pure_b_ratio(lmax, lc) if any(k[0].endswith("R") for k in missing) else None
+        p_w = est.binning.averaging_weights(lmax)
+        pos = 0
+        for (b, i, j) in requests:
+            if b == "+-":
+                made = {"++": mats[pos], "--": mats[pos + 1]}
+                made["+-"] = made["++"] - made["--"]
+                pos += 2
+            else:
+                made = {b: mats[pos]}
+                pos += 1
+            for kind in base[(b, i, j)]:
+                if kind.endswith("RR"):
+                    m = made[b] * (ratio * ratio)
+                elif kind.endswith("R"):
+                    m = made[b] * ratio
+                else:
+                    m = made[kind]
+                red = _reduce_rows(m[:, lmax + 1:].copy(), p_w, est.binning.ell_min)
+                red.setflags(write=False)
+                est._cache[("rect_kernel", kind, i, j)] = red
+        del mats
+    return {k: est._cache[("rect_kernel",) + k] for k in wanted}
+
+
+def binned_columns(binning, lmax):
+    """(lmax+1,) bool: the multipoles inside the bins (the others, below and above, count as leakage)."""
+    idx = np.full(lmax + 1, -1)
+    n = min(lmax + 1, binning.bin_index.size)
+    idx[:n] = binning.bin_index[:n]
+    return idx >= 0
+
+
+def row_factors(est, a, b, components, terms, kernels):
+    """Per component of maps a x b: the (n_bins,) factor ``1 + P(delta + leak) / (P M F S_guess)`` of its rows.
+
+    ``terms``: component -> [(column component, kernel key)]; ``kernels``: key -> (n_bins, lmax+1) P M.
+    Returns None when the estimator makes no correction.
+    """
+    from cmbtools.spectrum.polarized_operator import _SKY
+
+    guess = est._guess
+    if guess is None:
+        return None
+    lmax, lb, sky = est.lmax, est.binning.lmax, est.sky_lmax
+    nb = est.binning.n_bins
+    p_w = est.binning.averaging_weights(lmax)
+
+    def grid(col):
+        """The guess of a column component as seen on the grid (beams, windows, transfer), to sky_lmax."""
+        fa = est._sky_factors[("t" if col[0] == "T" else "p") + a]
+        fb = est._sky_factors[("t" if col[1] == "T" else "p") + b]
+        return fa * fb * est._sky_transfer[_SKY[col]] * guess[_SKY[col]]
+
+    rect = {}
+    if sky > lmax:
+        wanted = {key for c in components for col, key in terms[c] if np.any(guess[_SKY[col]] != 0)}
+        rect = _rect_kernels(est, wanted)
+    bias = {}
+    if est.remove_monopole_dipole and est.correct_deprojection_bias:
+        bias["TT"] = _tt_bias(est, a, b, grid("TT"))
+        for c in components:
+            if c in ("TE", "ET"):
+                t_side, p_side = ("t" + a, "p" + b) if c == "TE" else ("t" + b, "p" + a)
+                s_te, s_tb = grid("TE"), grid("TB")
+                if c == "ET":  # E_a x T_b: the T side is map b
+                    fa_t, fb_p = est._sky_factors["t" + b], est._sky_factors["p" + a]
+                    s_te = fa_t * fb_p * est._sky_transfer["TE"] * guess["TE"]
+                    s_tb = fa_t * fb_p * est._sky_transfer["TB"] * guess["TB"]
+                d_te, d_tb = _one_sided_bias(est, t_side, p_side, s_te, s_tb)
+                bias[c] = d_te
+                bias["TB" if c == "TE" else "BT"] = d_tb
+    inside = binned_columns(est.binning, lmax)
+    out = {}
+    for c in components:
+        base = np.zeros(nb)
+        extra = np.zeros(nb)
+        for col, key in terms[c]:
+            s = grid(col)[: lmax + 1]
+            k = kernels[key]
+            base += k @ np.where(inside, s, 0.0)
+            extra += k @ np.where(inside, 0.0, s)
+            if key in rect:
+                s = grid(col)
+                extra += rect[key] @ s[lmax + 1: sky + 1]
+        if c in bias:
+            extra += np.add.reduceat(p_w * bias[c], est.binning.ell_min)
+        top = float(np.max(np.abs(base)))
+        ok = np.abs(base) > SMALL_BASE * top if top > 0 else np.zeros(nb, bool)
+        r = np.ones(nb)
+        r[ok] += extra[ok] / base[ok]
+        out[c] = r
+    return out
