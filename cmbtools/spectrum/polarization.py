@@ -377,9 +377,11 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 comps[1], comps[2], p_mask, eth_w, eth2_w, lmax, nthreads=nthreads, rings=rings_p
             )
         else:
-            alm_e, alm_b = _sht.map2alm_spin2(
-                comps[1] * p_mask, comps[2] * p_mask, lmax, nthreads=nthreads, rings=rings_p
-            )
+            qu = np.empty((2, p_mask.size))  # Q w and U w written in place: no stacked copy of the two maps
+            np.multiply(comps[1], p_mask, out=qu[0])
+            np.multiply(comps[2], p_mask, out=qu[1])
+            alm_e, alm_b = _sht.map2alm_spin(qu, 2, lmax, nthreads=nthreads, rings=rings_p)
+            del qu
         return alm_t, alm_e, alm_b
 
     def _bin(self, pseudo):

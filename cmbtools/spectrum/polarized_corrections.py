@@ -12,8 +12,8 @@ coupled TT..BB system of :mod:`cmbtools.spectrum.polarized_operator`:
   estimator's own polarization transform (standard or pure B) gives of the mask times the Q, U field whose
   E and B coefficients are ``S^TE_l H_j,lm`` and ``S^TB_l H_j,lm`` (``H_j`` the exact pixel sums of the
   template times the temperature mask): exact on the grid for the guess.  Above ``COARSE_NSIDE`` it is
-  computed on the masks averaged to that grid, with the guess and the pseudo-spectrum up to ``2 COARSE_NSIDE``,
-  and taken as zero above (the bias of a smooth removal lives at the largest scales).
+  computed on the masks averaged to nside ``ONE_SIDED_NSIDE`` = 128, with the guess and the pseudo-spectrum up to
+  ell 256, and taken as zero above (the bias of a smooth removal lives at the largest scales).
 * **Power above the bins**: the sky's multipoles from the last bin to ``sky_lmax`` leak into the bins
   through every kernel of the coupled system (the columns above the bins of the same P-reduced kernels up
   to lmax, a rectangular kernel call above lmax).
@@ -37,6 +37,10 @@ from cmbtools.spectrum import deprojection as _dep
 from cmbtools.spectrum.errors import _reduce_rows
 
 __all__ = []
+
+#: Grid of the one-sided (TE, TB) removal bias for maps finer than ``COARSE_NSIDE``: the masks averaged to it,
+#: the bias to ``2 ONE_SIDED_NSIDE`` and zero above (a quarter of the cost of ``COARSE_NSIDE``'s grid).
+ONE_SIDED_NSIDE = 128
 
 #: Bins where a component's guess pseudo-power is below this fraction of its largest get no row factor.
 SMALL_BASE = 1e-2
@@ -74,11 +78,11 @@ def in_bin_shapes(binning, lmax, guess):
 
 
 def _coarse_mask(est, key):
-    """A mask ('t1', 'p1', ...) averaged into the pixels of ``COARSE_NSIDE``, cached per distinct mask."""
+    """A mask ('t1', 'p1', ...) averaged into the pixels of ``ONE_SIDED_NSIDE``, cached per distinct mask."""
     from cmbtools.spectrum.deprojection import _averaged_down
 
     j = est._key_of[key]
-    return est._cached(("coarse_mask", j), lambda: _averaged_down(est._unique[j], _dep.COARSE_NSIDE))
+    return est._cached(("coarse_mask", j), lambda: _averaged_down(est._unique[j], ONE_SIDED_NSIDE))
 
 
 def _deprojection_of(est, key, mask=None):
@@ -114,7 +118,7 @@ def _one_sided_bias(est, t_key, p_key, s_te, s_tb):
     if coarse:
         dep = _deprojection_of(est, t_key, _coarse_mask(est, t_key))
         p_mask = _coarse_mask(est, p_key)
-        nside = _dep.COARSE_NSIDE
+        nside = ONE_SIDED_NSIDE
         top = min(lmax, 2 * nside)
         lw = min(np.size(s_te) - 1, top)  # the removal's bias lives at the largest scales
     else:
