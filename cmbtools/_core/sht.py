@@ -470,3 +470,32 @@ def alm2map_spin2(alm_e, alm_b, nside: int, lmax: int, *, nthreads: int | None =
     """Q and U maps (RING, HEALPix convention) of E and B coefficients (== healpy.alm2map(pol=True)[1:])."""
     out = alm2map_spin(np.stack([np.asarray(alm_e), np.asarray(alm_b)]), 2, nside, lmax, nthreads=nthreads)
     return out[0], out[1]
+
+
+def gauss_legendre_grid(lmax: int) -> tuple[int, int, np.ndarray]:
+    """``(ntheta, nphi, weights)`` of the Gauss-Legendre grid that integrates products of degree ``4 lmax`` exactly.
+
+    ``weights`` (shape (ntheta,)) is the area of one point of each ring: ``sum weights[:, None] * f``
+    over the grid is the integral of ``f`` over the sphere.
+    """
+    ntheta, nphi = 2 * int(lmax) + 1, ducc0.fft.good_size(4 * int(lmax) + 1)  # a fast FFT length
+    return ntheta, nphi, ducc0.misc.GL_weights(ntheta, nphi)
+
+
+def gauss_legendre_synthesis(alm, lmax: int, ntheta: int, nphi: int, *, nthreads: int) -> np.ndarray:
+    """The values, shape (ntheta, nphi), of coefficients up to ``lmax`` (healpy's layout) on a Gauss-Legendre grid."""
+    return ducc0.sht.experimental.synthesis_2d(
+        alm=np.asarray(alm).reshape(1, -1), lmax=lmax, spin=0, ntheta=ntheta, nphi=nphi, geometry="GL",
+        nthreads=nthreads,
+    )[0]
+
+
+def gauss_legendre_projection(values, weights, lmax: int, *, nthreads: int) -> np.ndarray:
+    """``int f Y*_lm`` up to ``lmax`` of a function given on a Gauss-Legendre grid with its ring ``weights``.
+
+    Exact when the grid integrates ``f Y_lm`` exactly (see :func:`gauss_legendre_grid`).
+    """
+    v = np.asarray(values, dtype=np.float64) * np.reshape(weights, (-1, 1))
+    return ducc0.sht.experimental.adjoint_synthesis_2d(
+        map=v.reshape(1, *v.shape), lmax=lmax, spin=0, geometry="GL", nthreads=nthreads,
+    )[0]

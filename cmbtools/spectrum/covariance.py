@@ -30,6 +30,18 @@ noise, three with noise, five for the cross-spectrum of two noisy maps) come
 from one call of ducc0's kernel, which shares the Wigner 3j symbols among
 them: the cost is about that of one or two coupling matrices.
 
+Removed modes.  An estimator that removes the monopole and dipole (or
+templates) before masking changes the covariance of the lowest bins: the
+removal takes variance out of them, and the narrow-kernel term above misses
+how much.  :mod:`cmbtools.spectrum.deprojection_covariance` adds the exact
+low-rank change of the pseudo-coefficient covariance (its cross term with the
+main one in the same narrow-kernel form), bin-summed over the first bins where
+it matters; see that module for the method and its measured accuracy.  Given
+measured bandpowers of an estimator built without the deprojection-bias
+correction, the signal model adds the expected bias back first.
+:meth:`GaussianCovariance.pseudo_covariance` is the per-multipole covariance
+without the removal.
+
 The noise is described by :class:`~cmbtools.spectrum.pixel_noise.PixelNoise`;
 the result is a :class:`~cmbtools.spectrum.bandpower_covariance.BandpowerCovariance`
 (simulated covariances and the covariance files are in that module).
@@ -298,6 +310,14 @@ class GaussianCovariance:
         self._starts = binning.ell_min
         self.windows = estimator._windows(cross)
         self.n_bins = int(binning.n_bins)
+        # the monopole/dipole (template) removal's change of the covariance (spectrum.deprojection_covariance)
+        self._deprojection = None
+        if estimator._inputs.deprojects:
+            from cmbtools.spectrum.deprojection_covariance import DeprojectionCovariance
+
+            weights = {x: (None if nz is None else omega * self._masks[x] ** 2 * nz.variance)
+                       for x, nz in self._noise.items()}
+            self._deprojection = DeprojectionCovariance(estimator, weights, cross, nthreads)
 
     def noise_bandpowers(self) -> np.ndarray:
         """Expected noise bias of the auto-spectrum's ``cl`` bandpowers, K^2 (zeros for a cross-spectrum).
@@ -354,20 +374,43 @@ class GaussianCovariance:
         """Sky spectrum C_l (l = 0..lmax) from a theory array or from measured bandpowers."""
         lmax = self._lmax
         if hasattr(spectrum, "cl") and hasattr(spectrum, "ell_eff"):
-            # measured bandpowers: D_l linear between the bin centres, constant beyond the ends
-            ell = np.arange(lmax + 1, dtype=np.float64)
-            dl = np.asarray(spectrum.cl) * spectrum.ell_eff * (spectrum.ell_eff + 1) / (2 * math.pi)
-            d = np.interp(ell, spectrum.ell_eff, np.clip(dl, 0.0, None))
-            cl = np.zeros(lmax + 1)
-            cl[1:] = d[1:] * 2 * math.pi / (ell[1:] * (ell[1:] + 1))
+            bp = np.asarray(spectrum.cl, dtype=np.float64)
+            ell_eff = np.asarray(spectrum.ell_eff, dtype=np.float64)
+            cl = self._interpolated(bp, ell_eff)
+            inp = self._estimator._inputs
+            if self._deprojection is not None and not inp.correct_deprojection_bias and bp.size == self.n_bins:
+                # the bandpowers of an estimator without the deprojection-bias correction are low where the
+                # removal takes power: the sky model adds the expected bias back (two fixed-point steps)
+                pair = ("1", "2") if self._cross else ("1", "1")
+                for _ in range(2):
+                    signal = {k: self._sky_factors[k][: cl.size] * cl for k in self._mask_cl}
+                    delta = np.zeros(lmax + 1)
+                    bias = self._deprojection.pseudo_bias(signal, pair)
+                    delta[: bias.size] = bias[: lmax + 1]
+                    shift = self._ainv @ np.add.reduceat(self._p * delta, self._starts)
+                    cl = self._interpolated(bp - shift, ell_eff)
             return cl, "measured bandpowers"
         cl = check_cl(spectrum, "spectrum", lmax=lmax)[: self._lsky + 1].copy()
         if self._estimator.remove_monopole_dipole:
             cl[:2] = 0.0
         return cl, "theory spectrum"
 
+    def _interpolated(self, bp, ell_eff):
+        """C_l (l = 0..lmax) of bandpowers: D_l linear between the bin centres, constant beyond the ends."""
+        lmax = self._lmax
+        ell = np.arange(lmax + 1, dtype=np.float64)
+        d = np.interp(ell, ell_eff, np.clip(bp * ell_eff * (ell_eff + 1) / (2 * math.pi), 0.0, None))
+        cl = np.zeros(lmax + 1)
+        cl[1:] = d[1:] * 2 * math.pi / (ell[1:] * (ell[1:] + 1))
+        if self._estimator.remove_monopole_dipole:  # removed from every map: no monopole/dipole power
+            cl[:2] = 0.0
+        return cl
+
     def pseudo_covariance(self, spectrum) -> np.ndarray:
         """Covariance of the pseudo-spectrum ``C~_l`` (l = 0..lmax) for a sky spectrum, K^4.
+
+        Without the monopole/dipole (template) removal's change, which :meth:`covariance` adds to the
+        first bins' sums (see the module notes).
 
         Parameters
         ----------
@@ -380,11 +423,18 @@ class GaussianCovariance:
         ndarray of shape (lmax+1, lmax+1)
         """
         cl, _ = self._signal_cl(spectrum)
-        lmax = self._lmax
+        return self._pseudo_covariance(cl, self._coupled(cl))
+
+    def _coupled(self, cl):
+        """The narrow-kernel amplitudes: coupled signal spectra over the mean weight, l = 0..lmax."""
         c = {}
         for key, wcl in self._mask_cl.items():
             f = self._sky_factors[key][: cl.size]
-            c[key] = np.clip(coupled_spectrum(wcl, f * cl, lmax) / self._mean_w[key], 0.0, None)
+            c[key] = np.clip(coupled_spectrum(wcl, f * cl, self._lmax) / self._mean_w[key], 0.0, None)
+        return c
+
+    def _pseudo_covariance(self, cl, c):
+        lmax = self._lmax
         shapes = {x: (None if nz is None else nz.shape_to(lmax)) for x, nz in self._noise.items()}
 
         def amp(k):
@@ -413,10 +463,16 @@ class GaussianCovariance:
         -------
         BandpowerCovariance
         """
-        _, source = self._signal_cl(spectrum)
-        pc = self.pseudo_covariance(spectrum)
+        cl, source = self._signal_cl(spectrum)
+        c = self._coupled(cl)
+        pc = self._pseudo_covariance(cl, c)
         p = self._p
         binned = _block_sum(pc * p[:, None] * p[None, :], self._starts)
+        if self._deprojection is not None:
+            signal = {k: self._sky_factors[k][: cl.size] * cl for k in self._mask_cl}
+            shapes = {x: (None if nz is None else nz.shape_to(self._lmax)) for x, nz in self._noise.items()}
+            binned = binned + self._deprojection.binned_correction(signal, c, shapes, p, self._starts,
+                                                                   np.diag(binned).copy())
         cov = self._ainv @ binned @ self._ainv.T
         cov = 0.5 * (cov + cov.T)
         est = self._estimator
