@@ -39,7 +39,7 @@ import ducc0
 from cmbtools._core.checks import resolve_nthreads
 
 __all__ = ["RingBlocks", "runs_in_pieces", "ring_geometry", "occupied_rings", "ring_pixel_ranges", "adjoint_sums", "synthesis_on_rings", "map2alm", "map_spectra", "alm2map", "alm2cl", "almxfl", "alm_size", "alm_ell",
-           "map2alm_spin", "alm2map_spin", "map2alm_spin2", "alm2map_spin2"]
+           "map2alm_spin", "alm2map_spin", "map2alm_spin2", "alm2map_spin2", "synthesis_at_points"]
 
 #: Largest work buffer (bytes: ducc0's Legendre coefficients plus the result) of a transform run in one
 #: call; larger transforms run in pieces (see the module notes).
@@ -527,6 +527,19 @@ def alm2map_spin2(alm_e, alm_b, nside: int, lmax: int, *, nthreads: int | None =
     """Q and U maps (RING, HEALPix convention) of E and B coefficients (== healpy.alm2map(pol=True)[1:])."""
     out = alm2map_spin(np.stack([np.asarray(alm_e), np.asarray(alm_b)]), 2, nside, lmax, nthreads=nthreads)
     return out[0], out[1]
+
+
+def synthesis_at_points(alms, spin: int, lmax: int, theta_phi, *, nthreads: int | None = None) -> np.ndarray:
+    """Values of a band-limited field at arbitrary points (ducc0's non-uniform synthesis, accuracy 1e-10).
+
+    ``alms`` has shape (1, n) for spin 0 and (2, n) (E, B) for spin 2; ``theta_phi`` has shape (k, 2).
+    Returns shape (1, k) or (2, k): T, or Q and U in each point's own (theta, phi) frame, in the same
+    conventions as :func:`alm2map` and :func:`alm2map_spin2` (equal to them at the pixel centres).
+    """
+    alms = np.ascontiguousarray(np.asarray(alms, dtype=np.complex128))
+    loc = np.ascontiguousarray(np.asarray(theta_phi, dtype=np.float64))
+    return ducc0.sht.experimental.synthesis_general(alm=alms, spin=int(spin), lmax=int(lmax), loc=loc,
+                                                    epsilon=1e-10, nthreads=resolve_nthreads(nthreads))
 
 
 def gauss_legendre_grid(lmax: int) -> tuple[int, int, np.ndarray]:

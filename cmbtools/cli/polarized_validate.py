@@ -61,6 +61,10 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     ``outputs``: (what, path, overwrite) of the table, the JSON summary and the figure, already checked;
     ``where``: (executor, workers, description) of the simulations.
     """
+    if getattr(args, "averaged_pixels", False):
+        from cmbtools.exceptions import InvalidInputError as _Invalid
+
+        raise _Invalid("--averaged-pixels is available for temperature maps only (not for I, Q, U maps yet).")
     import dataclasses
 
     import numpy as np
@@ -198,7 +202,7 @@ def run_polarized(args, outputs, run_dir, where) -> int:
         + (f", knee at ell {args.noise_knee:g} (slope {args.noise_slope:g})" if args.noise_knee else "")
         + ", sqrt(2) times that in Q and U")
     print(f"  input: {spectrum_text}; beam: {beam_text}; noise: {noise_text}")
-    print(f"  skies to ell {sky_lmax}" + (", pixelised (averaged from 2 nside)" if args.pixelise else "")
+    print(f"  skies to ell {sky_lmax}" + (", pixelised (averaged over each pixel)" if args.pixelise else "")
           + f"; B-mode purification: {'yes' if args.purify_b else 'no'}")
     worst = result.worst_bin()
     where_worst = "" if worst is None else (

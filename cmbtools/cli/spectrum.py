@@ -71,6 +71,10 @@ def add_arguments(parser):
                     help="Gaussian beam of MAP2 (default: the same as MAP's)")
     b2.add_argument("--beam2", metavar="FILE", help="beam table of MAP2")
     parser.add_argument("--no-pixel-window", action="store_true", help="do not deconvolve the HEALPix pixel window")
+    parser.add_argument("--averaged-pixels", action="store_true",
+                        help="the maps hold the sky averaged over each pixel (a detector's map): correct what the "
+                             "isotropic pixel window leaves out (pixel shapes under the mask, 0.5-1 %% near "
+                             "1.5-2.5 nside) from the guess spectrum")
     parser.add_argument("--keep-monopole-dipole", action="store_true",
                         help="do not fit and remove the monopole and dipole before the transform")
     add_noise_options(parser)
@@ -241,6 +245,7 @@ def run(args) -> int:
         sky_lmax=sky_lmax,
         guess_cl=theory if theory is not None and theory.size > sky_lmax else None,
         correct_deprojection_bias=not args.no_deprojection_correction,
+        averaged_pixels=bool(args.averaged_pixels),
         lmax=lmax,
         mask2=w2,
         beam=beam1,

@@ -90,8 +90,13 @@ def add_arguments(parser):
     parser.add_argument("--sky-lmax", type=positive_int, metavar="N",
                         help="band limit of the simulated skies, whose power above the bins the estimator models "
                              "(real skies: 4 nside - 1; default: lmax)")
+    parser.add_argument("--averaged-pixels", action="store_true",
+                        help="the maps hold the sky averaged over each pixel (a detector's map): correct what the "
+                             "isotropic pixel window leaves out (pixel shapes under the mask, 0.5-1 %% near "
+                             "1.5-2.5 nside) from the guess spectrum")
     parser.add_argument("--pixelise", action="store_true",
-                        help="synthesize every sky at twice the nside and average it into the pixels, as a detector does")
+                        help="average every sky over the area of each pixel, as a detector's map does (instead of the "
+                             "pixel window at the pixel centres)")
     parser.add_argument("--monopole", type=float, metavar="UK",
                         help="monopole added to every sky, uK (default 100; 0 with --keep-monopole-dipole)")
     parser.add_argument("--dipole", type=float, metavar="UK",
@@ -312,7 +317,7 @@ def run(args) -> int:
     dipole = Dipole(abs(dipole_uk) * 1e-6, 60.0, 30.0) if dipole_uk else None
     est = sp.SpectrumEstimator(
         mask, binning, lmax=lmax, mask2=mask2, beam=beam, pixel_window=not args.no_pixel_window,
-        sky_lmax=sky_lmax, guess_cl=cl,
+        sky_lmax=sky_lmax, guess_cl=cl, averaged_pixels=bool(args.averaged_pixels),
         remove_monopole_dipole=not args.keep_monopole_dipole, coupling="fast" if args.fast_coupling else "exact",
         force=args.force,
     )

@@ -50,7 +50,7 @@ class _PolarizedSetup:
         est = self.estimator
         h = hashlib.sha256()
         parts = [
-            "polarized-validation-1", est.nside, est.lmax, est.purify_b, est.remove_monopole_dipole,
+            "polarized-validation-2", est.nside, est.lmax, est.purify_b, est.remove_monopole_dipole,
             sorted(est._hashes.items()), sorted(est.descriptions.items()), sorted(est.binning.as_dict().items()),
             sorted((k, sha256_arrays(v)) for k, v in est._factors.items()),
             sorted((k, sha256_arrays(v)) for k, v in est._transfer.items()),
@@ -72,17 +72,22 @@ def _simulate_and_estimate_iqu(index, rng, setup):
 
     est = setup.estimator
     nside, lmax = int(est.nside), int(setup.sky_lmax)
-    grid = 2 * nside if setup.pixelise else nside
     alm = gaussian_iqu_alm(setup.spectra, lmax, rng=rng)
-    sky = np.empty((3, 12 * grid * grid))
-    sky[0] = sht.alm2map(sht.almxfl(alm[0], setup.amplitude_t, lmax), grid, lmax)
-    sky[1], sky[2] = sht.alm2map_spin2(sht.almxfl(alm[1], setup.amplitude_p, lmax),
-                                       sht.almxfl(alm[2], setup.amplitude_p, lmax), grid, lmax)
+    sky = np.empty((3, 12 * nside * nside))
+    t_alm = sht.almxfl(alm[0], setup.amplitude_t, lmax)
+    e_alm, b_alm = sht.almxfl(alm[1], setup.amplitude_p, lmax), sht.almxfl(alm[2], setup.amplitude_p, lmax)
     del alm
     if setup.pixelise:
-        import healpy as hp
+        from cmbtools.simulate.pixel_averaging import pixel_averaged_map
 
-        sky = np.asarray(hp.ud_grade(sky, nside), dtype=np.float64)  # the mean of the four sub-pixels, per field
+        # I, Q, U averaged over each pixel's area (Q, U as components in each point's own frame: the
+        # definition of the polarization pixel window)
+        sky[0] = pixel_averaged_map(t_alm, nside, lmax)
+        sky[1:] = pixel_averaged_map(np.stack([e_alm, b_alm]), nside, lmax, spin=2)
+    else:
+        sky[0] = sht.alm2map(t_alm, nside, lmax)
+        sky[1], sky[2] = sht.alm2map_spin2(e_alm, b_alm, nside, lmax)
+    del t_alm, e_alm, b_alm
     if setup.monopole:
         sky[0] += setup.monopole
     if setup.dipole is not None:
@@ -132,7 +137,7 @@ def _beam_pair(beam, lmax):
 
 
 def _sky_amplitudes(estimator, sky_beam, sky_lmax, pixelise):
-    """B_T w_T and B_P w_P of the simulated skies to ``sky_lmax`` (the windows of 2 nside with ``pixelise``).
+    """B_T w_T and B_P w_P of the simulated skies to ``sky_lmax`` (B_T and B_P alone with ``pixelise``).
 
     Up to the estimator's lmax they must be what the estimator divides out (its beams times its pixel windows);
     without ``sky_beam`` and with ``sky_lmax == lmax`` they are exactly that.
@@ -168,9 +173,7 @@ def _sky_amplitudes(estimator, sky_beam, sky_lmax, pixelise):
             raise InvalidInputError(
                 "The 'pixelise' parameter needs an estimator that deconvolves the HEALPix pixel windows of its nside."
             )
-        fine = 2 * nside
-        window = (np.asarray(pixel_window(fine, sky_lmax), dtype=np.float64)[: sky_lmax + 1],
-                  np.asarray(polarization_pixel_window(fine, sky_lmax), dtype=np.float64)[: sky_lmax + 1])
+        return b_t, b_p  # averaging over each pixel applies the pixel's own response
     return b_t * window[0], b_p * window[1]
 
 
@@ -199,8 +202,11 @@ def _memory_per_simulation(estimator, sky_lmax, pixelise, noise, cross):
     from cmbtools._core.memory import estimate_alm_bytes, estimate_map_bytes
 
     nside, lmax = int(estimator.nside), int(estimator.lmax)
-    grid = 2 * nside if pixelise else nside
-    sky = 6 * estimate_alm_bytes(sky_lmax) + estimate_map_bytes(grid, 4)
+    sky = 6 * estimate_alm_bytes(sky_lmax) + estimate_map_bytes(nside, 4)
+    if pixelise:  # the averaging rule (kept by the worker) and the values at its nodes (Q and U at once)
+        from cmbtools.simulate.pixel_averaging import averaging_order
+
+        sky += 12 * nside * nside * averaging_order(nside, sky_lmax) ** 2 * (8 * 2 + 8 + 8 + 8 * 3)
     maps = estimate_map_bytes(nside, 3 * (3 if cross else 2))
     measure = estimate_map_bytes(nside, 4) + estimate_alm_bytes(lmax, 6) + 16 * (4 * nside - 1) * (lmax + 1) * 2
     extra = estimate_map_bytes(nside, 2) if noise is not None else 0
@@ -233,8 +239,9 @@ def validate_polarized_estimator(
 
     Each simulation draws a correlated Gaussian T, E, B sky from ``spectra``
     (:func:`~cmbtools.simulate.gaussian_iqu_alm`), applies the beams and the
-    temperature and polarization pixel windows, synthesizes I, Q, U (at twice
-    the nside and averaged into the pixels with ``pixelise``), adds the
+    temperature and polarization pixel windows, synthesizes I, Q, U (with
+    ``pixelise``: the beam-convolved sky averaged over each pixel's area instead
+    of the windows), adds the
     optional monopole and dipole to I, and noise drawn from ``noise`` (I as
     :func:`~cmbtools.simulate.noise_map`, Q and U each sqrt(2) times that,
     independent: common practice for the same detectors), and measures the
@@ -287,9 +294,11 @@ def validate_polarized_estimator(
         estimator's lmax it must equal the beams the estimator divides out.
         Needed when ``sky_lmax`` exceeds lmax or with ``pixelise``.
     pixelise : bool, default=False
-        Synthesize every sky at twice the nside (with that grid's pixel
-        windows) and average I, Q, U into the pixels (``healpy.ud_grade``), as
-        a detector's map is made.
+        Average I, Q, U of every beam-convolved sky over the area of each
+        pixel (Q, U as components in each point's own frame; a 16-node
+        Gauss-Legendre rule per pixel,
+        :func:`cmbtools.simulate.pixel_averaging.pixel_averaged_map`), as a
+        detector's map is made.
 
     Returns
     -------
@@ -386,7 +395,7 @@ def validate_polarized_estimator(
         "monopole_K": monopole,
         "dipole": "none" if dipole is None else repr(dipole),
         "sky_lmax": int(sky_lmax),
-        "pixelised": "yes (synthesized at 2 nside, averaged into the pixels)" if pixelise else "no",
+        "pixelised": "yes (averaged over each pixel's area)" if pixelise else "no",
         "expected": "the input to lmax through the estimator's bandpower windows",
         "error_model": "the estimator's reported errors, averaged over the simulations",
         "n_resumed": sims.n_resumed,

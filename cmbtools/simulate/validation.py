@@ -38,7 +38,7 @@ class _ValidationSetup:
     cross: bool = False
     sky_beam2: np.ndarray | None = None
     sky_lmax: int | None = None  # band limit of the skies when above the estimator's lmax (sky_beam goes there)
-    pixelise: bool = False  # synthesize at 2 nside (sky_beam then carries that grid's window) and average
+    pixelise: bool = False  # average the sky over each pixel (sky_beam then carries no pixel window)
     dipole_factor: float = 1.0  # a harmonic filter's f_1 (f_l is folded into sky_beam, f_0 into monopole)
 
 
@@ -83,11 +83,14 @@ def _simulate_and_estimate(index, rng, setup):
     rng_sky2 = copy.deepcopy(rng) if setup.cross and setup.sky_beam2 is not None else None
     sky_lmax = lmax if setup.sky_lmax is None else setup.sky_lmax
     if setup.pixelise:
-        import healpy as hp
+        from cmbtools.simulate.pixel_averaging import pixel_averaged_map
+        from cmbtools.simulate.skies import _gaussian_alm
 
-        fine = _gaussian_sky(setup.cl, 2 * est.nside, sky_lmax, setup.sky_beam, False, 0.0, None, rng, None)
-        sky = hp.ud_grade(fine, est.nside)  # the mean of the four sub-pixels: what a detector's map holds
-        del fine
+        # the beam-convolved sky averaged over each pixel (a quadrature of every pixel's area): what a
+        # detector's map holds
+        alm = _gaussian_alm(setup.cl[: sky_lmax + 1], sky_lmax, rng, None, setup.sky_beam)
+        sky = pixel_averaged_map(alm, est.nside, sky_lmax, rings=rings)
+        del alm
         if setup.monopole:
             sky += float(setup.monopole)
         if dip is not None:
@@ -264,8 +267,9 @@ def validate_estimator(
         pixel window are taken from there).  The mean is then compared with
         the bin averages of ``cl`` (``binning.bin_spectrum``).
     pixelise : bool, default=False
-        Synthesize every sky at twice the nside (with that grid's pixel
-        window) and average it into the pixels (``healpy.ud_grade``), as a
+        Average every beam-convolved sky over the area of each pixel (a
+        16-node Gauss-Legendre rule per pixel,
+        :func:`cmbtools.simulate.pixel_averaging.pixel_averaged_map`), as a
         detector's map is made, instead of sampling the pixel centres with the
         pixel window applied.  Needs an estimator that deconvolves the HEALPix
         pixel window; the mean is compared with the bin averages of ``cl``.
@@ -407,7 +411,7 @@ def validate_estimator(
         workers=workers, threads_per_worker=threads_per_worker, progress=progress, restart=restart,
         max_restarts=max_restarts, description="validation",
         memory_per_simulation=_validation_memory(estimator, noise, dipole is not None, sky_filter is not None)
-        * (2 if cross else 1) * (6 if pixelise else 1),
+        * (2 if cross else 1) + (_averaging_memory(nside, sky_lmax, estimator) if pixelise else 0),
         force=force,
     )
     binning = estimator.binning
@@ -426,7 +430,7 @@ def validate_estimator(
         "sky_filter": "none" if sky_filter is None else _function_name(sky_filter),
         "harmonic_filter": filter_text,
         "sky_lmax": int(sky_lmax),
-        "pixelised": "yes (synthesized at 2 nside, averaged into the pixels)" if pixelise else "no",
+        "pixelised": "yes (averaged over each pixel's area)" if pixelise else "no",
         "estimator_key": getattr(estimator, "cache_key", ""),
         "n_resumed": sims.n_resumed,
         "run_dir": "" if sims.run_dir is None else str(sims.run_dir),
@@ -457,8 +461,18 @@ def validate_estimator(
     )
 
 
+def _averaging_memory(nside, sky_lmax, estimator) -> int:
+    """Bytes of the pixel averaging: its rule (kept by the worker) and the values at its nodes, with margin."""
+    from cmbtools.simulate.pixel_averaging import averaging_order
+
+    rings = estimator._occupied_rings() if hasattr(estimator, "_occupied_rings") else None
+    share = 1.0 if rings is None else float(np.mean(rings))
+    nodes = 12 * nside * nside * share * averaging_order(nside, sky_lmax) ** 2
+    return int(nodes * (8 * 2 + 8 + 8 + 8 + 8)) + 4 * 12 * nside * nside * 8
+
+
 def _sky_amplitude(estimator, sky_lmax, pixelise):
-    """``B_l`` times the pixel window of the simulated skies up to ``sky_lmax`` (that of 2 nside with ``pixelise``)."""
+    """``B_l`` times the pixel window of the simulated skies up to ``sky_lmax`` (``B_l`` alone with ``pixelise``)."""
     inp = getattr(estimator, "_inputs", None)
     factors = None if inp is None else inp.sky_factors
     lmax, nside = int(estimator.lmax), int(estimator.nside)
@@ -482,7 +496,7 @@ def _sky_amplitude(estimator, sky_lmax, pixelise):
             raise InvalidInputError(
                 "The 'pixelise' parameter needs an estimator that deconvolves the HEALPix pixel window of its nside."
             )
-        amp = amp / own[: amp.size] * np.asarray(pixel_window(2 * nside, sky_lmax), dtype=np.float64)[: amp.size]
+        amp = amp / own[: amp.size]  # the averaging over each pixel applies the pixel's own response
     return np.ascontiguousarray(amp)
 
 

@@ -228,11 +228,14 @@ def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None):
     With the monopole/dipole removal alone on a grid finer than
     :data:`~cmbtools.spectrum.deprojection.COARSE_NSIDE`, the bias comes from
     :func:`~cmbtools.spectrum.deprojection.coarse_grid_deprojection_bias` (``mask_cl``: the
-    masks' spectrum); user templates always get the exact bias.
+    masks' spectrum); user templates always get the exact bias.  With ``averaged_pixels`` the pixel shapes' bias
+    (:func:`~cmbtools.spectrum.averaging_bias.averaging_bias`) joins the second rows (the sky's, not the noise's).
     """
     if inp.sky_factors is None:
         return None
     from cmbtools.spectrum import deprojection as _dep
+    from cmbtools.spectrum.averaging_bias import averaging_bias, pair_radius
+    from cmbtools.spectrum.pixel_windows import pixel_window
 
     lmax = inp.lmax
     factor = inp.sky_factors[{"11": 0, "22": 1, "12": 2}[which]]
@@ -268,5 +271,13 @@ def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None):
         leakage = _dep.above_bins_leakage(
             mask_a, signal, lmax, inp.binning.lmax + 1, mask2=None if mask_b is mask_a else mask_b, nthreads=nthreads
         )
+    if inp.averaged_pixels:
+        # the pixel shapes' part of the expected pseudo-power of averaged maps: the sky's, not the noise's, so it
+        # joins the binned matrix's rows (like the leakage), not those of the noise bias and the windows
+        window = np.asarray(pixel_window(inp.nside, inp.sky_lmax, nthreads=nthreads), dtype=np.float64)
+        safe = np.where(window > 0, window**2, 1.0)
+        shape = averaging_bias(mask_a, signal / safe, window, lmax, mask2=None if mask_b is mask_a else mask_b,
+                               radius=pair_radius(inp.nside, factor / safe))
+        leakage = shape if leakage is None else leakage + shape
     with_bias = _dep.row_factors(m, signal, lmax, bias=bias)
     return with_bias, _dep.row_factors(m, signal, lmax, bias=bias, leakage=leakage)

@@ -70,7 +70,7 @@ from cmbtools._core import files as _io
 from cmbtools._core.checks import check_int, check_nside, resolve_nthreads
 from cmbtools.exceptions import CmbtoolsWarning
 
-__all__ = ["pixel_window", "ALGORITHM_VERSION"]
+__all__ = ["pixel_window", "pixel_quadrature", "ALGORITHM_VERSION"]
 
 #: Version of the algorithm; part of the cache file name and checked on load.
 ALGORITHM_VERSION = 1
@@ -493,6 +493,74 @@ def cached_window(nside, lmax, use_cache, nthreads, *, path_of, compute_squared,
     if path is not None:
         store_window(path, nside, lmax_table, window, kind=kind, version=version, what=what)
     return window[: lmax + 1].copy()
+
+
+# --------------------------------------------------------------------------- every pixel's own rule
+
+
+def pixel_quadrature(nside, pixels=None, *, order=4, pole_depth=6):
+    """Quadrature nodes and weights over each pixel: the continuous average of a field over a pixel.
+
+    Each pixel gets the rule of the window computation (an ``order`` x ``order`` Gauss-Legendre rule in its
+    face coordinates, exact surface measure; the pixels of rings nside and 3 nside, cut by |z| = 2/3, one
+    collapsed rule per triangle; the pixels at the poles refined ``pole_depth`` times towards the pole), so
+    ``sum_k weight_k f(node_k)`` over the nodes of pixel p is the mean of f over p.  For a field band-limited
+    at 4 nside, order 4 averages to a relative error of a few 1e-5 (order 6 for 8 nside).
+
+    Parameters
+    ----------
+    nside : int
+        HEALPix resolution (a power of two).
+    pixels : array_like of int, optional
+        RING indices of the pixels (default: all of them).
+    order : int, default=4
+        Gauss-Legendre nodes per side of a pixel.
+    pole_depth : int, default=6
+        Levels of refinement of the pixels that touch a pole.
+
+    Returns
+    -------
+    owner : ndarray of int
+        For each node, its position in ``pixels``.
+    theta_phi : ndarray of shape (n_nodes, 2)
+        Colatitude and longitude of the nodes, radians.
+    weight : ndarray of shape (n_nodes,)
+        Weights; those of each pixel add up to 1.
+    """
+    import ducc0
+
+    nside = check_nside(nside)
+    order = check_int(order, "order", minimum=1, maximum=16)
+    npix = 12 * nside * nside
+    pixels = np.arange(npix) if pixels is None else np.asarray(pixels, dtype=np.int64).ravel()
+    xyf = ducc0.healpix.Healpix_Base(nside, "RING").pix2xyf(pixels)
+    ix, iy, face = xyf[:, 0], xyf[:, 1], xyf[:, 2]
+    cap = (face < 4) | (face >= 8)
+    north_pole = (face < 4) & (ix == nside - 1) & (iy == nside - 1)
+    south_pole = (face >= 8) & (ix == 0) & (iy == 0)
+    pole = north_pole | south_pole
+    split = cap & (ix + iy == nside - 1) & ~pole
+    owners, angles, weights = [], [], []
+    for selected, kind in ((~(pole | split), "square"), (split, "split"), (pole, "pole")):
+        where = np.nonzero(selected)[0]
+        if where.size == 0:
+            continue
+        a, b, w = _local_rule(kind, nside, order, pole_depth)
+        a, b = np.broadcast_to(a, (where.size, a.size)), np.broadcast_to(b, (where.size, b.size))
+        if kind == "pole":  # the rule refines towards the corner x = y = 1 (north); the south pole is at x = y = 0
+            flip = south_pole[where][:, None]
+            a, b = np.where(flip, 1.0 - a, a), np.where(flip, 1.0 - b, b)
+        for start in range(0, where.size, max(1, _BLOCK_ELEMENTS // w.size)):
+            part = where[start : start + max(1, _BLOCK_ELEMENTS // w.size)]
+            rows = slice(start, start + part.size)
+            vec = face_to_vectors((ix[part][:, None] + a[rows]) / nside, (iy[part][:, None] + b[rows]) / nside,
+                                  face[part][:, None]).reshape(-1, 3)
+            theta = np.arccos(np.clip(vec[:, 2], -1.0, 1.0))
+            phi = np.mod(np.arctan2(vec[:, 1], vec[:, 0]), 2.0 * np.pi)
+            owners.append(np.repeat(part, w.size))
+            angles.append(np.stack([theta, phi], axis=1))
+            weights.append(np.tile(w, part.size))
+    return np.concatenate(owners), np.concatenate(angles), np.concatenate(weights)
 
 
 # --------------------------------------------------------------------------- public

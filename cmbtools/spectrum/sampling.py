@@ -14,8 +14,10 @@ the demo survey's mask (nside 128, 400 simulations, power to 4 nside - 1):
   2 nside and 1.64 at 2.2 nside for 90 arcmin, without noise);
 - the power of the sky above 3 nside aliases into the map: a beam narrower
   than about two pixels leaves too much of it;
-- averaging the sky into pixels is not exactly the isotropic pixel window
-  (0.5 % at 2 nside, 1-2 % near 3 nside; see the README's Cautions).
+- averaging the sky over pixels is not exactly the isotropic pixel window: the
+  pixels under a mask have their own shapes (-0.4 to -1.2 % from 1 to 2.5 nside
+  on the demo's south cap, up to +1 % on an equatorial band; corrected by the
+  estimator's ``averaged_pixels``; see the README's Cautions).
 
 The default bins (:func:`default_bins_lmax`) therefore end at
 ``min(lmax, 2.5 nside, the last l with B_l^2 >= 1e-3)``, and at 2 nside when

@@ -129,6 +129,7 @@ class EstimatorSettings:
     guess_cl: np.ndarray | None = None
     sky_lmax: int | None = None
     correct_deprojection_bias: bool = True
+    averaged_pixels: bool = False  # maps averaged into pixels: the pixel shapes' bias is corrected
     sky_factors: tuple | None = None  # (F1, F2, F12) from ell 0 to sky_lmax: the corrections' spectra on the grid
 
     @property
@@ -163,6 +164,7 @@ class EstimatorSettings:
             self.guess_cl,
             self.sky_lmax,
             bool(self.correct_deprojection_bias),
+            *(("averaged_pixels",) if self.averaged_pixels else ()),
         )
 
 
@@ -192,6 +194,7 @@ def resolve_settings(
     guess_cl=None,
     sky_lmax=None,
     correct_deprojection_bias=True,
+    averaged_pixels=False,
 ) -> EstimatorSettings:
     """Check and normalise the settings of a spectrum estimator (see :class:`~cmbtools.spectrum.SpectrumEstimator`)."""
     w1 = check_mask(mask, "mask").copy()
@@ -279,9 +282,16 @@ def resolve_settings(
     for a in (w1, w2, b1, b2, pw, t1, t2):
         if a is not None:
             a.setflags(write=False)
+    if not isinstance(averaged_pixels, (bool, np.bool_)):
+        raise InvalidInputError(f"The 'averaged_pixels' parameter must be True or False. Got {averaged_pixels!r} instead.")
+    if averaged_pixels and pixel_window is not True:
+        raise InvalidInputError(
+            "The 'averaged_pixels' parameter needs the HEALPix pixel window (pixel_window=True): it corrects what "
+            "that window leaves out of maps averaged into pixels."
+        )
     temps, guess, sky_lmax, factors = _resolve_corrections(
         w1, w2, binning, nside, lmax, templates, guess_cl, sky_lmax, correct_deprojection_bias,
-        remove_monopole_dipole, (beam, beam2, pixel_window, t1, t2), nthreads,
+        remove_monopole_dipole, (beam, beam2, pixel_window, t1, t2), nthreads, bool(averaged_pixels),
     )
     descriptions = {
         "beam": d_b1,
@@ -318,6 +328,7 @@ def resolve_settings(
         guess_cl=guess,
         sky_lmax=sky_lmax,
         correct_deprojection_bias=bool(correct_deprojection_bias),
+        averaged_pixels=bool(averaged_pixels),
         sky_factors=factors,
     )
 
@@ -330,7 +341,7 @@ def _padded(a, n):
 
 
 def _resolve_corrections(w1, w2, binning, nside, lmax, templates, guess_cl, sky_lmax, correct, remove_md, raw,
-                         nthreads):
+                         nthreads, averaged=False):
     """Templates, guess spectrum, sky band limit and the spectra on the grid that the corrections need."""
     if templates is None:
         temps = ()
@@ -364,7 +375,7 @@ def _resolve_corrections(w1, w2, binning, nside, lmax, templates, guess_cl, sky_
     else:
         sky_lmax = check_int(sky_lmax, "sky_lmax", minimum=lmax, maximum=8 * nside)
     deprojects = bool(remove_md or temps)
-    needs = (deprojects and correct) or sky_lmax > binning.lmax
+    needs = (deprojects and correct) or sky_lmax > binning.lmax or averaged
     if not needs:
         if guess_cl is not None:
             check_cl(guess_cl, "guess_cl")
@@ -440,6 +451,8 @@ def bandpower_record(inp, *, cross, f_sky, f_sky_eff, condition_number) -> dict:
             else "not corrected"
         )
     meta["sky_lmax"] = inp.sky_lmax
+    if inp.averaged_pixels:
+        meta["pixels"] = "averaged: the pixel shapes' bias corrected with the guess spectrum"
     meta["guess_spectrum"] = inp.descriptions.get("guess_cl", "none")
     if inp.fast is not None:
         meta["coupling"] = "fast l_exact={} l_toeplitz={} band={}".format(*inp.fast)

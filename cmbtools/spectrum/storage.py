@@ -69,6 +69,7 @@ def save_estimator(estimator, path, *, overwrite=False) -> Path:
         "n_templates": len(inp.templates),
         "sky_lmax": inp.sky_lmax,
         "correct_deprojection_bias": bool(inp.correct_deprojection_bias),
+        "averaged_pixels": bool(inp.averaged_pixels),
         "condition_number": float(estimator._condition_number),
         "f_sky": float(estimator._f_sky),
         "f_sky_eff": float(estimator._f_sky_eff),
@@ -147,6 +148,7 @@ def load_estimator(cls, path, *, nthreads=None):
         guess_cl=data.get("guess_cl"),
         sky_lmax=settings.get("sky_lmax"),
         correct_deprojection_bias=bool(settings.get("correct_deprojection_bias", True)),
+        averaged_pixels=bool(settings.get("averaged_pixels", False)),
         sky_factors=factors,
     )
     if inp.cache_key != settings["cache_key"]:

@@ -12,6 +12,7 @@ from cmbtools._core.binned_tables import read_filter_table, read_transfer_table
 from cmbtools._core.tables import write_text_table
 from cmbtools.exceptions import InputFileError, InvalidInputError
 from cmbtools.simulate import Dipole, NoiseModel, fiducial_cl, gaussian_alm, noise_map, noise_spectrum, validate_estimator
+from cmbtools.simulate.pixel_averaging import pixel_averaged_map
 from cmbtools.spectrum import (
     BandpowerCovariance, BandpowerTransfer, Binning, SpectrumEstimator, gaussian_beam, pixel_window,
 )
@@ -52,8 +53,8 @@ def one_thread(monkeypatch):
 
 
 def test_measured_transfer_undoes_a_high_pass_on_independent_realistic_maps(one_thread):
-    # Skies as real maps are: power to 4 nside - 1, a beam of two pixels, synthesized at 2 nside and averaged into
-    # the pixels (healpy.ud_grade), a 100 uK monopole and a 3 mK dipole, noise shaped by a hits map, a tapered
+    # Skies as real maps are: power to 4 nside - 1, a beam of two pixels, averaged over each pixel's area
+    # (simulate.pixel_averaging, checked against healpy in tests/simulate/test_pixel_averaging.py), a 100 uK monopole and a 3 mK dipole, noise shaped by a hits map, a tapered
     # cap with holes; a harmonic high-pass multiplies every a_lm (monopole and dipole too) before the noise.
     # 1. validate_estimator measures F_b on 300 filtered skies; 2. 300 independent skies made here (public
     # simulation functions, another seed) go through the estimator and BandpowerTransfer.apply.  Every reported
@@ -81,13 +82,13 @@ def test_measured_transfer_undoes_a_high_pass_on_independent_realistic_maps(one_
     assert np.all(transfer.transfer_error / transfer.transfer < 0.02)
 
     noise_cl = noise_spectrum(noise, lmax, nside)
-    amplitude = gaussian_beam(fwhm, sky_lmax) * pixel_window(2 * nside, sky_lmax) * f
+    amplitude = gaussian_beam(fwhm, sky_lmax) * f
     dipole = 3e-3 * hp.ang2vec(30.0, 40.0, lonlat=True) * f[1]
     corrected, measured = [], []
     for i in range(n_sims):
         rng = np.random.default_rng([17, i])
         alm = _sht.almxfl(gaussian_alm(cl, sky_lmax, rng=rng), amplitude, sky_lmax)
-        m = hp.ud_grade(_sht.alm2map(alm, 2 * nside, sky_lmax, nthreads=1), nside)
+        m = pixel_averaged_map(alm, nside, sky_lmax, nthreads=1)
         m += 100e-6 * f[0] + vec @ dipole + noise_map(noise, nside, rng=rng)
         bp = est.estimate(m, noise_cl=noise_cl)
         out = transfer.apply(bp)

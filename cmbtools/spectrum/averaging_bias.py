@@ -1,0 +1,234 @@
+"""The bias of maps averaged into HEALPix pixels: what the isotropic pixel window leaves out.
+
+A detector's map holds, in pixel p, the mean of the beam-convolved sky T over
+the pixel's area.  The estimator's model is the sky convolved with the
+isotropic pixel window w_l (Gorski et al. 2005, ApJ 622, 759, section 4.1:
+the all-sky mean of every pixel's response) and sampled at the pixel
+centres.  With the plain quadrature of the analysis, the expected
+pseudo-spectrum of a map m weighted by masks W_a, W_b is exactly::
+
+    E[C~_l] = (Omega^2 / 4 pi) sum_{p,q} W_a(p) W_b(q) P_l(n_p . n_q) Cov(m_p, m_q)
+
+(the addition theorem; Omega = 4 pi / Npix).  For the model,
+``Cov = xi_w(n_p . n_q)``, the correlation function of the spectrum
+``C_l B_l^2 w_l^2``; for averaged pixels it is ``<xi(n . n')>_{n in p,
+n' in q}``, the mean over both pixels of the correlation function of
+``C_l B_l^2``.  Their difference is confined to pairs a few pixels (or beam
+widths) apart, because it comes from the shapes of the pixels: pixels change
+shape across the sphere (so the pixels under a mask do not respond as the
+all-sky mean), and the averaging changes how the grid aliases power near
+2-3 nside.  :func:`averaging_bias` sums the difference over the pairs
+within a radius, for a guess spectrum, exactly as the formula above (pixel
+means by each pixel's Gauss-Legendre rule, the correlation functions by
+Legendre sums, the pairs of a fixed sample of the mask's pixels when there
+are many).  The operator folds it into the binned matrix's coupling rows
+like the leakage of power above the bins, so it is exact when the sky has
+the shape of the guess.
+
+Measured (paired skies: averaged maps against pixel-centre maps with the
+window, whose pseudo-spectrum the coupling gives exactly), nside 32, beam of
+2.2 pixels, bins of 8 multipoles up to 2.7 nside: a cap beyond colatitude
+120 degrees, an equatorial band and the full sky differ from the model by up
+to -1.1 %, +1.1 % and +0.6 %; the bias computed here reproduces every bin
+within 0.1 % (0.36 % in the full sky's bin at 2.4 nside).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from cmbtools._core.checks import check_nside
+
+__all__ = ["averaging_bias", "pair_radius"]
+
+#: The pairs are summed to this many pixel sizes at least ...
+MIN_RADIUS_PIXELS = 7.0
+#: ... and to this many times the beam's FWHM (estimated from where B_l^2 falls to one half).
+RADIUS_BEAMS = 3.0
+#: The pairs of at most this many pixels of the mask are summed (a fixed sample above it, each standing for
+#: its share of the mask's pixels).
+MAX_CENTRES = 4096
+#: Gauss-Legendre nodes per pixel side for the means over pixel pairs.
+ORDER = 3
+#: Intervals of the correlation-function tables (uniform in chord^2, linear interpolation: relative error
+#: below 1e-5 of xi up to l = 4 nside).
+_TABLE_POINTS = 1 << 17
+#: Bins of the pair-separation histogram.
+_HIST_BINS = 1 << 13
+
+
+def pair_radius(nside, sky_factor) -> float:
+    """Angular radius of the pair sums: ``max(7 pixels, 3 FWHM)``.
+
+    Parameters
+    ----------
+    nside : int
+        Resolution of the map.
+    sky_factor : array_like
+        B_l^2 T_l (no pixel window) from l = 0; the FWHM is that of the Gaussian
+        beam with the same half-power multipole (none: 7 pixels).
+
+    Returns
+    -------
+    float
+        Radians.
+    """
+    pixel = math.sqrt(4.0 * math.pi / (12 * nside * nside))
+    f = np.asarray(sky_factor, dtype=np.float64)
+    below = np.nonzero(f <= 0.5 * f[0])[0] if f.size and f[0] > 0 else np.zeros(0, int)
+    radius = MIN_RADIUS_PIXELS * pixel
+    if below.size and below[0] > 1:
+        l_half = float(below[0])
+        sigma = math.sqrt(math.log(2.0)) / math.sqrt(l_half * (l_half + 1.0))
+        radius = max(radius, RADIUS_BEAMS * 2.0 * math.sqrt(2.0 * math.log(2.0)) * sigma)
+    return radius
+
+
+def _correlation_tables(spectra, chord_max):
+    """xi = sum_l (2l+1)/(4 pi) C_l P_l(1 - chord^2/2) on a grid uniform in chord^2, for each spectrum.
+
+    Returns the grid step in chord^2 and, per spectrum, (values, slopes) for :func:`_lookup`.
+    """
+    step = chord_max**2 / _TABLE_POINTS
+    x = 1.0 - 0.5 * step * np.arange(_TABLE_POINTS + 2)
+    out = []
+    for cl in spectra:
+        ell = np.arange(cl.size)
+        values = np.polynomial.legendre.legval(x, (2.0 * ell + 1.0) / (4.0 * np.pi) * cl)
+        out.append((values[:-1].copy(), np.diff(values)))
+    return step, out
+
+
+def _lookup(table, step, chord2):
+    """Linear interpolation of a table of :func:`_correlation_tables` at squared chords (overwrites ``chord2``)."""
+    values, slopes = table
+    chord2 *= 1.0 / step
+    i = chord2.astype(np.intp)
+    np.minimum(i, values.size - 1, out=i)
+    chord2 -= i
+    chord2 *= slopes[i]
+    chord2 += values[i]
+    return chord2
+
+
+def _pixel_nodes(nside, pixels, order):
+    """Unit vectors (n, order^2, 3) of each pixel's square Gauss-Legendre nodes and their weights (sum 1)."""
+    import ducc0
+
+    from cmbtools.spectrum.pixel_windows import face_to_vectors
+
+    t, w = np.polynomial.legendre.leggauss(order)
+    u, wu = 0.5 * (t + 1.0), 0.5 * w
+    a, b = np.meshgrid(u, u, indexing="ij")
+    weight = np.outer(wu, wu).ravel()
+    xyf = ducc0.healpix.Healpix_Base(nside, "RING").pix2xyf(np.asarray(pixels, dtype=np.int64))
+    vec = face_to_vectors((xyf[:, 0:1] + a.ravel()[None, :]) / nside, (xyf[:, 1:2] + b.ravel()[None, :]) / nside,
+                          xyf[:, 2:3])
+    return vec, weight
+
+
+def _legendre_sums(hist, chord, lmax):
+    """sum_k hist_k P_l(1 - chord_k^2 / 2) for l = 0..lmax."""
+    x = 1.0 - 0.5 * chord**2
+    out = np.empty(lmax + 1)
+    p_prev, p = np.ones_like(x), x.copy()
+    out[0] = hist.sum()
+    if lmax >= 1:
+        out[1] = hist @ p
+    for ell in range(2, lmax + 1):
+        p_prev, p = p, ((2 * ell - 1) * x * p - (ell - 1) * p_prev) / ell
+        out[ell] = hist @ p
+    return out
+
+
+def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_centres=MAX_CENTRES,
+                   order=ORDER) -> np.ndarray:
+    """Expected pseudo-spectrum of pixel-averaged maps minus that of the window model, for one sky spectrum.
+
+    Parameters
+    ----------
+    mask : ndarray of shape (12 nside^2,)
+        Weights of the map (RING).
+    sky_cl : array_like
+        Spectrum of the beam-convolved sky, C_l B_l^2 T_l, from l = 0 to the sky's band limit (no pixel window).
+    window : array_like
+        The pixel window w_l the estimator divides out, to the same band limit.
+    lmax : int
+        Largest multipole of the result.
+    mask2 : ndarray, optional
+        Weights of the second map of a cross-spectrum.
+    radius : float, optional
+        Largest pair separation, radians (default 7 pixels; the estimator passes :func:`pair_radius`).
+    max_centres : int
+        Pixels of the mask whose pairs are summed (all of them when there are fewer).
+    order : int
+        Gauss-Legendre nodes per pixel side.
+
+    Returns
+    -------
+    ndarray of shape (lmax+1,)
+        ``E[C~_l](averaged) - E[C~_l](model)``, in the units of ``sky_cl``.
+    """
+    import ducc0
+
+    w_a = np.asarray(mask, dtype=np.float64)
+    w_b = w_a if mask2 is None else np.asarray(mask2, dtype=np.float64)
+    npix = w_a.size
+    nside = check_nside(int(round(math.sqrt(npix / 12))))
+    sky = np.asarray(sky_cl, dtype=np.float64)
+    win = np.asarray(window, dtype=np.float64)[: sky.size]
+    if radius is None:
+        radius = MIN_RADIUS_PIXELS * math.sqrt(4.0 * math.pi / npix)
+    base = ducc0.healpix.Healpix_Base(nside, "RING")
+    reach = radius + 2.0 * base.max_pixrad()
+    chord_max = 2.0 * math.sin(min(reach, math.pi) / 2.0) * 1.0001
+    step, (xi_avg, xi_model) = _correlation_tables([sky, sky * win**2], chord_max)
+
+    centres = np.nonzero(w_a != 0.0)[0]
+    if centres.size == 0 or not np.any(w_b != 0.0):
+        return np.zeros(lmax + 1)
+    share = 1.0
+    if centres.size > max_centres:  # a fixed sample, each standing for its share of the mask's pixels
+        share = centres.size / max_centres
+        centres = np.sort(np.random.default_rng(20261203).choice(centres, max_centres, replace=False))
+    theta, phi = base.pix2ang(centres).T
+    hist_chord_max = 2.0 * math.sin(min(radius, math.pi) / 2.0) * 1.0001
+    scale = _HIST_BINS / hist_chord_max
+    hist = np.zeros(_HIST_BINS + 2)
+    block = max(1, (1 << 21) // (order**4))
+    # every pair (p, q) of a centre p and a pixel q of the second mask within the radius
+    pairs_p, pairs_q = [], []
+    for p, th, ph in zip(centres, theta, phi):
+        ranges = base.query_disc(np.array([th, ph]), radius)
+        q = np.concatenate([np.arange(a, b) for a, b in ranges])
+        q = q[w_b[q] != 0.0]
+        pairs_p.append(np.full(q.size, p))
+        pairs_q.append(q)
+    pairs_p, pairs_q = np.concatenate(pairs_p), np.concatenate(pairs_q)
+    # the nodes of every pixel involved, once
+    used, index = np.unique(np.concatenate([pairs_p, pairs_q]), return_inverse=True)
+    index_p, index_q = index[: pairs_p.size], index[pairs_p.size :]
+    nodes, wt = _pixel_nodes(nside, used, order)
+    centre_vec = base.pix2vec(used)
+    weight2 = np.outer(wt, wt).ravel()
+    for s in range(0, pairs_p.size, block):
+        ip, iq = index_p[s : s + block], index_q[s : s + block]
+        c2 = np.matmul(nodes[ip], nodes[iq].transpose(0, 2, 1)).reshape(ip.size, -1)
+        c2 *= -2.0
+        c2 += 2.0
+        np.clip(c2, 0.0, None, out=c2)
+        mean = _lookup(xi_avg, step, c2) @ weight2
+        centre2 = np.sum((centre_vec[ip] - centre_vec[iq]) ** 2, axis=1)
+        centre_chord = np.sqrt(centre2)
+        delta = mean - _lookup(xi_model, step, centre2)
+        weight = share * w_a[pairs_p[s : s + block]] * w_b[pairs_q[s : s + block]] * delta
+        pos = centre_chord * scale
+        i = np.minimum(pos.astype(np.intp), _HIST_BINS)
+        f = pos - i
+        hist += np.bincount(i, weights=weight * (1.0 - f), minlength=_HIST_BINS + 2)[: _HIST_BINS + 2]
+        hist[1:] += np.bincount(i, weights=weight * f, minlength=_HIST_BINS + 1)[: _HIST_BINS + 1]
+    chord = np.arange(_HIST_BINS + 2) / scale
+    omega = 4.0 * np.pi / npix
+    return omega**2 / (4.0 * np.pi) * _legendre_sums(hist, chord, lmax)
