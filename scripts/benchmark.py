@@ -43,6 +43,12 @@ W4  Comoving distance at 1e6 redshifts between 0 and 1100 (building the
     redshifts and scaled by 100); largest relative difference from astropy.
 W5  nside 512, lmax 1535, the W1 mask: the polarized estimator (TT, TE, TB, EE, EB, BB; first call and
     reuse on an I, Q, U map) against the temperature estimator on the same mask and bins (target 3.5x).
+W6  nside 1024, lmax 3071, the W1 mask: the Gaussian bandpower covariance (``GaussianCovariance``
+    built and applied to measured bandpowers, the estimator built and used before) of an
+    auto-spectrum with per-pixel noise, and of a cross-spectrum (two masks, two noises), against one
+    coupling-matrix computation of a weight map (its transform to 2 lmax plus ducc0's kernel; target 3,
+    issue 12: "at most 3 coupling-matrix computations more than the estimator's first call"); the
+    ratios against the kernel alone are reported too.
 
 The pixel window of an nside is computed once and then read from the disk
 cache (``cmbtools._core.files.cache_dir()``); the first calls above are timed with it
@@ -616,7 +622,15 @@ def workload_5(nside, repeats, threads, seed):
 
 
 def workload_6(nside, repeats, threads, seed):
-    """The Gaussian bandpower covariance (issue 12) against one coupling matrix of the bare kernel, same lmax."""
+    """The Gaussian bandpower covariance (issue 12) against coupling-matrix computations, same lmax.
+
+    The issue asks that the covariance cost "at most 3 coupling-matrix computations more than the
+    estimator's first call": the estimator is built and has estimated a map before the covariance is
+    timed, and the unit is one coupling-matrix computation of a weight map as the first call does it
+    (the map's transform to 2 lmax and ducc0's kernel on its spectrum), since every matrix the covariance
+    needs is of a weight map (mask products, noise-weighted masks) whose spectrum is not known beforehand.
+    The ratios against the kernel alone (the unit used before 2026-12-03) are reported too.
+    """
     import ducc0
     import numpy as np
 
@@ -634,13 +648,19 @@ def workload_6(nside, repeats, threads, seed):
     noise = spectrum.PixelNoise.from_hits(hits, 30.0)
     noise2 = spectrum.PixelNoise.from_hits(hits[::-1].copy(), 40.0)
     bp = est.estimate(t1)
-    w_l = _coupling.mask_spectrum(mask, lmax=lmax, nthreads=threads)
+    parts = {"transform": [], "kernel": []}
 
-    def bare_coupling():
+    def coupling_computation():  # one coupling matrix of a weight map: its spectrum to 2 lmax, then the kernel
+        t0 = time.perf_counter()
+        w_l = _coupling.mask_spectrum(mask, lmax=lmax, nthreads=threads)
+        t1_ = time.perf_counter()
         spec = np.zeros((1, 2 * lmax + 1))
         spec[0, :] = w_l[: 2 * lmax + 1]
         out = np.empty((1, lmax + 1, lmax + 1))
-        return ducc0.misc.experimental.coupling_matrix_rect(spec, (0,), out, nthreads=threads)
+        ducc0.misc.experimental.coupling_matrix_rect(spec, (0,), out, nthreads=threads)
+        parts["transform"].append(t1_ - t0)
+        parts["kernel"].append(time.perf_counter() - t1_)
+        return out
 
     def auto():
         return spectrum.GaussianCovariance(est, noise=noise, nthreads=threads).covariance(bp)
@@ -649,10 +669,12 @@ def workload_6(nside, repeats, threads, seed):
         return spectrum.GaussianCovariance(est_x, noise=noise, noise2=noise2, cross=True,
                                            nthreads=threads).covariance(bp)
 
-    _log("W6: auto-spectrum covariance with per-pixel noise against one coupling matrix")
-    t_auto, t_bare, _ = _paired(auto, bare_coupling, repeats)
+    _log("W6: auto-spectrum covariance with per-pixel noise against one coupling-matrix computation")
+    t_auto, t_unit, _ = _paired(auto, coupling_computation, repeats)
     _log("W6: cross-spectrum covariance (two masks, two noises)")
-    t_cross, t_bare2, _ = _paired(cross, bare_coupling, repeats)
+    t_cross, t_unit2, _ = _paired(cross, coupling_computation, repeats)
+    t_kernel = statistics.median(parts["kernel"])
+    t_transform = statistics.median(parts["transform"])
     gauss = spectrum.GaussianCovariance(est, noise=noise, nthreads=threads)
     _log("W6: a covariance for a new spectrum with the matrices built")
     t_again, _ = _median_time(lambda: gauss.covariance(bp), repeats)
@@ -660,11 +682,15 @@ def workload_6(nside, repeats, threads, seed):
         "nside": nside,
         "lmax": lmax,
         "repeats": repeats,
-        "coupling_matrix_s": round(t_bare, 3),
+        "coupling_computation_s": round(statistics.median([t_unit, t_unit2]), 3),
+        "mask_transform_s": round(t_transform, 3),
+        "coupling_kernel_s": round(t_kernel, 3),
         "auto_covariance_s": round(t_auto, 3),
-        "auto_in_coupling_matrices": round(t_auto / t_bare, 3),
+        "auto_in_coupling_matrices": round(t_auto / t_unit, 3),
+        "auto_in_kernel_calls": round(t_auto / t_kernel, 3),
         "cross_covariance_s": round(t_cross, 3),
-        "cross_in_coupling_matrices": round(t_cross / t_bare2, 3),
+        "cross_in_coupling_matrices": round(t_cross / t_unit2, 3),
+        "cross_in_kernel_calls": round(t_cross / t_kernel, 3),
         "new_spectrum_s": round(t_again, 3),
     }
 

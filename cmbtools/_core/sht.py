@@ -38,7 +38,7 @@ import ducc0
 
 from cmbtools._core.checks import resolve_nthreads
 
-__all__ = ["ring_geometry", "occupied_rings", "ring_pixel_ranges", "adjoint_sums", "synthesis_on_rings", "map2alm", "map_spectra", "alm2map", "alm2cl", "almxfl", "alm_size", "alm_ell",
+__all__ = ["RingBlocks", "runs_in_pieces", "ring_geometry", "occupied_rings", "ring_pixel_ranges", "adjoint_sums", "synthesis_on_rings", "map2alm", "map_spectra", "alm2map", "alm2cl", "almxfl", "alm_size", "alm_ell",
            "map2alm_spin", "alm2map_spin", "map2alm_spin2", "alm2map_spin2", "synthesis_at_points"]
 
 #: Largest work buffer (bytes: ducc0's Legendre coefficients plus the result) of a transform run in one
@@ -178,6 +178,11 @@ def map2alm(m, lmax: int, *, n_iter: int = 0, nthreads: int | None = None, rings
     return alm[0]
 
 
+def runs_in_pieces(nside: int, lmax: int, n_maps: int = 1) -> bool:
+    """Whether :func:`map_spectra` of ``n_maps`` maps transforms them in pieces (see the module notes)."""
+    return _leg_bytes(nside, lmax) + 16 * alm_size(lmax) * n_maps > ONE_CALL_BYTES
+
+
 def _leg_bytes(nside: int, lmax: int) -> int:
     return (4 * int(nside) - 1) * (int(lmax) + 1) * 16
 
@@ -202,11 +207,16 @@ def _m_groups(lmax: int, n_m: int, budget: int | None = None):
         m0 = m1
 
 
-def _ring_groups(nside: int, n_m: int):
-    """Groups of ring indices (north rings with their southern mirrors) whose Legendre buffer fits the budget."""
+def _ring_groups(nside: int, n_m: int, pixels_too: bool = False):
+    """Groups of ring indices (north rings with their southern mirrors) whose Legendre buffer fits the budget.
+
+    ``pixels_too``: their pixels (float64) fit in the budget too (for a map made group by group).
+    """
     n_rings = 4 * int(nside) - 1
     half = (n_rings + 1) // 2  # the northern rings and the equator
     per_ring = 2 * 16 * n_m  # a ring and its mirror
+    if pixels_too:
+        per_ring = max(per_ring, 2 * 8 * 4 * int(nside))  # (at most 4 nside pixels a ring)
     step = max(1, LEG_BUFFER_BYTES // per_ring)
     for a in range(0, half, step):
         b = min(half, a + step)
@@ -215,25 +225,70 @@ def _ring_groups(nside: int, n_m: int):
         yield np.concatenate([north, south[south >= half][::-1]])
 
 
+class RingBlocks:
+    """A RING map made on demand, a run of rings at a time, instead of held whole.
+
+    ``values(r0, r1)`` returns the pixels of rings ``r0 .. r1-1`` (a new float64
+    array).  The split transforms of :func:`map_spectra` take it in place of a
+    map: each group of rings is made when it is transformed, so the map never
+    exists whole (it is made once per group of m: cheap pixel work, against a
+    map-sized array saved).  :meth:`full` makes the whole map.
+    """
+
+    def __init__(self, nside: int, values):
+        self.nside = int(nside)
+        self.size = 12 * self.nside**2
+        self._values = values
+
+    def block(self, rings):
+        """Pixels of the (sorted) ring indices ``rings``, concatenated, and where each ring starts in them."""
+        geom = ring_geometry(self.nside)
+        rings = np.asarray(rings)
+        cut = np.flatnonzero(np.diff(rings) != 1) + 1
+        nphi = geom["nphi"][rings].astype(np.int64)
+        starts = np.cumsum(nphi) - nphi
+        runs = np.split(rings, cut)
+        if len(runs) == 1:
+            out = self._values(int(rings[0]), int(rings[-1]) + 1)
+        else:
+            out = np.empty(int(nphi.sum()))
+            at = 0
+            for run in runs:
+                piece = self._values(int(run[0]), int(run[-1]) + 1)
+                out[at:at + piece.size] = piece
+                at += piece.size
+                del piece
+        return out.reshape(1, -1), starts.astype(np.uintp)
+
+    def full(self) -> np.ndarray:
+        """The whole map."""
+        return self._values(0, 4 * self.nside - 1)
+
+
 def _adjoint_add(acc, m, nside, lmax, m0, m1, nthreads, occupied=None):
     """Add the adjoint transform's coefficients with ``m0 <= m < m1`` (no area factor) into ``acc``.
 
     One group of rings at a time; the Legendre buffer is freed before the
     piece of coefficients is added, and the piece right after, so at most one
-    of each is alive besides ``acc``.
+    of each is alive besides ``acc``.  ``m`` is a map or a :class:`RingBlocks`.
     """
     geom = ring_geometry(nside)
     mval = np.arange(m0, m1, dtype=np.uintp)
     start, _ = _m_block(lmax, m0, m1)
     mstart = (np.arange(m0, m1) * (2 * lmax + 1 - np.arange(m0, m1)) // 2 - start).astype(np.uintp)
-    flat = m.reshape(1, -1)
-    for rings in _ring_groups(nside, m1):
+    blocks = isinstance(m, RingBlocks)
+    flat = None if blocks else m.reshape(1, -1)
+    for rings in _ring_groups(nside, m1, pixels_too=blocks):
         if occupied is not None:
             rings = rings[occupied[rings]]
             if rings.size == 0:
                 continue
+        if blocks:
+            flat, ringstart = m.block(rings)
+        else:
+            ringstart = geom["ringstart"][rings]
         leg = ducc0.sht.experimental.map2leg(
-            map=flat, nphi=geom["nphi"][rings], phi0=geom["phi0"][rings], ringstart=geom["ringstart"][rings],
+            map=flat, nphi=geom["nphi"][rings], phi0=geom["phi0"][rings], ringstart=ringstart,
             mmax=m1 - 1, nthreads=nthreads,
         )
         part = ducc0.sht.experimental.leg2alm(
@@ -250,15 +305,17 @@ def map_spectra(maps, lmax: int, *, nthreads: int | None = None, rings=None) -> 
 
     Returns ``[C11]`` for one map and ``[C11, C22, C12]`` for two, each of
     shape ``(lmax+1,)``; equal to ``alm2cl`` of ``map2alm(..., n_iter=0)``
-    to rounding.  When the transform is large the coefficients are made one
+    to rounding.  A map may be a :class:`RingBlocks` (made a group of rings at
+    a time by the split transforms, whole for a transform in one call).  When the transform is large the coefficients are made one
     group of m at a time and reduced at once (see the module notes).
     ``rings`` (from :func:`occupied_rings`) lets the transforms skip rings
     that are zero in every map.
     """
-    maps = [np.asarray(x, dtype=np.float64) for x in maps]
+    maps = [x if isinstance(x, RingBlocks) else np.asarray(x, dtype=np.float64) for x in maps]
     nside = int(round(np.sqrt(maps[0].size / 12)))
     nthreads = resolve_nthreads(nthreads)
-    if _leg_bytes(nside, lmax) + 16 * alm_size(lmax) * len(maps) <= ONE_CALL_BYTES:
+    if not runs_in_pieces(nside, lmax, len(maps)):
+        maps = [x.full() if isinstance(x, RingBlocks) else x for x in maps]
         alms = [map2alm(x, lmax, nthreads=nthreads, rings=rings) for x in maps]
         out = [alm2cl(a, lmax=lmax) for a in alms]
         if len(alms) == 2:

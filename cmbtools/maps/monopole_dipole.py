@@ -291,7 +291,7 @@ def _ring_runs(n_rings, rings):
     return list(zip(edges[0::2].tolist(), edges[1::2].tolist()))
 
 
-def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None, rings=None):
+def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None, rings=None, by_rings=False):
     """``w * (m - a - d . n)`` for a full RING map ``m`` and weights ``w``, by two harmonic sums.
 
     The same weighted least-squares fit as :func:`fit_monopole_dipole` with
@@ -304,6 +304,9 @@ def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None,
     ``sums_of_weights`` (from :func:`weight_sums` of the same ``w``) saves one
     transform per call; ``rings`` (:func:`cmbtools._core.sht.occupied_rings`
     of ``w``) lets the transforms skip the rings where ``w`` is zero (exact).
+    ``by_rings=True`` returns a :class:`cmbtools._core.sht.RingBlocks` instead,
+    which makes the same pixels a run of rings at a time (for the split
+    transforms of a large map: no second map-sized array).
 
     Raises
     ------
@@ -329,9 +332,21 @@ def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None,
     # centre the map on its weighted mean in pixel space (exact), so that only the fluctuations enter
     # the harmonic sums; the mean is added back to the monopole below
     offset = float(np.dot(w, m)) / total  # (any value near the weighted mean does: it is added back)
-    wm = m - offset
-    wm *= w
-    a_wm = _harmonic_sums(wm, 1, nthreads, rings)
+    geom = _sht.ring_geometry(nside)
+    starts = geom["ringstart"].astype(np.int64)
+    n_rings = starts.size
+    bounds = np.append(starts, m.size)
+    if by_rings:  # the sums of w (m - offset) a run of rings (about _MODEL_BLOCK pixels) at a time
+        a_wm = np.zeros(3, dtype=np.complex128)
+        for r0, r1 in _model_blocks(bounds, n_rings, rings):
+            p0, p1 = int(bounds[r0]), int(bounds[r1])
+            seg = m[p0:p1] - offset
+            seg *= w[p0:p1]
+            a_wm += _ring_sums(seg, nside, r0, r1, nthreads)
+    else:
+        wm = m - offset
+        wm *= w
+        a_wm = _harmonic_sums(wm, 1, nthreads, rings)
     sums_m = _first_moments(a_wm)
     mean_m = sums_m[0] / total
     cross = sums_m[1:] / total - mean_n * mean_m
@@ -343,23 +358,55 @@ def masked_without_monopole_dipole(m, w, *, nthreads=None, sums_of_weights=None,
     alm[0, 0] = mono * _S0
     alm[0, 1] = d[2] * _S10
     alm[0, 2] = (-d[0] + 1j * d[1]) * (0.5 * _S11)  # a_11 Y_11 + a_1-1 Y_1-1 = dx x + dy y
+
+    def without_model(seg, r0, r1):  # w (m - offset) on rings r0..r1-1, minus w times the model there
+        p0, p1 = int(bounds[r0]), int(bounds[r1])
+        block = _sht.synthesis_on_rings(alm, 1, nside, r0, r1, nthreads=nthreads)
+        block *= w[p0:p1]
+        seg -= block
+
+    if by_rings:
+        def values(r0, r1):
+            p0, p1 = int(bounds[r0]), int(bounds[r1])
+            seg = m[p0:p1] - offset
+            seg *= w[p0:p1]
+            for c0, c1 in _model_blocks(bounds, r1 - r0, None, r0):
+                q0, q1 = int(bounds[c0]) - p0, int(bounds[c1]) - p0
+                without_model(seg[q0:q1], c0, c1)
+            return seg
+
+        return _sht.RingBlocks(nside, values)
     # synthesize the model ring block by ring block (about 2**22 pixels, 32 MB, each: fewer calls cost
     # less) and subtract it in place, so that no second map-sized array is alive
-    geom = _sht.ring_geometry(nside)
-    starts = geom["ringstart"].astype(np.int64)
-    n_rings = starts.size
-    bounds = np.append(starts, m.size)
-    for first, stop in _ring_runs(n_rings, rings):  # (wm is 0 on the rings where w is)
-        r0 = first
+    for r0, r1 in _model_blocks(bounds, n_rings, rings):  # (wm is 0 on the rings where w is)
+        p0, p1 = int(bounds[r0]), int(bounds[r1])
+        without_model(wm[p0:p1], r0, r1)
+    return wm
+
+
+def _model_blocks(bounds, n_rings, rings, first_ring=0):
+    """Runs of rings ``(r0, r1)`` of about :data:`_MODEL_BLOCK` pixels each over the marked rings."""
+    for first, stop in _ring_runs(n_rings, rings):
+        r0, stop = first + first_ring, stop + first_ring
         while r0 < stop:
             r1 = int(np.searchsorted(bounds, bounds[r0] + _MODEL_BLOCK, side="right")) - 1
             r1 = min(stop, max(r1, r0 + 1))
-            p0, p1 = int(bounds[r0]), int(bounds[r1])
-            block = _sht.synthesis_on_rings(alm, 1, nside, r0, r1, nthreads=nthreads)
-            block *= w[p0:p1]
-            wm[p0:p1] -= block
+            yield r0, r1
             r0 = r1
-    return wm
+
+
+def _ring_sums(seg, nside, r0, r1, nthreads):
+    """Harmonic sums up to lmax 1 (layout a00, a10, a11) of the pixels ``seg`` of rings ``r0 .. r1-1``."""
+    import ducc0
+
+    from cmbtools._core import sht as _sht
+
+    geom = _sht.ring_geometry(nside)
+    return ducc0.sht.experimental.adjoint_synthesis(
+        map=seg.reshape(1, -1), lmax=1, spin=0, nthreads=nthreads, theta=geom["theta"][r0:r1],
+        phi0=geom["phi0"][r0:r1], nphi=geom["nphi"][r0:r1],
+        ringstart=(geom["ringstart"][r0:r1] - geom["ringstart"][r0]),
+    )[0]
 
 
 # ----------------------------------------------------------------------------- removal in harmonic space

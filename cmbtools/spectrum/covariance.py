@@ -28,7 +28,12 @@ binned coupling), so their covariance is ``R Cov R^T``.
 All the coupling matrices a covariance needs (one for an auto-spectrum without
 noise, three with noise, five for the cross-spectrum of two noisy maps) come
 from one call of ducc0's kernel, which shares the Wigner 3j symbols among
-them: the cost is about that of one or two coupling matrices.
+them: the cost is about that of one or two coupling matrices.  Each distinct
+weight map (``w_x w_y``, ``Omega w_x^2 v_x``) is transformed once, to
+``2 lmax``; the masks' own spectra (for the coupled signal spectra) are the
+ones the estimator's first call computed and kept.  The products of kernels
+that share a matrix are summed as one low-rank product, and the Legendre
+sums of the coupled spectra are ducc0's transforms restricted to ``m = 0``.
 
 Removed modes.  An estimator that removes the monopole and dipole (or
 templates) before masking changes the covariance of the lowest bins: the
@@ -69,34 +74,42 @@ def _legendre_nodes(n):
     import ducc0
 
     theta = ducc0.misc.GL_thetas(n)
-    return np.cos(theta), ducc0.misc.GL_weights(n, 1) / (2.0 * math.pi)
+    return theta, ducc0.misc.GL_weights(n, 1) / (2.0 * math.pi)
 
 
-def _legendre_sum(coef, x):
-    """``sum_L coef_L P_L(x)`` by the Clenshaw recurrence."""
-    b1 = np.zeros_like(x)
-    b2 = np.zeros_like(x)
-    for ell in range(coef.size - 1, 0, -1):
-        b0 = coef[ell] + (2 * ell + 1) / (ell + 1) * x * b1 - (ell + 1) / (ell + 2) * b2
-        b2, b1 = b1, b0
-    return coef[0] + x * b1 - 0.5 * b2
+def _nodes_geometry(theta):
+    """The Gauss-Legendre nodes as rings of one pixel each (for ducc0's transforms restricted to m = 0)."""
+    n = theta.size
+    return {"theta": theta, "nphi": np.ones(n, dtype=np.uintp), "phi0": np.zeros(n),
+            "ringstart": np.arange(n, dtype=np.uintp)}
 
 
-def _legendre_project(f, x, wts, lmax):
-    """``int P_l(x) f(x) dx`` for l = 0..lmax (Gauss-Legendre nodes ``x``, weights ``wts``)."""
-    out = np.empty(lmax + 1)
-    g = f * wts
-    p0, p1 = np.ones_like(x), x.copy()
-    out[0] = g.sum()
-    if lmax >= 1:
-        out[1] = g @ p1
-    for ell in range(2, lmax + 1):
-        p0, p1 = p1, ((2 * ell - 1) * x * p1 - (ell - 1) * p0) / ell
-        out[ell] = g @ p1
-    return out
+def _y_l0(lmax):
+    """``Y_l0 / P_l = sqrt((2l+1) / (4 pi))``."""
+    return np.sqrt((2.0 * np.arange(lmax + 1) + 1.0) / (4.0 * math.pi))
 
 
-def coupled_spectrum(mask_cl, cl, lmax) -> np.ndarray:
+def _legendre_sum(coef, theta, nthreads):
+    """``sum_L coef_L P_L(cos theta)``: ducc0's synthesis restricted to m = 0 (no Python loop over L)."""
+    import ducc0
+
+    lmax = coef.size - 1
+    alm = (coef / _y_l0(lmax)).astype(np.complex128).reshape(1, -1)
+    return ducc0.sht.experimental.synthesis(alm=alm, lmax=lmax, mmax=0, spin=0, nthreads=nthreads,
+                                            **_nodes_geometry(theta))[0]
+
+
+def _legendre_project(f, theta, wts, lmax, nthreads):
+    """``int P_l(x) f(x) dx`` for l = 0..lmax on the Gauss-Legendre nodes ``cos theta`` (weights ``wts``)."""
+    import ducc0
+
+    g = (f * wts).reshape(1, -1)
+    a = ducc0.sht.experimental.adjoint_synthesis(map=g, lmax=lmax, mmax=0, spin=0, nthreads=nthreads,
+                                                 **_nodes_geometry(theta))[0]
+    return a.real / _y_l0(lmax)
+
+
+def coupled_spectrum(mask_cl, cl, lmax, *, nthreads=1) -> np.ndarray:
     """``(M C)_l`` for l = 0..lmax: the pseudo-spectrum expected from ``cl`` under a mask of spectrum ``mask_cl``.
 
     ``M_lL = (2L+1)/(4 pi) sum_L'' (2L''+1) W_L'' (l L L''; 0 0 0)^2`` (Hivon et
@@ -112,6 +125,8 @@ def coupled_spectrum(mask_cl, cl, lmax) -> np.ndarray:
         Spectrum from ell 0 (its length sets the largest multipole used).
     lmax : int
         Largest multipole of the result.
+    nthreads : int, default=1
+        Threads of the Legendre transforms (ducc0's, restricted to m = 0).
 
     Returns
     -------
@@ -120,12 +135,12 @@ def coupled_spectrum(mask_cl, cl, lmax) -> np.ndarray:
     ls = cl.size - 1
     lw = min(mask_cl.size - 1, lmax + ls)
     n = (lmax + ls + lw) // 2 + 2
-    x, wts = _legendre_nodes(n)
+    theta, wts = _legendre_nodes(n)
     ell_w = np.arange(lw + 1)
-    xi_w = _legendre_sum((2 * ell_w + 1) / (4 * math.pi) * mask_cl[: lw + 1], x)
+    xi_w = _legendre_sum((2 * ell_w + 1) / (4 * math.pi) * mask_cl[: lw + 1], theta, nthreads)
     ell_c = np.arange(ls + 1)
-    xi_c = _legendre_sum((2 * ell_c + 1) / (4 * math.pi) * cl, x)
-    return 2.0 * math.pi * _legendre_project(xi_w * xi_c, x, wts, lmax)
+    xi_c = _legendre_sum((2 * ell_c + 1) / (4 * math.pi) * cl, theta, nthreads)
+    return 2.0 * math.pi * _legendre_project(xi_w * xi_c, theta, wts, lmax, nthreads)
 
 
 # ----------------------------------------------------------------------------- the analytic covariance
@@ -149,19 +164,45 @@ def _raw_couplings(spectra, lmax, nthreads):
 _COEFFICIENT_BUDGET = 2 * 2**30
 
 
-def _pair_spectra(fields, pairs, lw, nthreads, rings):
-    """Cross-spectra up to ``lw`` of the named weight maps, for every pair; each map transformed once when it fits."""
+def _pair_spectra(fields, pairs, lw, nthreads):
+    """Cross-spectra up to ``lw`` of the named weight maps, for every pair; each map transformed once when it fits.
+
+    Every transform skips the rings where its own map is zero (a product of two masks is zero wherever
+    either mask is).
+    """
     names = sorted({n for p in pairs for n in p})
+    rings = {n: _sht.occupied_rings(fields[n]) for n in names}
     if 16 * _sht.alm_size(lw) * len(names) <= _COEFFICIENT_BUDGET:
-        alms = {n: _sht.map2alm(fields[n], lw, nthreads=nthreads, rings=rings) for n in names}
+        alms = {n: _sht.map2alm(fields[n], lw, nthreads=nthreads, rings=rings[n]) for n in names}
         return {p: _sht.alm2cl(alms[p[0]], alms[p[1]], lmax=lw) for p in pairs}
     out = {}
     for p in pairs:  # lean on memory: the split transforms of map_spectra, two maps at a time
         if p[0] == p[1]:
-            out[p] = _sht.map_spectra([fields[p[0]]], lw, nthreads=nthreads, rings=rings)[0]
+            out[p] = _sht.map_spectra([fields[p[0]]], lw, nthreads=nthreads, rings=rings[p[0]])[0]
         else:
-            out[p] = _sht.map_spectra([fields[p[0]], fields[p[1]]], lw, nthreads=nthreads, rings=rings)[2]
+            both = rings[p[0]] | rings[p[1]]
+            out[p] = _sht.map_spectra([fields[p[0]], fields[p[1]]], lw, nthreads=nthreads, rings=both)[2]
     return out
+
+
+def _estimator_mask_spectra(estimator, cross, need):
+    """The masks' spectra the estimator's first call computed (plain quadrature, to ``2 lmax``), or None.
+
+    ``None`` when the estimator refined its mask transforms (``n_iter > 0``), when its spectra stop
+    below ``need`` or when it does not hold them (an estimator file from before they were kept).
+    """
+    inp = getattr(estimator, "_inputs", None)
+    w11 = getattr(estimator, "_mask_cl11", None)
+    if inp is None or w11 is None or int(inp.n_iter) != 0 or w11.size < need + 1:
+        return None
+    if not cross:
+        return {("1", "1"): w11[: need + 1]}
+    if inp.mask2 is None:  # both maps under the same mask
+        return {("1", "1"): w11[: need + 1], ("2", "2"): w11[: need + 1], ("1", "2"): w11[: need + 1]}
+    w22, w12 = getattr(estimator, "_mask_cl22", None), getattr(estimator, "_mask_cl12", None)
+    if w22 is None or w12 is None:
+        return None
+    return {("1", "1"): w11[: need + 1], ("2", "2"): w22[: need + 1], ("1", "2"): w12[: need + 1]}
 
 
 def _block_sum(matrix, starts):
@@ -260,8 +301,10 @@ class GaussianCovariance:
         pairs = (("1", "1"), ("1", "1")) if not cross else (("1", "2"), ("1", "2"))
         (a, b), (c, d) = pairs
 
+        same_mask = {"1": "1", "2": "1" if w2 is w1 else "2"}  # one field (and transform) per distinct product
+
         def s_field(x, y):
-            key = "S" + "".join(sorted(x + y))
+            key = "S" + "".join(sorted(same_mask[x] + same_mask[y]))
             if key not in fields:
                 fields[key] = self._masks[x] * self._masks[y]
             return key
@@ -283,8 +326,8 @@ class GaussianCovariance:
                 for k2, f2 in parts2:
                     terms.append((k1, k2, tuple(sorted((f1, f2)))))
         wanted = sorted({t[2] for t in terms})
-        rings = _sht.occupied_rings(w1) | _sht.occupied_rings(w2)
-        spectra = _pair_spectra(fields, wanted, 2 * lmax, nthreads, rings)
+        spectra = _pair_spectra(fields, wanted, 2 * lmax, nthreads)
+        del fields
         mats = _raw_couplings([spectra[p] for p in wanted], lmax, nthreads)
         self._mats = {p: mats[i] for i, p in enumerate(wanted)}
         self._terms = terms
@@ -294,12 +337,18 @@ class GaussianCovariance:
             lsky = 4 * int(estimator.nside) - 1 if sky_lmax is None else max(lmax, int(sky_lmax))
         self._lsky = lsky
         self._sky_factors = self._factors_to(estimator, cross, beam, beam2, lsky)
-        # the spectra of the masks for the coupled signal spectra (iNKA)
-        if cross:  # one call: both masks' spectra and their cross-spectrum
+        # the spectra of the masks for the coupled signal spectra (iNKA): the estimator's own when they reach
+        # lmax + lsky (no signal model above lmax), else transformed here
+        self._mask_cl = _estimator_mask_spectra(estimator, cross, lmax + lsky)
+        if self._mask_cl is None and cross and w2 is not w1:  # one call: both masks' spectra and their cross
+            rings = _sht.occupied_rings(w1) | _sht.occupied_rings(w2)
             w11, w22, w12 = _sht.map_spectra([w1, w2], lmax + lsky, nthreads=nthreads, rings=rings)
             self._mask_cl = {("1", "1"): w11, ("2", "2"): w22, ("1", "2"): w12}
-        else:
-            self._mask_cl = {("1", "1"): _sht.map_spectra([w1], lmax + lsky, nthreads=nthreads, rings=rings)[0]}
+        elif self._mask_cl is None:
+            w11 = _sht.map_spectra([w1], lmax + lsky, nthreads=nthreads, rings=_sht.occupied_rings(w1))[0]
+            self._mask_cl = {("1", "1"): w11}
+            if cross:  # both maps under one mask
+                self._mask_cl.update({("2", "2"): w11, ("1", "2"): w11})
         self._mean_w = {k: float(np.mean(self._masks[k[0]] * self._masks[k[1]])) for k in self._mask_cl}
         # the linear operator pseudo-spectrum -> bandpowers (C_l units)
         pm, f, ainv = estimator._pair(cross)
@@ -430,10 +479,21 @@ class GaussianCovariance:
         c = {}
         for key, wcl in self._mask_cl.items():
             f = self._sky_factors[key][: cl.size]
-            c[key] = np.clip(coupled_spectrum(wcl, f * cl, self._lmax) / self._mean_w[key], 0.0, None)
+            c[key] = np.clip(coupled_spectrum(wcl, f * cl, self._lmax, nthreads=self._nthreads) / self._mean_w[key],
+                             0.0, None)
         return c
 
     def _pseudo_covariance(self, cl, c):
+        cov = sum(m * (u @ u.T) for m, u in self._grouped_terms(c))
+        return 0.5 * (cov + cov.T)
+
+    def _grouped_terms(self, c):
+        """``(M_p, U_p)`` for every coupling matrix: the pseudo-covariance is ``sum_p M_p * (U_p U_p^T)``.
+
+        ``c``: the amplitudes of :meth:`_coupled`.  Each product of kernels adds ``u_l M_ll' u_l'`` with
+        ``u`` the product of two amplitudes; the products that share a matrix are the columns of its
+        ``U`` (one elementwise pass per matrix).
+        """
         lmax = self._lmax
         shapes = {x: (None if nz is None else nz.shape_to(lmax)) for x, nz in self._noise.items()}
 
@@ -443,11 +503,10 @@ class GaussianCovariance:
                 return np.sqrt(c[tuple(sorted((x, y)))])
             return np.sqrt(shapes[x])
 
-        cov = np.zeros((lmax + 1, lmax + 1))
+        columns = {}
         for k1, k2, p in self._terms:
-            u = amp(k1) * amp(k2)
-            cov += u[:, None] * self._mats[p] * u[None, :]
-        return 0.5 * (cov + cov.T)
+            columns.setdefault(p, []).append(amp(k1) * amp(k2))
+        return [(self._mats[p], np.stack(cols, axis=1)) for p, cols in columns.items()]
 
     def covariance(self, spectrum) -> "BandpowerCovariance":
         """The covariance of the bandpowers (``cl`` column, K^4) for a sky spectrum.
@@ -465,9 +524,13 @@ class GaussianCovariance:
         """
         cl, source = self._signal_cl(spectrum)
         c = self._coupled(cl)
-        pc = self._pseudo_covariance(cl, c)
         p = self._p
-        binned = _block_sum(pc * p[:, None] * p[None, :], self._starts)
+        binned = None
+        for m, u in self._grouped_terms(c):  # the bin sums of the pseudo-covariance, matrix by matrix
+            pu = p[:, None] * u
+            part = _block_sum(m * (pu @ pu.T), self._starts)
+            binned = part if binned is None else binned + part
+        binned = 0.5 * (binned + binned.T)
         if self._deprojection is not None:
             signal = {k: self._sky_factors[k][: cl.size] * cl for k in self._mask_cl}
             shapes = {x: (None if nz is None else nz.shape_to(self._lmax)) for x, nz in self._noise.items()}

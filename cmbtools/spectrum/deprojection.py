@@ -83,24 +83,29 @@ _S0, _S10, _S11 = np.sqrt(4 * np.pi), np.sqrt(4 * np.pi / 3), np.sqrt(8 * np.pi 
 @functools.lru_cache(maxsize=2)
 def _small_grid_vectors(nside):
     """The RING pixel-centre unit vectors of a small grid (nside <= COARSE_NSIDE), shape (3, npix), read-only."""
-    import healpy as hp
-
-    v = np.array(hp.pix2vec(nside, np.arange(12 * nside * nside)))
+    v = np.ascontiguousarray(_healpix_base(nside).pix2vec(np.arange(12 * nside * nside)).T)
     v.setflags(write=False)
     return v
 
 
+def _healpix_base(nside):
+    """ducc0's RING pixelization of ``nside`` (pixel centres and RING/NESTED indices without importing healpy,
+    whose import also loads matplotlib: tens of MB of a first call's memory)."""
+    import ducc0
+
+    return ducc0.healpix.Healpix_Base(int(nside), "RING")
+
+
 def _pixel_vector_component(nside, k):
     """Component ``k`` (0 x, 1 y, 2 z) of the RING pixel-centre unit vectors (chunked)."""
-    import healpy as hp
-
     if nside <= COARSE_NSIDE:
         return _small_grid_vectors(nside)[k]
+    base = _healpix_base(nside)
     npix = 12 * nside * nside
     out = np.empty(npix)
     for s in range(0, npix, _CHUNK):
         pix = np.arange(s, min(npix, s + _CHUNK))
-        out[s:s + pix.size] = hp.pix2vec(nside, pix)[k]
+        out[s:s + pix.size] = base.pix2vec(pix)[:, k]
     return out
 
 
@@ -361,15 +366,15 @@ def deprojection_bias(deprojection, signal_cl, lmax, *, deprojection2=None, nthr
 
 def _averaged_down(w, nside_out):
     """The RING map ``w`` averaged into the pixels of ``nside_out`` (RING): the plain mean of the sub-pixels."""
-    import healpy as hp
-
     nside_in = int(round(np.sqrt(w.size / 12)))
     k = (nside_in // nside_out) ** 2
+    fine = _healpix_base(nside_in)
     sums = np.zeros(12 * nside_out * nside_out)
     for s in range(0, w.size, _CHUNK):  # no full-size temporary: the NESTED parent of each RING pixel, in chunks
         pix = np.arange(s, min(w.size, s + _CHUNK))
-        sums += np.bincount(hp.ring2nest(nside_in, pix) // k, weights=w[s:s + pix.size], minlength=sums.size)
-    return hp.reorder(sums / k, n2r=True)
+        sums += np.bincount(fine.ring2nest(pix) // k, weights=w[s:s + pix.size], minlength=sums.size)
+    # NESTED -> RING: the RING pixel p holds the NESTED pixel ring2nest(p)
+    return sums[_healpix_base(nside_out).ring2nest(np.arange(sums.size))] / k
 
 
 def coarse_grid_deprojection_bias(mask, signal_cl, lmax, mask_cl, *, mask2=None, coarse_nside=COARSE_NSIDE,

@@ -34,8 +34,13 @@ _LARGEST_PLAIN_VALUE = 1e29
 class _MapPreparation:
     """Map checks, monopole/dipole removal or template deprojection, and transforms of the spectrum estimator."""
 
-    def _prepare(self, m, name, mask, is_second=False):
-        """Check a map against the mask, fill missing pixels outside it, remove monopole/dipole, apply the mask."""
+    def _prepare(self, m, name, mask, is_second=False, by_rings=False):
+        """Check a map against the mask, fill missing pixels outside it, remove monopole/dipole, apply the mask.
+
+        ``by_rings``: with the plain monopole/dipole removal, return a
+        :class:`~cmbtools._core.sht.RingBlocks` that makes the prepared map a run
+        of rings at a time (for a transform in pieces: no second map-sized array).
+        """
         a = self._checked_map(m, name, mask, is_second)
         if self._inputs.templates:
             return self._template_deprojection(is_second).project(a, nthreads=self._nthreads)
@@ -46,7 +51,7 @@ class _MapPreparation:
             rings = self._cached("_rings2" if is_second else "_rings1", lambda: _sht.occupied_rings(mask))
             sums = self._cached(key, lambda: weight_sums(mask, nthreads=self._nthreads, rings=rings))
             return masked_without_monopole_dipole(
-                a, mask, nthreads=self._nthreads, sums_of_weights=sums, rings=rings
+                a, mask, nthreads=self._nthreads, sums_of_weights=sums, rings=rings, by_rings=by_rings
             )
         return a * mask
 
@@ -131,7 +136,9 @@ class _MapPreparation:
         """
         coefficients = self.__dict__.get("_removal_coefficients")
         if coefficients is None:
-            return self._auto_spectrum(self._prepare(m, name, self.mask))
+            # a large map's transform runs in pieces: then the prepared map is made a run of rings at a time
+            by_rings = not self._inputs.n_iter and _sht.runs_in_pieces(self.nside, self.lmax)
+            return self._auto_spectrum(self._prepare(m, name, self.mask, by_rings=by_rings))
         from cmbtools.maps.monopole_dipole import subtract_fitted_coefficients
 
         masked = self._checked_map(m, name, self.mask) * self.mask

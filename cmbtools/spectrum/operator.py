@@ -54,7 +54,7 @@ def _binned_operator(pm, factor, binning, lmax, max_cond, what):
 def build_operator(inp, nthreads) -> dict:
     """Everything :class:`SpectrumEstimator` precomputes from its settings ``inp`` (:class:`EstimatorSettings`).
 
-    The masks' spectra to ``2 lmax``, the mode-coupling matrices (rows bin-averaged),
+    The masks' spectra to ``2 lmax`` (kept), the mode-coupling matrices (rows bin-averaged),
     the inverses of the binned matrices with their condition number, the
     covariance kernels (``covariance=True``) and the mask moments.
     """
@@ -174,6 +174,10 @@ def build_operator(inp, nthreads) -> dict:
         "w2": mom1.w2,
         "deprojection1": deps[0],
         "deprojection2": deps[1],
+        # the masks' spectra to mask_lmax (kept for the analytic covariance, which needs them again)
+        "mask_cl11": w11,
+        "mask_cl12": None if inp.mask2 is None else w12,
+        "mask_cl22": None if inp.mask2 is None else w22,
     }
 
 

@@ -12,8 +12,8 @@ coupled TT..BB system of :mod:`cmbtools.spectrum.polarized_operator`:
   estimator's own polarization transform (standard or pure B) gives of the mask times the Q, U field whose
   E and B coefficients are ``S^TE_l H_j,lm`` and ``S^TB_l H_j,lm`` (``H_j`` the exact pixel sums of the
   template times the temperature mask): exact on the grid for the guess.  Above ``COARSE_NSIDE`` it is
-  computed on the masks averaged to that grid up to ``2 COARSE_NSIDE`` and taken as zero above (the bias of
-  a smooth removal lives at the largest scales).
+  computed on the masks averaged to nside ``ONE_SIDED_NSIDE`` = 128, with the guess and the pseudo-spectrum up to
+  ell 256, and taken as zero above (the bias of a smooth removal lives at the largest scales).
 * **Power above the bins**: the sky's multipoles from the last bin to ``sky_lmax`` leak into the bins
   through every kernel of the coupled system (the columns above the bins of the same P-reduced kernels up
   to lmax, a rectangular kernel call above lmax).
@@ -37,6 +37,10 @@ from cmbtools.spectrum import deprojection as _dep
 from cmbtools.spectrum.errors import _reduce_rows
 
 __all__ = []
+
+#: Grid of the one-sided (TE, TB) removal bias for maps finer than ``COARSE_NSIDE``: the masks averaged to it,
+#: the bias to ``2 ONE_SIDED_NSIDE`` and zero above (a quarter of the cost of ``COARSE_NSIDE``'s grid).
+ONE_SIDED_NSIDE = 128
 
 #: Bins where a component's guess pseudo-power is below this fraction of its largest get no row factor.
 SMALL_BASE = 1e-2
@@ -73,10 +77,12 @@ def in_bin_shapes(binning, lmax, guess):
     return out
 
 
-def _coarse_masks(est, names):
+def _coarse_mask(est, key):
+    """A mask ('t1', 'p1', ...) averaged into the pixels of ``ONE_SIDED_NSIDE``, cached per distinct mask."""
     from cmbtools.spectrum.deprojection import _averaged_down
 
-    return {k: _averaged_down(est.masks[k], _dep.COARSE_NSIDE) for k in names}
+    j = est._key_of[key]
+    return est._cached(("coarse_mask", j), lambda: _averaged_down(est._unique[j], ONE_SIDED_NSIDE))
 
 
 def _deprojection_of(est, key, mask=None):
@@ -110,12 +116,11 @@ def _one_sided_bias(est, t_key, p_key, s_te, s_tb):
     nthreads = est._threads()
     coarse = est.nside > _dep.COARSE_NSIDE
     if coarse:
-        masks = est._cached(("coarse_masks", t_key, p_key), lambda: _coarse_masks(est, (t_key, p_key)))
-        dep = _deprojection_of(est, t_key, masks[t_key])
-        p_mask = masks[p_key]
-        nside = _dep.COARSE_NSIDE
+        dep = _deprojection_of(est, t_key, _coarse_mask(est, t_key))
+        p_mask = _coarse_mask(est, p_key)
+        nside = ONE_SIDED_NSIDE
         top = min(lmax, 2 * nside)
-        lw = min(np.size(s_te) - 1, 3 * nside - 1)
+        lw = min(np.size(s_te) - 1, top)  # the removal's bias lives at the largest scales
     else:
         dep = _deprojection_of(est, t_key)
         p_mask = est.masks[p_key]
@@ -273,4 +278,6 @@ def row_factors(est, a, b, components, terms, kernels):
         r = np.ones(nb)
         r[ok] += extra[ok] / base[ok]
         out[c] = r
+    for key in [k for k in est._cache if k[0] in ("deprojection", "coarse_mask")]:
+        del est._cache[key]  # map-sized: not kept (an estimator sent to workers carries per-bin arrays)
     return out

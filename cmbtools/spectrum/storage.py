@@ -21,7 +21,8 @@ from cmbtools.spectrum.binning import Binning
 from cmbtools.spectrum.settings import _FILE_FORMAT, EstimatorSettings, resolve_settings
 
 #: The precomputed arrays of an estimator that the file holds (attribute ``_<name>``; absent when None).
-_ARRAYS = ("f1", "f2", "f12", "pm11", "pm12", "pm22", "ainv11", "ainv12", "ainv22", "g11", "g12")
+_ARRAYS = ("f1", "f2", "f12", "pm11", "pm12", "pm22", "ainv11", "ainv12", "ainv22", "g11", "g12",
+           "mask_cl11", "mask_cl12", "mask_cl22")
 
 
 def save_estimator(estimator, path, *, overwrite=False) -> Path:

@@ -40,8 +40,9 @@ EXPECTED = {
         "temperature_reuse_s", "polarized_reuse_s", "reuse_ratio",
     },
     "W6": {
-        "nside", "lmax", "repeats", "coupling_matrix_s", "auto_covariance_s", "auto_in_coupling_matrices",
-        "cross_covariance_s", "cross_in_coupling_matrices", "new_spectrum_s",
+        "nside", "lmax", "repeats", "coupling_computation_s", "mask_transform_s", "coupling_kernel_s",
+        "auto_covariance_s", "auto_in_coupling_matrices", "auto_in_kernel_calls",
+        "cross_covariance_s", "cross_in_coupling_matrices", "cross_in_kernel_calls", "new_spectrum_s",
     },
 }
 TARGETS = {

@@ -69,6 +69,29 @@ def test_full_sky_cross_spectrum_of_two_noisy_maps():
     np.testing.assert_allclose(np.diag(cov.matrix), expected, rtol=2e-3)
 
 
+def test_covariance_from_the_estimators_kept_mask_spectra_equals_fresh_transforms(monkeypatch, tmp_path):
+    # the covariance reuses the masks' spectra of the estimator's first call (also after a save and load);
+    # transformed afresh they give the same matrix to rounding (cross-spectrum: two masks, two noises)
+    from cmbtools.spectrum import covariance as cov_module
+
+    nside, lmax = 16, 47
+    w1 = apodize_mask(cap_mask(nside, 30.0, 40.0, 60.0), 10.0, nthreads=1)
+    w2 = apodize_mask(cap_mask(nside, 50.0, 30.0, 60.0), 10.0, nthreads=1)
+    bins = Binning.uniform(2, lmax, 8)
+    est = SpectrumEstimator(w1, bins, lmax=lmax, mask2=w2, pixel_window=False, nthreads=1)
+    n1 = PixelNoise.from_hits(np.linspace(0.5, 2.0, w1.size), 30.0)
+    n2 = PixelNoise.from_hits(np.linspace(2.0, 0.5, w1.size), 40.0)
+    cl = 1e-10 * 100.0 / (np.arange(lmax + 1) + 10.0) ** 2
+    loaded = SpectrumEstimator.load(est.save(tmp_path / "est.npz"))
+    kept = [GaussianCovariance(e, noise=n1, noise2=n2, cross=True, nthreads=1).covariance(cl).matrix
+            for e in (est, loaded)]
+    assert cov_module._estimator_mask_spectra(loaded, True, lmax + lmax) is not None
+    monkeypatch.setattr(cov_module, "_estimator_mask_spectra", lambda *args: None)
+    fresh = GaussianCovariance(est, noise=n1, noise2=n2, cross=True, nthreads=1).covariance(cl).matrix
+    for m in kept:
+        np.testing.assert_allclose(m, fresh, rtol=1e-10, atol=1e-12 * np.abs(fresh).max())
+
+
 def test_noise_from_hits_keeps_the_depth_as_the_mean_noise_power():
     hits = np.linspace(0.5, 2.0, 12 * 8**2)
     noise = PixelNoise.from_hits(hits, 40.0)
