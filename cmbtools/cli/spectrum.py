@@ -19,8 +19,11 @@ dipole are fitted and removed on the masked sky, the pseudo-Cl of the masked
 map is corrected for the mask's mode coupling (MASTER), the beam and the
 HEALPix pixel window are deconvolved, and the result is averaged into bins.
 With two maps it measures their cross-spectrum, which has no noise bias when
-the two noises are independent.  Error bars: Knox formula with the effective
-sky fraction of the mask.
+the two noises are independent.  Error bars: the Gaussian covariance of the
+bandpowers (narrow-kernel approximation with the mask, beam, pixel window,
+the monopole/dipole removal and, with --noise-variance or --hits, the noise
+per pixel); --errors knox gives the cheaper Knox formula with the effective
+sky fraction, --covariance-from a simulated covariance.
 
 Top of the range: the transforms go to 3*nside-1, but without --lmax the
 bins end at 2.5 nside, or earlier where the beam keeps less than 1e-3 of the

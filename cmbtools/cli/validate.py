@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import sys
 
 from cmbtools.cli.common import (
     MAX_SIMULATIONS, MAX_THREADS, add_binning, add_force, add_overwrite, binning_from_args, bins_top, bounded_int,
@@ -45,7 +46,9 @@ n_sims, max_abs_bias_sigma, median_error_ratio, ... and the per-bin columns),
 validation.png (input against the mean recovered D_l with scatter bands,
 and the bias per bin), transfer.csv (the per-bin transfer function F_b = mean /
 expected with its standard error, which 'cmbtools spectrum --transfer' divides
-out) and covariance.npz (the simulated covariance of the bandpowers).
+out; not written, with a warning line, when a bin's measured transfer is not
+positive: such a bin keeps no signal) and covariance.npz (the simulated
+covariance of the bandpowers).
 
 Filtering: --harmonic-filter FILE multiplies every simulated sky's harmonic
 coefficients by a factor per multipole (a table with columns ell,factor from
@@ -92,7 +95,7 @@ def add_arguments(parser):
                         help="do not fit and remove the monopole and dipole before the transform")
     parser.add_argument("--sky-lmax", type=positive_int, metavar="N",
                         help="band limit of the simulated skies, whose power above the bins the estimator models "
-                             "(default 4 nside - 1, as real skies; lmax for --cross; at most 4 nside - 1, 8 nside - 1 "
+                             "(default 4 nside - 1, as real skies, for both splits with --cross; at most 4 nside - 1, 8 nside - 1 "
                              "with --pixelise)")
     parser.add_argument("--averaged-pixels", action="store_true",
                         help="the maps hold the sky averaged over each pixel (a detector's map): correct what the "
@@ -290,11 +293,9 @@ def run(args) -> int:
     # real skies have power above lmax: simulated to 4 nside - 1 by default, and modelled by the estimator
     sky_lmax = max(lmax, 4 * nside - 1) if args.sky_lmax is None else args.sky_lmax
     top = (8 if args.pixelise else 4) * nside - 1
-    if cross:
-        sky_lmax = lmax  # the split simulations of a cross-spectrum are band-limited at lmax
-    elif sky_lmax < lmax or sky_lmax > top:
+    if sky_lmax < lmax or sky_lmax > top:
         raise InvalidInputError(f"--sky-lmax must be in [{lmax}, {top}]. Got {sky_lmax} instead.")
-    if args.sky_lmax is None and not cross and args.spectrum is not None and cl.size < sky_lmax + 1:
+    if args.sky_lmax is None and args.spectrum is not None and cl.size < sky_lmax + 1:
         sky_lmax = max(lmax, cl.size - 1)  # a user spectrum that stops earlier sets the default band limit
     if cl.size < sky_lmax + 1:
         if args.spectrum is not None:
@@ -308,7 +309,7 @@ def run(args) -> int:
         from cmbtools._core.binned_tables import read_filter_table
 
         harmonic_filter = read_filter_table(args.harmonic_filter)
-        if args.sky_lmax is None and not cross and lmax + 1 <= harmonic_filter.size < sky_lmax + 1:
+        if args.sky_lmax is None and lmax + 1 <= harmonic_filter.size < sky_lmax + 1:
             sky_lmax = harmonic_filter.size - 1  # a filter that stops earlier sets the default band limit
             cl = cl[: sky_lmax + 1]
         if harmonic_filter.size < sky_lmax + 1:
@@ -347,7 +348,7 @@ def run(args) -> int:
             workers=None if client is not None else n_workers, threads_per_worker=args.threads or None,
             progress=False if args.no_progress else None, restart=args.restart, force=args.force, cross=cross,
             monopole=monopole * 1e-6, dipole=dipole, harmonic_filter=harmonic_filter, bandpower_transfer=transfer,
-            **({} if cross else {"sky_lmax": sky_lmax, "pixelise": bool(args.pixelise)}),
+            sky_lmax=sky_lmax, pixelise=bool(args.pixelise),
         )
     finally:
         if client is not None:
@@ -396,6 +397,17 @@ def run(args) -> int:
                "JSON summary": lambda p: result.write_json(p, overwrite=True),
                "transfer table": transfer_table,
                "figure": lambda p: result.plot(p, overwrite=True)}
+    # a bin whose measured transfer is not positive (no signal left there: e.g. bins set above the beam's reach)
+    # cannot be divided out: the run's other outputs are written, the transfer table is not (one warning line)
+    f_b = np.asarray(result.transfer, dtype=np.float64)
+    skipped = None
+    if not np.all(np.isfinite(f_b) & (f_b > 0)):
+        b = int(np.argmax(~(np.isfinite(f_b) & (f_b > 0))))
+        skipped = [o for o in outputs if o[0] == "transfer table"][0][1]
+        outputs = [o for o in outputs if o[0] != "transfer table"]
+        skipped = (f"{skipped} not written: the measured transfer (mean / expected) is {f_b[b]:.3g} in bin {b} "
+                   f"(ell {int(result.ell_min[b])}-{int(result.ell_max[b])}), a bin that keeps no signal and "
+                   "cannot be corrected")
     with OutputGroup() as group:  # all of the outputs or none
         for what, path, overwrite in outputs:
             group.write(path, writers[what], overwrite=overwrite)
@@ -438,5 +450,7 @@ def run(args) -> int:
           + (f", from {float(np.nanmin(result.transfer)):.4f} to {float(np.nanmax(result.transfer)):.4f} "
              f"(harmonic filter {args.harmonic_filter})" if args.harmonic_filter else ""))
     print("  wrote " + ", ".join(str(p) for p in written))
+    if skipped is not None:
+        print(f"cmbtools: warning: {skipped}", file=sys.stderr)
     print_range_warning(args)
     return 0

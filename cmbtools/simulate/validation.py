@@ -69,11 +69,10 @@ def _validation_memory(estimator, noise, with_dipole, with_filter) -> int:
 def _simulate_and_estimate(index, rng, setup):
     """One validation simulation: sky (+ filter) (+ noise) -> bandpowers."""
     from cmbtools.simulate.noise import _noise_map
-    from cmbtools.simulate.skies import _beam_factor, _dipole_vector, _gaussian_sky
+    from cmbtools.simulate.skies import _dipole_vector
 
     # the memory of the whole run was checked once by validate_estimator: the private builders check nothing
     est = setup.estimator
-    lmax = est.lmax
     # many maps go through this estimator: it removes their monopole and dipole in harmonic space
     est._keep_removal_coefficients()
     # pixels on rings the mask does not touch never reach the bandpowers: they are not simulated (the
@@ -81,25 +80,7 @@ def _simulate_and_estimate(index, rng, setup):
     rings = est._occupied_rings() if setup.sky_filter is None else None
     dip = None if setup.dipole is None else _dipole_vector(setup.dipole) * setup.dipole_factor
     rng_sky2 = copy.deepcopy(rng) if setup.cross and setup.sky_beam2 is not None else None
-    sky_lmax = lmax if setup.sky_lmax is None else setup.sky_lmax
-    if setup.pixelise:
-        from cmbtools.simulate.pixel_averaging import pixel_averaged_map
-        from cmbtools.simulate.skies import _gaussian_alm
-
-        # the beam-convolved sky averaged over each pixel (a quadrature of every pixel's area): what a
-        # detector's map holds
-        alm = _gaussian_alm(setup.cl[: sky_lmax + 1], sky_lmax, rng, None, setup.sky_beam)
-        sky = pixel_averaged_map(alm, est.nside, sky_lmax, rings=rings)
-        del alm
-        if setup.monopole:
-            sky += float(setup.monopole)
-        if dip is not None:
-            from cmbtools.simulate.skies import _dipole_map
-
-            sky += _dipole_map(est.nside, dip)
-    else:
-        sky = _gaussian_sky(setup.cl, est.nside, sky_lmax, _beam_factor(setup.sky_beam, sky_lmax), False,
-                            float(setup.monopole), dip, rng, None, rings=rings)
+    sky = _draw_sky(setup, rng, setup.sky_beam, dip, rings)
     if setup.cross:
         return _simulate_and_estimate_cross(sky, rng, rng_sky2, dip, setup, rings)
     if setup.sky_filter is not None:
@@ -124,6 +105,30 @@ def _simulate_and_estimate(index, rng, setup):
     return out
 
 
+def _draw_sky(setup, rng, amplitude, dip, rings):
+    """One sky map to ``setup.sky_lmax`` through ``amplitude`` (averaged over each pixel with ``setup.pixelise``)."""
+    from cmbtools.simulate.skies import _beam_factor, _gaussian_sky
+
+    est = setup.estimator
+    sky_lmax = est.lmax if setup.sky_lmax is None else setup.sky_lmax
+    if not setup.pixelise:
+        return _gaussian_sky(setup.cl, est.nside, sky_lmax, _beam_factor(amplitude, sky_lmax), False,
+                             float(setup.monopole), dip, rng, None, rings=rings)
+    from cmbtools.simulate.pixel_averaging import pixel_averaged_map
+    from cmbtools.simulate.skies import _dipole_map, _gaussian_alm
+
+    # the beam-convolved sky averaged over each pixel (a quadrature of every pixel's area): what a
+    # detector's map holds
+    alm = _gaussian_alm(setup.cl[: sky_lmax + 1], sky_lmax, rng, None, amplitude)
+    sky = pixel_averaged_map(alm, est.nside, sky_lmax, rings=rings)
+    del alm
+    if setup.monopole:
+        sky += float(setup.monopole)
+    if dip is not None:
+        sky += _dipole_map(est.nside, dip)
+    return sky
+
+
 def _simulate_and_estimate_cross(sky, rng, rng_sky2, dip, setup, rings):
     """The cross-spectrum of two splits: one sky (seen through each split's beam), independent noise in each.
 
@@ -131,14 +136,11 @@ def _simulate_and_estimate_cross(sky, rng, rng_sky2, dip, setup, rings):
     own beam; then the noise of split 1 and that of split 2 are drawn one after the other.
     """
     from cmbtools.simulate.noise import _noise_map
-    from cmbtools.simulate.skies import _beam_factor, _gaussian_sky
 
     est = setup.estimator
-    lmax = est.lmax
     sky2 = sky
     if rng_sky2 is not None:
-        sky2 = _gaussian_sky(setup.cl, est.nside, lmax, _beam_factor(setup.sky_beam2, lmax), False,
-                             float(setup.monopole), dip, rng_sky2, None, rings=rings)
+        sky2 = _draw_sky(setup, rng_sky2, setup.sky_beam2, dip, rings)
     out = {}
     if setup.record_pseudo:
         out["pseudo_cl"] = est.pseudo_spectrum(sky, sky2)
@@ -254,7 +256,8 @@ def validate_estimator(
         of the estimator) with independent noise drawn from ``noise``, and
         measures ``estimator.estimate(split1, split2)`` (masks ``mask`` and
         ``mask2``), with no noise bias to subtract; the expectation is
-        ``estimator.expected_bandpowers(cl, cross=True)``.
+        ``estimator.expected_bandpowers(cl, cross=True)`` (the bin averages of
+        ``cl`` with ``sky_lmax`` or ``pixelise``, which apply to both splits).
     sky_lmax : int, optional
         Band limit of the simulated skies (default: the band limit the
         estimator models, its ``sky_lmax``: 4 nside - 1 for the estimators of
@@ -315,7 +318,7 @@ def validate_estimator(
     n_sims = check_int(n_sims, "n_sims", minimum=2, maximum=MAX_SIMULATIONS)
     if not isinstance(pixelise, (bool, np.bool_)):
         raise InvalidInputError(f"The 'pixelise' parameter must be True or False. Got {pixelise!r} instead.")
-    if sky_lmax is None and not cross:
+    if sky_lmax is None:
         # an estimator built to model the sky's power above its lmax is checked on such skies by default
         own = getattr(getattr(estimator, "_inputs", None), "sky_lmax", None)
         if own is not None and int(own) > lmax:
@@ -363,7 +366,7 @@ def validate_estimator(
         raise InvalidInputError(f"The 'errors' parameter must be 'gaussian' or 'knox'. Got {errors!r} instead.")
     filter_text = "none"
     if harmonic_filter is not None:
-        band = sky_lmax if not cross else lmax
+        band = sky_lmax
         harmonic_filter = check_cl(harmonic_filter, "harmonic_filter", lmax=band, allow_negative=True)[: band + 1]
         from cmbtools._core.files import sha256_arrays
 
@@ -390,9 +393,10 @@ def validate_estimator(
         sky_beam2 = None if np.array_equal(b2, sky_beam) else b2
         noise_cl = None  # the noises of the two splits are independent: no bias
     if realistic:
-        if cross:
-            raise InvalidInputError("The 'sky_lmax' and 'pixelise' parameters are not available with cross=True.")
         sky_beam = _sky_amplitude(estimator, sky_lmax, bool(pixelise))
+        if cross:
+            b2 = _sky_amplitude(estimator, sky_lmax, bool(pixelise), second=True)
+            sky_beam2 = None if np.array_equal(b2, sky_beam) else b2
     dipole_factor, sky_monopole = 1.0, float(monopole)
     if harmonic_filter is not None:  # the filter multiplies every a_lm: the synthesis amplitude, monopole, dipole
         sky_beam = sky_beam * harmonic_filter[: sky_beam.size]
@@ -471,10 +475,14 @@ def _averaging_memory(nside, sky_lmax, estimator) -> int:
     return int(nodes * (8 * 2 + 8 + 8 + 8 + 8)) + 4 * 12 * nside * nside * 8
 
 
-def _sky_amplitude(estimator, sky_lmax, pixelise):
-    """``B_l`` times the pixel window of the simulated skies up to ``sky_lmax`` (``B_l`` alone with ``pixelise``)."""
+def _sky_amplitude(estimator, sky_lmax, pixelise, second=False):
+    """``B_l`` times the pixel window of the simulated skies up to ``sky_lmax`` (``B_l`` alone with ``pixelise``).
+
+    ``second``: the second map's (``beam2``) of a cross-spectrum estimator.
+    """
     inp = getattr(estimator, "_inputs", None)
     factors = None if inp is None else inp.sky_factors
+    which = 1 if second else 0
     lmax, nside = int(estimator.lmax), int(estimator.nside)
     if sky_lmax > lmax and (factors is None or inp.sky_lmax < sky_lmax):
         have = lmax if factors is None else inp.sky_lmax
@@ -483,9 +491,10 @@ def _sky_amplitude(estimator, sky_lmax, pixelise):
             f"with sky_lmax={sky_lmax} (it then models the power above its bins)."
         )
     if factors is not None and inp.sky_lmax >= sky_lmax:
-        amp = np.sqrt(np.clip(factors[0][: sky_lmax + 1], 0.0, None))
+        amp = np.sqrt(np.clip(factors[which][: sky_lmax + 1], 0.0, None))
     else:
-        amp = np.asarray(estimator.beam, dtype=np.float64)[: lmax + 1] * np.asarray(
+        beam = getattr(estimator, "beam2", None) if second else None
+        amp = np.asarray(estimator.beam if beam is None else beam, dtype=np.float64)[: lmax + 1] * np.asarray(
             estimator.pixel_window, dtype=np.float64)[: lmax + 1]
     if pixelise:
         from cmbtools.spectrum.pixel_windows import pixel_window

@@ -134,11 +134,22 @@ def test_validate_uses_the_default_range_and_skies_to_four_nside(tmp_path, capsy
     out = capsys.readouterr().out
     doc = json.loads((tmp_path / "p" / "summary.json").read_text())
     assert max(doc["bins"]["ell_max"]) == 34 and "(ell 2-34)" in out and "skies to ell 63" in out
-    # the user's --lmax wins, and a cross-spectrum's split skies stop at lmax
+    # the user's --lmax wins, and a cross-spectrum's split skies go to 4 nside - 1 as well (--sky-lmax moves it)
     assert main(["validate", str(tmp_path / "mask.fits"), *common, "--lmax", "40", "--cross", "--run-dir",
                  str(tmp_path / "x")]) == 0
     doc = json.loads((tmp_path / "x" / "summary.json").read_text())
-    assert doc["bins"]["ell_max"][-1] == 40 and doc["settings"]["sky_lmax"] == 40
+    assert doc["bins"]["ell_max"][-1] == 40 and doc["settings"]["sky_lmax"] == 4 * nside - 1
+    assert main(["validate", str(tmp_path / "mask.fits"), *common, "--lmax", "40", "--cross", "--sky-lmax", "50",
+                 "--run-dir", str(tmp_path / "x50")]) == 0
+    doc = json.loads((tmp_path / "x50" / "summary.json").read_text())
+    assert doc["settings"]["sky_lmax"] == 50
+    # the 600' beam leaves no signal in the bin ell 34-40 that --lmax 40 asks for: its measured transfer is not
+    # positive here, so the transfer table is left out with one warning line and every other output is written
+    f_b = np.array(doc["bins"]["transfer"], dtype=float)
+    assert f_b[-1] <= 0 and np.all(f_b[:-1] > 0)
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "transfer.csv not written" in err[0] and "(ell 34-40)" in err[0]
+    assert not (tmp_path / "x50" / "transfer.csv").exists() and (tmp_path / "x50" / "covariance.npz").is_file()
 
 
 def test_the_help_states_the_default_range():
@@ -149,4 +160,4 @@ def test_the_help_states_the_default_range():
         assert "without --lmax they end at the default top of the range: 2.5 nside" in text
         assert "1e-3 of the sky's power" in text and "2 nside for a beam narrower than two pixels" in text
     validate = parser._subparsers._group_actions[0].choices["validate"]
-    assert "(default 4 nside - 1, as real skies;" in " ".join(validate.format_help().split())
+    assert "(default 4 nside - 1, as real skies, for both splits with --cross;" in " ".join(validate.format_help().split())
