@@ -208,7 +208,7 @@ def coupling_matrix(
 # sympy's exact 3j symbols in the tests).
 
 #: ducc0 optype of each kernel kind; '+-' gives the ++ and -- pair.
-_OPTYPES = {"00": 0, "02": 1, "+-": 4}
+_OPTYPES = {"00": 0, "02": 1, "++": 2, "+-": 4}
 
 
 def coupling_matrices(requests, lmax: int, *, nthreads=None, lmax_columns=None):
@@ -217,7 +217,7 @@ def coupling_matrices(requests, lmax: int, *, nthreads=None, lmax_columns=None):
     Parameters
     ----------
     requests : sequence of (kind, w_l)
-        ``kind`` is '00', '02' or '+-' (the latter gives the ++ and the -- matrices); ``w_l`` the
+        ``kind`` is '00', '02', '++' or '+-' (the latter gives the ++ and the -- matrices); ``w_l`` the
         (cross-)power spectrum of the two weight maps from ell = 0 (values above what is needed ignored).
     lmax : int
         Rows ``l = 0..lmax``.
@@ -227,7 +227,7 @@ def coupling_matrices(requests, lmax: int, *, nthreads=None, lmax_columns=None):
     Returns
     -------
     list of ndarray of shape (lmax+1, lmax_columns+1)
-        One matrix per '00' / '02' request, two (++, --) per '+-' request, in order; columns scaled by
+        One matrix per '00' / '02' / '++' request, two (++, --) per '+-' request, in order; columns scaled by
         ``2 l' + 1``.
     """
     lc = lmax if lmax_columns is None else int(lmax_columns)

@@ -8,8 +8,24 @@ have the covariance (Efstathiou 2004, MNRAS 349, 603, in its cross-field form)
 The narrow-kernel approximation (Efstathiou 2004; improved by Garcia-Garcia, Alonso & Bellini 2019,
 JCAP: the spectra are the *coupled* ones, divided by the mean of the window product) writes each
 ``<x_lm z*_l'm'>`` as ``sqrt(c^XZ_l c^XZ_l') K[w_x w_z]_lm,l'm'`` and each sum over m, m' of two kernels
-as the coupling matrix ``Xi(u, v)_ll' = M00[u x v]_ll' / (2l'+1)`` of the cross-spectrum of the window
-products ``u`` and ``v``.  For spin-2 fields this is right only where E and B have the same
+as a coupling matrix ``Xi(u, v)_ll' = M[u x v]_ll' / (2l'+1)`` of the cross-spectrum of the window
+products ``u`` and ``v``.  The kind of ``M`` follows the spins: a spin-s field seen through ``u`` has the
+kernel ``int sY*_lm u sY_l'm'``, and the sum over m, m' of two such kernels is (the 3j form of the
+products of spin-weighted harmonics, as in the spin-2 pseudo-Cl covariance of Challinor & Chon 2005,
+MNRAS 360, 509, from memory) ``sum_L (2L+1)/(4 pi) U_L (l l' L; s1 -s1 0) (l l' L; s2 -s2 0)``: ``M00``
+for two temperature pairings, ``M02`` for a temperature and a polarization pairing, and for two
+polarization pairings the parity-even part of the spin-2 kernel that the E (or B) projection keeps,
+``M++``.  A pairing of T with E or B has no same-spin form; its kernel is taken as ``M02`` too (the
+kind of a pairing set is '00' without polarization fields, '++' with four, '02' otherwise).  The three
+kinds agree where l >> the window's bandwidth; at the largest scales of a small patch they do not, and
+there the spin kinds are used: in the rows and columns of the first bins, where the other parity takes
+more than 10 % of the spin-2 coupling of the window product (``polarized_operator._spin_kernel``), M00
+above (there the in-field reduction below carries the parity; the spin kinds in every bin lowered the
+errors at ell 18-80 by 1-3 %, away from the scatter).  Measured (the Monte Carlo test: 10-degree taper
+of a 40-degree cap, first bin ell 2-17), reported error / simulated scatter in the first bin with M00
+everywhere -> with the spin kinds: TE 1.28 -> 1.04, EE 1.13 -> 0.97, BB 1.24 -> 1.04, EB 1.06 -> 1.04,
+TB 1.28 -> 1.15 (standard); the purified B's first bin is not mended (TB 1.26 -> 1.20, EB 1.35 -> 1.30,
+BB 0.73 -> 0.73).  For spin-2 fields this is right only where E and B have the same
 power: where the window varies, the masked E modes leak into the pseudo-B coefficients.
 
 The leakage is local.  Smith (2006, PRD 74, 083002: the counter-terms of its pure estimator, in the
@@ -42,7 +58,8 @@ the sum over the kernel's multipoles (with it, the BB scatter of a 10-degree tap
 square, of order 1/l^4 of its own field's power, is left out; its product with the leaked power is kept,
 as the leaked E can far exceed the B it is added to).  Every term has its own
 kernel ``Xi(u, v)`` of its window products (the leakage lives in the taper, whose products have broad
-kernels: much of their weight falls outside a narrow bin).
+kernels: much of their weight falls outside a narrow bin), of the kind of their pairing, except the
+pure B's extra power, which keeps ``M00``.
 
 The result is the covariance of the binned pseudo-spectra of the estimator's components; the estimator
 propagates it through its inverse coupled system.
@@ -281,12 +298,22 @@ def _ident(model, maps):
     return tuple(sorted(model.map_id(k) for k in maps))
 
 
-def _kernel_key(model, u, v):
-    return tuple(sorted((_ident(model, u), _ident(model, v))))
+def _kernel_key(model, u, v, kind="00"):
+    """Key of a covariance kernel: its coupling kind ('00', '02', '++') and the identities of the window products."""
+    return (kind,) + tuple(sorted((_ident(model, u), _ident(model, v))))
 
 
 def _is_leak(key):
-    return any(kind in ("d", "h") for part in key for kind, _ in part)
+    return any(kind in ("d", "h") for part in key[1:] for kind, _ in part)
+
+
+def _kernel_kind(fields):
+    """Coupling kind of the kernel of one Isserlis pairing of four fields (see the module notes).
+
+    No polarization field: '00'; four: '++'; else '02' (the T x spin-2 pairings).
+    """
+    n_pol = sum(f[1] != "T" for f in fields)
+    return "00" if n_pol == 0 else ("++" if n_pol == 4 else "02")
 
 
 def _field_map(model, field):
@@ -325,13 +352,19 @@ def _structure(est, name):
                         for (p, q), (r, t) in (((x, z), (y, w)), ((x, w), (y, z))):
                             ref = ((_field_map(model, p), _field_map(model, q)),
                                    (_field_map(model, r), _field_map(model, t)))
-                            ref_key = _kernel_key(model, *ref)
+                            kind = _kernel_kind((p, q, r, t))
+                            ref_key = _kernel_key(model, *ref, kind)
                             for i1, t1, u in per_mode(p, q):
                                 for i2, t2, v in per_mode(r, t):
                                     f = _ANGULAR.get((t1, t2))
                                     if f is None:
                                         continue
-                                    key = _kernel_key(model, u, v)
+                                    # the pure B's extra power keeps the spin-0 kernel (its amplitude is
+                                    # normalised on the 00RR row sums; with the spin kinds its first-bin error
+                                    # fell from 0.75 to 0.61 of the scatter: measured)
+                                    extra = ((t1 == "even" and any(m[0] == "d" for m in u))
+                                             or (t2 == "even" and any(m[0] == "d" for m in v)))
+                                    key = _kernel_key(model, u, v, "00" if extra else kind)
                                     g = groups.setdefault((key, ref_key), ([], [], [], (u, v), ref))
                                     g[0].append(i1)
                                     g[1].append(i2)
@@ -418,17 +451,28 @@ def _leak_kernels(est, name):
     model = _Model(est, name, None, structure_only=True)
     lc, exact = _leak_lmax(est, name, model)
     wanted = {}
+    n_spin = {}
     for items in blocks.values():
         for key, ref_key, _, _, _, uv, ref in items:
             if _is_leak(key):
                 wanted.setdefault(key, uv)
+                if key[0] != "00":  # the spin kind in the first bins of the main kernel of the pairing
+                    n_spin[key] = max(n_spin.get(key, 0), est._cache.get(("cov_kernel_spin_bins",) + ref_key, 0))
     exact_kernels = {}
     if lc >= 0 and wanted:
+        from cmbtools.spectrum.polarized_operator import _covariance_requests, _spin_kernel
+
         product = _products(model)
         keys = list(wanted)
         # the taper's products have broad kernels: their spectra to 2 lc, all the kernel can use
         spectra = [_pair_spectrum(model, product, u, v, 2 * lc, est._threads()) for u, v in wanted.values()]
-        mats = coupling_pol.coupling_matrices([("00", w) for w in spectra], lc, nthreads=est._threads())
+        reqs = [[r for r in _covariance_requests(k[0], w)] for k, w in zip(keys, spectra)]
+        flat = coupling_pol.coupling_matrices([r for rq in reqs for r in rq], lc, nthreads=est._threads())
+        mats, pos = [], 0
+        for rq in reqs:
+            n_out = sum(2 if kind == "+-" else 1 for kind, _ in rq)
+            mats.append(flat[pos:pos + n_out])
+            pos += n_out
         b = est.binning
         r = np.zeros(lc + 1)
         idx = b.bin_index[: lc + 1]
@@ -436,9 +480,11 @@ def _leak_kernels(est, name):
         r[sel] = 1.0 / b.n_ell[idx[sel]]
         starts = b.ell_min[exact]
         inv_cols = 1.0 / (2.0 * np.arange(lc + 1) + 1.0)
-        for k, xi in zip(keys, mats):
-            xi = xi * inv_cols[None, :]
-            g = _reduce_cols(_reduce_rows(xi, r, starts), r, starts)
+        for k, ms in zip(keys, mats):
+            if k[0] == "00":
+                g = _reduce_cols(_reduce_rows(ms[0] * inv_cols[None, :], r, starts), r, starts)
+            else:
+                g, _ = _spin_kernel(ms, k[0], r, starts, inv_cols, n_low=min(n_spin[k], starts.size))
             exact_kernels[k] = 0.5 * (g + g.T)
     n_exact = int(np.count_nonzero(exact))
     for items in blocks.values():

@@ -66,6 +66,49 @@ def _freeze(a):
     return a
 
 
+#: The share of the spin-2 coupling of a window product that goes to the other parity (the M-- row sums over
+#: the M++ + M-- ones, per bin) above which the covariance kernels of polarization fields take their spin kind.
+PARITY_SHARE_SPIN_KERNELS = 0.1
+
+
+def _covariance_requests(kind, w):
+    """The coupling requests of one covariance kernel of the given kind: '00' alone; '02' and '++' also need
+    the M00 and the ++/-- kernels of the same window product (see :func:`_spin_kernel`)."""
+    if kind == "00":
+        return [("00", w)]
+    return [("00", w), ("+-", w)] + ([("02", w)] if kind == "02" else [])
+
+
+def _spin_kernel(mats, kind, r, starts, inv_cols, n_low=None):
+    """The binned covariance kernel of kind '02' or '++' from (M00, M++, M--[, M02]) of one window product.
+
+    The spin kind (``polarized_covariance``'s module notes) in the rows and columns of the first bins, those
+    where the other parity takes more than ``PARITY_SHARE_SPIN_KERNELS`` of the spin-2 coupling (the
+    largest scales of a patch); M00 elsewhere (there the in-field reduction terms carry the parity: with
+    the spin kinds in every bin the polarized errors at ell 18-80 came out 1-3 % lower, and M00 matched
+    the scatter; measured).
+    """
+    m00, mpp, mmm = mats[:3]
+    spin = mats[3] if kind == "02" else mpp
+
+    def binned(m):
+        return _reduce_cols(_reduce_rows(m * inv_cols[None, :], r, starts), r, starts)
+
+    g = binned(m00)
+    if n_low is None:
+        rows_pp = np.add.reduceat(r * mpp.sum(axis=1), starts)
+        rows_mm = np.add.reduceat(r * mmm.sum(axis=1), starts)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            share = np.where(rows_pp + rows_mm > 0, rows_mm / (rows_pp + rows_mm), 0.0)
+        above = share > PARITY_SHARE_SPIN_KERNELS
+        n_low = int(np.argmin(above)) if not above.all() else above.size
+    if n_low:
+        gs = binned(spin)
+        g[:n_low, :] = gs[:n_low, :]
+        g[:, :n_low] = gs[:, :n_low]
+    return g, n_low
+
+
 class _PolarizedOperator:
     """State, mask spectra, coupling kernels and binned operators of the polarized estimator (its base class).
 
@@ -137,7 +180,7 @@ class _PolarizedOperator:
         Kinds: '00', '02', '++', '--', '+-' (= ++ minus --), and for the pure B '00R' (R.M00), '00RR'
         (R^2.M00), '02R' (R.M02), with ``R = N_l / N_l'`` (:func:`pure_b_ratio`).  ``covariance``: the
         (keys, spectra) of covariance kernels to compute in the same kernel call (ducc0 evaluates the 3j
-        symbols once for all the matrices of a call).
+        symbols once for all the matrices of a call); a key's first item is its kind, '00', '02' or '++'.
         """
         missing = sorted({k for k in wanted if ("kernel",) + k not in self._cache})
         cov_keys, cov_spectra = covariance if covariance is not None else ((), ())
@@ -149,7 +192,8 @@ class _PolarizedOperator:
             base.setdefault((b, i, j), []).append(kind)
         requests = list(base)
         mats = coupling_pol.coupling_matrices(
-            [(b, self._mask_spectrum(i, j)) for b, i, j in requests] + [("00", w) for w in cov_spectra],
+            [(b, self._mask_spectrum(i, j)) for b, i, j in requests]
+            + [req for k, w in zip(cov_keys, cov_spectra) for req in _covariance_requests(k[0], w)],
             self.lmax, nthreads=self._threads(),
         )
         p_w = self.binning.averaging_weights(self.lmax)
@@ -181,9 +225,14 @@ class _PolarizedOperator:
             sel = np.nonzero(idx >= 0)[0]
             r[sel] = 1.0 / b.n_ell[idx[sel]]
             inv_cols = 1.0 / (2.0 * np.arange(self.lmax + 1) + 1.0)
-            for k, xi in zip(cov_keys, mats[pos:]):
-                xi = xi * inv_cols[None, :]
-                g = _reduce_cols(_reduce_rows(xi, r, b.ell_min), r, b.ell_min)
+            for k in cov_keys:
+                if k[0] == "00":
+                    g = _reduce_cols(_reduce_rows(mats[pos] * inv_cols[None, :], r, b.ell_min), r, b.ell_min)
+                    pos += 1
+                else:
+                    g, n_low = _spin_kernel(mats[pos:pos + (4 if k[0] == "02" else 3)], k[0], r, b.ell_min, inv_cols)
+                    pos += 4 if k[0] == "02" else 3
+                    self._cache[("cov_kernel_spin_bins",) + k] = n_low
                 self._cache[("cov_kernel",) + k] = _freeze(0.5 * (g + g.T))
         del mats
         return {k: self._cache[("kernel",) + k] for k in wanted}

@@ -74,7 +74,8 @@ def test_coupling_kernels_match_exact_3j_sums():
     lmax = 6
     rng = np.random.default_rng(3)
     w = rng.uniform(0.1, 1.0, 2 * lmax + 1)
-    m00, m02, mpp, mmm = coupling.coupling_matrices([("00", w), ("02", w), ("+-", w)], lmax, nthreads=1)
+    m00, m02, mpp, mmm, mpp_alone = coupling.coupling_matrices([("00", w), ("02", w), ("+-", w), ("++", w)], lmax,
+                                                               nthreads=1)
     ref = np.zeros((4, lmax + 1, lmax + 1))
     for l1 in range(lmax + 1):
         for l2 in range(lmax + 1):
@@ -87,7 +88,7 @@ def test_coupling_kernels_match_exact_3j_sums():
                 ref[1, l1, l2] += f * a * b
                 ref[2, l1, l2] += f * b * b * even
                 ref[3, l1, l2] += f * b * b * (not even)
-    for ours, exact in zip((m00, m02, mpp, mmm), ref):
+    for ours, exact in zip((m00, m02, mpp, mmm, mpp_alone), (*ref, ref[2])):
         np.testing.assert_allclose(ours, exact, rtol=0, atol=1e-14 * np.abs(ref).max())
     assert np.abs(ref[3]).max() > 0.01 * np.abs(ref[2]).max()  # the E/B mixing block is not empty
 
