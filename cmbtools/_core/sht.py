@@ -428,6 +428,37 @@ def synthesis_on_rings(alm, lmax: int, nside: int, r0: int, r1: int, *, nthreads
     )[0]
 
 
+def _axis_geometry(theta) -> dict:
+    """One single-pixel ring per colatitude: the points (theta, 0) of the m = 0 transforms below."""
+    theta = np.ascontiguousarray(theta, dtype=np.float64)
+    n = theta.size
+    return dict(theta=theta, nphi=np.ones(n, dtype=np.uintp), phi0=np.zeros(n), ringstart=np.arange(n, dtype=np.uintp))
+
+
+def legendre_series(coeffs, theta, *, nthreads: int = 1) -> np.ndarray:
+    """``sum_l c_l P_l(cos theta)`` at every colatitude ``theta``, for each row of ``coeffs`` (shape (k, lmax+1)).
+
+    The m = 0 synthesis (``Y_l0 = sqrt((2l+1)/4pi) P_l``), so a degree-lmax series costs ducc0's Legendre
+    recursion, not a Python loop over l.
+    """
+    c = np.atleast_2d(np.asarray(coeffs, dtype=np.float64))
+    lmax = c.shape[1] - 1
+    ell = np.arange(lmax + 1)
+    alm = (c * np.sqrt(4.0 * np.pi / (2.0 * ell + 1.0))).astype(np.complex128)[:, None, :]
+    out = ducc0.sht.experimental.synthesis(alm=alm, lmax=lmax, mmax=0, spin=0, nthreads=nthreads,
+                                           **_axis_geometry(theta))
+    return out[:, 0, :]
+
+
+def legendre_adjoint(values, theta, lmax: int, *, nthreads: int = 1) -> np.ndarray:
+    """``sum_k v_k P_l(cos theta_k)`` for l = 0..lmax: the adjoint of :func:`legendre_series`."""
+    v = np.ascontiguousarray(values, dtype=np.float64).reshape(1, -1)
+    out = ducc0.sht.experimental.adjoint_synthesis(map=v, lmax=lmax, mmax=0, spin=0, nthreads=nthreads,
+                                                   **_axis_geometry(theta))[0]
+    ell = np.arange(lmax + 1)
+    return out.real * np.sqrt(4.0 * np.pi / (2.0 * ell + 1.0))
+
+
 
 # ----------------------------------------------------------------------------- spin-weighted fields
 # A spin-s field (s > 0) is a pair of real maps, the real and imaginary parts of sF (for s = 2: Q and U in

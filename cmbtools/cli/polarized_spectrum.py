@@ -34,7 +34,7 @@ def is_polarized_input(path) -> bool:
 
 def run_polarized(args, outputs_checked) -> int:
     """The polarized spectrum command (arguments already parsed; the output paths already checked)."""
-    if getattr(args, "averaged_pixels", False):
+    if getattr(args, "pixel_model", None) == "averaged":
         from cmbtools.exceptions import InvalidInputError as _Invalid
 
         raise _Invalid("--averaged-pixels is available for temperature maps only (not for I, Q, U maps yet).")

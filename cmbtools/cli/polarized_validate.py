@@ -61,7 +61,7 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     ``outputs``: (what, path, overwrite) of the table, the JSON summary and the figure, already checked;
     ``where``: (executor, workers, description) of the simulations.
     """
-    if getattr(args, "averaged_pixels", False):
+    if getattr(args, "pixel_model", None) == "averaged":
         from cmbtools.exceptions import InvalidInputError as _Invalid
 
         raise _Invalid("--averaged-pixels is available for temperature maps only (not for I, Q, U maps yet).")

@@ -8,8 +8,8 @@ from cmbtools.cli.error_model import add_error_options
 from cmbtools.cli.noise_bias import add_noise_options
 from cmbtools.cli.polarized_spectrum import add_polarization_options
 from cmbtools.cli.common import (
-    add_binning, add_force, add_overwrite, add_threads, binning_from_args, bins_top, describe_binning, positive_float,
-    positive_int, print_range_warning,
+    add_binning, add_force, add_overwrite, add_pixel_model, add_threads, binning_from_args, bins_top, describe_binning,
+    pixel_model_from_args, positive_float, positive_int, print_range_warning,
 )
 
 HELP = "measure the angular power spectrum of a masked map (pseudo-Cl with mode-coupling correction)"
@@ -81,10 +81,8 @@ def add_arguments(parser):
                     help="Gaussian beam of MAP2 (default: the same as MAP's)")
     b2.add_argument("--beam2", metavar="FILE", help="beam table of MAP2")
     parser.add_argument("--no-pixel-window", action="store_true", help="do not deconvolve the HEALPix pixel window")
-    parser.add_argument("--averaged-pixels", action="store_true",
-                        help="the maps hold the sky averaged over each pixel (a detector's map): correct what the "
-                             "isotropic pixel window leaves out (pixel shapes under the mask, 0.5-1 %% near "
-                             "1.5-2.5 nside) from the guess spectrum")
+    add_pixel_model(parser, "Default up to nside 512 (temperature; with the pixel window); above it, give this "
+                            "option to apply it (it costs about a second).")
     parser.add_argument("--keep-monopole-dipole", action="store_true",
                         help="do not fit and remove the monopole and dipole before the transform")
     add_noise_options(parser)
@@ -255,7 +253,7 @@ def run(args) -> int:
         sky_lmax=sky_lmax,
         guess_cl=theory if theory is not None and theory.size > sky_lmax else None,
         correct_deprojection_bias=not args.no_deprojection_correction,
-        averaged_pixels=bool(args.averaged_pixels),
+        averaged_pixels=pixel_model_from_args(args),
         lmax=lmax,
         mask2=w2,
         beam=beam1,

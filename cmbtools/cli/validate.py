@@ -7,7 +7,8 @@ import sys
 
 from cmbtools.cli.common import (
     MAX_SIMULATIONS, MAX_THREADS, add_binning, add_force, add_overwrite, binning_from_args, bins_top, bounded_int,
-    deprecated_alias, describe_binning, non_negative_int, positive_float, positive_int, print_range_warning,
+    add_pixel_model, deprecated_alias, describe_binning, non_negative_int, pixel_model_from_args, positive_float,
+    positive_int, print_range_warning,
 )
 
 HELP = "check the spectrum estimator on simulated skies with your mask, beam and noise (Monte Carlo)"
@@ -97,10 +98,8 @@ def add_arguments(parser):
                         help="band limit of the simulated skies, whose power above the bins the estimator models "
                              "(default 4 nside - 1, as real skies, for both splits with --cross; at most 4 nside - 1, 8 nside - 1 "
                              "with --pixelise)")
-    parser.add_argument("--averaged-pixels", action="store_true",
-                        help="the maps hold the sky averaged over each pixel (a detector's map): correct what the "
-                             "isotropic pixel window leaves out (pixel shapes under the mask, 0.5-1 %% near "
-                             "1.5-2.5 nside) from the guess spectrum")
+    add_pixel_model(parser, "Default: the model of the simulated skies (averaged with --pixelise, pixel centres "
+                            "without it).")
     parser.add_argument("--pixelise", action="store_true",
                         help="average every sky over the area of each pixel, as a detector's map does (instead of the "
                              "pixel window at the pixel centres)")
@@ -326,9 +325,13 @@ def run(args) -> int:
     from cmbtools.simulate import Dipole
 
     dipole = Dipole(abs(dipole_uk) * 1e-6, 60.0, 30.0) if dipole_uk else None
+    # the model of the skies simulated: averaged pixels with --pixelise, pixel centres without (unless told)
+    averaged = pixel_model_from_args(args, default=bool(args.pixelise) and not args.no_pixel_window)
+    if averaged and args.no_pixel_window:
+        raise InvalidInputError("--averaged-pixels needs the pixel window (leave out --no-pixel-window).")
     est = sp.SpectrumEstimator(
         mask, binning, lmax=lmax, mask2=mask2, beam=beam, pixel_window=not args.no_pixel_window,
-        sky_lmax=sky_lmax, guess_cl=cl, averaged_pixels=bool(args.averaged_pixels),
+        sky_lmax=sky_lmax, guess_cl=cl, averaged_pixels=averaged,
         remove_monopole_dipole=not args.keep_monopole_dipole, coupling="fast" if args.fast_coupling else "exact",
         force=args.force,
     )
@@ -438,6 +441,11 @@ def run(args) -> int:
         + (f", knee at ell {args.noise_knee:g} (slope {args.noise_slope:g})" if args.noise_knee else ""))
     print(f"  input: {spectrum_text} to ell {sky_lmax}" + (" (pixelised)" if args.pixelise else "")
           + f"; beam: {meta['beam']}; noise: {noise_text}")
+    if not args.no_pixel_window:
+        skies = "averaged over each pixel" if args.pixelise else "sampled at the pixel centres"
+        model = ("averaged pixels (pixel window + the pixel shapes' correction)" if averaged
+                 else "pixel centres (pixel window only)")
+        print(f"  pixels: skies {skies}; estimator's model: {model}")
     print(f"  bias: max |bias| {num('max_abs_bias_sigma', '.2f')} sigma (ell {int(result.ell_min[worst])}-"
           f"{int(result.ell_max[worst])}), rms {num('rms_bias_sigma', '.2f')} sigma over {s['n_bins']} bins")
     print(f"  error bars ({meta.get('error_model', 'analytic')}): scatter / error = "

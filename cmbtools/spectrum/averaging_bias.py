@@ -47,16 +47,16 @@ __all__ = ["averaging_bias", "pair_radius"]
 MIN_RADIUS_PIXELS = 7.0
 #: ... and to this many times the beam's FWHM (estimated from where B_l^2 falls to one half).
 RADIUS_BEAMS = 3.0
-#: The pairs of at most this many pixels of the mask are summed (a fixed sample above it, each standing for
-#: its share of the mask's pixels).
+#: The pairs of every pixel of the mask are summed when it has at most this many; above it, the pairs of one
+#: pixel per block of a coarser HEALPix grid (the block's middle pixel), weighted by the block's sum of the
+#: mask products (the mask taken as constant over the pair radius: see :func:`averaging_bias`).
 MAX_CENTRES = 4096
 #: Gauss-Legendre nodes per pixel side for the means over pixel pairs.
 ORDER = 3
-#: Intervals of the correlation-function tables (uniform in chord^2, linear interpolation: relative error
-#: below 1e-5 of xi up to l = 4 nside).
-_TABLE_POINTS = 1 << 17
-#: Bins of the pair-separation histogram.
-_HIST_BINS = 1 << 13
+#: Intervals of the correlation-function tables (uniform in chord^2, cubic interpolation).
+_TABLE_POINTS = 1 << 13
+#: Bins of the pair-separation histogram (linear assignment).
+_HIST_BINS = 1 << 11
 
 
 def pair_radius(nside, sky_factor) -> float:
@@ -86,31 +86,43 @@ def pair_radius(nside, sky_factor) -> float:
     return radius
 
 
-def _correlation_tables(spectra, chord_max):
+def _correlation_tables(spectra, chord_max, nthreads):
     """xi = sum_l (2l+1)/(4 pi) C_l P_l(1 - chord^2/2) on a grid uniform in chord^2, for each spectrum.
 
-    Returns the grid step in chord^2 and, per spectrum, (values, slopes) for :func:`_lookup`.
+    Returns the grid step in chord^2 and, per spectrum, the (4, n) coefficients of the cubic through four
+    neighbouring points (local Lagrange) on each interval, for :func:`_lookup`.
     """
+    from cmbtools._core.sht import legendre_series
+
     step = chord_max**2 / _TABLE_POINTS
-    x = 1.0 - 0.5 * step * np.arange(_TABLE_POINTS + 2)
+    u = step * np.arange(_TABLE_POINTS + 3)
+    theta = 2.0 * np.arcsin(np.clip(np.sqrt(u) / 2.0, 0.0, 1.0))
+    coeffs = np.array([(2.0 * np.arange(cl.size) + 1.0) / (4.0 * np.pi) * cl for cl in spectra])
+    values = legendre_series(coeffs, theta, nthreads=nthreads)
     out = []
-    for cl in spectra:
-        ell = np.arange(cl.size)
-        values = np.polynomial.legendre.legval(x, (2.0 * ell + 1.0) / (4.0 * np.pi) * cl)
-        out.append((values[:-1].copy(), np.diff(values)))
+    for v in values:
+        # interval i (from u_i to u_i+1) takes the points i-1 .. i+2; the first one 0 .. 3
+        f0, f1, f2, f3 = v[:-3], v[1:-2], v[2:-1], v[3:]
+        c = np.stack([f1, (-2 * f0 - 3 * f1 + 6 * f2 - f3) / 6.0, (f0 - 2 * f1 + f2) / 2.0,
+                      (-f0 + 3 * f1 - 3 * f2 + f3) / 6.0])
+        first = np.array([f0[0], (-11 * f0[0] + 18 * f1[0] - 9 * f2[0] + 2 * f3[0]) / 6.0,
+                          (2 * f0[0] - 5 * f1[0] + 4 * f2[0] - f3[0]) / 2.0, c[3, 0]])
+        c = np.concatenate([first[:, None], c], axis=1)
+        out.append(np.ascontiguousarray(c))
     return step, out
 
 
 def _lookup(table, step, chord2):
-    """Linear interpolation of a table of :func:`_correlation_tables` at squared chords (overwrites ``chord2``)."""
-    values, slopes = table
+    """Cubic interpolation of a table of :func:`_correlation_tables` at squared chords (overwrites ``chord2``)."""
     chord2 *= 1.0 / step
     i = chord2.astype(np.intp)
-    np.minimum(i, values.size - 1, out=i)
+    np.minimum(i, table.shape[1] - 1, out=i)
     chord2 -= i
-    chord2 *= slopes[i]
-    chord2 += values[i]
-    return chord2
+    out = table[3][i]
+    for k in (2, 1, 0):
+        out *= chord2
+        out += table[k][i]
+    return out
 
 
 def _pixel_nodes(nside, pixels, order):
@@ -129,23 +141,35 @@ def _pixel_nodes(nside, pixels, order):
     return vec, weight
 
 
-def _legendre_sums(hist, chord, lmax):
-    """sum_k hist_k P_l(1 - chord_k^2 / 2) for l = 0..lmax."""
-    x = 1.0 - 0.5 * chord**2
-    out = np.empty(lmax + 1)
-    p_prev, p = np.ones_like(x), x.copy()
-    out[0] = hist.sum()
-    if lmax >= 1:
-        out[1] = hist @ p
-    for ell in range(2, lmax + 1):
-        p_prev, p = p, ((2 * ell - 1) * x * p - (ell - 1) * p_prev) / ell
-        out[ell] = hist @ p
-    return out
+def _centres(w_a, max_centres):
+    """The pixels whose pairs are summed and the number of the mask's pixels each one stands for.
+
+    Every pixel of mask a when it has at most ``max_centres``; else a stratified sample: the mask's pixels in
+    RING order cut into ``max_centres`` runs of consecutive pixels (strips along the rings), one pixel drawn
+    from each run (a fixed seed) standing for the run's pixels.  Every pixel of the mask is drawn with the
+    chance of one over the count it stands for, so the sum is unbiased; the runs spread the sample over the
+    mask.
+    """
+    inside = np.flatnonzero(w_a)
+    if inside.size <= max_centres:
+        return inside, np.ones(inside.size)
+    edges = np.linspace(0, inside.size, max_centres + 1).astype(np.intp)
+    count = np.diff(edges)
+    pick = edges[:-1] + np.floor(np.random.default_rng(20261203).random(max_centres) * count).astype(np.intp)
+    return inside[pick], count.astype(np.float64)
 
 
 def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_centres=MAX_CENTRES,
-                   order=ORDER) -> np.ndarray:
+                   order=ORDER, nthreads=1) -> np.ndarray:
     """Expected pseudo-spectrum of pixel-averaged maps minus that of the window model, for one sky spectrum.
+
+    With at most ``max_centres`` pixels in the mask, the pair sum of the module's formula is done over every
+    pixel p of the mask and every pixel q of the second mask within ``radius`` (exact up to the radius and the
+    pixel quadrature).  Above it, the masks are taken as constant over the radius, ``W_a(p) W_b(q) ~ W_a(p)
+    W_b(p)``, so the sum is ``sum_p W_a(p) W_b(p) K_p`` with ``K_p`` the pair sum of pixel p over every q
+    within the radius; ``K_p`` follows the pixels' shapes, which change smoothly over each base face, so it is
+    summed at the middle pixel of each block of a coarser grid (as many blocks as ``max_centres`` allows) and
+    weighted by the block's sum of ``W_a W_b`` (the midpoint rule).
 
     Parameters
     ----------
@@ -162,9 +186,11 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
     radius : float, optional
         Largest pair separation, radians (default 7 pixels; the estimator passes :func:`pair_radius`).
     max_centres : int
-        Pixels of the mask whose pairs are summed (all of them when there are fewer).
+        Pixels whose pairs are summed (all of the mask's when it has fewer; else blocks of a coarser grid).
     order : int
         Gauss-Legendre nodes per pixel side.
+    nthreads : int
+        Threads of the Legendre sums.
 
     Returns
     -------
@@ -172,6 +198,8 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
         ``E[C~_l](averaged) - E[C~_l](model)``, in the units of ``sky_cl``.
     """
     import ducc0
+
+    from cmbtools._core.sht import legendre_adjoint
 
     w_a = np.asarray(mask, dtype=np.float64)
     w_b = w_a if mask2 is None else np.asarray(mask2, dtype=np.float64)
@@ -181,32 +209,29 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
     win = np.asarray(window, dtype=np.float64)[: sky.size]
     if radius is None:
         radius = MIN_RADIUS_PIXELS * math.sqrt(4.0 * math.pi / npix)
+    if not np.any(w_a != 0.0) or not np.any(w_b != 0.0):
+        return np.zeros(lmax + 1)
     base = ducc0.healpix.Healpix_Base(nside, "RING")
     reach = radius + 2.0 * base.max_pixrad()
     chord_max = 2.0 * math.sin(min(reach, math.pi) / 2.0) * 1.0001
-    step, (xi_avg, xi_model) = _correlation_tables([sky, sky * win**2], chord_max)
+    step, (xi_avg, xi_model) = _correlation_tables([sky, sky * win**2], chord_max, nthreads)
 
-    centres = np.nonzero(w_a != 0.0)[0]
-    if centres.size == 0 or not np.any(w_b != 0.0):
-        return np.zeros(lmax + 1)
-    share = 1.0
-    if centres.size > max_centres:  # a fixed sample, each standing for its share of the mask's pixels
-        share = centres.size / max_centres
-        centres = np.sort(np.random.default_rng(20261203).choice(centres, max_centres, replace=False))
+    centres, share = _centres(w_a, max_centres)
     theta, phi = base.pix2ang(centres).T
     hist_chord_max = 2.0 * math.sin(min(radius, math.pi) / 2.0) * 1.0001
     scale = _HIST_BINS / hist_chord_max
     hist = np.zeros(_HIST_BINS + 2)
     block = max(1, (1 << 21) // (order**4))
     # every pair (p, q) of a centre p and a pixel q of the second mask within the radius
-    pairs_p, pairs_q = [], []
-    for p, th, ph in zip(centres, theta, phi):
+    pairs_p, pairs_q, pairs_w = [], [], []
+    for k, (p, th, ph) in enumerate(zip(centres, theta, phi)):
         ranges = base.query_disc(np.array([th, ph]), radius)
         q = np.concatenate([np.arange(a, b) for a, b in ranges])
         q = q[w_b[q] != 0.0]
+        pairs_w.append(share[k] * w_a[p] * w_b[q])
         pairs_p.append(np.full(q.size, p))
         pairs_q.append(q)
-    pairs_p, pairs_q = np.concatenate(pairs_p), np.concatenate(pairs_q)
+    pairs_p, pairs_q, pairs_w = np.concatenate(pairs_p), np.concatenate(pairs_q), np.concatenate(pairs_w)
     # the nodes of every pixel involved, once
     used, index = np.unique(np.concatenate([pairs_p, pairs_q]), return_inverse=True)
     index_p, index_q = index[: pairs_p.size], index[pairs_p.size :]
@@ -223,7 +248,7 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
         centre2 = np.sum((centre_vec[ip] - centre_vec[iq]) ** 2, axis=1)
         centre_chord = np.sqrt(centre2)
         delta = mean - _lookup(xi_model, step, centre2)
-        weight = share * w_a[pairs_p[s : s + block]] * w_b[pairs_q[s : s + block]] * delta
+        weight = pairs_w[s : s + block] * delta
         pos = centre_chord * scale
         i = np.minimum(pos.astype(np.intp), _HIST_BINS)
         f = pos - i
@@ -231,4 +256,5 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
         hist[1:] += np.bincount(i, weights=weight * f, minlength=_HIST_BINS + 1)[: _HIST_BINS + 1]
     chord = np.arange(_HIST_BINS + 2) / scale
     omega = 4.0 * np.pi / npix
-    return omega**2 / (4.0 * np.pi) * _legendre_sums(hist, chord, lmax)
+    angle = 2.0 * np.arcsin(np.clip(chord / 2.0, 0.0, 1.0))
+    return omega**2 / (4.0 * np.pi) * legendre_adjoint(hist, angle, lmax, nthreads=nthreads)

@@ -277,7 +277,7 @@ def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None):
         window = np.asarray(pixel_window(inp.nside, inp.sky_lmax, nthreads=nthreads), dtype=np.float64)
         safe = np.where(window > 0, window**2, 1.0)
         shape = averaging_bias(mask_a, signal / safe, window, lmax, mask2=None if mask_b is mask_a else mask_b,
-                               radius=pair_radius(inp.nside, factor / safe))
+                               radius=pair_radius(inp.nside, factor / safe), nthreads=nthreads)
         leakage = shape if leakage is None else leakage + shape
     with_bias = _dep.row_factors(m, signal, lmax, bias=bias)
     return with_bias, _dep.row_factors(m, signal, lmax, bias=bias, leakage=leakage)

@@ -168,6 +168,18 @@ class EstimatorSettings:
         )
 
 
+#: The largest nside at which the estimator's default model is a map averaged into its pixels
+#: (``averaged_pixels=None``); above it the default is pixel centres (the correction's first call costs about a
+#: second, measured in DEVELOPERS.md "pixel averages").
+AVERAGED_PIXELS_MAX_NSIDE = 512
+
+
+def default_averaged_pixels(nside, pixel_window=True) -> bool:
+    """Whether ``averaged_pixels=None`` means averaged maps: with the HEALPix pixel window, up to
+    :data:`AVERAGED_PIXELS_MAX_NSIDE`."""
+    return pixel_window is True and int(nside) <= AVERAGED_PIXELS_MAX_NSIDE
+
+
 @renamed_keywords(fast_l_exact="fast_exact_below", fast_l_toeplitz="fast_banded_below",
                   fast_band="fast_band_half_width")
 def resolve_settings(
@@ -194,7 +206,7 @@ def resolve_settings(
     guess_cl=None,
     sky_lmax=None,
     correct_deprojection_bias=True,
-    averaged_pixels=False,
+    averaged_pixels=None,
 ) -> EstimatorSettings:
     """Check and normalise the settings of a spectrum estimator (see :class:`~cmbtools.spectrum.SpectrumEstimator`)."""
     w1 = check_mask(mask, "mask").copy()
@@ -282,8 +294,12 @@ def resolve_settings(
     for a in (w1, w2, b1, b2, pw, t1, t2):
         if a is not None:
             a.setflags(write=False)
+    if averaged_pixels is None:  # the default: maps averaged into pixels, where the correction is cheap
+        averaged_pixels = default_averaged_pixels(nside, pixel_window)
     if not isinstance(averaged_pixels, (bool, np.bool_)):
-        raise InvalidInputError(f"The 'averaged_pixels' parameter must be True or False. Got {averaged_pixels!r} instead.")
+        raise InvalidInputError(
+            f"The 'averaged_pixels' parameter must be True, False or None (the default). Got {averaged_pixels!r} instead."
+        )
     if averaged_pixels and pixel_window is not True:
         raise InvalidInputError(
             "The 'averaged_pixels' parameter needs the HEALPix pixel window (pixel_window=True): it corrects what "
@@ -453,6 +469,8 @@ def bandpower_record(inp, *, cross, f_sky, f_sky_eff, condition_number) -> dict:
     meta["sky_lmax"] = inp.sky_lmax
     if inp.averaged_pixels:
         meta["pixels"] = "averaged: the pixel shapes' bias corrected with the guess spectrum"
+    elif inp.descriptions["pixel_window"].startswith("healpix"):
+        meta["pixels"] = "sampled at the pixel centres: pixel window only"
     meta["guess_spectrum"] = inp.descriptions.get("guess_cl", "none")
     if inp.fast is not None:
         meta["coupling"] = "fast l_exact={} l_toeplitz={} band={}".format(*inp.fast)
