@@ -162,12 +162,13 @@ def test_transfer_function_is_deconvolved():
 def test_expected_bandpowers_of_the_binned_model_are_exact(cap_mask32):
     # E[bp] = (P K Q)^-1 P K C; for C = Q d (flat D_l inside each bin, bins covering 2..lmax)
     # this is d exactly (Hivon et al. 2002, eq. 17-18).  The in-bin model follows the guess spectrum's
-    # shape (flat D_l for this guess) and the deprojection-bias rows are exact for the guess itself.
+    # shape (flat D_l for this guess) and the deprojection-bias rows are exact for the guess itself.  Maps at
+    # the pixel centres (averaged_pixels=False): the default adds the averaged maps' pixel-shape term.
     lmax = 95
     b = Binning.uniform(2, lmax, 8)
     d = np.linspace(1e-10, 3e-10, b.n_bins)
     cl = b.model_matrix(lmax) @ d
-    est = SpectrumEstimator(cap_mask32, b, beam=60.0, guess_cl=cl, nthreads=1)
+    est = SpectrumEstimator(cap_mask32, b, beam=60.0, guess_cl=cl, averaged_pixels=False, nthreads=1)
     np.testing.assert_allclose(est.expected_bandpowers(cl, kind="dl"), d, rtol=1e-10)
     np.testing.assert_allclose(est.expected_bandpowers(cl), d / b.dl_factor, rtol=1e-10)
     assert est.bandpower_windows.shape == (b.n_bins, lmax + 1)
