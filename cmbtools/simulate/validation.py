@@ -276,6 +276,10 @@ def validate_estimator(
         detector's map is made, instead of sampling the pixel centres with the
         pixel window applied.  Needs an estimator that deconvolves the HEALPix
         pixel window; the mean is compared with the bin averages of ``cl``.
+        The estimator is used as given: build it with ``averaged_pixels=True``
+        for pixelised skies and ``averaged_pixels=False`` for pixel-centre ones
+        (its default up to nside 512 is the former; ``cmbtools validate``
+        chooses the matching one itself).
     sky_beam : float, array_like or (array_like, array_like), optional
         Polarized estimator only: the beam of the skies to ``sky_lmax`` (see
         :func:`validate_polarized_estimator`).

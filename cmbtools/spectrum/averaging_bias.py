@@ -18,12 +18,26 @@ widths) apart, because it comes from the shapes of the pixels: pixels change
 shape across the sphere (so the pixels under a mask do not respond as the
 all-sky mean), and the averaging changes how the grid aliases power near
 2-3 nside.  :func:`averaging_bias` sums the difference over the pairs
-within a radius, for a guess spectrum, exactly as the formula above (pixel
-means by each pixel's Gauss-Legendre rule, the correlation functions by
-Legendre sums, the pairs of a fixed sample of the mask's pixels when there
-are many).  The operator folds it into the binned matrix's coupling rows
-like the leakage of power above the bins, so it is exact when the sky has
-the shape of the guess.
+within a radius, for a guess spectrum, as the formula above (pixel means by
+each pixel's Gauss-Legendre rule, the correlation functions from tables made
+by ducc0's m = 0 transforms, the Legendre sums of the pair histogram by its
+adjoint), over every pixel p of the mask when it has at most
+``MAX_CENTRES``, else over a stratified sample of that many (runs of the
+mask's pixels in RING order, one drawn from each: the sum is unbiased; its
+sampling error, measured against all the pixels, is 1-2e-4 of the
+pseudo-power in bins of 16 at nside 64 and 6-7e-4 in bins of 32 at nside
+256, at the top of the default range).  The operator folds it into the
+binned matrix's coupling rows like the leakage of power above the bins, so
+it is exact when the sky has the shape of the guess.
+
+Cost: about 1 s for 4096 centres (0.2-0.3 ms each, with the pair radius of
+7 pixels) whatever the nside; below 4096 pixels in the mask, less.  That is
+why the estimator's default (``averaged_pixels=None``) applies it up to
+nside 512 only (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`).
+A cheaper path through the grid's symmetries (the pair sum of a pixel
+depends only on its ring and, in the polar caps, its folded azimuth and the
+ring's parity) was tried and left out: with ~300 representative pixels its
+error stayed at 0.5-2e-3 of the pseudo-power at nside 256.
 
 Measured (paired skies: averaged maps against pixel-centre maps with the
 window, whose pseudo-spectrum the coupling gives exactly), nside 32, beam of

@@ -150,12 +150,17 @@ class SpectrumEstimator(_MapPreparation):
         and dipole's bias comes from the mask averaged to nside 256
         (:func:`~cmbtools.spectrum.deprojection.coarse_grid_deprojection_bias`,
         accurate to a few 1e-5 of the pseudo-power on tapered masks).
-    averaged_pixels : bool, default=False
-        The maps hold the sky averaged over each pixel (a detector's map),
-        not sampled at the pixel centres: correct, from ``guess_cl``, what the
-        isotropic pixel window leaves out (the shapes of the pixels under the
-        mask and their aliasing; 0.5-1 % near 1.5-2.5 nside, see
-        :mod:`cmbtools.spectrum.averaging_bias`).  Needs ``pixel_window=True``.
+    averaged_pixels : bool or None, default=None
+        True: the maps hold the sky averaged over each pixel (a detector's
+        map), not sampled at the pixel centres: correct, from ``guess_cl``,
+        what the isotropic pixel window leaves out (the shapes of the pixels
+        under the mask and their aliasing; 0.5-1.3 % near 1.5-2.5 nside, see
+        :mod:`cmbtools.spectrum.averaging_bias`; 1-3 s more in the first
+        call).  Needs ``pixel_window=True``.  False: maps sampled at the
+        pixel centres (synthesised from harmonic coefficients, e.g.
+        simulations made with the pixel window), for which the window alone
+        is exact.  None (default): True with the HEALPix pixel window up to
+        nside 512, else False.
     coupling : {'exact', 'fast'}, default='exact'
         ``'fast'`` uses the approximation of Louis et al. 2020 (PRD 102,
         123538) for large lmax: exact rows below ``fast_exact_below``, a band of

@@ -67,11 +67,12 @@ def test_validate_writes_outputs_matches_the_library_and_resumes(files, capsys, 
 
     # the same run through the library, on threads: the same numbers
     # (the command injects a 100 uK monopole and a 3 mK dipole, uses the input spectrum as the guess, and
-    # simulates and models the skies to the end of that spectrum, ell 60)
+    # simulates and models the skies to the end of that spectrum, ell 60; without --pixelise its skies are
+    # sampled at the pixel centres and so is its model, averaged_pixels=False)
     from cmbtools.simulate import Dipole
 
     est = SpectrumEstimator(mask, Binning.uniform(2, LMAX, 8), lmax=LMAX, beam=30.0, guess_cl=_spectrum(60),
-                            sky_lmax=60)
+                            sky_lmax=60, averaged_pixels=False)
     with ThreadPoolExecutor(2) as pool:
         ref = validate_estimator(est, _spectrum(60), n_sims=6, seed=4, noise=NoiseModel(30.0), executor=pool,
                                  progress=False, monopole=100e-6, dipole=Dipole(3e-3, 60.0, 30.0), sky_lmax=60)
