@@ -153,3 +153,29 @@ def test_validate_default_fiducial_spectrum(tmp_path, capsys, monkeypatch):
     assert doc["settings"]["pixel_window"] == "no" and doc["settings"]["input_spectrum"] == "built-in fiducial spectrum"
     assert (tmp_path / "fig.pdf").read_bytes()[:5] == b"%PDF-"
     assert "# unit: K^2" in (tmp_path / "run" / "summary.csv").read_text()
+
+
+@pytest.mark.parametrize("extra, skies, model", [
+    ((), "sampled at the pixel centres", "pixel centres"),
+    (("--pixelise",), "averaged over each pixel", "averaged pixels"),
+    (("--pixelise", "--pixel-centre-maps"), "averaged over each pixel", "pixel centres"),
+    (("--averaged-pixels",), "sampled at the pixel centres", "averaged pixels"),
+])
+def test_validate_models_the_pixels_of_its_skies_unless_told(files, capsys, monkeypatch, extra, skies, model):
+    # the estimator's model follows the simulated skies (averaged with --pixelise, pixel centres without), either
+    # option overrides it, and the summary says which; the bandpowers differ by the averaged-pixel correction
+    monkeypatch.setenv("CMBTOOLS_NUM_THREADS", "1")
+    tmp, _ = files
+    run_dir = tmp / ("run" + "".join(extra))
+    assert main(_args(tmp, "--sims", "2", "--seed", "1", "--workers", "1", "--run-dir", str(run_dir), *extra)) == 0
+    out = capsys.readouterr().out
+    line = [ln for ln in out.splitlines() if ln.startswith("  pixels: ")]
+    assert len(line) == 1 and f"skies {skies};" in line[0] and f"estimator's model: {model}" in line[0], out
+
+
+def test_validate_pixel_options_exclude_each_other(files, capsys):
+    tmp, _ = files
+    with pytest.raises(SystemExit) as err:
+        main(_args(tmp, "--sims", "2", "--averaged-pixels", "--pixel-centre-maps"))
+    assert err.value.code == 2
+    assert "not allowed with argument" in capsys.readouterr().err
