@@ -30,8 +30,9 @@ pseudo-power in bins of 16 at nside 64 and 6-7e-4 in bins of 32 at nside
 binned matrix's coupling rows like the leakage of power above the bins, so
 it is exact when the sky has the shape of the guess.
 
-Cost: about 1 s for 4096 centres (0.2-0.3 ms each, with the pair radius of
-7 pixels) whatever the nside; below 4096 pixels in the mask, less.  That is
+Cost: about 2 s for 4096 centres (0.4-0.7 ms each, with the pair radius of
+7 pixels; quiet 2-core machine) whatever the nside; below 4096 pixels in the
+mask, less.  That is
 why the estimator's default (``averaged_pixels=None``) applies it up to
 nside 512 only (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`).
 A cheaper path through the grid's symmetries (the pair sum of a pixel

@@ -155,8 +155,8 @@ class SpectrumEstimator(_MapPreparation):
         map), not sampled at the pixel centres: correct, from ``guess_cl``,
         what the isotropic pixel window leaves out (the shapes of the pixels
         under the mask and their aliasing; 0.5-1.3 % near 1.5-2.5 nside, see
-        :mod:`cmbtools.spectrum.averaging_bias`; 1-3 s more in the first
-        call).  Needs ``pixel_window=True``.  False: maps sampled at the
+        :mod:`cmbtools.spectrum.averaging_bias`; about 2 s more in the
+        first call).  Needs ``pixel_window=True``.  False: maps sampled at the
         pixel centres (synthesised from harmonic coefficients, e.g.
         simulations made with the pixel window), for which the window alone
         is exact.  None (default): True with the HEALPix pixel window up to

@@ -170,7 +170,7 @@ class EstimatorSettings:
 
 #: The largest nside at which the estimator's default model is a map averaged into its pixels
 #: (``averaged_pixels=None``); above it the default is pixel centres (the correction's first call costs about a
-#: second, measured in DEVELOPERS.md "pixel averages").
+#: second or two, measured in DEVELOPERS.md "pixel averages").
 AVERAGED_PIXELS_MAX_NSIDE = 512
 
 
