@@ -169,8 +169,8 @@ class EstimatorSettings:
 
 
 #: The largest nside at which the estimator's default model is a map averaged into its pixels
-#: (``averaged_pixels=None``); above it the default is pixel centres (the correction's first call costs about a
-#: second or two, measured in DEVELOPERS.md "pixel averages").
+#: (``averaged_pixels=None``); above it the default is pixel centres (the correction adds about 2 s to the first
+#: call whatever the nside, measured in DEVELOPERS.md "pixel averages").
 AVERAGED_PIXELS_MAX_NSIDE = 512
 
 
