@@ -62,6 +62,8 @@ __all__ = [
     "TemplateDeprojection",
     "deprojection_bias",
     "coarse_grid_deprojection_bias",
+    "coarse_grid_bias_below",
+    "continued_coarse_grid_bias",
     "above_bins_leakage",
     "row_factors",
 ]
@@ -364,15 +366,19 @@ def deprojection_bias(deprojection, signal_cl, lmax, *, deprojection2=None, nthr
     return delta
 
 
-def _averaged_down(w, nside_out):
+def _averaged_down(w, nside_out, nthreads=1):
     """The RING map ``w`` averaged into the pixels of ``nside_out`` (RING): the plain mean of the sub-pixels."""
     nside_in = int(round(np.sqrt(w.size / 12)))
     k = (nside_in // nside_out) ** 2
     fine = _healpix_base(nside_in)
-    sums = np.zeros(12 * nside_out * nside_out)
-    for s in range(0, w.size, _CHUNK):  # no full-size temporary: the NESTED parent of each RING pixel, in chunks
-        pix = np.arange(s, min(w.size, s + _CHUNK))
-        sums += np.bincount(fine.ring2nest(pix) // k, weights=w[s:s + pix.size], minlength=sums.size)
+    sums = np.empty(12 * nside_out * nside_out)
+    # no full-size temporary: the fine pixels in NESTED order, a chunk of whole coarse pixels at a time
+    # (the k sub-pixels of the NESTED coarse pixel c are the NESTED fine pixels c k .. c k + k - 1)
+    step = max(k, (_CHUNK // k) * k)
+    for s in range(0, w.size, step):
+        e = min(w.size, s + step)
+        ring = fine.nest2ring(np.arange(s, e), nthreads=nthreads)
+        sums[s // k:e // k] = w[ring].reshape(-1, k).sum(axis=1)
     # NESTED -> RING: the RING pixel p holds the NESTED pixel ring2nest(p)
     return sums[_healpix_base(nside_out).ring2nest(np.arange(sums.size))] / k
 
@@ -420,6 +426,17 @@ def coarse_grid_deprojection_bias(mask, signal_cl, lmax, mask_cl, *, mask2=None,
     ndarray of shape (lmax+1,)
         ``delta_l`` in K^2.
     """
+    low = coarse_grid_bias_below(mask, signal_cl, lmax, mask2=mask2, coarse_nside=coarse_nside, nthreads=nthreads)
+    return continued_coarse_grid_bias(low, lmax, mask_cl, coarse_nside=coarse_nside)
+
+
+def coarse_grid_bias_below(mask, signal_cl, lmax, *, mask2=None, coarse_nside=COARSE_NSIDE, nthreads=None):
+    """The part of :func:`coarse_grid_deprojection_bias` that needs no fine mask spectrum: the bias to
+    ``min(lmax, 2 coarse_nside)`` on the coarse grid (the exact bias to ``lmax`` at or below ``coarse_nside``).
+
+    The estimator runs it on a thread beside the fine mask's transform and the coupling kernel, then
+    completes it with :func:`continued_coarse_grid_bias`.
+    """
     nthreads = resolve_nthreads(nthreads)
     w1 = check_mask(mask, "mask")
     nside = int(round(np.sqrt(w1.size / 12)))
@@ -428,12 +445,21 @@ def coarse_grid_deprojection_bias(mask, signal_cl, lmax, mask_cl, *, mask2=None,
         d1 = TemplateDeprojection(w1, nthreads=nthreads)
         d2 = None if mask2 is None else TemplateDeprojection(mask2, nthreads=nthreads)
         return deprojection_bias(d1, s, lmax, deprojection2=d2, nthreads=nthreads)
-    d1 = TemplateDeprojection(_averaged_down(w1, coarse_nside), nthreads=nthreads)
+    d1 = TemplateDeprojection(_averaged_down(w1, coarse_nside, nthreads=nthreads), nthreads=nthreads)
     d2 = None
     if mask2 is not None:
-        d2 = TemplateDeprojection(_averaged_down(check_mask(mask2, "mask2"), coarse_nside), nthreads=nthreads)
+        d2 = TemplateDeprojection(_averaged_down(check_mask(mask2, "mask2"), coarse_nside, nthreads=nthreads),
+                                  nthreads=nthreads)
     top = min(lmax, 2 * coarse_nside)
-    low = deprojection_bias(d1, s[: 3 * coarse_nside], top, deprojection2=d2, nthreads=nthreads)
+    return deprojection_bias(d1, s[: 3 * coarse_nside], top, deprojection2=d2, nthreads=nthreads)
+
+
+def continued_coarse_grid_bias(low, lmax, mask_cl, *, coarse_nside=COARSE_NSIDE):
+    """:func:`coarse_grid_bias_below`'s ``low`` continued to ``lmax`` along the smoothed fine mask spectrum."""
+    low = np.asarray(low, dtype=np.float64)
+    top = low.size - 1
+    if top >= lmax:
+        return low[: lmax + 1].copy()
     delta = np.zeros(lmax + 1)
     delta[: top + 1] = low
     if lmax > top:

@@ -69,6 +69,23 @@ def build_operator(inp, nthreads) -> dict:
     f12 = inp.beam1 * inp.beam2 * inp.pixel_window**2 * np.sqrt(inp.transfer1 * inp.transfer2)
     same_factor = np.array_equal(f1, f2) and np.array_equal(f1, f12)
 
+    # the coarse-grid monopole/dipole bias needs neither the fine mask spectrum nor the coupling: it runs on a
+    # thread (one ducc0 thread, mostly serial numpy work) while the mask's transform and the coupling kernel run
+    executor, pending = None, {}
+    if _coarse_bias_applies(inp):
+        import concurrent.futures
+
+        executor = concurrent.futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="cmbtools-bias")
+        for which in ("11",) if inp.mask2 is None else ("11", "12", "22"):
+            pending[which] = executor.submit(_coarse_bias_below, inp, which)
+    try:
+        return _build_operator(inp, nthreads, lmax, binning, lw, p, fast, f1, f2, f12, same_factor, pending)
+    finally:
+        if executor is not None:
+            executor.shutdown(wait=True, cancel_futures=True)
+
+
+def _build_operator(inp, nthreads, lmax, binning, lw, p, fast, f1, f2, f12, same_factor, pending):
     if inp.n_iter == 0:  # never holds the masks' full coefficients (see _sht.map_spectra)
         masks = [inp.mask1] if inp.mask2 is None else [inp.mask1, inp.mask2]
         rings = _sht.occupied_rings(inp.mask1)
@@ -93,7 +110,7 @@ def build_operator(inp, nthreads) -> dict:
     def pm_of(w, which):
         # P (1 + r) M for the windows and the noise; P (1 + r + t) M for the binned matrix (t: power above the bins)
         m = _coupling.coupling_matrix(w, lmax, fast=fast, nthreads=nthreads)
-        rows = _correction_rows(inp, m, which, deps, nthreads, mask_cl=w)
+        rows = _correction_rows(inp, m, which, deps, nthreads, mask_cl=w, coarse_below=pending.get(which))
         if rows is None:
             pm = _reduce_rows(m, p, binning.ell_min)
             return pm, pm
@@ -222,7 +239,32 @@ def deprojections(inp, nthreads):
     return d1, d2
 
 
-def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None):
+def _coarse_bias_applies(inp):
+    """Whether :func:`_correction_rows` takes the monopole/dipole bias from the coarse grid."""
+    from cmbtools.spectrum.deprojection import COARSE_NSIDE
+
+    return bool(inp.sky_factors is not None and inp.deprojects and inp.correct_deprojection_bias
+                and not inp.templates and inp.nside > COARSE_NSIDE)
+
+
+def _signal_and_masks(inp, which):
+    """The guess spectrum on the grid and the two masks of the coupling ``which`` ("11", "12" or "22")."""
+    factor = inp.sky_factors[{"11": 0, "22": 1, "12": 2}[which]]
+    signal = factor * inp.guess_cl[: factor.size]
+    mask_a = inp.mask2 if which == "22" else inp.mask1
+    mask_b = inp.mask1 if which == "11" else (inp.mask2 if inp.mask2 is not None else inp.mask1)
+    return factor, signal, mask_a, mask_b
+
+
+def _coarse_bias_below(inp, which):
+    from cmbtools.spectrum import deprojection as _dep
+
+    _, signal, mask_a, mask_b = _signal_and_masks(inp, which)
+    return _dep.coarse_grid_bias_below(mask_a, signal, inp.lmax, mask2=None if mask_b is mask_a else mask_b,
+                                       nthreads=1)
+
+
+def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None, coarse_below=None):
     """Row factors of the coupling matrix ``m`` for the deprojection bias and the power above the bins, or None.
 
     With the monopole/dipole removal alone on a grid finer than
@@ -238,13 +280,12 @@ def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None):
     from cmbtools.spectrum.pixel_windows import pixel_window
 
     lmax = inp.lmax
-    factor = inp.sky_factors[{"11": 0, "22": 1, "12": 2}[which]]
-    signal = factor * inp.guess_cl[: factor.size]
-    mask_a = inp.mask2 if which == "22" else inp.mask1
-    mask_b = inp.mask1 if which == "11" else (inp.mask2 if inp.mask2 is not None else inp.mask1)
+    factor, signal, mask_a, mask_b = _signal_and_masks(inp, which)
     bias = None
     coarse = (not inp.templates and mask_cl is not None and inp.nside > _dep.COARSE_NSIDE)
-    if inp.deprojects and inp.correct_deprojection_bias and coarse:
+    if inp.deprojects and inp.correct_deprojection_bias and coarse and coarse_below is not None:
+        bias = _dep.continued_coarse_grid_bias(coarse_below.result(), lmax, mask_cl)
+    elif inp.deprojects and inp.correct_deprojection_bias and coarse:
         bias = _dep.coarse_grid_deprojection_bias(
             mask_a, signal, lmax, mask_cl, mask2=None if mask_b is mask_a else mask_b, nthreads=nthreads
         )
