@@ -38,6 +38,7 @@ from cmbtools.spectrum.polarized_covariance import covariance_requests as _covar
 from cmbtools.spectrum.polarized_covariance import pseudo_covariance as _pseudo_cov
 from cmbtools.spectrum.errors import _reduce_rows
 from cmbtools.spectrum.map_preparation import _LARGEST_MAP_VALUE
+from cmbtools.spectrum import polarized_corrections as _corrections
 from cmbtools.spectrum.polarized_corrections import binned_columns
 from cmbtools.spectrum.polarized_operator import (
     _COMPONENTS_AUTO, _COMPONENTS_CROSS, _FIELD, _SKY, _PolarizedOperator, _freeze,
@@ -295,9 +296,17 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 if kk not in keys:
                     keys.append(kk)
                     spectra.append(ww)
-        self._kernels(wanted, covariance=(keys, spectra))
-        for n in names:
-            self._pair(n)
+        # the removal's TT bias on the coarse grid needs no kernel: on a thread beside the kernel call
+        executor = _corrections.start_tt_biases(self, names)
+        try:
+            self._kernels(wanted, covariance=(keys, spectra))
+            for n in names:
+                self._pair(n)
+        finally:
+            if executor is not None:
+                executor.shutdown(wait=True, cancel_futures=True)
+            for key in [k for k in self._cache if k[0] == "tt_bias_below"]:
+                del self._cache[key]
 
         from cmbtools.maps.masks import mask_moments
 

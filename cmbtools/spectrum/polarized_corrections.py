@@ -92,6 +92,33 @@ def _deprojection_of(est, key, mask=None):
         est.masks[key] if mask is None else mask, nthreads=est._threads()))
 
 
+def _tt_signal(est, a, b):
+    """The TT guess of maps a x b as seen on the grid (beams, windows, transfer), to sky_lmax."""
+    return est._sky_factors["t" + a] * est._sky_factors["t" + b] * est._sky_transfer["TT"] * est._guess["TT"]
+
+
+def start_tt_biases(est, names):
+    """Start the coarse-grid part of the TT removal bias of each pair in ``names`` ('11', '12') on a thread.
+
+    The futures wait in ``est._cache`` under ("tt_bias_below", a, b) for :func:`_tt_bias`; returns the
+    executor (to be shut down by the caller) or None when the coarse-grid bias is not used.
+    """
+    if (est._guess is None or not est.remove_monopole_dipole or not est.correct_deprojection_bias
+            or est.nside <= _dep.COARSE_NSIDE):
+        return None
+    import concurrent.futures
+
+    executor = concurrent.futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="cmbtools-bias")
+    for a, b in names:
+        ta, tb = "t" + a, "t" + b
+        same = est._key_of[ta] == est._key_of[tb]
+        est._cache[("tt_bias_below", a, b)] = executor.submit(
+            _dep.coarse_grid_bias_below, est.masks[ta], _tt_signal(est, a, b), est.lmax,
+            mask2=None if same else est.masks[tb], nthreads=1,
+        )
+    return executor
+
+
 def _tt_bias(est, a, b, signal):
     """delta^TT_l of maps a x b for the grid spectrum ``signal`` (to sky_lmax)."""
     lmax = est.lmax
@@ -99,6 +126,9 @@ def _tt_bias(est, a, b, signal):
     same = est._key_of[ta] == est._key_of[tb]
     if est.nside > _dep.COARSE_NSIDE:
         mask_cl = est._mask_spectrum(est._key_of[ta], est._key_of[tb])
+        below = est._cache.pop(("tt_bias_below", a, b), None)
+        if below is not None:  # started by start_tt_biases for the same signal
+            return _dep.continued_coarse_grid_bias(below.result(), lmax, mask_cl)
         return _dep.coarse_grid_deprojection_bias(
             est.masks[ta], signal, lmax, mask_cl, mask2=None if same else est.masks[tb], nthreads=est._threads()
         )
