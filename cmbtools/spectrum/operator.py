@@ -70,14 +70,14 @@ def build_operator(inp, nthreads) -> dict:
     same_factor = np.array_equal(f1, f2) and np.array_equal(f1, f12)
 
     # the coarse-grid monopole/dipole bias needs neither the fine mask spectrum nor the coupling: it runs on a
-    # thread (one ducc0 thread, mostly serial numpy work) while the mask's transform and the coupling kernel run
+    # thread while the mask's transform and the coupling kernel run
     executor, pending = None, {}
     if _coarse_bias_applies(inp):
         import concurrent.futures
 
         executor = concurrent.futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="cmbtools-bias")
         for which in ("11",) if inp.mask2 is None else ("11", "12", "22"):
-            pending[which] = executor.submit(_coarse_bias_below, inp, which)
+            pending[which] = executor.submit(_coarse_bias_below, inp, which, nthreads)
     try:
         return _build_operator(inp, nthreads, lmax, binning, lw, p, fast, f1, f2, f12, same_factor, pending)
     finally:
@@ -256,12 +256,12 @@ def _signal_and_masks(inp, which):
     return factor, signal, mask_a, mask_b
 
 
-def _coarse_bias_below(inp, which):
+def _coarse_bias_below(inp, which, nthreads):
     from cmbtools.spectrum import deprojection as _dep
 
     _, signal, mask_a, mask_b = _signal_and_masks(inp, which)
     return _dep.coarse_grid_bias_below(mask_a, signal, inp.lmax, mask2=None if mask_b is mask_a else mask_b,
-                                       nthreads=1)
+                                       nthreads=nthreads)
 
 
 def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None, coarse_below=None):

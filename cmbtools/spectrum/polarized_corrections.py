@@ -114,7 +114,7 @@ def start_tt_biases(est, names):
         same = est._key_of[ta] == est._key_of[tb]
         est._cache[("tt_bias_below", a, b)] = executor.submit(
             _dep.coarse_grid_bias_below, est.masks[ta], _tt_signal(est, a, b), est.lmax,
-            mask2=None if same else est.masks[tb], nthreads=1,
+            mask2=None if same else est.masks[tb], nthreads=est._threads(),
         )
     return executor
 
