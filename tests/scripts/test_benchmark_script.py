@@ -37,7 +37,7 @@ EXPECTED = {
     "W4": {"n_redshifts", "n_astropy", "cmbtools_s", "astropy_s", "astropy_scaled_s", "ratio", "max_rel_diff"},
     "W5": {
         "nside", "lmax", "repeats", "temperature_first_call_s", "polarized_first_call_s", "first_call_ratio",
-        "temperature_reuse_s", "polarized_reuse_s", "reuse_ratio",
+        "temperature_first_call_default_pixel_model_s", "temperature_reuse_s", "polarized_reuse_s", "reuse_ratio",
     },
     "W6": {
         "nside", "lmax", "repeats", "coupling_computation_s", "mask_transform_s", "coupling_kernel_s",
