@@ -519,7 +519,11 @@ def validate_pipeline(mask, binning, cl=None, *, beam=None, noise=None, pixel_wi
 
     Equivalent to ``validate_estimator(SpectrumEstimator(mask, binning,
     beam=beam, pixel_window=pixel_window, **estimator_options), cl,
-    noise=noise, n_sims=n_sims, seed=seed, **run_options)``.
+    noise=noise, n_sims=n_sims, seed=seed, **run_options)``, except that the
+    estimator's pixel model follows the simulated skies unless
+    ``estimator_options`` names one: ``averaged_pixels`` is the run's
+    ``pixelise`` (maps averaged into pixels, or sampled at the pixel
+    centres), as ``cmbtools validate`` does.
 
     Parameters
     ----------
@@ -559,5 +563,7 @@ def validate_pipeline(mask, binning, cl=None, *, beam=None, noise=None, pixel_wi
 
     options = dict(estimator_options or {})
     options.setdefault("force", force)
+    if pixel_window is True:  # the model of the skies simulated below (pixel-centre unless pixelise)
+        options.setdefault("averaged_pixels", bool(run_options.get("pixelise", False)))
     est = SpectrumEstimator(mask, binning, beam=beam, pixel_window=pixel_window, **options)
     return validate_estimator(est, cl, noise=noise, n_sims=n_sims, seed=seed, force=force, **run_options)

@@ -161,7 +161,8 @@ def test_a_foreground_template_ten_times_the_cmb_is_removed_without_bias():
     cmb_rms = np.sqrt(np.sum((2 * ell + 1) * cl) / (4 * np.pi))
     fg *= 10 * cmb_rms / np.std(fg[w > 0])
     bins = Binning.uniform(2, lmax, 12)
-    kwargs = dict(beam=120.0, templates=[fg], guess_cl=cl, nthreads=1)
+    # maps sampled at the pixel centres (synthesised on the map's grid): the pixel-centre model
+    kwargs = dict(beam=120.0, templates=[fg], guess_cl=cl, averaged_pixels=False, nthreads=1)
     est = SpectrumEstimator(w, bins, **kwargs)
     plain = SpectrumEstimator(w, bins, correct_deprojection_bias=False, **kwargs)
     smooth = gaussian_beam(120.0, lmax) * pixel_window(nside, lmax)
