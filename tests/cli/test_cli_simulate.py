@@ -164,7 +164,11 @@ def test_demo_data_is_reproducible(tmp_path):
         else:
             (na, ta), (nb, tb) = _csv(committed), _csv(fresh)
             assert na == nb
-            np.testing.assert_allclose(ta, tb, rtol=1e-8, atol=0)
+            # the fiducial tables come out of scipy's ODE integration and quadrature, whose last digits move between
+            # scipy releases and machines (measured: 5.2e-7 relative in fiducial_pol_cl.csv with scipy 1.17.1 against
+            # the committed file); the other tables are exact
+            rtol = 2e-6 if name.startswith("fiducial") else 1e-8
+            np.testing.assert_allclose(ta, tb, rtol=rtol, atol=0)
     assert total < 5 * 1024 * 1024
     # the demo scenario: 15 sources inside the 50-degree Tern Field around (250, -55)
     names, src = _csv(REPO / "maps" / "tern_sources.csv")
