@@ -18,7 +18,10 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
+import signal
 import sys
+import threading
 import warnings
 
 from cmbtools._version import __version__
@@ -119,6 +122,51 @@ def _silence_stdout():
         pass
 
 
+class _InterruptGuard:
+    """Ctrl-C ends a command within ``GRACE`` seconds, whatever the command was doing.
+
+    The first SIGINT raises ``KeyboardInterrupt`` as usual (outputs are
+    cleaned up, the pool's workers stopped, one line printed, status 130).  It
+    also arms a daemon timer: should the process still be alive ``GRACE``
+    seconds later (a lock of a process pool taken when the interrupt arrived,
+    a thread joined at exit), the timer prints the line if it was not printed
+    and ends the process with status 130.  Only the process that installed the
+    guard acts on it (forked workers keep the default behaviour), and only
+    when ``main`` runs in the main thread with Python's default handler.
+    """
+
+    GRACE = 15.0
+
+    def __init__(self, prog):
+        self.prog = prog
+        self.reported = False
+        self._pid = os.getpid()
+        self._old = None
+        self._timer = None
+        if threading.current_thread() is threading.main_thread() and \
+                signal.getsignal(signal.SIGINT) is signal.default_int_handler:
+            self._old = signal.signal(signal.SIGINT, self._on_interrupt)
+
+    def _on_interrupt(self, signum, frame):
+        if os.getpid() == self._pid and self._timer is None:
+            self._timer = threading.Timer(self.GRACE, self._end)
+            self._timer.daemon = True
+            self._timer.start()
+        raise KeyboardInterrupt
+
+    def _end(self):  # pragma: no cover - runs only when an interrupted command hangs
+        if not self.reported:
+            os.write(2, f"{self.prog}: interrupted\n".encode())
+        os._exit(130)
+
+    def uninstall(self):
+        if self._timer is not None and (hasattr(sys, "ps1") or sys.flags.interactive):
+            self._timer.cancel()  # an interactive session goes on after an interrupted command
+        if self._old is not None:
+            signal.signal(signal.SIGINT, self._old)
+            self._old = None
+
+
 def main(argv=None) -> int:
     """Run the command line; return the exit status."""
     parser = build_parser()
@@ -133,6 +181,7 @@ def main(argv=None) -> int:
     debug = getattr(args, "debug", False)
     old_show = warnings.showwarning
     warnings.showwarning = _show_warning
+    guard = _InterruptGuard(prog)
     try:
         _refuse_inputs_as_outputs(args)
         status = int(args._run(args) or 0)
@@ -164,6 +213,7 @@ def main(argv=None) -> int:
         print(f"{prog}: error: {_one_line(exc)} (a warning turned into an error by the warning filters)", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
+        guard.reported = True
         print(f"{prog}: interrupted", file=sys.stderr)
         return 130
     except Exception as exc:  # an internal error: say so in one line
@@ -174,6 +224,7 @@ def main(argv=None) -> int:
         return 1
     finally:
         warnings.showwarning = old_show
+        guard.uninstall()
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -265,3 +265,39 @@ def test_a_mask_file_with_nan_pixels_is_read_with_a_warning_giving_the_count(tmp
     assert out.returncode == 0
     assert out.stderr == ("cmbtools: warning: nan_mask.fits: 7 mask pixels hold no number (NaN, inf or UNSEEN); "
                           "they get weight 0\n")
+
+
+def test_ctrl_c_ends_a_command_whose_clean_up_hangs(tmp_path):
+    # the interrupt guard of cmbtools.cli: after the first Ctrl-C a command that does not finish (here a clean-up
+    # that never returns, as a process pool's lock taken when the interrupt arrived would) still ends with the one
+    # line and status 130, GRACE seconds later; the bound below is eight times GRACE, for a loaded machine
+    from cmbtools.cli import _InterruptGuard
+
+    script = tmp_path / "hang.py"
+    script.write_text(textwrap.dedent("""\
+        import time
+        from cmbtools.cli import _InterruptGuard
+        guard = _InterruptGuard("cmbtools demo")
+        print("ready", flush=True)
+        try:
+            time.sleep(600)
+        except KeyboardInterrupt:
+            pass
+        while True:  # a clean-up that never ends
+            time.sleep(0.5)
+        """))
+    p = subprocess.Popen([sys.executable, str(script)], env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                         start_new_session=True)
+    try:
+        assert p.stdout.readline().decode().strip() == "ready"
+        t0 = time.monotonic()
+        os.kill(p.pid, signal.SIGINT)
+        out, err = p.communicate(timeout=8 * _InterruptGuard.GRACE)
+        waited = time.monotonic() - t0
+    finally:
+        if p.poll() is None:
+            os.killpg(p.pid, signal.SIGKILL)
+            p.wait()
+    assert p.returncode == 130
+    assert err.decode().splitlines() == ["cmbtools demo: interrupted"]
+    assert waited >= _InterruptGuard.GRACE - 1.0  # the command had its grace period first
