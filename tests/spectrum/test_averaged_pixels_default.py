@@ -76,7 +76,7 @@ def _run(nside, n_sims, seed):
     return bins, z, z_bias, bias
 
 
-def _check(nside, n_sims, seed):
+def check_default_model_unbiased(nside, n_sims, seed):
     bins, z, z_bias, bias = _run(nside, n_sims, seed)
     # every reported default bin within 3 standard errors of the binned input
     assert np.all(np.abs(z) < 3.0), (z, bias)
@@ -89,9 +89,9 @@ def _check(nside, n_sims, seed):
 
 
 def test_default_model_is_unbiased_on_averaged_skies_small():
-    _check(32, 120, 21)
+    check_default_model_unbiased(32, 120, 21)
 
 
 @pytest.mark.slow
 def test_default_model_is_unbiased_on_averaged_skies():
-    _check(64, 400, 23)
+    check_default_model_unbiased(64, 400, 23)
