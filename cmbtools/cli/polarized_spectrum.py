@@ -34,15 +34,12 @@ def is_polarized_input(path) -> bool:
 
 def run_polarized(args, outputs_checked) -> int:
     """The polarized spectrum command (arguments already parsed; the output paths already checked)."""
-    if getattr(args, "pixel_model", None) == "averaged":
-        from cmbtools.exceptions import InvalidInputError as _Invalid
-
-        raise _Invalid("--averaged-pixels is available for temperature maps only (not for I, Q, U maps yet).")
     import numpy as np
 
     from cmbtools import maps
     from cmbtools import spectrum as sp
     from cmbtools._core.checks import check_same_nside
+    from cmbtools.cli.common import pixel_model_from_args
     from cmbtools._core.files import sha256_file
     from cmbtools.cli.common import binning_from_args, bins_top, describe_binning, print_range_warning
     from cmbtools.exceptions import InvalidInputError
@@ -122,7 +119,7 @@ def run_polarized(args, outputs_checked) -> int:
         pixel_window=not args.no_pixel_window, remove_monopole_dipole=not args.keep_monopole_dipole,
         sky_lmax=sky_lmax, guess_cl=theory if theory is not None and theory["TT"].size > sky_lmax else None,
         correct_deprojection_bias=not args.no_deprojection_correction,
-        purify_b=args.purify_b, nthreads=args.threads or None,
+        purify_b=args.purify_b, averaged_pixels=pixel_model_from_args(args), nthreads=args.threads or None,
     )
     bp = est.estimate(m1, m2, noise_maps=noise_maps)
     meta = dict(bp.metadata)

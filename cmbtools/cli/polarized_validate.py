@@ -61,10 +61,6 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     ``outputs``: (what, path, overwrite) of the table, the JSON summary and the figure, already checked;
     ``where``: (executor, workers, description) of the simulations.
     """
-    if getattr(args, "pixel_model", None) == "averaged":
-        from cmbtools.exceptions import InvalidInputError as _Invalid
-
-        raise _Invalid("--averaged-pixels is available for temperature maps only (not for I, Q, U maps yet).")
     import dataclasses
 
     import numpy as np
@@ -73,7 +69,9 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     from cmbtools import spectrum as sp
     from cmbtools._core.checks import check_same_nside
     from cmbtools._core.files import sha256_file
-    from cmbtools.cli.common import binning_from_args, bins_top, describe_binning, print_range_warning
+    from cmbtools.cli.common import (
+        binning_from_args, bins_top, describe_binning, pixel_model_from_args, print_range_warning,
+    )
     from cmbtools.exceptions import InvalidInputError
     from cmbtools.simulate import Dipole, NoiseModel, validate_polarized_estimator
 
@@ -155,10 +153,14 @@ def run_polarized(args, outputs, run_dir, where) -> int:
         if not np.isfinite(value) or abs(value) > 1e9:
             raise InvalidInputError(f"{name} must be a finite number of uK below 1e9. Got {value!r} instead.")
     dipole = Dipole(abs(dipole_uk) * 1e-6, 60.0, 30.0) if dipole_uk else None
+    # the model of the skies simulated: averaged pixels with --pixelise, pixel centres without (unless told)
+    averaged = pixel_model_from_args(args, default=bool(args.pixelise) and not args.no_pixel_window)
+    if averaged and args.no_pixel_window:
+        raise InvalidInputError("--averaged-pixels needs the pixel window (leave out --no-pixel-window).")
     est = sp.PolarizedSpectrumEstimator(
         mask, binning, pol_mask=pol_mask, lmax=lmax, mask2=mask2, pol_mask2=pol_mask2, beam=beam,
         pixel_window=not args.no_pixel_window, remove_monopole_dipole=removal, purify_b=args.purify_b,
-        sky_lmax=sky_lmax, guess_cl=spectra, force=args.force,
+        sky_lmax=sky_lmax, guess_cl=spectra, averaged_pixels=averaged, force=args.force,
     )
 
     executor, workers, where_text = where
@@ -210,6 +212,8 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     print(f"  input: {spectrum_text}; beam: {beam_text}; noise: {noise_text}")
     print(f"  skies to ell {sky_lmax}" + (", pixelised (averaged over each pixel)" if args.pixelise else "")
           + f"; B-mode purification: {'yes' if args.purify_b else 'no'}")
+    print("  estimator's pixel model: " + ("averaged pixels (pixel windows + the pixel shapes' correction of TT)"
+                                            if averaged else "pixel centres (pixel windows alone)"))
     worst = result.worst_bin()
     where_worst = "" if worst is None else (
         f" ({worst[0]}, ell {int(result.ell_min[worst[1]])}-{int(result.ell_max[worst[1]])})")

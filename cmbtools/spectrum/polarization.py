@@ -46,7 +46,7 @@ from cmbtools.spectrum.polarized_operator import (
 from cmbtools.spectrum.polarized_settings import (
     _check_memory, _guess_spectra, _pixel_windows, _pol_beam_array, _sky_factors, _transfers,
 )
-from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, _beam_array
+from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, _beam_array, default_averaged_pixels
 
 __all__ = ["PolarizedSpectrumEstimator"]
 
@@ -98,6 +98,14 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         Measure B with the pure-B estimator (Smith 2006): no E-to-B leakage from the mask, at the price of
         one spin-1 and one spin-0 transform more per map.  Accurate up to ``lmax = 2 nside``; above, the
         pixel grid's quadrature leaks E into the pure B (a warning says so).
+    averaged_pixels : bool or None, default=None
+        True: the maps hold the sky averaged over each pixel (a detector's map); TT's rows then also carry the
+        pixel shapes' bias that the isotropic pixel window leaves out, from the guess TT spectrum (the
+        temperature estimator's :func:`~cmbtools.spectrum.averaging_bias.averaging_bias`; about 2 s more to
+        build).  E and B get no such correction (measured in DEVELOPERS.md "pixel averages": about 1 % near
+        1.5 nside).  False: maps sampled at the pixel centres.  None (default): True with the HEALPix pixel
+        windows up to nside 512 (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`), like the
+        temperature estimator.
     nthreads : int, optional
         Threads of the transforms and of the coupling kernel.
     max_condition_number : float, default=1e3
@@ -157,6 +165,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         sky_lmax=None,
         correct_deprojection_bias=True,
         purify_b=False,
+        averaged_pixels=None,
         nthreads=None,
         max_condition_number=MAX_CONDITION_NUMBER,
         force=False,
@@ -221,7 +230,19 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 "instead."
             )
         sky_lmax = lmax if sky_lmax is None else check_int(sky_lmax, "sky_lmax", minimum=lmax, maximum=8 * nside)
-        needs = (remove_monopole_dipole and correct_deprojection_bias) or sky_lmax > binning.lmax
+        if averaged_pixels is None:  # the temperature estimator's default: averaged maps up to nside 512
+            averaged_pixels = default_averaged_pixels(nside, pixel_window)
+        if not isinstance(averaged_pixels, (bool, np.bool_)):
+            raise InvalidInputError(
+                f"The 'averaged_pixels' parameter must be True, False or None (the default). Got {averaged_pixels!r} "
+                "instead."
+            )
+        if averaged_pixels and pixel_window is not True:
+            raise InvalidInputError(
+                "The 'averaged_pixels' parameter needs the HEALPix pixel windows (pixel_window=True): it corrects what "
+                "the window leaves out of maps averaged into pixels."
+            )
+        needs = (remove_monopole_dipole and correct_deprojection_bias) or sky_lmax > binning.lmax or averaged_pixels
         guess, d_guess = _guess_spectra(guess_cl, sky_lmax, needs)
         if guess is not None and sky_lmax > lmax:
             sky_factors = _sky_factors(
@@ -249,6 +270,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         self._set("lmax", lmax)
         self._set("binning", binning)
         self._set("purify_b", bool(purify_b))
+        self._set("averaged_pixels", bool(averaged_pixels))
         self._set("remove_monopole_dipole", bool(remove_monopole_dipole))
         self._set("masks", {k: unique[key_of[k]] for k in masks})
         self._set("descriptions", {
@@ -661,6 +683,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         meta["sky_lmax"] = self.sky_lmax
         meta["guess_spectrum"] = self.descriptions.get("guess_cl", "none")
         meta["b_mode_purification"] = "yes" if self.purify_b else "no"
+        meta["pixels"] = ("averaged: the pixel shapes' bias of TT corrected with the guess spectrum" if self.averaged_pixels
+                          else "pixel centres")
         meta["coupling"] = "exact"
         meta["condition_number"] = float(f"{self.condition_number:.6g}")
         meta["errors"] = ("Gaussian pseudo-spectrum covariance (improved narrow-kernel approximation, E-to-B leakage "

@@ -22,8 +22,8 @@ Both enter as a factor per bin on the rows of each component of the binned syste
 ``1 + P(delta + leak)_b / (P M F S_guess)_b`` (columns within the bins; the multipoles below the first bin,
 such as the monopole and dipole left by an imperfect removal, count with the leakage): exact when the sky spectra are the
 guess times one constant per spectrum, like the temperature estimator's per-multipole row factors.  A
-component whose guess gives no pseudo-power in a bin (TB, EB with zero guesses; TE where its bin average
-is below 1 % of the largest) is left uncorrected there.  The model of the spectrum inside a bin follows
+component whose guess gives no pseudo-power in a bin (TB, EB with zero guesses; TE where its positive and
+negative parts cancel to below 1 % of their absolute sum) is left uncorrected there.  The model of the spectrum inside a bin follows
 the guess's shape where the guess keeps one sign over the bin (:func:`in_bin_shapes`).
 """
 
@@ -42,7 +42,8 @@ __all__ = []
 #: the bias to ``2 ONE_SIDED_NSIDE`` and zero above (a quarter of the cost of ``COARSE_NSIDE``'s grid).
 ONE_SIDED_NSIDE = 128
 
-#: Bins where a component's guess pseudo-power is below this fraction of its largest get no row factor.
+#: Bins where a component's guess pseudo-power is below this fraction of the same sum taken over absolute values
+#: (kernel and guess) get no row factor: the guess cancels there.
 SMALL_BASE = 1e-2
 
 
@@ -288,23 +289,44 @@ def row_factors(est, a, b, components, terms, kernels):
                 d_te, d_tb = _one_sided_bias(est, t_side, p_side, s_te, s_tb)
                 bias[c] = d_te
                 bias["TB" if c == "TE" else "BT"] = d_tb
+    if getattr(est, "averaged_pixels", False):
+        # maps averaged into pixels: the pixel shapes' part of TT's expected pseudo-power (the temperature
+        # estimator's correction, the sky's power, joined to the leakage)
+        from cmbtools.spectrum.averaging_bias import averaging_bias, pair_radius
+        from cmbtools.spectrum.pixel_windows import pixel_window
+
+        window = np.zeros(sky + 1)
+        w = np.asarray(pixel_window(est.nside, sky, nthreads=est._threads()), dtype=np.float64)[: sky + 1]
+        window[: w.size] = w
+        safe = np.where(window > 0, window**2, 1.0)
+        signal = grid("TT")
+        ta, tb = est.masks["t" + a], est.masks["t" + b]
+        same = est._key_of["t" + a] == est._key_of["t" + b]
+        factor = est._sky_factors["t" + a] * est._sky_factors["t" + b]
+        shape = averaging_bias(ta, signal / safe, window, lmax, mask2=None if same else tb,
+                               radius=pair_radius(est.nside, factor / safe), nthreads=est._threads())
+        bias["TT"] = shape if "TT" not in bias else bias["TT"] + shape
     inside = binned_columns(est.binning, lmax)
     out = {}
     for c in components:
         base = np.zeros(nb)
         extra = np.zeros(nb)
+        magnitude = np.zeros(nb)
         for col, key in terms[c]:
             s = grid(col)[: lmax + 1]
             k = kernels[key]
             base += k @ np.where(inside, s, 0.0)
+            magnitude += np.abs(k) @ np.where(inside, np.abs(s), 0.0)
             extra += k @ np.where(inside, 0.0, s)
             if key in rect:
                 s = grid(col)
                 extra += rect[key] @ s[lmax + 1: sky + 1]
         if c in bias:
             extra += np.add.reduceat(p_w * bias[c], est.binning.ell_min)
-        top = float(np.max(np.abs(base)))
-        ok = np.abs(base) > SMALL_BASE * top if top > 0 else np.zeros(nb, bool)
+        # a bin is corrected unless its guess pseudo-power cancels (a sign change of TE inside the bin, zero
+        # TB/EB guesses): judged per bin against the same sum of absolute values, not against the largest bin
+        # (a beam makes the top bins' pseudo-power of every spectrum tiny against the first ones')
+        ok = np.abs(base) > SMALL_BASE * magnitude
         r = np.ones(nb)
         r[ok] += extra[ok] / base[ok]
         out[c] = r
