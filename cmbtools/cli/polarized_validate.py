@@ -212,8 +212,11 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     print(f"  input: {spectrum_text}; beam: {beam_text}; noise: {noise_text}")
     print(f"  skies to ell {sky_lmax}" + (", pixelised (averaged over each pixel)" if args.pixelise else "")
           + f"; B-mode purification: {'yes' if args.purify_b else 'no'}")
-    print("  estimator's pixel model: " + ("averaged pixels (pixel windows + the pixel shapes' correction of TT)"
-                                            if averaged else "pixel centres (pixel windows alone)"))
+    if not args.no_pixel_window:
+        skies = "averaged over each pixel" if args.pixelise else "sampled at the pixel centres"
+        model = ("averaged pixels (pixel windows + the pixel shapes' correction of TT)" if averaged
+                 else "pixel centres (pixel windows only)")
+        print(f"  pixels: skies {skies}; estimator's model: {model}")
     worst = result.worst_bin()
     where_worst = "" if worst is None else (
         f" ({worst[0]}, ell {int(result.ell_min[worst[1]])}-{int(result.ell_max[worst[1]])})")

@@ -84,3 +84,19 @@ def test_polarized_validate_bad_inputs_exit_2_and_write_nothing(files, capsys, e
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and message in err[0], err
     assert not run_dir.exists()
+
+
+@pytest.mark.parametrize("extra, skies, model", [
+    ((), "sampled at the pixel centres", "pixel centres"),
+    (("--pixelise",), "averaged over each pixel", "averaged pixels"),
+    (("--pixelise", "--pixel-centre-maps"), "averaged over each pixel", "pixel centres"),
+])
+def test_polarized_validate_models_the_pixels_of_its_skies_unless_told(files, capsys, monkeypatch, extra, skies,
+                                                                       model):
+    # as for temperature: the estimator's model follows the skies (averaged with --pixelise), an option overrides it
+    monkeypatch.setenv("CMBTOOLS_NUM_THREADS", "1")
+    run_dir = files / ("run" + "".join(extra))
+    assert main(_args(files, "--sims", "2", "--seed", "1", "--workers", "1", "--run-dir", str(run_dir), *extra)) == 0
+    out = capsys.readouterr().out
+    line = [ln for ln in out.splitlines() if ln.startswith("  pixels: ")]
+    assert len(line) == 1 and f"skies {skies};" in line[0] and f"estimator's model: {model}" in line[0], out

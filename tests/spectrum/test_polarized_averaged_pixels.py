@@ -1,0 +1,122 @@
+"""The polarized estimator on I, Q, U skies as real maps are, with its default model of the pixels.
+
+Skies: correlated Gaussian I, Q, U coefficients from the built-in fiducial spectra (TT, TE, EE, lensing-like BB)
+with power to 4 nside - 1, a Gaussian beam of two pixels, averaged over each pixel's area (I as a scalar, Q and U
+as components in each point's own frame: simulate.pixel_averaging, checked against healpy in
+tests/simulate/test_pixel_averaging.py), a 100 uK monopole and a 3 mK dipole in I, white noise shaped by a
+hits-like map (Q, U sqrt(2) times the I noise per pixel, common practice), on a cap tapered by 3 degrees with 15
+tapered holes (the survey of tests/spectrum/test_averaged_pixels_default.py).  Through the DEFAULT settings
+(default bins, built-in guess spectra, ``sky_lmax`` 4 nside - 1, ``averaged_pixels=None`` -> averaged) every
+reported bin of TT, TE, EE and BB is judged against the binned input, and TB, EB against zero.
+"""
+
+import healpy as hp
+import numpy as np
+import pytest
+
+from cmbtools._core import sht as _sht
+from cmbtools.simulate.pixel_averaging import pixel_averaged_map
+from cmbtools.simulate.polarized_skies import gaussian_iqu_alm
+from cmbtools.simulate.polarized_theory import fiducial_spectra
+from cmbtools.spectrum import PolarizedSpectrumEstimator, SPECTRA
+from cmbtools.spectrum.beams import gaussian_beam, gaussian_polarized_beam
+from cmbtools.spectrum.sampling import default_binning, pixel_size_arcmin
+
+NSIDE = 32
+
+
+def _cos_taper(dist_deg, width):
+    return 0.5 - 0.5 * np.cos(np.pi * np.clip(dist_deg / width, 0.0, 1.0))
+
+
+def _survey(nside):
+    """A 50-degree cap with 15 holes of one degree, every edge tapered by 3 degrees, and its noise per pixel."""
+    vec = np.array(hp.pix2vec(nside, np.arange(12 * nside**2))).T
+    centre = hp.ang2vec(250.0, -55.0, lonlat=True)
+    w = _cos_taper(50.0 - np.degrees(np.arccos(np.clip(vec @ centre, -1, 1))), 3.0)
+    rng = np.random.default_rng(5)
+    for _ in range(15):
+        while True:
+            v = rng.standard_normal(3)
+            v /= np.linalg.norm(v)
+            if np.degrees(np.arccos(v @ centre)) < 45.0:
+                break
+        d = np.degrees(np.arccos(np.clip(vec @ v, -1, 1)))
+        w *= np.where(d < 1.0, 0.0, _cos_taper(d - 1.0, 3.0))
+    hits = 0.25 + 0.75 * np.clip(vec @ centre, 0, 1)  # deeper towards the centre
+    sigma = 2e-7 / np.sqrt(hits)  # K per pixel in I: E modes dominate EE up to the top bin
+    return w, vec, sigma
+
+
+def run(nside, n_sims, seed, *, paired=True):
+    """z of every bin (default model on averaged skies) and the pixel-centre model's paired relative bias."""
+    sky_lmax = 4 * nside - 1
+    w, vec, sigma = _survey(nside)
+    fwhm = 2.0 * pixel_size_arcmin(nside)
+    bins = default_binning(nside, fwhm)
+    cl = fiducial_spectra(sky_lmax, lensing_bb=True)
+    default = PolarizedSpectrumEstimator(w, bins, beam=fwhm, sky_lmax=sky_lmax, nthreads=1)
+    centres = PolarizedSpectrumEstimator(w, bins, beam=fwhm, sky_lmax=sky_lmax, averaged_pixels=False, nthreads=1)
+    b_t, b_p = gaussian_beam(fwhm, sky_lmax), gaussian_polarized_beam(fwhm, sky_lmax)
+    from cmbtools.spectrum.pixel_windows import pixel_window, polarization_pixel_window
+
+    w_t, w_p = pixel_window(nside, sky_lmax)[: sky_lmax + 1], polarization_pixel_window(nside, sky_lmax)[: sky_lmax + 1]
+    dipole = 3e-3 * hp.ang2vec(30.0, 40.0, lonlat=True)
+    # white noise shaped by the hits, as the mask sees it (the weights' mean of sigma^2)
+    n_white = np.sum(w**2 * sigma**2) / np.sum(w**2) * 4 * np.pi / w.size
+    noise_cl = {"TT": np.full(3 * nside, n_white), "EE": np.full(3 * nside, 2 * n_white),
+                "BB": np.full(3 * nside, 2 * n_white)}
+    out, diff = [], []
+    for i in range(n_sims):
+        rng = np.random.default_rng([seed, i])
+        t, e, b = gaussian_iqu_alm(cl, sky_lmax, rng=rng)
+        noise = sigma * rng.standard_normal((3, w.size))
+        noise[1:] *= np.sqrt(2.0)
+        noise[0] += 100e-6 + vec @ dipole
+        t1, e1, b1 = (_sht.almxfl(x, f, sky_lmax) for x, f in ((t, b_t), (e, b_p), (b, b_p)))
+        averaged = np.empty((3, w.size))
+        averaged[0] = pixel_averaged_map(t1, nside, sky_lmax, nthreads=1)
+        averaged[1:] = pixel_averaged_map(np.stack([e1, b1]), nside, sky_lmax, spin=2, nthreads=1)
+        averaged += noise
+        bp = default.estimate(averaged, noise_cl=noise_cl)
+        out.append(np.asarray(bp.cl))
+        if paired:
+            centre = np.empty((3, w.size))
+            centre[0] = _sht.alm2map(_sht.almxfl(t1, w_t, sky_lmax), nside, sky_lmax, nthreads=1)
+            centre[1], centre[2] = _sht.alm2map_spin2(_sht.almxfl(e1, w_p, sky_lmax), _sht.almxfl(b1, w_p, sky_lmax),
+                                                      nside, sky_lmax, nthreads=1)
+            centre += noise
+            diff.append(np.asarray(centres.estimate(averaged, noise_cl=noise_cl).cl)
+                        - np.asarray(centres.estimate(centre, noise_cl=noise_cl).cl))
+    values = np.array(out)
+    truth = np.array([bins.bin_spectrum(cl[s]) for s in SPECTRA])
+    sem = values.std(0, ddof=1) / np.sqrt(n_sims)
+    z = (values.mean(0) - truth) / sem
+    if not paired:
+        return bins, z, None, None
+    diff = np.array(diff)
+    z_bias = diff.mean(0) / (diff.std(0, ddof=1) / np.sqrt(n_sims))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rel = diff.mean(0) / truth
+    return bins, z, z_bias, rel
+
+
+@pytest.mark.slow
+def test_polarized_default_model_on_averaged_iqu_skies():
+    """200 skies at nside 32 (about 60 s on the loaded 2-core machine, 25 s quiet)."""
+    bins, z, z_bias, rel = run(NSIDE, 200, 3)
+    # every reported bin of the six spectra within 3 standard errors of the binned input (TB, EB: of zero);
+    # measured with 300 skies: |z| <= 2.5
+    assert np.all(np.abs(z) < 3.0), z
+    # TT: the pixel-centre model on the same averaged maps (paired with pixel-centre maps of the same
+    # coefficients) is low near 2 nside, which the default corrects (measured -1.05 and -1.43 % from 1.5 nside,
+    # 13-21 standard errors)
+    tt = SPECTRA.index("TT")
+    near = bins.ell_min >= 1.5 * NSIDE
+    assert np.any(near)
+    assert np.all(z_bias[tt][near] < -5.0), z_bias[tt]
+    assert np.all(rel[tt][near] < -0.005), rel[tt]
+    # EE has the same kind of bias and no correction yet (spin 2; measured -1.2 and -1.9 %, 8-15 standard
+    # errors): the default's EE is still within the bound above at this number of skies
+    ee = SPECTRA.index("EE")
+    assert np.all(rel[ee][near] < -0.005), rel[ee]
