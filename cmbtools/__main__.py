@@ -1,5 +1,3 @@
-import sys
+from cmbtools.cli import run
 
-from cmbtools.cli import main
-
-sys.exit(main())
+run()

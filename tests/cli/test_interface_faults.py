@@ -301,3 +301,24 @@ def test_ctrl_c_ends_a_command_whose_clean_up_hangs(tmp_path):
     assert p.returncode == 130
     assert err.decode().splitlines() == ["cmbtools demo: interrupted"]
     assert waited >= _InterruptGuard.GRACE - 1.0  # the command had its grace period first
+
+
+def test_an_interrupted_command_does_not_wait_for_exit_handlers(tmp_path):
+    # cli.run ends a command that reports Ctrl-C (status 130) with os._exit once its atexit functions ran or
+    # EXIT_WAIT seconds passed: the interpreter's exit handlers must not wait forever (a process pool's can, on a lock
+    # left held by the interrupt). Here an exit function that would sleep for 600 s stands for the stuck one; a
+    # command that ends normally runs its exit functions as usual.
+    script = tmp_path / "entry.py"
+    script.write_text(textwrap.dedent("""\
+        import atexit, sys, time
+        import cmbtools.cli as cli
+        status = int(sys.argv[1])
+        atexit.register(lambda: print("exit handler ran", flush=True) or (status == 130 and time.sleep(600)))
+        cli.main = lambda argv=None: print("command done", flush=True) or status
+        cli.run()
+        """))
+    for status in (130, 0):
+        out = subprocess.run([sys.executable, str(script), str(status)], env=_env(), capture_output=True, text=True,
+                             timeout=QUICK_STEP)
+        assert out.returncode == status
+        assert out.stdout.splitlines() == ["command done", "exit handler ran"]
