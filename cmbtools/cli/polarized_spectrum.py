@@ -38,6 +38,8 @@ def run_polarized(args, outputs_checked) -> int:
         from cmbtools.exceptions import InvalidInputError as _Invalid
 
         raise _Invalid("--averaged-pixels is available for temperature maps only (not for I, Q, U maps yet).")
+    import dataclasses
+
     import numpy as np
 
     from cmbtools import maps
@@ -55,6 +57,21 @@ def run_polarized(args, outputs_checked) -> int:
         if given:
             raise InvalidInputError(f"{flag} applies to temperature maps only; MAP holds I, Q, U "
                                     "(for the noise bias of I, Q, U maps use --noise-maps or --half-difference).")
+    if args.errors == "knox":
+        raise InvalidInputError("--errors knox applies to temperature maps only; the errors of I, Q, U maps are the "
+                                "Gaussian covariance of the six spectra (or --covariance-from FILE).")
+    for flag, given in (("--noise-variance", args.noise_variance), ("--noise-variance2", args.noise_variance2),
+                        ("--hits", args.hits), ("--noise-depth", args.noise_depth), ("--hits2", args.hits2),
+                        ("--noise-depth2", args.noise_depth2)):
+        if given is not None:
+            raise InvalidInputError(f"{flag} applies to temperature maps only; the covariance of I, Q, U maps takes "
+                                    "the noise from the measured power of each map.")
+    covariance_from = None
+    if args.covariance_from is not None:  # read and checked now (its spectra were checked by the caller)
+        covariance_from = sp.read_covariance(args.covariance_from)
+        if covariance_from.settings.get("bandpower_transfer_key") is not None:
+            raise InvalidInputError(f"{args.covariance_from}: the covariance is of bandpowers divided by a transfer "
+                                    "function, which I, Q, U spectra do not take (--transfer).")
     m1, info1 = read_iqu(args.map, force=args.force)
     w1 = maps.read_mask(args.mask, force=args.force)
     p1 = maps.read_mask(args.pol_mask, force=args.force) if args.pol_mask else w1
@@ -84,6 +101,10 @@ def run_polarized(args, outputs_checked) -> int:
     binning = binning_from_args(args, bins_top(args, nside, lmax, beam1, beam2), float(np.mean(p1)))
     if binning.lmin < 2:
         raise InvalidInputError(f"The bins start at ell={binning.lmin}; polarized spectra need bins from ell >= 2.")
+    if covariance_from is not None and not covariance_from.matches(binning):
+        raise InvalidInputError(f"{args.covariance_from}: the covariance has other bins than the bandpowers "
+                                f"({covariance_from.n_bins} bins from ell {int(covariance_from.ell_min[0])}, against "
+                                f"{binning.n_bins} from ell {binning.lmin}); use the same binning.")
     theory = None
     if args.theory is not None:  # read and checked now: a command writes all of its outputs or none
         from cmbtools.simulate import read_polarized_spectrum_table
@@ -132,7 +153,26 @@ def run_polarized(args, outputs_checked) -> int:
         meta.update({"pol_mask_file": str(args.pol_mask), "pol_mask_file_sha256": sha256_file(args.pol_mask)})
     if m2 is not None:
         meta.update({"map2": str(args.map2), "map2_sha256": info2.sha256})
-    bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, bp.cl_err, bp.dl, bp.dl_err, bp.covariance, meta)
+    cross = m2 is not None
+    windows = est.cross_bandpower_windows if cross else est.bandpower_windows
+    if covariance_from is not None:
+        # the errors and covariance of the file (e.g. a simulated one: its inverse takes the Hartlap factor)
+        covariance = covariance_from
+        errors_text = f"{covariance.kind} covariance from {args.covariance_from}"
+        meta["errors"] = errors_text
+        err = covariance.errors.reshape(len(sp.SPECTRA), binning.n_bins)
+        bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, err, bp.dl, err * binning.dl_factor,
+                      np.array(covariance.matrix), meta)
+        if covariance.windows is None:
+            covariance = dataclasses.replace(covariance, windows=windows)
+    else:
+        bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, bp.cl_err, bp.dl, bp.dl_err, bp.covariance, meta)
+        errors_text = "Gaussian covariance of the measured pseudo-spectra (every block of the six spectra)"
+        covariance = sp.BandpowerCovariance(
+            bp.ell_min, bp.ell_max, bp.ell_eff, bp.covariance, windows, kind="gaussian", spectra=sp.SPECTRA,
+            settings={"spectrum": "polarized cross" if cross else "polarized auto", "map": str(args.map),
+                      "map_sha256": info1.sha256, **({"map2": str(args.map2)} if cross else {}),
+                      "b_mode_purification": "yes" if args.purify_b else "no", "lmax": int(est.lmax)})
 
     from cmbtools._core.files import OutputGroup
 
@@ -143,6 +183,8 @@ def run_polarized(args, outputs_checked) -> int:
             outputs.write(args.fits, lambda p: bp.write_fits(p, overwrite=True, unit=args.unit), overwrite=ow)
         if args.figure is not None:
             outputs.write(args.figure, lambda p: bp.plot(p, theory=theory, overwrite=True), overwrite=ow)
+        if args.covariance is not None:
+            outputs.write(args.covariance, lambda p: covariance.write(p, overwrite=True), overwrite=ow)
     written = outputs.paths
 
     kind = "polarized cross-spectra" if m2 is not None else "polarized spectra"
@@ -154,6 +196,7 @@ def run_polarized(args, outputs_checked) -> int:
     print(f"  B-mode purification: {'yes' if args.purify_b else 'no'}; condition number {est.condition_number:.3g}")
     if noise_maps is not None:
         print(f"  noise bias subtracted: {meta['noise_bias_subtracted']}")
+    print(f"  errors: {errors_text}")
     for p in written:
         print(f"  wrote {p}")
     print_range_warning(args)
