@@ -69,9 +69,16 @@ def run_polarized(args, outputs_checked) -> int:
     covariance_from = None
     if args.covariance_from is not None:  # read and checked now (its spectra were checked by the caller)
         covariance_from = sp.read_covariance(args.covariance_from)
-        if covariance_from.settings.get("bandpower_transfer_key") is not None:
-            raise InvalidInputError(f"{args.covariance_from}: the covariance is of bandpowers divided by a transfer "
-                                    "function, which I, Q, U spectra do not take (--transfer).")
+    transfer = None
+    if args.transfer is not None:  # the table of `validate --polarized` (a spectrum column)
+        transfer = sp.PolarizedBandpowerTransfer.read_csv(args.transfer)
+    corrected_key = None if covariance_from is None else covariance_from.settings.get("bandpower_transfer_key")
+    if corrected_key is not None and (transfer is None or corrected_key != transfer.key):
+        raise InvalidInputError(
+            f"{args.covariance_from}: the covariance is of bandpowers divided by a transfer function "
+            f"(key {corrected_key}); give the same table with --transfer"
+            + ("." if transfer is None else f" (the --transfer table has key {transfer.key}).")
+        )
     m1, info1 = read_iqu(args.map, force=args.force)
     w1 = maps.read_mask(args.mask, force=args.force)
     p1 = maps.read_mask(args.pol_mask, force=args.force) if args.pol_mask else w1
@@ -105,6 +112,11 @@ def run_polarized(args, outputs_checked) -> int:
         raise InvalidInputError(f"{args.covariance_from}: the covariance has other bins than the bandpowers "
                                 f"({covariance_from.n_bins} bins from ell {int(covariance_from.ell_min[0])}, against "
                                 f"{binning.n_bins} from ell {binning.lmin}); use the same binning.")
+    if transfer is not None:
+        try:
+            transfer.check_bins(binning)
+        except InvalidInputError as exc:
+            raise InvalidInputError(f"{args.transfer}: {exc}") from None
     theory = None
     if args.theory is not None:  # read and checked now: a command writes all of its outputs or none
         from cmbtools.simulate import read_polarized_spectrum_table
@@ -173,6 +185,17 @@ def run_polarized(args, outputs_checked) -> int:
             settings={"spectrum": "polarized cross" if cross else "polarized auto", "map": str(args.map),
                       "map_sha256": info1.sha256, **({"map2": str(args.map2)} if cross else {}),
                       "b_mode_purification": "yes" if args.purify_b else "no", "lmax": int(est.lmax)})
+    if transfer is not None:  # the errors and covariance of a corrected covariance file are kept as they are
+        errors_kept, covariance_kept = bp.cl_err, bp.covariance
+        bp = transfer.apply(bp)
+        bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, bp.cl_err, bp.dl, bp.dl_err, bp.covariance,
+                      {**bp.metadata, "transfer_file": str(args.transfer),
+                       "transfer_file_sha256": sha256_file(args.transfer)})
+        if corrected_key is not None:
+            bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, errors_kept, bp.dl,
+                          errors_kept * binning.dl_factor, covariance_kept, bp.metadata)
+        else:
+            covariance = transfer.apply_to_covariance(covariance)
 
     from cmbtools._core.files import OutputGroup
 
@@ -197,6 +220,10 @@ def run_polarized(args, outputs_checked) -> int:
     if noise_maps is not None:
         print(f"  noise bias subtracted: {meta['noise_bias_subtracted']}")
     print(f"  errors: {errors_text}")
+    if transfer is not None:
+        f = transfer.factors
+        print(f"  transfer: bandpowers, errors and covariance divided by F_b of {args.transfer} "
+              f"({float(f.min()):.4g} to {float(f.max()):.4g}; TE, TB, EB by sqrt(F_XX F_YY))")
     for p in written:
         print(f"  wrote {p}")
     print_range_warning(args)

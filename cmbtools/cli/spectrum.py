@@ -192,8 +192,6 @@ def run(args) -> int:
 
         check_covariance_spectra(read_covariance(args.covariance_from), polarized, args.covariance_from)
     if polarized:
-        if args.transfer is not None:
-            raise InvalidInputError("--transfer applies to temperature spectra only.")
         return run_polarized(args, seen)
     if args.pol_mask or args.pol_mask2 or args.purify_b:
         raise InvalidInputError(f"--pol-mask, --pol-mask2 and --purify-b need I, Q, U maps; {args.map} holds one map.")
