@@ -184,6 +184,17 @@ class BandpowerCovariance:
     def block(self, spectrum1, spectrum2=None) -> np.ndarray:
         """The (n_bins, n_bins) block of two spectra (default: the auto block of ``spectrum1``).
 
+        Parameters
+        ----------
+        spectrum1 : str
+            The spectrum of the rows ('TT', 'TE', ...).
+        spectrum2 : str, optional
+            The spectrum of the columns (default: ``spectrum1``).
+
+        Returns
+        -------
+        ndarray of shape (n_bins, n_bins)
+
         Raises
         ------
         InvalidInputError

@@ -461,6 +461,13 @@ class PolarizedBandpowerTransfer:
         """Write the table: comment lines, then ``spectrum,ell_min,ell_max,ell_eff,transfer,transfer_error``,
         one row per spectrum and bin (TT's bins first, then TE, TB, EE, EB, BB; ``nan`` where not measured).
 
+        Parameters
+        ----------
+        path : str or path-like
+            Output file, written atomically.
+        overwrite : bool, default=False
+            Replace an existing file.
+
         Returns
         -------
         Path
@@ -481,7 +488,16 @@ class PolarizedBandpowerTransfer:
 
     @classmethod
     def read_csv(cls, path) -> "PolarizedBandpowerTransfer":
-        """Read a table written by :meth:`write_csv`.
+        """Read a table written by :meth:`write_csv` (or the ``summary.csv`` of ``validate --polarized``).
+
+        Parameters
+        ----------
+        path : str or path-like
+            The text table.
+
+        Returns
+        -------
+        PolarizedBandpowerTransfer
 
         Raises
         ------
@@ -534,11 +550,25 @@ class PolarizedBandpowerTransfer:
             raise InputFileError(p, str(exc)) from None
 
     def check_bins(self, binning, what="the bandpowers"):
-        """Raise :class:`InvalidInputError` unless ``binning`` has these bins (see :meth:`BandpowerTransfer.check_bins`)."""
+        """Raise :class:`InvalidInputError` unless ``binning`` has these bins (see :meth:`BandpowerTransfer.check_bins`).
+
+        Parameters
+        ----------
+        binning : Binning, PolarizedBandpowers or BandpowerCovariance
+            What the transfer is applied to.
+        what : str
+            Its name in the message.
+        """
         BandpowerTransfer(self.ell_min, self.ell_max, self.ell_eff, np.ones(self.n_bins)).check_bins(binning, what)
 
     def record(self) -> dict:
-        """What a correction records in the metadata of its result (as :meth:`BandpowerTransfer.record`)."""
+        """What a correction records in the metadata of its result (as :meth:`BandpowerTransfer.record`).
+
+        Returns
+        -------
+        dict
+            ``bandpower_transfer`` (text) and ``bandpower_transfer_key`` (:attr:`key`).
+        """
         f = self.factors
         return {"bandpower_transfer": f"divided by F_b (TT, EE, BB; sqrt(F_XX F_YY) for TE, TB, EB) from "
                                       f"{f.min():.4g} to {f.max():.4g}",
@@ -572,7 +602,17 @@ class PolarizedBandpowerTransfer:
                                    bandpowers.cl_err / f, bandpowers.dl / f, bandpowers.dl_err / f, cov, meta)
 
     def apply_to_covariance(self, covariance):
-        """The covariance of the corrected bandpowers (a six-spectrum BandpowerCovariance; windows kept)."""
+        """The covariance of the corrected bandpowers: ``C / outer(f, f)`` with the :attr:`factors` (windows kept).
+
+        Parameters
+        ----------
+        covariance : BandpowerCovariance
+            A covariance of the six spectra, with the same bins.
+
+        Returns
+        -------
+        BandpowerCovariance
+        """
         if covariance.spectra != _POL_SPECTRA:
             raise InvalidInputError("A polarized transfer function applies to a covariance of the six spectra.")
         self.check_bins(covariance, "the covariance")
