@@ -300,13 +300,20 @@ def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
     scale = _HIST_BINS / hist_chord_max
     hist = np.zeros(_HIST_BINS + 2)
     block = max(1, (1 << 21) // (order**4))
-    # every pair (p, q) of a centre p and a pixel q of the second mask within the radius
+    # every pair (p, q) of a centre p and a pixel q of the second mask within the radius; for an auto-spectrum
+    # with every pixel of the mask a centre, the pair (q, p) is (p, q) again (same weight, same difference): each
+    # unordered pair once, counted twice (half the work at small nside; the same sum to rounding)
+    symmetric = w_b is w_a and centres.size == np.count_nonzero(w_a)
     pairs_p, pairs_q, pairs_w = [], [], []
     for k, (p, th, ph) in enumerate(zip(centres, theta, phi)):
         ranges = base.query_disc(np.array([th, ph]), radius)
         q = np.concatenate([np.arange(a, b) for a, b in ranges])
         q = q[w_b[q] != 0.0]
-        pairs_w.append(share[k] * w_a[p] * w_b[q])
+        if symmetric:
+            q = q[q >= p]
+            pairs_w.append(np.where(q > p, 2.0, 1.0) * (w_a[p] * w_b[q]))
+        else:
+            pairs_w.append(share[k] * w_a[p] * w_b[q])
         pairs_p.append(np.full(q.size, p))
         pairs_q.append(q)
     pairs_p, pairs_q, pairs_w = np.concatenate(pairs_p), np.concatenate(pairs_q), np.concatenate(pairs_w)
