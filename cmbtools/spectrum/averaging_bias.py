@@ -32,7 +32,10 @@ it is exact when the sky has the shape of the guess.
 
 Cost: about 2 s for 4096 centres (0.4-0.7 ms each, with the pair radius of
 7 pixels; quiet 2-core machine) whatever the nside; below 4096 pixels in the
-mask, less.  That is
+mask, less (an auto-spectrum then sums each unordered pair once).  The last
+:data:`CACHE_SIZE` results are kept in memory (keyed by a hash of the inputs'
+values), so estimators built again with the same mask, spectrum, window and
+lmax skip the sums.  That is
 why the estimator's default (``averaged_pixels=None``) applies it up to
 nside 512 only (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`).
 A cheaper path through the grid's symmetries (the pair sum of a pixel
