@@ -162,6 +162,10 @@ def read_transfer_table(path):
     if table.names is None:
         raise InputFileError(p, "has no column names (expected 'ell_min,ell_max,ell_eff,transfer,transfer_error')")
     names = list(table.names)
+    if "spectrum" in names:
+        raise InputFileError(p, "has a 'spectrum' column: it is the transfer table of polarized spectra (one row per "
+                                "spectrum and bin), for the spectra of I, Q, U maps; a temperature spectrum needs the "
+                                "table of `cmbtools validate` without --polarized")
     missing = [c for c in ("ell_min", "ell_max", "transfer") if c not in names]
     if missing:
         raise InputFileError(p, f"line {table.header_line}: no {', '.join(repr(c) for c in missing)} column "

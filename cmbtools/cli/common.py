@@ -113,7 +113,7 @@ def add_pixel_model(parser, default_text):
                             "under the mask, about 1 %% near 1.5-2.5 nside). " + default_text)
     group.add_argument("--pixel-centre-maps", dest="pixel_model", action="store_const", const="centres",
                        help="the maps hold the sky sampled at the pixel centres (maps synthesised from "
-                            "coefficients, e.g. simulations): the isotropic pixel window alone, no averaged-pixel "
+                            "coefficients, e.g. cmbtools simulate without --pixelise): the isotropic pixel window alone, no averaged-pixel "
                             "correction")
 
 

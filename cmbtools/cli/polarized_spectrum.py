@@ -34,6 +34,8 @@ def is_polarized_input(path) -> bool:
 
 def run_polarized(args, outputs_checked) -> int:
     """The polarized spectrum command (arguments already parsed; the output paths already checked)."""
+    import dataclasses
+
     import numpy as np
 
     from cmbtools import maps
@@ -52,6 +54,28 @@ def run_polarized(args, outputs_checked) -> int:
         if given:
             raise InvalidInputError(f"{flag} applies to temperature maps only; MAP holds I, Q, U "
                                     "(for the noise bias of I, Q, U maps use --noise-maps or --half-difference).")
+    if args.errors == "knox":
+        raise InvalidInputError("--errors knox applies to temperature maps only; the errors of I, Q, U maps are the "
+                                "Gaussian covariance of the six spectra (or --covariance-from FILE).")
+    for flag, given in (("--noise-variance", args.noise_variance), ("--noise-variance2", args.noise_variance2),
+                        ("--hits", args.hits), ("--noise-depth", args.noise_depth), ("--hits2", args.hits2),
+                        ("--noise-depth2", args.noise_depth2)):
+        if given is not None:
+            raise InvalidInputError(f"{flag} applies to temperature maps only; the covariance of I, Q, U maps takes "
+                                    "the noise from the measured power of each map.")
+    covariance_from = None
+    if args.covariance_from is not None:  # read and checked now (its spectra were checked by the caller)
+        covariance_from = sp.read_covariance(args.covariance_from)
+    transfer = None
+    if args.transfer is not None:  # the table of `validate --polarized` (a spectrum column)
+        transfer = sp.PolarizedBandpowerTransfer.read_csv(args.transfer)
+    corrected_key = None if covariance_from is None else covariance_from.settings.get("bandpower_transfer_key")
+    if corrected_key is not None and (transfer is None or corrected_key != transfer.key):
+        raise InvalidInputError(
+            f"{args.covariance_from}: the covariance is of bandpowers divided by a transfer function "
+            f"(key {corrected_key}); give the same table with --transfer"
+            + ("." if transfer is None else f" (the --transfer table has key {transfer.key}).")
+        )
     m1, info1 = read_iqu(args.map, force=args.force)
     w1 = maps.read_mask(args.mask, force=args.force)
     p1 = maps.read_mask(args.pol_mask, force=args.force) if args.pol_mask else w1
@@ -81,6 +105,15 @@ def run_polarized(args, outputs_checked) -> int:
     binning = binning_from_args(args, bins_top(args, nside, lmax, beam1, beam2), float(np.mean(p1)))
     if binning.lmin < 2:
         raise InvalidInputError(f"The bins start at ell={binning.lmin}; polarized spectra need bins from ell >= 2.")
+    if covariance_from is not None and not covariance_from.matches(binning):
+        raise InvalidInputError(f"{args.covariance_from}: the covariance has other bins than the bandpowers "
+                                f"({covariance_from.n_bins} bins from ell {int(covariance_from.ell_min[0])}, against "
+                                f"{binning.n_bins} from ell {binning.lmin}); use the same binning.")
+    if transfer is not None:
+        try:
+            transfer.check_bins(binning)
+        except InvalidInputError as exc:
+            raise InvalidInputError(f"{args.transfer}: {exc}") from None
     theory = None
     if args.theory is not None:  # read and checked now: a command writes all of its outputs or none
         from cmbtools.simulate import read_polarized_spectrum_table
@@ -129,7 +162,37 @@ def run_polarized(args, outputs_checked) -> int:
         meta.update({"pol_mask_file": str(args.pol_mask), "pol_mask_file_sha256": sha256_file(args.pol_mask)})
     if m2 is not None:
         meta.update({"map2": str(args.map2), "map2_sha256": info2.sha256})
-    bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, bp.cl_err, bp.dl, bp.dl_err, bp.covariance, meta)
+    cross = m2 is not None
+    windows = est.cross_bandpower_windows if cross else est.bandpower_windows
+    if covariance_from is not None:
+        # the errors and covariance of the file (e.g. a simulated one: its inverse takes the Hartlap factor)
+        covariance = covariance_from
+        errors_text = f"{covariance.kind} covariance from {args.covariance_from}"
+        meta["errors"] = errors_text
+        err = covariance.errors.reshape(len(sp.SPECTRA), binning.n_bins)
+        bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, err, bp.dl, err * binning.dl_factor,
+                      np.array(covariance.matrix), meta)
+        if covariance.windows is None:
+            covariance = dataclasses.replace(covariance, windows=windows)
+    else:
+        bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, bp.cl_err, bp.dl, bp.dl_err, bp.covariance, meta)
+        errors_text = "Gaussian covariance of the measured pseudo-spectra (every block of the six spectra)"
+        covariance = sp.BandpowerCovariance(
+            bp.ell_min, bp.ell_max, bp.ell_eff, bp.covariance, windows, kind="gaussian", spectra=sp.SPECTRA,
+            settings={"spectrum": "polarized cross" if cross else "polarized auto", "map": str(args.map),
+                      "map_sha256": info1.sha256, **({"map2": str(args.map2)} if cross else {}),
+                      "b_mode_purification": "yes" if args.purify_b else "no", "lmax": int(est.lmax)})
+    if transfer is not None:  # the errors and covariance of a corrected covariance file are kept as they are
+        errors_kept, covariance_kept = bp.cl_err, bp.covariance
+        bp = transfer.apply(bp)
+        bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, bp.cl_err, bp.dl, bp.dl_err, bp.covariance,
+                      {**bp.metadata, "transfer_file": str(args.transfer),
+                       "transfer_file_sha256": sha256_file(args.transfer)})
+        if corrected_key is not None:
+            bp = type(bp)(bp.ell_min, bp.ell_max, bp.ell_eff, bp.cl, errors_kept, bp.dl,
+                          errors_kept * binning.dl_factor, covariance_kept, bp.metadata)
+        else:
+            covariance = transfer.apply_to_covariance(covariance)
 
     from cmbtools._core.files import OutputGroup
 
@@ -140,6 +203,8 @@ def run_polarized(args, outputs_checked) -> int:
             outputs.write(args.fits, lambda p: bp.write_fits(p, overwrite=True, unit=args.unit), overwrite=ow)
         if args.figure is not None:
             outputs.write(args.figure, lambda p: bp.plot(p, theory=theory, overwrite=True), overwrite=ow)
+        if args.covariance is not None:
+            outputs.write(args.covariance, lambda p: covariance.write(p, overwrite=True), overwrite=ow)
     written = outputs.paths
 
     kind = "polarized cross-spectra" if m2 is not None else "polarized spectra"
@@ -151,6 +216,11 @@ def run_polarized(args, outputs_checked) -> int:
     print(f"  B-mode purification: {'yes' if args.purify_b else 'no'}; condition number {est.condition_number:.3g}")
     if noise_maps is not None:
         print(f"  noise bias subtracted: {meta['noise_bias_subtracted']}")
+    print(f"  errors: {errors_text}")
+    if transfer is not None:
+        f = transfer.factors
+        print(f"  transfer: bandpowers, errors and covariance divided by F_b of {args.transfer} "
+              f"({float(f.min()):.4g} to {float(f.max()):.4g}; TE, TB, EB by sqrt(F_XX F_YY))")
     for p in written:
         print(f"  wrote {p}")
     print_range_warning(args)

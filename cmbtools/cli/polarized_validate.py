@@ -43,8 +43,7 @@ def check_polarization_options(args):
     if args.fast_coupling:
         raise InvalidInputError("--fast-coupling is not available with --polarized (its couplings are exact).")
     for flag, given in (("--harmonic-filter", getattr(args, "harmonic_filter", None)),
-                        ("--transfer", getattr(args, "transfer", None)),
-                        ("--transfer-table", getattr(args, "transfer_table", None))):
+                        ("--transfer", getattr(args, "transfer", None))):
         if given is not None:
             raise InvalidInputError(f"{flag} applies to temperature validation only; it is not available with "
                                     "--polarized.")
@@ -183,13 +182,30 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     result = dataclasses.replace(result, metadata=meta)
     from cmbtools._core.files import OutputGroup
 
+    # the simulated covariance of the six spectra's bandpowers (spectrum-major, as the bandpowers'
+    # cl.ravel()), usable by `cmbtools spectrum --covariance-from` on I, Q, U maps
+    samples = np.concatenate([result[s].samples for s in sp.SPECTRA], axis=1)
+    simulated = sp.simulated_covariance(
+        samples, ell_min=result.ell_min, ell_max=result.ell_max, ell_eff=result.ell_eff,
+        windows=est.cross_bandpower_windows if cross else est.bandpower_windows, spectra=sp.SPECTRA,
+        settings={"spectrum": "polarized cross" if cross else "polarized auto", "seed": int(result.seed),
+                  "b_mode_purification": "yes" if args.purify_b else "no"})
+    skipped = None
+    try:
+        transfer = sp.PolarizedBandpowerTransfer.from_validation(result)
+    except InvalidInputError as exc:  # TT, EE or BB keeps no signal in some bin: the table cannot correct it
+        transfer = None
+        path = [o for o in outputs if o[0] == "transfer table"][0][1]
+        skipped = f"{path} not written: {exc}"
+        outputs = [o for o in outputs if o[0] != "transfer table"]
     writers = {"table": lambda p: result.write_csv(p, overwrite=True, unit=args.unit),
                "JSON summary": lambda p: result.write_json(p, overwrite=True),
-               "figure": lambda p: result.plot(p, overwrite=True)}
+               "figure": lambda p: result.plot(p, overwrite=True),
+               "transfer table": lambda p: transfer.write_csv(p, overwrite=True)}
     with OutputGroup() as group:  # all of the outputs or none
         for what, path, overwrite in outputs:
-            if what in writers:  # no transfer table from a polarized run (an explicit --transfer-table is refused)
-                group.write(path, writers[what], overwrite=overwrite)
+            group.write(path, writers[what], overwrite=overwrite)
+        group.write(run_dir / "covariance.npz", lambda p: simulated.write(p, overwrite=True), overwrite=True)
     written = group.paths
 
     s = result.summary()
@@ -228,5 +244,9 @@ def run_polarized(args, outputs, run_dir, where) -> int:
               f"{num(v['rms_bias_sigma'], '4.2f')}; scatter / error {num(v['min_error_ratio'], '.3f')} to "
               f"{num(v['max_error_ratio'], '.3f')} (median {num(v['median_error_ratio'], '.3f')})")
     print("  wrote " + ", ".join(str(p) for p in written))
+    if skipped is not None:
+        import sys
+
+        print(f"cmbtools: warning: {skipped}", file=sys.stderr)
     print_range_warning(args)
     return 0

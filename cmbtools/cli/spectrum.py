@@ -186,11 +186,12 @@ def run(args) -> int:
     # 2. inputs (I, Q, U files: the six polarized spectra)
     from cmbtools.cli.polarized_spectrum import is_polarized_input, run_polarized
 
-    if is_polarized_input(args.map):
-        if args.transfer is not None:
-            raise InvalidInputError("--transfer applies to temperature spectra only.")
-        if args.covariance is not None or args.covariance_from is not None:
-            raise InvalidInputError("--covariance and --covariance-from apply to temperature spectra only.")
+    polarized = is_polarized_input(args.map)
+    if args.covariance_from is not None:  # a covariance of the other kind of map is refused before any work
+        from cmbtools.spectrum.bandpower_covariance import check_covariance_spectra, read_covariance
+
+        check_covariance_spectra(read_covariance(args.covariance_from), polarized, args.covariance_from)
+    if polarized:
         return run_polarized(args, seen)
     if args.pol_mask or args.pol_mask2 or args.purify_b:
         raise InvalidInputError(f"--pol-mask, --pol-mask2 and --purify-b need I, Q, U maps; {args.map} holds one map.")

@@ -39,7 +39,9 @@ the I noise per pixel, the temperature MASK and the polarization mask
 --pol-mask (--pol-mask2 for the second split), optionally --purify-b; the
 bias and the error ratio are reported per spectrum and bin, the table gains a
 'spectrum' column, summary.json per-spectrum keys under "spectra", and the
-figure one panel per spectrum.
+figure one panel per spectrum; covariance.npz holds the six spectra's
+simulated covariance (spectrum-major) and transfer.csv gains a 'spectrum'
+column (TB and EB: nan), both read by 'cmbtools spectrum' on I, Q, U maps.
 
 Outputs (by default in the run directory): summary.csv (one row per bin, a
 '# key: value' header with the settings), summary.json (the headline numbers

@@ -222,7 +222,7 @@ def _field_beams(beam, lmax):
 
 
 def gaussian_iqu_sky(spectra, nside, *, lmax=None, beam=None, pixel_window=True, monopole=0.0, dipole=None, rng=None,
-                     nthreads=None, force=False) -> np.ndarray:
+                     nthreads=None, force=False, pixelise=False) -> np.ndarray:
     """Simulate correlated Gaussian I, Q, U maps as an instrument would see them.
 
     The coefficients of :func:`gaussian_iqu_alm` are multiplied by the beams
@@ -256,6 +256,11 @@ def gaussian_iqu_sky(spectra, nside, *, lmax=None, beam=None, pixel_window=True,
         Threads for the transforms.
     force : bool, default=False
         Go ahead even when the memory estimate exceeds what the machine has available.
+    pixelise : bool, default=False
+        Average the beam-convolved I, Q, U over the area of each pixel
+        (:func:`cmbtools.simulate.pixel_averaging.pixel_averaged_map`; Q and U
+        in each point's own frame) instead of sampling them, smoothed by the
+        pixel windows, at the pixel centres.  Needs ``pixel_window=True``.
 
     Returns
     -------
@@ -294,8 +299,12 @@ def gaussian_iqu_sky(spectra, nside, *, lmax=None, beam=None, pixel_window=True,
         raise InvalidInputError(f"The 'monopole' parameter must be finite. Got {monopole!r} instead.")
     if not isinstance(pixel_window, (bool, np.bool_)):
         raise InvalidInputError(f"The 'pixel_window' parameter must be True or False. Got {pixel_window!r} instead.")
+    from cmbtools.simulate.skies import _averaging_bytes, _check_pixelise
+
+    pixelise = _check_pixelise(pixelise, pixel_window)
     dip = None if dipole is None else _dipole_vector(dipole)
-    check_memory(3 * estimate_sky_bytes(nside, lmax, dip is not None),
+    check_memory(max(3 * estimate_sky_bytes(nside, lmax, dip is not None),
+                     _averaging_bytes(nside, lmax, 2) if pixelise else 0),
                  f"A simulated I, Q, U sky at nside {nside} with lmax {lmax}", force=force)
     b_t, b_p = _field_beams(beam, lmax)
     t_transfer = np.ones(lmax + 1)
@@ -303,7 +312,7 @@ def gaussian_iqu_sky(spectra, nside, *, lmax=None, beam=None, pixel_window=True,
     if b_t is not None:
         t_transfer *= b_t
         p_transfer *= b_p
-    if pixel_window:
+    if pixel_window and not pixelise:
         from cmbtools.spectrum.pixel_windows import pixel_window as _pixel_window
         from cmbtools.spectrum.pixel_windows import polarization_pixel_window
 
@@ -311,10 +320,16 @@ def gaussian_iqu_sky(spectra, nside, *, lmax=None, beam=None, pixel_window=True,
         p_transfer *= np.asarray(polarization_pixel_window(nside, lmax), dtype=np.float64)[: lmax + 1]
     alm = gaussian_iqu_alm(s, lmax, rng=rng, nthreads=nthreads)
     out = np.empty((3, 12 * nside * nside))
-    out[0] = _sht.alm2map(_sht.almxfl(alm[0], t_transfer, lmax), nside, lmax, nthreads=nthreads)
-    q, u = _sht.alm2map_spin2(_sht.almxfl(alm[1], p_transfer, lmax), _sht.almxfl(alm[2], p_transfer, lmax), nside,
-                              lmax, nthreads=nthreads)
-    out[1], out[2] = q, u
+    t_alm = _sht.almxfl(alm[0], t_transfer, lmax)
+    e_alm, b_alm = _sht.almxfl(alm[1], p_transfer, lmax), _sht.almxfl(alm[2], p_transfer, lmax)
+    if pixelise:  # I, then Q and U in each point's own frame, averaged over each pixel
+        from cmbtools.simulate.pixel_averaging import pixel_averaged_map
+
+        out[0] = pixel_averaged_map(t_alm, nside, lmax, nthreads=nthreads)
+        out[1:] = pixel_averaged_map(np.stack([e_alm, b_alm]), nside, lmax, spin=2, nthreads=nthreads)
+    else:
+        out[0] = _sht.alm2map(t_alm, nside, lmax, nthreads=nthreads)
+        out[1], out[2] = _sht.alm2map_spin2(e_alm, b_alm, nside, lmax, nthreads=nthreads)
     if monopole:
         out[0] += monopole
     if dip is not None:

@@ -199,12 +199,14 @@ def gaussian_sky(
     rng=None,
     nthreads=None,
     force=False,
+    pixelise=False,
 ) -> np.ndarray:
     """Simulate a Gaussian CMB temperature map as an instrument would see it.
 
     The coefficients of :func:`gaussian_alm` are multiplied by the beam and the
-    pixel window and synthesized on the HEALPix grid; then an optional monopole
-    and dipole are added in pixel space.
+    pixel window and synthesized on the HEALPix grid (or, with ``pixelise``,
+    the beam-convolved sky is averaged over each pixel's area, as a detector's
+    map holds it); then an optional monopole and dipole are added in pixel space.
 
     Parameters
     ----------
@@ -232,6 +234,15 @@ def gaussian_sky(
     force : bool, default=False
         Go ahead (with a :class:`~cmbtools.exceptions.CmbtoolsWarning`) even
         when the memory estimate exceeds what the machine has available.
+    pixelise : bool, default=False
+        Average the beam-convolved sky over the area of each pixel
+        (:func:`cmbtools.simulate.pixel_averaging.pixel_averaged_map`, 16
+        quadrature nodes per pixel) instead of sampling it, smoothed by the
+        pixel window, at the pixel centres: the pixels' own shapes, which the
+        isotropic window leaves out, are then in the map.  The estimator's
+        default ``averaged_pixels`` model assumes such maps.  Needs
+        ``pixel_window=True`` (the averaging is the pixel window); about 20
+        times slower than the synthesis (0.8 s at nside 128).
 
     Returns
     -------
@@ -259,12 +270,49 @@ def gaussian_sky(
         raise InvalidInputError(f"The 'monopole' parameter must be finite. Got {monopole!r} instead.")
     if not isinstance(pixel_window, (bool, np.bool_)):
         raise InvalidInputError(f"The 'pixel_window' parameter must be True or False. Got {pixel_window!r} instead.")
+    pixelise = _check_pixelise(pixelise, pixel_window)
     dip = None if dipole is None else _dipole_vector(dipole)
     check_memory(
-        estimate_sky_bytes(nside, lmax, dip is not None), f"A simulated sky at nside {nside} with lmax {lmax}", force=force
+        max(estimate_sky_bytes(nside, lmax, dip is not None), _averaging_bytes(nside, lmax, 1) if pixelise else 0),
+        f"A simulated sky at nside {nside} with lmax {lmax}", force=force
     )
     b = _beam_factor(beam, lmax)
+    if pixelise:
+        return _averaged_sky(cl, nside, lmax, b, monopole, dip, rng, nthreads)
     return _gaussian_sky(cl, nside, lmax, b, pixel_window, monopole, dip, rng, nthreads)
+
+
+def _check_pixelise(pixelise, pixel_window) -> bool:
+    if not isinstance(pixelise, (bool, np.bool_)):
+        raise InvalidInputError(f"The 'pixelise' parameter must be True or False. Got {pixelise!r} instead.")
+    if pixelise and not pixel_window:
+        raise InvalidInputError("The 'pixelise' parameter averages the sky over each pixel, which is the pixel window: "
+                                "leave 'pixel_window' True with it.")
+    return bool(pixelise)
+
+
+def _averaging_bytes(nside, lmax, n_fields) -> int:
+    """Peak bytes of :func:`~cmbtools.simulate.pixel_averaging.pixel_averaged_map` for ``n_fields`` maps."""
+    from cmbtools.simulate.pixel_averaging import averaging_order
+
+    nodes = 12 * nside * nside * averaging_order(nside, lmax) ** 2
+    # the rule (pixel, theta and phi, weight), the values at the nodes and their weighted copy, the output maps
+    return int(nodes * (8 + 16 + 8 + 16 * n_fields)) + 2 * n_fields * 12 * nside * nside * 8
+
+
+def _averaged_sky(cl, nside, lmax, b, monopole, dip, rng, nthreads) -> np.ndarray:
+    """The beam-convolved sky of :func:`_gaussian_sky`'s draws averaged over each pixel (checked inputs)."""
+    from cmbtools.simulate.pixel_averaging import pixel_averaged_map
+
+    transfer = np.ones(lmax + 1) if b is None else np.asarray(b, dtype=np.float64)
+    alm = _gaussian_alm(np.asarray(cl, dtype=np.float64)[: lmax + 1], lmax, rng, nthreads, transfer)
+    m = pixel_averaged_map(alm, nside, lmax, nthreads=nthreads)
+    del alm
+    if monopole:
+        m += monopole
+    if dip is not None:
+        m += _dipole_map(nside, dip)
+    return m
 
 
 def _gaussian_sky(cl, nside, lmax, b, pixel_window, monopole, dip, rng, nthreads, rings=None) -> np.ndarray:

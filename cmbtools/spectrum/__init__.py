@@ -53,7 +53,7 @@ from cmbtools.spectrum.pixel_windows import pixel_window, polarization_pixel_win
 from cmbtools.spectrum.polarization import PolarizedSpectrumEstimator
 from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
 from cmbtools.spectrum.sampling import default_binning, default_bins_lmax
-from cmbtools.spectrum.transfer import BandpowerTransfer
+from cmbtools.spectrum.transfer import BandpowerTransfer, PolarizedBandpowerTransfer
 
 __all__ = [
     "Binning",
@@ -82,4 +82,5 @@ __all__ = [
     "estimate_polarized_spectra",
     "SPECTRA",
     "BandpowerTransfer",
+    "PolarizedBandpowerTransfer",
 ]

@@ -32,7 +32,10 @@ it is exact when the sky has the shape of the guess.
 
 Cost: about 2 s for 4096 centres (0.4-0.7 ms each, with the pair radius of
 7 pixels; quiet 2-core machine) whatever the nside; below 4096 pixels in the
-mask, less.  That is
+mask, less (an auto-spectrum then sums each unordered pair once).  The last
+:data:`CACHE_SIZE` results are kept in memory (keyed by a hash of the inputs'
+values), so estimators built again with the same mask, spectrum, window and
+lmax skip the sums.  That is
 why the estimator's default (``averaged_pixels=None``) applies it up to
 nside 512 only (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`).
 A cheaper path through the grid's symmetries (the pair sum of a pixel
@@ -50,13 +53,16 @@ within 0.1 % (0.36 % in the full sky's bin at 2.4 nside).
 
 from __future__ import annotations
 
+import collections
+import hashlib
 import math
+import threading
 
 import numpy as np
 
 from cmbtools._core.checks import check_nside
 
-__all__ = ["averaging_bias", "pair_radius"]
+__all__ = ["averaging_bias", "clear_averaging_bias_cache", "pair_radius"]
 
 #: The pairs are summed to this many pixel sizes at least ...
 MIN_RADIUS_PIXELS = 7.0
@@ -174,6 +180,39 @@ def _centres(w_a, max_centres):
     return inside[pick], count.astype(np.float64)
 
 
+#: Results kept in memory by :func:`averaging_bias` (least recently used dropped first; each is lmax + 1
+#: numbers): a process that builds several estimators with one mask, guess spectrum, beam and lmax (a
+#: notebook, a script trying bins, the test suite) pays for the pair sums once.
+CACHE_SIZE = 8
+_cache: "collections.OrderedDict[str, np.ndarray]" = collections.OrderedDict()
+_cache_lock = threading.Lock()
+
+
+def clear_averaging_bias_cache() -> None:
+    """Forget every result kept by :func:`averaging_bias` (the next call computes again; used by the benchmark)."""
+    with _cache_lock:
+        _cache.clear()
+
+
+def _cache_key(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads) -> str:
+    """A hash of everything the result depends on: both masks' values, the spectrum, the window, the settings.
+
+    The nside is the masks' length; the module's table and histogram sizes are constants of the process.
+    """
+    h = hashlib.blake2b(digest_size=32)
+    for name, arr in (("mask", w_a), ("mask2", w_b), ("sky", sky), ("window", win)):
+        h.update(name.encode())
+        if arr is None:
+            h.update(b"none")
+            continue
+        a = np.ascontiguousarray(arr, dtype=np.float64)
+        h.update(repr(a.shape).encode())
+        h.update(a.view(np.uint8).reshape(-1) if a.size else b"")
+    h.update(repr((int(lmax), None if radius is None else float(radius).hex(), int(max_centres), int(order),
+                   nthreads, MIN_RADIUS_PIXELS, _TABLE_POINTS, _HIST_BINS)).encode())
+    return h.hexdigest()
+
+
 def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_centres=MAX_CENTRES,
                    order=ORDER, nthreads=1) -> np.ndarray:
     """Expected pseudo-spectrum of pixel-averaged maps minus that of the window model, for one sky spectrum.
@@ -210,18 +249,45 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
     Returns
     -------
     ndarray of shape (lmax+1,)
-        ``E[C~_l](averaged) - E[C~_l](model)``, in the units of ``sky_cl``.
+        ``E[C~_l](averaged) - E[C~_l](model)``, in the units of ``sky_cl``: a new array on every call.
+
+    Notes
+    -----
+    The last :data:`CACHE_SIZE` results are kept in memory, keyed by a hash of every input's values (masks,
+    spectrum, window to the spectrum's band limit, ``lmax``, ``radius``, ``max_centres``, ``order``,
+    ``nthreads``): a repeated call returns a copy of the kept result (hashing a mask of nside 512 takes
+    about 10 ms against 1-3 s for the sums).  :func:`clear_averaging_bias_cache` empties it.
     """
+    w_a = np.asarray(mask, dtype=np.float64)
+    w_b = None if mask2 is None else np.asarray(mask2, dtype=np.float64)
+    sky = np.asarray(sky_cl, dtype=np.float64)
+    win = np.asarray(window, dtype=np.float64)[: sky.size]
+    key = _cache_key(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads)
+    with _cache_lock:
+        kept = _cache.get(key)
+        if kept is not None:
+            _cache.move_to_end(key)
+            return kept.copy()
+    result = _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads)
+    kept = result.copy()
+    kept.setflags(write=False)
+    with _cache_lock:
+        _cache[key] = kept
+        _cache.move_to_end(key)
+        while len(_cache) > CACHE_SIZE:
+            _cache.popitem(last=False)
+    return result
+
+
+def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
+    """:func:`averaging_bias` without the cache (``w_b`` None: the auto-spectrum)."""
     import ducc0
 
     from cmbtools._core.sht import legendre_adjoint
 
-    w_a = np.asarray(mask, dtype=np.float64)
-    w_b = w_a if mask2 is None else np.asarray(mask2, dtype=np.float64)
+    w_b = w_a if w_b is None else w_b
     npix = w_a.size
     nside = check_nside(int(round(math.sqrt(npix / 12))))
-    sky = np.asarray(sky_cl, dtype=np.float64)
-    win = np.asarray(window, dtype=np.float64)[: sky.size]
     if radius is None:
         radius = MIN_RADIUS_PIXELS * math.sqrt(4.0 * math.pi / npix)
     if not np.any(w_a != 0.0) or not np.any(w_b != 0.0):
@@ -237,13 +303,20 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
     scale = _HIST_BINS / hist_chord_max
     hist = np.zeros(_HIST_BINS + 2)
     block = max(1, (1 << 21) // (order**4))
-    # every pair (p, q) of a centre p and a pixel q of the second mask within the radius
+    # every pair (p, q) of a centre p and a pixel q of the second mask within the radius; for an auto-spectrum
+    # with every pixel of the mask a centre, the pair (q, p) is (p, q) again (same weight, same difference): each
+    # unordered pair once, counted twice (half the work at small nside; the same sum to rounding)
+    symmetric = w_b is w_a and centres.size == np.count_nonzero(w_a)
     pairs_p, pairs_q, pairs_w = [], [], []
     for k, (p, th, ph) in enumerate(zip(centres, theta, phi)):
         ranges = base.query_disc(np.array([th, ph]), radius)
         q = np.concatenate([np.arange(a, b) for a, b in ranges])
         q = q[w_b[q] != 0.0]
-        pairs_w.append(share[k] * w_a[p] * w_b[q])
+        if symmetric:
+            q = q[q >= p]
+            pairs_w.append(np.where(q > p, 2.0, 1.0) * (w_a[p] * w_b[q]))
+        else:
+            pairs_w.append(share[k] * w_a[p] * w_b[q])
         pairs_p.append(np.full(q.size, p))
         pairs_q.append(q)
     pairs_p, pairs_q, pairs_w = np.concatenate(pairs_p), np.concatenate(pairs_q), np.concatenate(pairs_w)

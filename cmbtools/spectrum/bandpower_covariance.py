@@ -10,6 +10,19 @@ Simulated covariance
 covariance file; its inverse carries the Hartlap et al. (2007, A&A 464, 399,
 eq. 17) factor ``(n - p - 2) / (n - 1)`` for ``n`` simulations and ``p`` bins.
 
+Several spectra
+---------------
+One file layout serves temperature and I, Q, U measurements: a covariance
+has a spectrum axis ``spectra`` (``('TT',)`` for temperature; ``('TT', 'TE',
+'TB', 'EE', 'EB', 'BB')`` for I, Q, U maps) and is spectrum-major: row
+``i * n_bins + b`` is bin ``b`` of spectrum ``spectra[i]``, the same order as
+:class:`~cmbtools.spectrum.PolarizedBandpowers` ``cl.ravel()``.  The window
+functions are spectrum-major too, on both axes: ``windows[i * n_bins + b,
+j * (lmax+1) + l]`` is how bin ``b`` of spectrum ``i`` responds to the sky's
+``C_l`` of spectrum ``j``.  ``blocks`` (n_spectra, n_spectra) says which
+blocks the model computed; a block it did not compute holds zeros and is
+marked False there (so a zero block is never passed off as a computed one).
+
 Files
 -----
 :func:`write_covariance` / :func:`read_covariance` (``.npz`` without pickle,
@@ -34,9 +47,12 @@ __all__ = [
     "hartlap_factor",
     "write_covariance",
     "read_covariance",
+    "check_covariance_spectra",
 ]
 
 _FORMAT = "cmbtools-bandpower-covariance-1"
+#: The spectra a covariance may hold, in the order of every polarized array.
+_KNOWN_SPECTRA = ("TT", "TE", "TB", "EE", "EB", "BB")
 
 
 def hartlap_factor(n_sims, n_bins) -> float:
@@ -73,16 +89,21 @@ class BandpowerCovariance:
         Bin limits (inclusive).
     ell_eff : array_like of shape (n_bins,)
         Effective multipole of each bin.
-    matrix : array_like of shape (n_bins, n_bins)
-        Covariance of the ``cl`` bandpowers, K^4.
-    windows : array_like of shape (n_bins, lmax+1), optional
-        Bandpower window functions ``E[cl] = windows @ C_l``.
+    matrix : array_like of shape (n_spectra n_bins, n_spectra n_bins)
+        Covariance of the ``cl`` bandpowers, K^4, spectrum-major (see the module notes).
+    windows : array_like of shape (n_spectra n_bins, n_spectra (lmax+1)), optional
+        Bandpower window functions ``E[cl] = windows @ C_l`` (``C_l`` of the spectra one after the other,
+        each from ell = 0).
     kind : {'gaussian', 'simulation', 'knox'}, default='gaussian'
         How it was obtained.
     n_sims : int, default=0
         Number of simulations of a simulated covariance.
     settings : dict, optional
         Recorded settings (str or number values).
+    spectra : tuple of str, default=('TT',)
+        The spectrum axis: ``('TT',)`` (temperature) or ``('TT', 'TE', 'TB', 'EE', 'EB', 'BB')``.
+    blocks : array_like of bool, shape (n_spectra, n_spectra), optional
+        Which blocks were computed (default: all).  A block marked False must hold zeros.
     """
 
     ell_min: np.ndarray
@@ -93,6 +114,8 @@ class BandpowerCovariance:
     kind: str = "gaussian"
     n_sims: int = 0
     settings: dict = dataclasses.field(default_factory=dict)
+    spectra: tuple = ("TT",)
+    blocks: np.ndarray | None = None
 
     def __post_init__(self):
         lo = np.array(self.ell_min, dtype=np.int64)
@@ -102,8 +125,28 @@ class BandpowerCovariance:
         m = np.array(self.matrix, dtype=np.float64)
         if lo.ndim != 1 or nb == 0 or hi.shape != (nb,) or eff.shape != (nb,):
             raise InvalidInputError("The bins of a covariance must be three 1-d arrays of the same length.")
-        if m.shape != (nb, nb) or not np.all(np.isfinite(m)):
-            raise InvalidInputError(f"The covariance matrix must be a finite ({nb}, {nb}) array. Got shape {m.shape} instead.")
+        spectra = tuple(str(x) for x in np.atleast_1d(np.asarray(self.spectra, dtype=str)))
+        if spectra not in (("TT",), _KNOWN_SPECTRA):
+            raise InvalidInputError(f"The spectra of a covariance must be ('TT',) or {_KNOWN_SPECTRA}. "
+                                    f"Got {spectra} instead.")
+        ns = len(spectra)
+        n = ns * nb
+        if m.shape != (n, n) or not np.all(np.isfinite(m)):
+            raise InvalidInputError(f"The covariance matrix must be a finite ({n}, {n}) array ({ns} spectra of {nb} "
+                                    f"bins). Got shape {m.shape} instead.")
+        blocks = np.ones((ns, ns), dtype=bool) if self.blocks is None else np.array(self.blocks)
+        if blocks.shape != (ns, ns) or blocks.dtype.kind not in "bui":
+            raise InvalidInputError(f"The 'blocks' of a covariance must be a ({ns}, {ns}) array of booleans.")
+        blocks = blocks.astype(bool)
+        if not np.array_equal(blocks, blocks.T) or not np.all(np.diag(blocks)):
+            raise InvalidInputError("The 'blocks' of a covariance must be symmetric, with every diagonal block computed.")
+        for i, j in zip(*np.nonzero(~blocks)):
+            if np.any(m[i * nb:(i + 1) * nb, j * nb:(j + 1) * nb] != 0.0):
+                raise InvalidInputError(f"The covariance block {spectra[i]} x {spectra[j]} is marked as not computed "
+                                        "but holds non-zero values.")
+        blocks.setflags(write=False)
+        object.__setattr__(self, "spectra", spectra)
+        object.__setattr__(self, "blocks", blocks)
         if not np.allclose(m, m.T, rtol=1e-8, atol=0.0):
             raise InvalidInputError("The covariance matrix is not symmetric.")
         if np.any(np.diag(m) < 0):
@@ -115,8 +158,9 @@ class BandpowerCovariance:
             object.__setattr__(self, name, arr)
         if self.windows is not None:
             w = np.array(self.windows, dtype=np.float64)
-            if w.ndim != 2 or w.shape[0] != nb:
-                raise InvalidInputError(f"The window functions must have shape ({nb}, lmax+1). Got {w.shape} instead.")
+            if w.ndim != 2 or w.shape[0] != n or w.shape[1] % ns or w.shape[1] == 0:
+                shape = f"({nb}, lmax+1)" if ns == 1 else f"({n}, {ns} (lmax+1))"
+                raise InvalidInputError(f"The window functions must have shape {shape}. Got {w.shape} instead.")
             w.setflags(write=False)
             object.__setattr__(self, "windows", w)
         object.__setattr__(self, "n_sims", int(self.n_sims))
@@ -124,13 +168,47 @@ class BandpowerCovariance:
 
     @property
     def n_bins(self) -> int:
-        """Number of bins."""
+        """Number of bins (of each spectrum)."""
         return int(self.ell_min.size)
 
     @property
+    def size(self) -> int:
+        """Dimension of the matrix: number of spectra times number of bins."""
+        return len(self.spectra) * self.n_bins
+
+    @property
     def errors(self) -> np.ndarray:
-        """Square roots of the diagonal: the error bars of the ``cl`` bandpowers, K^2."""
+        """Square roots of the diagonal: the error bars of the ``cl`` bandpowers, K^2 (spectrum-major)."""
         return np.sqrt(np.diag(self.matrix))
+
+    def block(self, spectrum1, spectrum2=None) -> np.ndarray:
+        """The (n_bins, n_bins) block of two spectra (default: the auto block of ``spectrum1``).
+
+        Parameters
+        ----------
+        spectrum1 : str
+            The spectrum of the rows ('TT', 'TE', ...).
+        spectrum2 : str, optional
+            The spectrum of the columns (default: ``spectrum1``).
+
+        Returns
+        -------
+        ndarray of shape (n_bins, n_bins)
+
+        Raises
+        ------
+        InvalidInputError
+            An unknown spectrum, or a block the model did not compute (see ``blocks``).
+        """
+        spectrum2 = spectrum1 if spectrum2 is None else spectrum2
+        for s in (spectrum1, spectrum2):
+            if s not in self.spectra:
+                raise InvalidInputError(f"The covariance holds the spectra {', '.join(self.spectra)}; not {s!r}.")
+        i, j = self.spectra.index(spectrum1), self.spectra.index(spectrum2)
+        if not self.blocks[i, j]:
+            raise InvalidInputError(f"The covariance block {spectrum1} x {spectrum2} was not computed.")
+        nb = self.n_bins
+        return self.matrix[i * nb:(i + 1) * nb, j * nb:(j + 1) * nb]
 
     @property
     def correlation(self) -> np.ndarray:
@@ -144,11 +222,14 @@ class BandpowerCovariance:
 
         Returns
         -------
-        ndarray of shape (n_bins, n_bins)
+        ndarray of shape (n_spectra n_bins, n_spectra n_bins)
         """
+        if not np.all(self.blocks):
+            raise InvalidInputError("The covariance has blocks that were not computed (see 'blocks'); its inverse "
+                                    "would treat them as uncorrelated.")
         inv = np.linalg.inv(self.matrix)
         if self.kind == "simulation":
-            inv *= hartlap_factor(self.n_sims, self.n_bins)
+            inv *= hartlap_factor(self.n_sims, self.size)
         return 0.5 * (inv + inv.T)
 
     def matches(self, binning) -> bool:
@@ -183,7 +264,8 @@ class BandpowerCovariance:
         return write_covariance(path, self, overwrite=overwrite)
 
 
-def simulated_covariance(samples, *, ell_min, ell_max, ell_eff, windows=None, settings=None) -> BandpowerCovariance:
+def simulated_covariance(samples, *, ell_min, ell_max, ell_eff, windows=None, settings=None,
+                         spectra=("TT",)) -> BandpowerCovariance:
     """The sample covariance (``ddof=1``) of simulated bandpowers.
 
     Its :meth:`BandpowerCovariance.inverse` applies the Hartlap et al. (2007)
@@ -191,14 +273,17 @@ def simulated_covariance(samples, *, ell_min, ell_max, ell_eff, windows=None, se
 
     Parameters
     ----------
-    samples : array_like of shape (n_sims, n_bins)
-        ``cl`` bandpowers of every simulation, K^2.
+    samples : array_like of shape (n_sims, n_spectra n_bins)
+        ``cl`` bandpowers of every simulation, K^2 (spectrum-major: every bin of the first spectrum, then
+        of the next).
     ell_min, ell_max, ell_eff : array_like of shape (n_bins,)
         The bins.
-    windows : array_like of shape (n_bins, lmax+1), optional
+    windows : array_like of shape (n_spectra n_bins, n_spectra (lmax+1)), optional
         Bandpower window functions to store with it.
     settings : dict, optional
         Settings to record.
+    spectra : tuple of str, default=('TT',)
+        The spectrum axis (see :class:`BandpowerCovariance`); every block is computed.
 
     Returns
     -------
@@ -209,7 +294,7 @@ def simulated_covariance(samples, *, ell_min, ell_max, ell_eff, windows=None, se
         raise InvalidInputError(f"The 'samples' must have shape (n_sims, n_bins) with n_sims >= 2. Got {x.shape} instead.")
     cov = np.atleast_2d(np.cov(x, rowvar=False, ddof=1))
     return BandpowerCovariance(ell_min, ell_max, ell_eff, 0.5 * (cov + cov.T), windows, kind="simulation",
-                               n_sims=x.shape[0], settings=dict(settings or {}))
+                               n_sims=x.shape[0], settings=dict(settings or {}), spectra=spectra)
 
 
 def write_covariance(path, covariance, *, overwrite=False) -> Path:
@@ -218,14 +303,20 @@ def write_covariance(path, covariance, *, overwrite=False) -> Path:
     Layout (both formats; C_l bandpowers, K^4 for the matrix):
 
     * ``.npz``: arrays ``ell_min``, ``ell_max``, ``ell_eff`` (n_bins,),
-      ``covariance`` (n_bins, n_bins), ``windows`` (n_bins, lmax+1, present when
-      known) and ``settings``, a JSON string with ``format``, ``software``,
-      ``kind`` ('gaussian', 'simulation' or 'knox'), ``n_sims``, ``unit``
-      ('K^4') and the recorded settings.
-    * ``.fits``: primary header with ``CMBFMT``, ``KIND``, ``NSIMS``, ``BUNIT``
-      and the settings as ``HIERARCH`` cards; extension ``BINS`` (table
-      ``ELL_MIN``, ``ELL_MAX``, ``ELL_EFF``), image ``COVARIANCE`` and image
-      ``WINDOWS`` (rows = bins, columns = ell from 0).
+      ``spectra`` (n_spectra,) of str (``['TT']`` for temperature, ``['TT',
+      'TE', 'TB', 'EE', 'EB', 'BB']`` for I, Q, U maps), ``blocks`` (n_spectra,
+      n_spectra) bool (the blocks computed), ``covariance`` (n_spectra n_bins,
+      n_spectra n_bins; spectrum-major), ``windows`` (n_spectra n_bins,
+      n_spectra (lmax+1), present when known) and ``settings``, a JSON string
+      with ``format``, ``software``, ``kind`` ('gaussian', 'simulation' or
+      'knox'), ``n_sims``, ``unit`` ('K^4') and the recorded settings.  A file
+      without ``spectra`` (written before the spectrum axis) is temperature.
+    * ``.fits``: primary header with ``CMBFMT``, ``KIND``, ``NSIMS``, ``BUNIT``,
+      ``NSPEC`` and the settings as ``HIERARCH`` cards; extension ``BINS``
+      (table ``ELL_MIN``, ``ELL_MAX``, ``ELL_EFF``), extension ``SPECTRA``
+      (table ``SPECTRUM``), image ``BLOCKS`` (1 = computed), image
+      ``COVARIANCE`` and image ``WINDOWS`` (rows = spectrum-major bins, columns
+      = spectrum-major ell from 0).
 
     Parameters
     ----------
@@ -248,7 +339,8 @@ def write_covariance(path, covariance, *, overwrite=False) -> Path:
     meta = {"format": _FORMAT, "software": f"cmbtools {__version__}", "kind": c.kind, "n_sims": c.n_sims,
             "unit": "K^4", **c.settings}
     if suffix == ".npz":
-        arrays = {"ell_min": c.ell_min, "ell_max": c.ell_max, "ell_eff": c.ell_eff, "covariance": c.matrix}
+        arrays = {"ell_min": c.ell_min, "ell_max": c.ell_max, "ell_eff": c.ell_eff, "covariance": c.matrix,
+                  "spectra": np.array(c.spectra, dtype="<U2"), "blocks": np.asarray(c.blocks, dtype=bool)}
         if c.windows is not None:
             arrays["windows"] = c.windows
         with atomic_output(out, overwrite=overwrite, suffix=".npz") as tmp:
@@ -262,6 +354,7 @@ def write_covariance(path, covariance, *, overwrite=False) -> Path:
     primary.header["KIND"] = c.kind
     primary.header["NSIMS"] = c.n_sims
     primary.header["BUNIT"] = "K^4"
+    primary.header["NSPEC"] = len(c.spectra)
     for k, v in c.settings.items():
         text = v if isinstance(v, (int, float)) else " ".join(str(v).splitlines())[:60]
         primary.header[f"HIERARCH {k.upper()}"[:60]] = text
@@ -270,7 +363,10 @@ def write_covariance(path, covariance, *, overwrite=False) -> Path:
         fits.Column(name="ELL_MAX", format="K", array=c.ell_max),
         fits.Column(name="ELL_EFF", format="D", array=c.ell_eff),
     ], name="BINS")
-    hdus = [primary, bins, fits.ImageHDU(np.asarray(c.matrix), name="COVARIANCE")]
+    spectra = fits.BinTableHDU.from_columns([fits.Column(name="SPECTRUM", format="2A", array=np.array(c.spectra))],
+                                            name="SPECTRA")
+    hdus = [primary, bins, spectra, fits.ImageHDU(np.asarray(c.blocks, dtype=np.int16), name="BLOCKS"),
+            fits.ImageHDU(np.asarray(c.matrix), name="COVARIANCE")]
     if c.windows is not None:
         hdus.append(fits.ImageHDU(np.asarray(c.windows), name="WINDOWS"))
     with atomic_output(out, overwrite=overwrite, suffix=".fits") as tmp:
@@ -304,6 +400,8 @@ def read_covariance(path) -> BandpowerCovariance:
                     raise InputFileError(p, "not a cmbtools covariance file")
                 windows = z["windows"] if "windows" in z.files else None
                 arrays = (z["ell_min"], z["ell_max"], z["ell_eff"], z["covariance"])
+                spectra = tuple(str(x) for x in z["spectra"]) if "spectra" in z.files else ("TT",)
+                blocks = np.array(z["blocks"]) if "blocks" in z.files else None
         else:
             from astropy.io import fits
 
@@ -314,6 +412,9 @@ def read_covariance(path) -> BandpowerCovariance:
                 arrays = (np.array(t["ELL_MIN"]), np.array(t["ELL_MAX"]), np.array(t["ELL_EFF"]),
                           np.array(hdul["COVARIANCE"].data, dtype=np.float64))
                 windows = np.array(hdul["WINDOWS"].data, dtype=np.float64) if "WINDOWS" in hdul else None
+                spectra = (tuple(str(x).strip() for x in hdul["SPECTRA"].data["SPECTRUM"]) if "SPECTRA" in hdul
+                           else ("TT",))
+                blocks = np.array(hdul["BLOCKS"].data) if "BLOCKS" in hdul else None
                 meta = {"kind": hdul[0].header["KIND"], "n_sims": int(hdul[0].header["NSIMS"])}
     except InputFileError:
         raise
@@ -321,6 +422,31 @@ def read_covariance(path) -> BandpowerCovariance:
         raise InputFileError(p, f"cannot be read as a covariance file ({type(exc).__name__}: {exc})") from None
     settings = {k: v for k, v in meta.items() if k not in ("format", "software", "kind", "n_sims", "unit")}
     try:
-        return BandpowerCovariance(*arrays, windows, kind=meta["kind"], n_sims=int(meta["n_sims"]), settings=settings)
+        return BandpowerCovariance(*arrays, windows, kind=meta["kind"], n_sims=int(meta["n_sims"]), settings=settings,
+                                   spectra=spectra, blocks=blocks)
     except (InvalidInputError, KeyError) as exc:
         raise InputFileError(p, f"is not a valid covariance file ({exc})") from None
+
+
+def check_covariance_spectra(covariance, polarized, path) -> None:
+    """Refuse a covariance of the other kind of map: the six spectra for temperature bandpowers, or TT alone
+    for the bandpowers of I, Q, U maps (one line naming the file).
+
+    Parameters
+    ----------
+    covariance : BandpowerCovariance
+        As read from ``path``.
+    polarized : bool
+        Whether the bandpowers are the six spectra of I, Q, U maps.
+    path : str or path-like
+        The file, for the message.
+    """
+    wanted = _KNOWN_SPECTRA if polarized else ("TT",)
+    if covariance.spectra != wanted:
+        if polarized:
+            raise InvalidInputError(f"{path}: the covariance is of temperature bandpowers (TT only), but MAP holds "
+                                    "I, Q, U maps (six spectra); give the covariance of a polarized run "
+                                    "(e.g. RUN_DIR/covariance.npz of `cmbtools validate --polarized`).")
+        raise InvalidInputError(f"{path}: the covariance is of the six polarized spectra (TT, TE, TB, EE, EB, BB) "
+                                "of I, Q, U maps, but MAP holds a temperature map; give the covariance of a "
+                                "temperature run.")

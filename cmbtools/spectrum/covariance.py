@@ -25,15 +25,22 @@ form of :func:`cmbtools.spectrum.coupling.coupling_matrix`).  The bandpowers
 are linear in the pseudo-spectrum, ``bp = R C~`` (binning and the inverse of the
 binned coupling), so their covariance is ``R Cov R^T``.
 
-All the coupling matrices a covariance needs (one for an auto-spectrum without
-noise, three with noise, five for the cross-spectrum of two noisy maps) come
-from one call of ducc0's kernel, which shares the Wigner 3j symbols among
-them: the cost is about that of one or two coupling matrices.  Each distinct
+The covariance needs the bin sums of ``u_l M_ll' u_l'`` for a few weight
+spectra (one for an auto-spectrum without noise, three with noise, five for the
+cross-spectrum of two noisy maps), never the matrices themselves.  With
+``M_ll'/(2l'+1) = 1/2 int P_l P_l' xi_W dx`` (``xi_W`` the correlation function
+of the weight spectrum) each bin sum is a Gauss-Legendre sum over ``2 lmax + 1``
+nodes of the products of two per-bin Legendre series, exact for these band
+limits and equal to the bin sums of ducc0's coupling matrices to rounding
+(:class:`_CouplingQuadrature`; tested): about ``lmax^2 n_bins`` operations per
+vector ``u`` where the kernel's 3j symbols take ``lmax^3``.  Each distinct
 weight map (``w_x w_y``, ``Omega w_x^2 v_x``) is transformed once, to
 ``2 lmax``; the masks' own spectra (for the coupled signal spectra) are the
 ones the estimator's first call computed and kept.  The products of kernels
-that share a matrix are summed as one low-rank product, and the Legendre
-sums of the coupled spectra are ducc0's transforms restricted to ``m = 0``.
+that share a weight spectrum are its columns of ``u``, and the Legendre sums of
+the coupled spectra are ducc0's transforms restricted to ``m = 0``.
+:meth:`GaussianCovariance.pseudo_covariance`, the per-multipole covariance, is
+the only one that makes the full matrices (one kernel call, on its first use).
 
 Removed modes.  An estimator that removes the monopole and dipole (or
 templates) before masking changes the covariance of the lowest bins: the
@@ -160,6 +167,56 @@ def _raw_couplings(spectra, lmax, nthreads):
     return out
 
 
+class _CouplingQuadrature:
+    """Bin sums of ``u_l M_ll' u_l'`` (``M`` the raw coupling of a weight spectrum) without forming ``M``.
+
+    ``M_ll'/(2l'+1) = sum_L (2L+1)/(4 pi) W_L (l l' L; 0 0 0)^2 = 1/2 int P_l P_l' xi_W dx`` (the 3j identity
+    ``int P_l P_l' P_L dx = 2 (3j)^2``, ``xi_W = sum_L (2L+1)/(4 pi) W_L P_L``).  The integrand has degree
+    at most ``4 lmax``, so Gauss-Legendre quadrature on ``2 lmax + 1`` nodes is exact, and
+
+        sum_{l in b, l' in b'} u_l M_ll'/(2l'+1) u_l' = 1/2 sum_i w_i xi_W(x_i) A_b(x_i) A_b'(x_i),
+        A_b(x) = sum_{l in b} u_l P_l(x):
+
+    a table of ``P_l`` on the nodes ``x >= 0`` (the others by ``P_l(-x) = (-1)^l P_l(x)``), one weighted
+    bin sum per vector ``u`` and a product of two (nodes x bins) matrices, instead of the coupling
+    kernel's ``O(lmax^3)`` 3j symbols.  Agrees with the kernel's matrices to rounding (tested).
+    """
+
+    def __init__(self, spectra, lmax, nthreads):
+        n = 2 * lmax + 1
+        theta, wts = _legendre_nodes(n)
+        h = n // 2 + 1  # nodes 0..h-1 have x >= 0 (the last one x = 0, n being odd)
+        x = np.cos(theta[:h])
+        table = np.empty((lmax + 1, h))  # P_l(x_i), by the stable upward recurrence
+        table[0] = 1.0
+        if lmax >= 1:
+            table[1] = x
+        for ell in range(1, lmax):
+            table[ell + 1] = ((2 * ell + 1) * x * table[ell] - ell * table[ell - 1]) / (ell + 1)
+        self._table = np.ascontiguousarray(table.T)  # (nodes, ell)
+        self._sign = np.where(np.arange(lmax + 1) % 2 == 0, 1.0, -1.0)
+        ell_w = np.arange(2 * lmax + 1)
+        self._g = {}
+        for key, w in spectra.items():
+            wl = np.zeros(2 * lmax + 1)
+            k = min(wl.size, w.size)
+            wl[:k] = w[:k]
+            xi = _legendre_sum((2 * ell_w + 1) / (4 * math.pi) * wl, theta, nthreads)
+            g = 0.5 * wts * xi
+            self._g[key] = (g[:h], g[n - 1: n - h: -1])  # the nodes x >= 0 and their mirrors x < 0 (x = 0 once)
+
+    def binned(self, key, u, starts):
+        """``sum_j block_sum(M * (u_j u_j^T))`` for the columns ``u_j`` of ``u`` (shape (lmax+1, k))."""
+        g_pos, g_neg = self._g[key]
+        out = None
+        for j in range(u.shape[1]):
+            a_pos = np.add.reduceat(self._table * u[:, j], starts, axis=1)
+            a_neg = np.add.reduceat(self._table * (self._sign * u[:, j]), starts, axis=1)
+            part = a_pos.T @ (g_pos[:, None] * a_pos) + a_neg[:-1].T @ (g_neg[:, None] * a_neg[:-1])
+            out = part if out is None else out + part
+        return out
+
+
 #: Largest total size of the weight maps' coefficients held at once (above it, spectra are made pair by pair).
 _COEFFICIENT_BUDGET = 2 * 2**30
 
@@ -205,16 +262,12 @@ def _estimator_mask_spectra(estimator, cross, need):
     return {("1", "1"): w11[: need + 1], ("2", "2"): w22[: need + 1], ("1", "2"): w12[: need + 1]}
 
 
-def _block_sum(matrix, starts):
-    return np.add.reduceat(np.add.reduceat(matrix, starts, axis=0), starts, axis=1)
-
-
 class GaussianCovariance:
     """The analytic covariance of the bandpowers of a :class:`SpectrumEstimator`, built once.
 
-    The constructor computes the coupling matrices of the products of masks and
-    noise-weighted masks that the covariance needs (see the module notes);
-    :meth:`covariance` then gives the covariance for any signal spectrum
+    The constructor transforms the products of masks and noise-weighted masks
+    that the covariance needs and prepares their coupling sums (see the module
+    notes); :meth:`covariance` then gives the covariance for any signal spectrum
     (a theory ``C_l`` or measured bandpowers) at the cost of a few matrix sums.
 
     Parameters
@@ -328,8 +381,9 @@ class GaussianCovariance:
         wanted = sorted({t[2] for t in terms})
         spectra = _pair_spectra(fields, wanted, 2 * lmax, nthreads)
         del fields
-        mats = _raw_couplings([spectra[p] for p in wanted], lmax, nthreads)
-        self._mats = {p: mats[i] for i, p in enumerate(wanted)}
+        self._spectra = {p: spectra[p] for p in wanted}
+        self._quadrature = _CouplingQuadrature(self._spectra, lmax, nthreads)
+        self._mats = None  # the full coupling matrices, made by pseudo_covariance only
         self._terms = terms
         # the band limit of the signal model and the factors (beam, pixel window, transfer) up to it
         lsky = lmax
@@ -484,7 +538,8 @@ class GaussianCovariance:
         return c
 
     def _pseudo_covariance(self, cl, c):
-        cov = sum(m * (u @ u.T) for m, u in self._grouped_terms(c))
+        mats = self._matrices()
+        cov = sum(mats[p] * (u @ u.T) for p, u in self._grouped_terms(c))
         return 0.5 * (cov + cov.T)
 
     def _grouped_terms(self, c):
@@ -506,7 +561,15 @@ class GaussianCovariance:
         columns = {}
         for k1, k2, p in self._terms:
             columns.setdefault(p, []).append(amp(k1) * amp(k2))
-        return [(self._mats[p], np.stack(cols, axis=1)) for p, cols in columns.items()]
+        return [(p, np.stack(cols, axis=1)) for p, cols in columns.items()]
+
+    def _matrices(self):
+        """The raw coupling matrices of the weight spectra (one kernel call; only the per-multipole covariance needs them)."""
+        if self._mats is None:
+            wanted = list(self._spectra)
+            mats = _raw_couplings([self._spectra[p] for p in wanted], self._lmax, self._nthreads)
+            self._mats = {p: mats[i] for i, p in enumerate(wanted)}
+        return self._mats
 
     def covariance(self, spectrum) -> "BandpowerCovariance":
         """The covariance of the bandpowers (``cl`` column, K^4) for a sky spectrum.
@@ -526,9 +589,8 @@ class GaussianCovariance:
         c = self._coupled(cl)
         p = self._p
         binned = None
-        for m, u in self._grouped_terms(c):  # the bin sums of the pseudo-covariance, matrix by matrix
-            pu = p[:, None] * u
-            part = _block_sum(m * (pu @ pu.T), self._starts)
+        for key, u in self._grouped_terms(c):  # the bin sums of the pseudo-covariance, weight spectrum by spectrum
+            part = self._quadrature.binned(key, p[:, None] * u, self._starts)
             binned = part if binned is None else binned + part
         binned = 0.5 * (binned + binned.T)
         if self._deprojection is not None:

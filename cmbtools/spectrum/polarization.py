@@ -610,6 +610,46 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
 
         return self._cached(("pure_noise_tail",), make)
 
+    def _windows(self, cross: bool) -> np.ndarray:
+        """The matrix of :meth:`expected_bandpowers`: (6 n_bins, 6 (lmax+1)), spectrum-major on both axes."""
+        lmax = self.lmax
+        nb = self.binning.n_bins
+        n_ell = lmax + 1
+        pair = self._pair("12" if cross else "11")
+        inside = np.ones(n_ell, bool) if pair.rows is None else binned_columns(self.binning, lmax)
+        keep = inside.astype(np.float64)
+        g = np.zeros((len(pair.components) * nb, len(SPECTRA) * n_ell))
+        for i, c in enumerate(pair.components):
+            for col, k in pair.pmf[c]:
+                j = SPECTRA.index(_SKY[col])
+                part = k * keep[None, :]
+                if pair.rows is not None:
+                    part = part * pair.rows[c][:, None]
+                g[i * nb:(i + 1) * nb, j * n_ell:(j + 1) * n_ell] += part
+        if self.remove_monopole_dipole:  # as expected_bandpowers: TT's ell 0 and 1 are removed with the map's
+            g[:, 0:2] = 0.0
+        w = self._reporting_matrix(pair.components) @ (pair.ainv @ g)
+        b = self.binning
+        conv = np.tile(b.dl_factor if b.weighting == "dl" else np.ones(nb), len(SPECTRA))
+        return w / conv[:, None]
+
+    @property
+    def bandpower_windows(self) -> np.ndarray:
+        """``W`` of shape (6 n_bins, 6 (lmax+1)) with ``E[bp.cl.ravel()] = W @ concatenate(C_l)`` (auto-spectra).
+
+        Rows: the bins of TT, TE, TB, EE, EB, BB one spectrum after the other (``bp.cl.ravel()``); columns:
+        the sky's ``C_l`` (before beams, pixel windows and transfer) of the same six spectra, each from
+        ell = 0 to lmax.  The diagonal blocks are the window functions of each spectrum; the others say how
+        a bandpower responds to the other spectra (e.g. EE to BB through what is left of the E/B mixing
+        after the unmixing).  ``W @ C`` equals :meth:`expected_bandpowers`.
+        """
+        return self._windows(False)
+
+    @property
+    def cross_bandpower_windows(self) -> np.ndarray:
+        """As :attr:`bandpower_windows`, for the cross-spectra of map 1 x map 2."""
+        return self._windows(True)
+
     def expected_bandpowers(self, spectra, *, cross=False) -> dict:
         """What :meth:`estimate` returns on average for a sky with the given spectra (``cl`` column, K^2).
 

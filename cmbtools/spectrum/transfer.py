@@ -21,7 +21,7 @@ import numpy as np
 from cmbtools._core.checks import check_int
 from cmbtools.exceptions import InvalidInputError
 
-__all__ = ["transfer_from_pseudo_spectrum", "BandpowerTransfer"]
+__all__ = ["transfer_from_pseudo_spectrum", "BandpowerTransfer", "PolarizedBandpowerTransfer"]
 
 
 @dataclasses.dataclass(frozen=True, eq=False)
@@ -233,6 +233,9 @@ class BandpowerTransfer:
         -------
         BandpowerCovariance
         """
+        if covariance.spectra != ("TT",):
+            raise InvalidInputError("A temperature transfer function applies to a temperature covariance; this one "
+                                    "holds the six polarized spectra (use PolarizedBandpowerTransfer).")
         self.check_bins(covariance, "the covariance")
         f = self.transfer
         settings = dict(covariance.settings)
@@ -339,3 +342,281 @@ def transfer_from_pseudo_spectrum(mean_pseudo_cl, cl, mask, *, beam=None, pixel_
     return t
 
 
+
+
+#: The six spectra of a polarized transfer table, in order; the first three of them are the fields' own.
+_POL_SPECTRA = ("TT", "TE", "TB", "EE", "EB", "BB")
+_AUTO = ("TT", "EE", "BB")
+_CROSS_OF = {"TE": ("TT", "EE"), "TB": ("TT", "BB"), "EB": ("EE", "BB")}
+#: The columns of a polarized transfer table.
+POLARIZED_TRANSFER_COLUMNS = ("spectrum", "ell_min", "ell_max", "ell_eff", "transfer", "transfer_error")
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class PolarizedBandpowerTransfer:
+    r"""Per-bin transfer functions of the six spectra of I, Q, U maps, and their correction of bandpowers.
+
+    ``transfer[i]`` is ``F_b`` of spectrum ``SPECTRA[i]`` (TT, TE, TB, EE, EB, BB): the mean recovered
+    bandpower over the expected one, as ``cmbtools validate --polarized`` measures it.  TT, EE and BB (each
+    field's own power) must be finite and positive in every bin; TE, TB and EB are recorded as measured
+    (not a number where the expectation is zero, as TB and EB of a parity-even sky; TE crosses zero, where
+    its ratio is ill-defined) and are not used: :meth:`apply` divides a cross-spectrum XY by
+    ``sqrt(F^XX_b F^YY_b)``, the transfer of a filtering that acts on each field (exact for a harmonic filter,
+    whose power transfer is ``f^X_l f^Y_l``, to first order in its variation across a bin).
+
+    Parameters
+    ----------
+    ell_min, ell_max : array_like of int, shape (n_bins,)
+        Bin limits (inclusive), increasing, without overlaps.
+    ell_eff : array_like of shape (n_bins,)
+        Effective multipole of each bin.
+    transfer, transfer_error : array_like of shape (6, n_bins)
+        ``F_b`` per spectrum and its Monte Carlo standard error (not a number where not measured).
+    metadata : dict, optional
+        Record of how it was measured (str or number values).
+    """
+
+    ell_min: np.ndarray
+    ell_max: np.ndarray
+    ell_eff: np.ndarray
+    transfer: np.ndarray
+    transfer_error: np.ndarray
+    metadata: dict = dataclasses.field(default_factory=dict)
+
+    def __post_init__(self):
+        base = BandpowerTransfer(self.ell_min, self.ell_max, self.ell_eff, np.ones(np.size(self.ell_min)))
+        nb = base.n_bins
+        for name in ("ell_min", "ell_max", "ell_eff"):
+            object.__setattr__(self, name, getattr(base, name))
+        for name in ("transfer", "transfer_error"):
+            a = np.array(getattr(self, name), dtype=np.float64)
+            if a.shape != (len(_POL_SPECTRA), nb):
+                raise InvalidInputError(f"PolarizedBandpowerTransfer.{name} must have shape (6, {nb}). "
+                                        f"Got {a.shape} instead.")
+            a.setflags(write=False)
+            object.__setattr__(self, name, a)
+        for s in _AUTO:
+            f = self.transfer[_POL_SPECTRA.index(s)]
+            if not np.all(np.isfinite(f) & (f > 0)):
+                b = int(np.argmax(~(np.isfinite(f) & (f > 0))))
+                raise InvalidInputError(
+                    f"The {s} transfer function is {f[b]:.3g} in bin {b} (ell {self.ell_min[b]}-{self.ell_max[b]}): "
+                    "TT, EE and BB need a finite, positive F_b in every bin (a bin that keeps no signal cannot be "
+                    "corrected)."
+                )
+        if not isinstance(self.metadata, dict):
+            raise InvalidInputError("PolarizedBandpowerTransfer.metadata must be a dict of str to str or number.")
+        object.__setattr__(self, "metadata", {str(k): v if isinstance(v, (int, float)) else str(v)
+                                              for k, v in self.metadata.items()})
+
+    @property
+    def n_bins(self) -> int:
+        """Number of bins."""
+        return int(self.ell_min.size)
+
+    @property
+    def factors(self) -> np.ndarray:
+        """(6, n_bins): what :meth:`apply` divides each spectrum by (``sqrt(F^XX F^YY)`` for XY = TE, TB, EB)."""
+        f = {s: self.transfer[_POL_SPECTRA.index(s)] for s in _AUTO}
+        return np.stack([f[s] if s in f else np.sqrt(f[_CROSS_OF[s][0]] * f[_CROSS_OF[s][1]])
+                         for s in _POL_SPECTRA])
+
+    @property
+    def key(self) -> str:
+        """A hash of the bins and the factors (16 hex digits)."""
+        from cmbtools._core.files import sha256_arrays
+
+        return sha256_arrays(self.ell_min, self.ell_max, self.factors)[:16]
+
+    @classmethod
+    def from_validation(cls, result) -> "PolarizedBandpowerTransfer":
+        """The transfer functions a polarized Monte Carlo validation measured (``mean / expected`` per spectrum).
+
+        Parameters
+        ----------
+        result : PolarizedValidationResult
+            From :func:`cmbtools.simulate.validate_polarized_estimator`.
+
+        Returns
+        -------
+        PolarizedBandpowerTransfer
+        """
+        if not hasattr(result, "results") or tuple(getattr(result, "results", ())) != _POL_SPECTRA:
+            raise InvalidInputError("The 'result' must be a cmbtools.simulate.PolarizedValidationResult. "
+                                    f"Got {type(result).__name__} instead.")
+        t, e = [], []
+        for s in _POL_SPECTRA:
+            r = result[s]
+            expected = np.asarray(r.expected, dtype=np.float64)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                measured = expected != 0
+                t.append(np.where(measured, np.asarray(r.transfer, dtype=np.float64), np.nan))
+                e.append(np.where(measured, np.asarray(r.std) / (math.sqrt(r.n_sims) * np.abs(expected)), np.nan))
+        meta = {"measured_by": "Monte Carlo validation of the polarized estimator (mean / expected per spectrum "
+                               "and bin)", "n_sims": int(result.n_sims), "seed": int(result.seed)}
+        meta.update({k: v for k, v in result.metadata.items() if k not in meta})
+        return cls(result.ell_min, result.ell_max, result.ell_eff, np.array(t), np.array(e), meta)
+
+    def write_csv(self, path, *, overwrite=False):
+        """Write the table: comment lines, then ``spectrum,ell_min,ell_max,ell_eff,transfer,transfer_error``,
+        one row per spectrum and bin (TT's bins first, then TE, TB, EE, EB, BB; ``nan`` where not measured).
+
+        Parameters
+        ----------
+        path : str or path-like
+            Output file, written atomically.
+        overwrite : bool, default=False
+            Replace an existing file.
+
+        Returns
+        -------
+        Path
+        """
+        from cmbtools._core.tables import write_text_table
+
+        comments = ["cmbtools polarized bandpower transfer function",
+                    "columns: spectrum (TT, TE, TB, EE, EB, BB); ell_min, ell_max = bin limits (inclusive); ell_eff; "
+                    "transfer = F_b, the mean recovered bandpower over the expected one (nan: not measured, the "
+                    "expectation is zero); transfer_error = its standard error; TE, TB and EB are corrected by "
+                    "sqrt(F_XX F_YY)"]
+        comments += [f"{k}: {' '.join(str(v).splitlines())}" for k, v in self.metadata.items()]
+        rows = [(s, str(int(a)), str(int(b)), repr(float(ee)), repr(float(self.transfer[i, j])),
+                 repr(float(self.transfer_error[i, j])))
+                for i, s in enumerate(_POL_SPECTRA)
+                for j, (a, b, ee) in enumerate(zip(self.ell_min, self.ell_max, self.ell_eff))]
+        return write_text_table(path, POLARIZED_TRANSFER_COLUMNS, rows, comments=comments, overwrite=overwrite)
+
+    @classmethod
+    def read_csv(cls, path) -> "PolarizedBandpowerTransfer":
+        """Read a table written by :meth:`write_csv` (or the ``summary.csv`` of ``validate --polarized``).
+
+        Parameters
+        ----------
+        path : str or path-like
+            The text table.
+
+        Returns
+        -------
+        PolarizedBandpowerTransfer
+
+        Raises
+        ------
+        InputFileError
+            Missing file or column, a cell that is not a number, spectra not in the order TT, TE, TB, EE, EB,
+            BB each over the same bins, or a TT, EE or BB transfer that is not finite and positive.
+        """
+        from cmbtools._core.tables import number_cell, read_text_table
+        from cmbtools.exceptions import InputFileError
+
+        table = read_text_table(path, what="a polarized transfer table", separator=",")
+        p = table.path
+        names = list(table.names or ())
+        if "spectrum" not in names:
+            raise InputFileError(p, "has no 'spectrum' column: it is a temperature transfer table; the spectra of "
+                                    "I, Q, U maps need the table of `cmbtools validate --polarized` (columns "
+                                    f"{','.join(POLARIZED_TRANSFER_COLUMNS)})")
+        missing = [c for c in ("ell_min", "ell_max", "transfer") if c not in names]
+        if missing:
+            raise InputFileError(p, f"no {', '.join(repr(c) for c in missing)} column (a polarized transfer table "
+                                    f"has the columns {','.join(POLARIZED_TRANSFER_COLUMNS)})")
+        spectra, values = [], []
+        wanted = [c for c in POLARIZED_TRANSFER_COLUMNS[1:] if c in names]
+        for number, cells in table.rows:
+            if len(cells) != len(names):
+                raise InputFileError(p, f"line {number}: {len(cells)} cells, but the header names {len(names)} columns")
+            spectra.append(cells[names.index("spectrum")])
+            values.append([number_cell(p, cells[names.index(c)], f"line {number}: {c}") for c in wanted])
+        if not values or len(values) % len(_POL_SPECTRA):
+            raise InputFileError(p, f"expected the same bins for each of {', '.join(_POL_SPECTRA)}; found "
+                                    f"{len(values)} rows")
+        nb = len(values) // len(_POL_SPECTRA)
+        if spectra != [s for s in _POL_SPECTRA for _ in range(nb)]:
+            raise InputFileError(p, f"the spectrum column must list {', '.join(_POL_SPECTRA)} in that order, each "
+                                    "over the same bins")
+        a = np.array(values).reshape(len(_POL_SPECTRA), nb, len(wanted))
+        col = {c: a[:, :, k] for k, c in enumerate(wanted)}
+        lo, hi = col["ell_min"], col["ell_max"]
+        if not (np.all(lo == lo[:1]) and np.all(hi == hi[:1])):
+            raise InputFileError(p, "the six spectra must have the same bins")
+        if not (np.all(np.isfinite(lo)) and np.all(np.isfinite(hi)) and np.all(lo == np.round(lo))
+                and np.all(hi == np.round(hi)) and np.all(np.abs(lo) < 2**40) and np.all(np.abs(hi) < 2**40)):
+            raise InputFileError(p, "ell_min and ell_max must be whole numbers")
+        eff = col["ell_eff"][0] if "ell_eff" in col else 0.5 * (lo[0] + hi[0])
+        err = col["transfer_error"] if "transfer_error" in col else np.zeros_like(col["transfer"])
+        meta = {k: v for k, v in table.metadata().items() if k not in ("columns",) and not k.startswith("cmbtools")}
+        try:
+            return cls(lo[0].astype(np.int64), hi[0].astype(np.int64), eff, col["transfer"], err, meta)
+        except InvalidInputError as exc:
+            raise InputFileError(p, str(exc)) from None
+
+    def check_bins(self, binning, what="the bandpowers"):
+        """Raise :class:`InvalidInputError` unless ``binning`` has these bins (see :meth:`BandpowerTransfer.check_bins`).
+
+        Parameters
+        ----------
+        binning : Binning, PolarizedBandpowers or BandpowerCovariance
+            What the transfer is applied to.
+        what : str
+            Its name in the message.
+        """
+        BandpowerTransfer(self.ell_min, self.ell_max, self.ell_eff, np.ones(self.n_bins)).check_bins(binning, what)
+
+    def record(self) -> dict:
+        """What a correction records in the metadata of its result (as :meth:`BandpowerTransfer.record`).
+
+        Returns
+        -------
+        dict
+            ``bandpower_transfer`` (text) and ``bandpower_transfer_key`` (:attr:`key`).
+        """
+        f = self.factors
+        return {"bandpower_transfer": f"divided by F_b (TT, EE, BB; sqrt(F_XX F_YY) for TE, TB, EB) from "
+                                      f"{f.min():.4g} to {f.max():.4g}",
+                "bandpower_transfer_key": self.key}
+
+    def apply(self, bandpowers):
+        """Correct polarized bandpowers: each spectrum's ``cl``, ``dl`` and errors over its factor, the
+        covariance over ``outer(f, f)`` (spectrum-major).
+
+        Parameters
+        ----------
+        bandpowers : PolarizedBandpowers
+            Measured on maps that went through the processing, with the same bins.
+
+        Returns
+        -------
+        PolarizedBandpowers
+        """
+        from cmbtools.spectrum.polarized_bandpowers import PolarizedBandpowers
+
+        if not isinstance(bandpowers, PolarizedBandpowers):
+            raise InvalidInputError("The 'bandpowers' must be a cmbtools.spectrum.PolarizedBandpowers. "
+                                    f"Got {type(bandpowers).__name__} instead.")
+        self.check_bins(bandpowers)
+        f = self.factors
+        flat = f.ravel()
+        cov = None if bandpowers.covariance is None else bandpowers.covariance / np.outer(flat, flat)
+        meta = dict(bandpowers.metadata)
+        meta.update(self.record())
+        return PolarizedBandpowers(bandpowers.ell_min, bandpowers.ell_max, bandpowers.ell_eff, bandpowers.cl / f,
+                                   bandpowers.cl_err / f, bandpowers.dl / f, bandpowers.dl_err / f, cov, meta)
+
+    def apply_to_covariance(self, covariance):
+        """The covariance of the corrected bandpowers: ``C / outer(f, f)`` with the :attr:`factors` (windows kept).
+
+        Parameters
+        ----------
+        covariance : BandpowerCovariance
+            A covariance of the six spectra, with the same bins.
+
+        Returns
+        -------
+        BandpowerCovariance
+        """
+        if covariance.spectra != _POL_SPECTRA:
+            raise InvalidInputError("A polarized transfer function applies to a covariance of the six spectra.")
+        self.check_bins(covariance, "the covariance")
+        flat = self.factors.ravel()
+        settings = dict(covariance.settings)
+        settings.update(self.record())
+        return dataclasses.replace(covariance, matrix=covariance.matrix / np.outer(flat, flat), settings=settings)

@@ -60,6 +60,25 @@ def test_maps_match_the_library_and_record_the_seed(tmp_path, table, capsys):
     np.testing.assert_array_equal(read_sky_map(again / "sky_0001.fits")[0], read_sky_map(out / "sky_0001.fits")[0])
 
 
+def test_pixelised_maps_match_the_library(tmp_path, table, capsys):
+    # --pixelise: each sky averaged over every pixel's area (gaussian_sky(pixelise=True)), recorded in the header
+    path, cl = table
+    out = tmp_path / "sims"
+    assert main(["simulate", "--spectrum", str(path), "--nside", "16", "--lmax", "40", "--beam-fwhm", "120",
+                 "--noise-depth", "300", "--splits", "2", "--seed", "5", "--threads", "1", "--pixelise", "--sims", "1",
+                 "--output-dir", str(out)]) == 0
+    assert "pixel window: yes, averaged over each pixel's area" in capsys.readouterr().out
+    rng = simulation_rng(5, 0)
+    sky = gaussian_sky(cl, 16, lmax=40, beam=120.0, pixelise=True, rng=rng, nthreads=1)
+    plain = gaussian_sky(cl, 16, lmax=40, beam=120.0, rng=simulation_rng(5, 0), nthreads=1)
+    for k in (1, 2):
+        m, _ = read_sky_map(out / f"sky_0000_split{k}.fits")
+        np.testing.assert_array_equal(m, sky + noise_map(NoiseModel(300.0), 16, rng=rng, nthreads=1))
+        header = fits.getheader(out / f"sky_0000_split{k}.fits", 1)
+        assert header["CMBPIXAV"] is True and header["CMBPIXWN"] is True
+    assert np.max(np.abs(sky - plain)) > 1e-3 * np.std(plain)  # not the pixel-centre map
+
+
 def test_no_overwrite_and_overwrite(tmp_path, table, capsys):
     path, _ = table
     args = ["simulate", "--spectrum", str(path), "--nside", "16", "--seed", "1", "--output-dir", str(tmp_path),
@@ -101,6 +120,7 @@ def test_hits_map_gives_partial_sky_files(tmp_path, table):
         (["--nside", "16", "--lmax", "100"], "'--lmax' parameter"),
         (["--nside", "16", "--spectrum", "missing.csv"], "no such file"),
         (["--nside", "16", "--output-dir", "/nonexistent/dir/sims"], "parent directory does not exist"),
+        (["--nside", "16", "--pixelise", "--no-pixel-window"], "leave out --no-pixel-window"),
     ],
 )
 def test_usage_errors_are_one_line_exit_2(tmp_path, extra, message, capsys, monkeypatch):

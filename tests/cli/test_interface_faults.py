@@ -44,10 +44,17 @@ def cmbtools(*argv, cwd, timeout=QUICK_STEP, **kwargs):
                           capture_output=True, text=True, timeout=timeout, **kwargs)
 
 
+def _as_a_terminal_job():
+    # a job started from a terminal has Ctrl-C at its default action; a test run launched in the background of a
+    # non-interactive shell (`pytest &`) ignores SIGINT, and children inherit that: restore the default in the child
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def start_cmbtools(*argv, cwd):
-    """Start ``python -m cmbtools argv`` in its own process group (as a terminal job)."""
+    """Start ``python -m cmbtools argv`` in its own process group, SIGINT at its default (as a terminal job)."""
     return subprocess.Popen([sys.executable, "-m", "cmbtools", *map(str, argv)], cwd=cwd, env=_env(),
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, start_new_session=True)
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, start_new_session=True,
+                            preexec_fn=_as_a_terminal_job)
 
 
 def wait_for(condition, timeout, what):
@@ -153,6 +160,7 @@ def _start_validation(tmp_path, run_dir="run"):
                  "the first simulation")
     except AssertionError:
         os.killpg(p.pid, signal.SIGKILL)
+        p.communicate()
         raise
     assert p.poll() is None, p.communicate()[1].decode()
     return p
@@ -167,6 +175,7 @@ def test_ctrl_c_on_validate_prints_one_line_and_exits_130(tmp_path):
     finally:
         if p.poll() is None:
             os.killpg(p.pid, signal.SIGKILL)
+            p.communicate()  # reaped, so that no later test meets it
     assert p.returncode == 130
     assert err.decode().splitlines() == ["cmbtools validate: interrupted"]
     wait_for(lambda: not any(alive(w) for w in workers), QUICK_STEP, "the workers to exit")
@@ -287,7 +296,7 @@ def test_ctrl_c_ends_a_command_whose_clean_up_hangs(tmp_path):
             time.sleep(0.5)
         """))
     p = subprocess.Popen([sys.executable, str(script)], env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                         start_new_session=True)
+                         start_new_session=True, preexec_fn=_as_a_terminal_job)
     try:
         assert p.stdout.readline().decode().strip() == "ready"
         t0 = time.monotonic()

@@ -51,3 +51,89 @@ def test_bias_of_averaged_maps_matches_the_expectation_from_explicit_modes():
     rel = exact / model
     assert np.max(np.abs(rel[2:])) > 3e-3
     np.testing.assert_allclose(ours[2:] / model[2:], rel[2:], rtol=0, atol=0.05 * np.max(np.abs(rel[2:])))
+
+
+def _counting(monkeypatch):
+    """Count the computations behind averaging_bias (the cache's misses)."""
+    import cmbtools.spectrum.averaging_bias as module
+
+    calls = []
+    original = module._pair_sums
+
+    def counted(*args):
+        calls.append(1)
+        return original(*args)
+
+    monkeypatch.setattr(module, "_pair_sums", counted)
+    return calls
+
+
+def _cache_inputs():
+    nside, sky_lmax = 8, 31
+    ell = np.arange(sky_lmax + 1)
+    sky_cl = np.where(ell > 1, 1.0 / (ell + 1.0) ** 2, 0.0)
+    vec = np.array(hp.pix2vec(nside, np.arange(12 * nside**2))).T
+    mask = np.clip((vec[:, 2] + 0.2) / 0.6, 0.0, 1.0)
+    return mask, sky_cl, pixel_window(nside, sky_lmax), 3 * nside - 1
+
+
+def test_cache_returns_the_computed_values_and_misses_on_other_inputs(monkeypatch):
+    from cmbtools.spectrum.averaging_bias import clear_averaging_bias_cache
+
+    mask, sky_cl, window, lmax = _cache_inputs()
+    clear_averaging_bias_cache()
+    calls = _counting(monkeypatch)
+    first = averaging_bias(mask, sky_cl, window, lmax)
+    again = averaging_bias(mask.copy(), sky_cl.copy(), window.copy(), lmax)  # equal values, other arrays: a hit
+    assert len(calls) == 1
+    np.testing.assert_array_equal(again, first)
+    assert np.max(np.abs(first[2:])) > 0.0
+    # a mask differing in one pixel, a second mask, another spectrum, lmax or radius: each a miss
+    other = mask.copy()
+    other[np.flatnonzero(mask > 0.5)[0]] *= 0.5
+    changed = averaging_bias(other, sky_cl, window, lmax)
+    assert len(calls) == 2
+    assert not np.array_equal(changed, first)
+    averaging_bias(mask, sky_cl, window, lmax, mask2=other)
+    averaging_bias(mask, 2.0 * sky_cl, window, lmax)
+    averaging_bias(mask, sky_cl, window, lmax - 1)
+    averaging_bias(mask, sky_cl, window, lmax, radius=0.5)
+    assert len(calls) == 6
+    # clearing forgets; the recomputed values are the same numbers
+    clear_averaging_bias_cache()
+    np.testing.assert_array_equal(averaging_bias(mask, sky_cl, window, lmax), first)
+    assert len(calls) == 7
+
+
+def test_cache_cannot_be_changed_through_a_returned_array(monkeypatch):
+    from cmbtools.spectrum.averaging_bias import clear_averaging_bias_cache
+
+    mask, sky_cl, window, lmax = _cache_inputs()
+    clear_averaging_bias_cache()
+    calls = _counting(monkeypatch)
+    first = averaging_bias(mask, sky_cl, window, lmax)
+    kept = first.copy()
+    first[:] = -1.0  # the caller owns what it gets back
+    second = averaging_bias(mask, sky_cl, window, lmax)
+    np.testing.assert_array_equal(second, kept)
+    second *= 3.0
+    np.testing.assert_array_equal(averaging_bias(mask, sky_cl, window, lmax), kept)
+    # the inputs too: changing the caller's mask after a call changes the key, not the kept result
+    mask[:10] = 0.0
+    averaging_bias(mask, sky_cl, window, lmax)
+    assert len(calls) == 2
+
+
+def test_cache_keeps_the_most_recent_results_only(monkeypatch):
+    import cmbtools.spectrum.averaging_bias as module
+
+    mask, sky_cl, window, lmax = _cache_inputs()
+    module.clear_averaging_bias_cache()
+    calls = _counting(monkeypatch)
+    for k in range(module.CACHE_SIZE + 1):  # the first of these is dropped by the last
+        averaging_bias(mask, (1.0 + k) * sky_cl, window, lmax)
+    assert len(calls) == module.CACHE_SIZE + 1
+    averaging_bias(mask, (1.0 + module.CACHE_SIZE) * sky_cl, window, lmax)  # the newest: kept
+    assert len(calls) == module.CACHE_SIZE + 1
+    averaging_bias(mask, sky_cl, window, lmax)  # the oldest: dropped
+    assert len(calls) == module.CACHE_SIZE + 2

@@ -92,6 +92,37 @@ def test_covariance_from_the_estimators_kept_mask_spectra_equals_fresh_transform
         np.testing.assert_allclose(m, fresh, rtol=1e-10, atol=1e-12 * np.abs(fresh).max())
 
 
+def test_coupling_bin_sums_by_quadrature_equal_the_kernels_matrices():
+    # the covariance's bin sums of u_l M_ll' u_l' come from Gauss-Legendre quadrature of Legendre series, not from
+    # ducc0's coupling matrices: they must agree to rounding (cross-spectrum: two masks, two noises, 5 weight spectra),
+    # and the per-multipole covariance (the kernel's matrices) must bin-sum to the binned one
+    nside, lmax = 16, 47
+    w1 = apodize_mask(cap_mask(nside, 30.0, 40.0, 60.0), 10.0, nthreads=1)
+    w2 = apodize_mask(cap_mask(nside, 50.0, 30.0, 60.0), 10.0, nthreads=1)
+    w1[hp.query_disc(nside, hp.ang2vec(35.0, 45.0, lonlat=True), math.radians(8.0))] = 0.0
+    bins = Binning.uniform(2, lmax, 7)
+    est = SpectrumEstimator(w1, bins, lmax=lmax, mask2=w2, pixel_window=False, remove_monopole_dipole=False,
+                            nthreads=1)
+    n1 = PixelNoise.from_hits(np.linspace(0.5, 2.0, w1.size), 30.0)
+    n2 = PixelNoise.from_hits(np.linspace(2.0, 0.5, w1.size), 40.0)
+    gauss = GaussianCovariance(est, noise=n1, noise2=n2, cross=True, nthreads=1)
+    cl = 1e-10 * 100.0 / (np.arange(lmax + 1) + 10.0) ** 2
+    c = gauss._coupled(cl)
+    mats = gauss._matrices()
+    assert len(mats) == 5
+    starts = bins.ell_min
+    for key, u in gauss._grouped_terms(c):
+        pu = gauss._p[:, None] * u
+        kernel = np.add.reduceat(np.add.reduceat(mats[key] * (pu @ pu.T), starts, axis=0), starts, axis=1)
+        quad = gauss._quadrature.binned(key, pu, starts)
+        np.testing.assert_allclose(quad, kernel, rtol=1e-9, atol=1e-12 * np.abs(kernel).max())
+    pseudo = gauss.pseudo_covariance(cl)
+    p = gauss._p
+    binned = np.add.reduceat(np.add.reduceat(p[:, None] * pseudo * p[None, :], starts, axis=0), starts, axis=1)
+    expected = gauss._ainv @ binned @ gauss._ainv.T
+    np.testing.assert_allclose(gauss.covariance(cl).matrix, expected, rtol=1e-9, atol=1e-12 * np.abs(expected).max())
+
+
 def test_noise_from_hits_keeps_the_depth_as_the_mean_noise_power():
     hits = np.linspace(0.5, 2.0, 12 * 8**2)
     noise = PixelNoise.from_hits(hits, 40.0)

@@ -5,6 +5,7 @@ import numpy as np
 import pytest
 from scipy.special import eval_legendre
 
+from _masks import cap_with_holes
 from cmbtools._core import sht as _sht
 from cmbtools.simulate import fiducial_cl, gaussian_alm
 from cmbtools.simulate.pixel_averaging import pixel_averaged_map
@@ -83,27 +84,6 @@ def test_template_maps_are_checked():
         SpectrumEstimator(w, Binning.uniform(2, 11, 5), templates=np.ones(w.size), pixel_window=False, nthreads=1)
 
 
-def _cos_taper(dist_deg, width):
-    return 0.5 - 0.5 * np.cos(np.pi * np.clip(dist_deg / width, 0.0, 1.0))
-
-
-def _cap_with_holes(nside):
-    """A 50-degree cap with 15 one-degree holes, every edge tapered by 3 degrees (like the demo survey's mask)."""
-    vec = np.array(hp.pix2vec(nside, np.arange(12 * nside**2))).T
-    centre = hp.ang2vec(250.0, -55.0, lonlat=True)
-    w = _cos_taper(50.0 - np.degrees(np.arccos(np.clip(vec @ centre, -1, 1))), 3.0)
-    rng = np.random.default_rng(5)
-    for _ in range(15):
-        while True:
-            v = rng.standard_normal(3)
-            v /= np.linalg.norm(v)
-            if np.degrees(np.arccos(v @ centre)) < 45.0:
-                break
-        d = np.degrees(np.arccos(np.clip(vec @ v, -1, 1)))
-        w *= np.where(d < 1.0, 0.0, _cos_taper(d - 1.0, 3.0))
-    return w, vec
-
-
 @pytest.mark.slow
 def test_every_bin_unbiased_on_pixelised_skies_with_monopole_dipole_and_power_above_lmax():
     # 300 skies with power to 4 nside - 1, a beam of two pixels, averaged over each pixel's area (what a
@@ -115,7 +95,7 @@ def test_every_bin_unbiased_on_pixelised_skies_with_monopole_dipole_and_power_ab
     # correction the bins from 1.2 nside up are off by 0.3-0.7 % (measured, printed on failure).
     nside, n_sims = 64, 300
     lmax, sky_lmax = 3 * nside - 1, 4 * nside - 1
-    w, vec = _cap_with_holes(nside)
+    w, vec = cap_with_holes(nside)
     fwhm = 2 * np.degrees(np.sqrt(4 * np.pi / w.size)) * 60
     cl = fiducial_cl(sky_lmax)
     bins = Binning.uniform(2, int(2.5 * nside), 16)
@@ -153,7 +133,7 @@ def test_a_foreground_template_ten_times_the_cmb_is_removed_without_bias():
     # standard errors of the binned input; without the deprojection-bias correction the first bin is not.
     nside, n_sims = 32, 400
     lmax = 3 * nside - 1
-    w, vec = _cap_with_holes(nside)
+    w, vec = cap_with_holes(nside)
     cl = fiducial_cl(lmax)
     ell = np.arange(lmax + 1)
     fg = _sht.alm2map(gaussian_alm(np.where(ell > 0, (ell + 1.0) ** -3.0, 0.0), lmax, rng=np.random.default_rng(3)),
@@ -193,7 +173,7 @@ def test_monopole_dipole_bias_from_a_coarser_grid_is_close_to_the_exact_one(cros
 
     nside = 128
     lmax = 3 * nside - 1
-    w, vec = _cap_with_holes(nside)
+    w, vec = cap_with_holes(nside)
     w2 = None
     if cross:
         w2 = np.clip((vec @ hp.ang2vec(250.0, -55.0, lonlat=True) - 0.55) / 0.2, 0.0, 1.0)
