@@ -287,8 +287,8 @@ def test_ctrl_c_ends_a_command_whose_clean_up_hangs(tmp_path):
         import time
         from cmbtools.cli import _InterruptGuard
         guard = _InterruptGuard("cmbtools demo")
-        print("ready", flush=True)
-        try:
+        try:  # entered before "ready": the interrupt cannot land between the two
+            print("ready", flush=True)
             time.sleep(600)
         except KeyboardInterrupt:
             pass
