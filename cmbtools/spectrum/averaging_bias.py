@@ -68,9 +68,9 @@ __all__ = ["averaging_bias", "clear_averaging_bias_cache", "pair_radius"]
 MIN_RADIUS_PIXELS = 7.0
 #: ... and to this many times the beam's FWHM (estimated from where B_l^2 falls to one half).
 RADIUS_BEAMS = 3.0
-#: The pairs of every pixel of the mask are summed when it has at most this many; above it, the pairs of one
-#: pixel per block of a coarser HEALPix grid (the block's middle pixel), weighted by the block's sum of the
-#: mask products (the mask taken as constant over the pair radius: see :func:`averaging_bias`).
+#: The pairs of every pixel of the mask are summed when it has at most this many; above it, the pairs of a
+#: stratified sample of this many of its pixels, each weighted by the number of pixels it stands for (see
+#: :func:`averaging_bias`).
 MAX_CENTRES = 4096
 #: Gauss-Legendre nodes per pixel side for the means over pixel pairs.
 ORDER = 3
@@ -219,11 +219,11 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
 
     With at most ``max_centres`` pixels in the mask, the pair sum of the module's formula is done over every
     pixel p of the mask and every pixel q of the second mask within ``radius`` (exact up to the radius and the
-    pixel quadrature).  Above it, the masks are taken as constant over the radius, ``W_a(p) W_b(q) ~ W_a(p)
-    W_b(p)``, so the sum is ``sum_p W_a(p) W_b(p) K_p`` with ``K_p`` the pair sum of pixel p over every q
-    within the radius; ``K_p`` follows the pixels' shapes, which change smoothly over each base face, so it is
-    summed at the middle pixel of each block of a coarser grid (as many blocks as ``max_centres`` allows) and
-    weighted by the block's sum of ``W_a W_b`` (the midpoint rule).
+    pixel quadrature).  Above it, the sum over p is estimated from a stratified sample: the mask's pixels in
+    RING order are cut into ``max_centres`` runs of consecutive pixels, one pixel p drawn from each run (a fixed
+    seed) has its pairs summed exactly (``W_a(p) W_b(q)`` for every q within the radius) and stands for the
+    run's pixels, weighted by their number; the estimate is unbiased and the runs spread it over the mask
+    (measured accuracy in DEVELOPERS.md, "pixel averages").
 
     Parameters
     ----------
@@ -240,7 +240,7 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
     radius : float, optional
         Largest pair separation, radians (default 7 pixels; the estimator passes :func:`pair_radius`).
     max_centres : int
-        Pixels whose pairs are summed (all of the mask's when it has fewer; else blocks of a coarser grid).
+        Pixels whose pairs are summed (all of the mask's when it has fewer; else a stratified sample).
     order : int
         Gauss-Legendre nodes per pixel side.
     nthreads : int
