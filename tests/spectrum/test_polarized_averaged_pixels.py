@@ -14,6 +14,7 @@ import healpy as hp
 import numpy as np
 import pytest
 
+from _masks import cap_with_holes
 from cmbtools._core import sht as _sht
 from cmbtools.simulate.pixel_averaging import pixel_averaged_map
 from cmbtools.simulate.polarized_skies import gaussian_iqu_alm
@@ -25,24 +26,10 @@ from cmbtools.spectrum.sampling import default_binning, pixel_size_arcmin
 NSIDE = 32
 
 
-def _cos_taper(dist_deg, width):
-    return 0.5 - 0.5 * np.cos(np.pi * np.clip(dist_deg / width, 0.0, 1.0))
-
-
 def _survey(nside):
-    """A 50-degree cap with 15 holes of one degree, every edge tapered by 3 degrees, and its noise per pixel."""
-    vec = np.array(hp.pix2vec(nside, np.arange(12 * nside**2))).T
+    """The tapered cap with holes of tests/_masks.py, and its noise per pixel."""
+    w, vec = cap_with_holes(nside)
     centre = hp.ang2vec(250.0, -55.0, lonlat=True)
-    w = _cos_taper(50.0 - np.degrees(np.arccos(np.clip(vec @ centre, -1, 1))), 3.0)
-    rng = np.random.default_rng(5)
-    for _ in range(15):
-        while True:
-            v = rng.standard_normal(3)
-            v /= np.linalg.norm(v)
-            if np.degrees(np.arccos(v @ centre)) < 45.0:
-                break
-        d = np.degrees(np.arccos(np.clip(vec @ v, -1, 1)))
-        w *= np.where(d < 1.0, 0.0, _cos_taper(d - 1.0, 3.0))
     hits = 0.25 + 0.75 * np.clip(vec @ centre, 0, 1)  # deeper towards the centre
     sigma = 2e-7 / np.sqrt(hits)  # K per pixel in I: E modes dominate EE up to the top bin
     return w, vec, sigma
