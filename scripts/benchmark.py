@@ -54,9 +54,9 @@ W6  nside 1024, lmax 3071, the W1 mask: the Gaussian bandpower covariance (``Gau
 
 The pixel window of an nside is computed once and then read from the disk
 cache (``cmbtools._core.files.cache_dir()``); the first calls above are timed with it
-cached, and the time of a first computation is reported on its own.  The in-memory cache of the
-averaged-pixel model (``spectrum.averaging_bias``) is emptied before every timed first call, so a repeat
-never reuses the previous one's pair sums.
+cached, and the time of a first computation is reported on its own.  The caches of the
+averaged-pixel model (``spectrum.averaging_bias``, in memory and on disk) are emptied before every timed
+first call, so a repeat never reuses the previous one's pair sums.
 
 Usage::
 
@@ -500,6 +500,9 @@ def _child_first_call(inputs_dir, threads, coupling):
     lmax = 3 * nside - 1
     binning = spectrum.Binning.uniform(2, lmax, 30)
     spectrum.pixel_window(nside, lmax, nthreads=threads)  # cached by the parent
+    from cmbtools.spectrum.averaging_bias import clear_averaging_bias_cache
+
+    clear_averaging_bias_cache()  # a first call: the parent's pair sums (on disk) not reused
     before = _peak_rss_kb()
     t0 = time.perf_counter()
     est = spectrum.SpectrumEstimator(mask, binning, lmax=lmax, coupling=coupling, nthreads=threads)

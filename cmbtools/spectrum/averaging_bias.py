@@ -32,10 +32,13 @@ it is exact when the sky has the shape of the guess.
 
 Cost: about 2 s for 4096 centres (0.4-0.7 ms each, with the pair radius of
 7 pixels; quiet 2-core machine) whatever the nside; below 4096 pixels in the
-mask, less (an auto-spectrum then sums each unordered pair once).  The last
-:data:`CACHE_SIZE` results are kept in memory (keyed by a hash of the inputs'
-values), so estimators built again with the same mask, spectrum, window and
-lmax skip the sums.  That is
+mask, less (an auto-spectrum then sums each unordered pair once).  Results are
+kept, keyed by a hash of every input's values and of the code that computes
+them: the last :data:`CACHE_SIZE` in memory, and each one on disk in
+``cmbtools._core.files.cache_dir()`` (a file of ``8 (lmax + 1)`` bytes, see
+:func:`averaging_bias`), so estimators built again with the same mask,
+spectrum, window and lmax skip the sums, in this process or a later one (each
+command of the CLI is a new process).  That the sums cost so little is
 why the estimator's default (``averaged_pixels=None``) applies it up to
 nside 512 only (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`).
 A cheaper path through the grid's symmetries (the pair sum of a pixel
@@ -54,13 +57,20 @@ within 0.1 % (0.36 % in the full sky's bin at 2.4 nside).
 from __future__ import annotations
 
 import collections
+import contextlib
+import functools
 import hashlib
 import math
+import os
+import tempfile
 import threading
+import warnings
 
 import numpy as np
 
+from cmbtools._core import files as _io
 from cmbtools._core.checks import check_nside
+from cmbtools.exceptions import CmbtoolsWarning
 
 __all__ = ["averaging_bias", "clear_averaging_bias_cache", "pair_radius"]
 
@@ -187,19 +197,55 @@ CACHE_SIZE = 8
 _cache: "collections.OrderedDict[str, np.ndarray]" = collections.OrderedDict()
 _cache_lock = threading.Lock()
 
+#: Version of the disk cache's file layout; part of every file name.
+DISK_CACHE_VERSION = 1
+#: Disk cache files: ``averaging_bias_<first 32 hex digits of the key>_v<DISK_CACHE_VERSION>.npz``.
+_DISK_PREFIX = "averaging_bias_"
+
 
 def clear_averaging_bias_cache() -> None:
-    """Forget every result kept by :func:`averaging_bias` (the next call computes again; used by the benchmark)."""
+    """Forget every result kept by :func:`averaging_bias`, in memory and on disk (the next call computes again).
+
+    The disk files are those of ``cmbtools._core.files.cache_dir()`` (the directory as it is named now); used
+    by the benchmark before every timed first call, and by tests that count the computations.
+    """
     with _cache_lock:
         _cache.clear()
+    try:
+        directory = _io.cache_dir()
+        names = os.listdir(directory)
+    except OSError:
+        return
+    for name in names:
+        if name.startswith(_DISK_PREFIX) and name.endswith(".npz"):
+            with contextlib.suppress(OSError):  # another process may have removed it first
+                os.unlink(os.path.join(directory, name))
+
+
+@functools.lru_cache(maxsize=1)
+def _code_hash() -> str:
+    """Hash of what the sums' numbers depend on besides the inputs: the source of this module, of the pixel
+    rules (``spectrum.pixel_windows``) and of the transforms (``_core.sht``), and the versions of ducc0 and
+    numpy."""
+    from pathlib import Path
+
+    import ducc0
+
+    import cmbtools._core.sht as sht
+    import cmbtools.spectrum.pixel_windows as pixel_windows
+
+    sources = [Path(f).read_bytes() for f in (__file__, pixel_windows.__file__, sht.__file__)]
+    return _io.sha256_arrays(*[s.decode("utf-8", "replace") for s in sources], ducc0.__version__, np.__version__)
 
 
 def _cache_key(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads) -> str:
-    """A hash of everything the result depends on: both masks' values, the spectrum, the window, the settings.
+    """A hash of everything the result depends on: both masks' values, the spectrum, the window, the settings,
+    the code (:func:`_code_hash`).
 
-    The nside is the masks' length; the module's table and histogram sizes are constants of the process.
+    The nside is the masks' length; the module's table and histogram sizes are constants of the code.
     """
     h = hashlib.blake2b(digest_size=32)
+    h.update(_code_hash().encode())
     for name, arr in (("mask", w_a), ("mask2", w_b), ("sky", sky), ("window", win)):
         h.update(name.encode())
         if arr is None:
@@ -213,8 +259,51 @@ def _cache_key(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads) -
     return h.hexdigest()
 
 
+def _disk_path(key):
+    return _io.cache_dir() / f"{_DISK_PREFIX}{key[:32]}_v{DISK_CACHE_VERSION}.npz"
+
+
+def _read_disk(key, lmax):
+    """The result stored for ``key``, or None (no file, an unusable cache directory, or a file that is not
+    this key's intact result: computed again and rewritten)."""
+    try:
+        path = _disk_path(key)
+        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as data:
+            result = np.array(data["bias"], dtype=np.float64)
+            ok = str(data["key"]) == key and str(data["checksum_sha256"]) == _io.sha256_arrays(result)
+    except Exception:  # missing, unreadable or foreign: the sums are done again
+        return None
+    if not ok or result.shape != (lmax + 1,):
+        return None
+    return result
+
+
+def _write_disk(key, result):
+    """Store ``result`` for ``key``: written to a temporary file of this process, then renamed over the final
+    name (atomic: a reader sees the whole file or none; processes computing the same key at once each
+    rename their own complete copy).  A failure only warns."""
+    tmp = None
+    try:
+        path = _disk_path(key)
+        fd, tmp = tempfile.mkstemp(prefix=f"{_DISK_PREFIX}writing_", suffix=".tmp", dir=path.parent)
+        with os.fdopen(fd, "wb") as fh:
+            np.savez(fh, bias=result, key=np.str_(key), checksum_sha256=np.str_(_io.sha256_arrays(result)))
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.chmod(tmp, 0o666 & ~_io._umask())
+        os.replace(tmp, path)
+        tmp = None
+    except OSError as exc:
+        warnings.warn(f"could not write the averaged-pixel cache ({exc}); the result is not cached.",
+                      CmbtoolsWarning, stacklevel=3)
+    finally:
+        if tmp is not None:
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+
+
 def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_centres=MAX_CENTRES,
-                   order=ORDER, nthreads=1) -> np.ndarray:
+                   order=ORDER, nthreads=1, use_cache=True) -> np.ndarray:
     """Expected pseudo-spectrum of pixel-averaged maps minus that of the window model, for one sky spectrum.
 
     With at most ``max_centres`` pixels in the mask, the pair sum of the module's formula is done over every
@@ -245,18 +334,31 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
         Gauss-Legendre nodes per pixel side.
     nthreads : int
         Threads of the Legendre sums.
+    use_cache : bool, default=True
+        Read the result from, and store it in, the disk cache (``cmbtools._core.files.cache_dir()``); the
+        memory cache is used either way.
 
     Returns
     -------
     ndarray of shape (lmax+1,)
         ``E[C~_l](averaged) - E[C~_l](model)``, in the units of ``sky_cl``: a new array on every call.
 
+    Warns
+    -----
+    CmbtoolsWarning
+        If the result cannot be written to the disk cache (it is returned all the same).
+
     Notes
     -----
-    The last :data:`CACHE_SIZE` results are kept in memory, keyed by a hash of every input's values (masks,
-    spectrum, window to the spectrum's band limit, ``lmax``, ``radius``, ``max_centres``, ``order``,
-    ``nthreads``): a repeated call returns a copy of the kept result (hashing a mask of nside 512 takes
-    about 10 ms against 1-3 s for the sums).  :func:`clear_averaging_bias_cache` empties it.
+    Results are keyed by a hash of every input's values (masks, spectrum, window to the spectrum's band limit,
+    ``lmax``, ``radius``, ``max_centres``, ``order``, ``nthreads``) and of the code behind the numbers (this
+    module, ``spectrum.pixel_windows``, ``_core.sht``, the ducc0 and numpy versions).  The last
+    :data:`CACHE_SIZE` are kept in memory; every one is also stored on disk, as
+    ``averaging_bias_<key>_v<DISK_CACHE_VERSION>.npz`` in ``cmbtools._core.files.cache_dir()`` (the result,
+    the full key and a checksum; a file that does not match is ignored and rewritten), written to a
+    temporary file of its own and renamed, so that processes sharing the directory never read a partial file.
+    A repeated call returns a copy of the kept result (hashing a mask of nside 512 takes about 10 ms against
+    1-3 s for the sums; reading the file about 1 ms).  :func:`clear_averaging_bias_cache` empties both.
     """
     w_a = np.asarray(mask, dtype=np.float64)
     w_b = None if mask2 is None else np.asarray(mask2, dtype=np.float64)
@@ -268,7 +370,11 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
         if kept is not None:
             _cache.move_to_end(key)
             return kept.copy()
-    result = _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads)
+    result = _read_disk(key, lmax) if use_cache else None
+    if result is None:
+        result = _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads)
+        if use_cache:
+            _write_disk(key, result)
     kept = result.copy()
     kept.setflags(write=False)
     with _cache_lock:

@@ -130,10 +130,118 @@ def test_cache_keeps_the_most_recent_results_only(monkeypatch):
     mask, sky_cl, window, lmax = _cache_inputs()
     module.clear_averaging_bias_cache()
     calls = _counting(monkeypatch)
+    # the memory cache alone (the disk would keep the dropped one: see the disk tests below)
     for k in range(module.CACHE_SIZE + 1):  # the first of these is dropped by the last
-        averaging_bias(mask, (1.0 + k) * sky_cl, window, lmax)
+        averaging_bias(mask, (1.0 + k) * sky_cl, window, lmax, use_cache=False)
     assert len(calls) == module.CACHE_SIZE + 1
-    averaging_bias(mask, (1.0 + module.CACHE_SIZE) * sky_cl, window, lmax)  # the newest: kept
+    averaging_bias(mask, (1.0 + module.CACHE_SIZE) * sky_cl, window, lmax, use_cache=False)  # the newest: kept
     assert len(calls) == module.CACHE_SIZE + 1
-    averaging_bias(mask, sky_cl, window, lmax)  # the oldest: dropped
+    averaging_bias(mask, sky_cl, window, lmax, use_cache=False)  # the oldest: dropped
     assert len(calls) == module.CACHE_SIZE + 2
+
+
+def _disk_files(directory):
+    return sorted(p.name for p in directory.iterdir() if p.name.startswith("averaging_bias_"))
+
+
+def test_disk_cache_serves_a_later_process_and_misses_on_other_inputs_or_code(tmp_path, monkeypatch):
+    import cmbtools.spectrum.averaging_bias as module
+
+    monkeypatch.setenv("CMBTOOLS_CACHE_DIR", str(tmp_path))
+    mask, sky_cl, window, lmax = _cache_inputs()
+    module.clear_averaging_bias_cache()
+    calls = _counting(monkeypatch)
+    first = averaging_bias(mask, sky_cl, window, lmax)
+    files = _disk_files(tmp_path)
+    assert len(calls) == 1 and len(files) == 1 and files[0].endswith(f"_v{module.DISK_CACHE_VERSION}.npz")
+    with np.load(tmp_path / files[0]) as data:
+        np.testing.assert_array_equal(data["bias"], first)
+    module._cache.clear()  # as a new process: the memory empty, the file there
+    np.testing.assert_array_equal(averaging_bias(mask, sky_cl, window, lmax), first)
+    assert len(calls) == 1
+    # another lmax, or another version of the code behind the numbers: each a miss and a file of its own
+    module._cache.clear()
+    averaging_bias(mask, sky_cl, window, lmax - 1)
+    monkeypatch.setattr(module, "_code_hash", lambda: "another version of the code")
+    np.testing.assert_array_equal(averaging_bias(mask, sky_cl, window, lmax), first)
+    assert len(calls) == 3 and len(_disk_files(tmp_path)) == 3
+    # use_cache=False neither reads nor writes the disk
+    module.clear_averaging_bias_cache()
+    assert _disk_files(tmp_path) == []
+    averaging_bias(mask, sky_cl, window, lmax, use_cache=False)
+    assert len(calls) == 4 and _disk_files(tmp_path) == []
+
+
+def test_disk_cache_ignores_and_rewrites_a_damaged_or_foreign_file(tmp_path, monkeypatch):
+    import cmbtools.spectrum.averaging_bias as module
+
+    monkeypatch.setenv("CMBTOOLS_CACHE_DIR", str(tmp_path))
+    mask, sky_cl, window, lmax = _cache_inputs()
+    module.clear_averaging_bias_cache()
+    calls = _counting(monkeypatch)
+    first = averaging_bias(mask, sky_cl, window, lmax)
+    (name,) = _disk_files(tmp_path)
+    path = tmp_path / name
+    good = path.read_bytes()
+    with np.load(path) as data:
+        key = str(data["key"])
+    damaged = [
+        good[: len(good) // 2],  # cut short
+        b"not a zip file",
+    ]
+    wrong = {  # intact files whose contents are not this key's result
+        "values": dict(bias=first * 2.0, key=np.str_(key), checksum_sha256=np.str_("0" * 64)),
+        "key": dict(bias=first, key=np.str_("f" * 64), checksum_sha256=np.str_(module._io.sha256_arrays(first))),
+        "length": dict(bias=first[:-1], key=np.str_(key),
+                       checksum_sha256=np.str_(module._io.sha256_arrays(first[:-1]))),
+    }
+    for k, bad in enumerate(damaged + list(wrong.values())):
+        if isinstance(bad, bytes):
+            path.write_bytes(bad)
+        else:
+            with open(path, "wb") as fh:
+                np.savez(fh, **bad)
+        module._cache.clear()
+        np.testing.assert_array_equal(averaging_bias(mask, sky_cl, window, lmax), first)
+        assert len(calls) == 2 + k  # computed again ...
+        assert path.read_bytes() == good  # ... and the file rewritten
+    assert _disk_files(tmp_path) == [name]  # no temporary file left
+
+
+def _compute_in_a_process(cache_dir, start):
+    """Child of the concurrency test: wait for the common start, compute, return the result and the warnings."""
+    import os
+    import time
+    import warnings
+
+    os.environ["CMBTOOLS_CACHE_DIR"] = cache_dir
+    import cmbtools.spectrum.averaging_bias as module
+
+    mask, sky_cl, window, lmax = _cache_inputs()
+    while time.time() < start:
+        time.sleep(0.001)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        result = module.averaging_bias(mask, sky_cl, window, lmax)
+    return result, [str(w.message) for w in caught]
+
+
+def test_disk_cache_is_safe_for_processes_computing_the_same_result_at_once(tmp_path):
+    import multiprocessing
+    import time
+
+    import cmbtools.spectrum.averaging_bias as module
+
+    mask, sky_cl, window, lmax = _cache_inputs()
+    expected = averaging_bias(mask, sky_cl, window, lmax, use_cache=False)
+    context = multiprocessing.get_context("spawn")
+    with context.Pool(3) as pool:
+        start = time.time() + 3.0  # after the children's imports
+        results = pool.starmap(_compute_in_a_process, [(str(tmp_path), start)] * 3)
+    for result, caught in results:
+        assert caught == []
+        np.testing.assert_array_equal(result, expected)
+    (name,) = _disk_files(tmp_path)  # one file, whole, no temporary file left
+    with np.load(tmp_path / name) as data:
+        np.testing.assert_array_equal(data["bias"], expected)
+    assert name.endswith(f"_v{module.DISK_CACHE_VERSION}.npz")
