@@ -68,9 +68,9 @@ def test_quick_run_prints_every_figure(tmp_path):
 
     from cmbtools import simulate
 
-    # a cache of the script's own, holding only the fiducial spectra of this test process's cache (computed once
-    # per process, 10-20 s; the script computes them before any timed call): pixel windows and averaged-pixel sums it
-    # computes itself
+    # a cache of the script's own, holding only the fiducial spectra of this test process's cache (computed
+    # once per process, 10-20 s; the script computes them before any timed call): pixel windows and
+    # averaged-pixel sums it computes itself
     simulate.fiducial_cl(2)
     simulate.fiducial_spectra(2)
     cache = tmp_path / "cache"
