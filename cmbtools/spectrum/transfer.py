@@ -24,8 +24,62 @@ from cmbtools.exceptions import InvalidInputError
 __all__ = ["transfer_from_pseudo_spectrum", "BandpowerTransfer", "PolarizedBandpowerTransfer"]
 
 
+class _PerBinTransfer:
+    """What the per-bin transfers share: the checks of the bins and the metadata, ``n_bins``, the positivity of
+    ``F_b`` (a bin that keeps no signal cannot be corrected).  Subclasses are frozen dataclasses with the fields
+    ``ell_min``, ``ell_max``, ``ell_eff`` and ``metadata``; ``__post_init__`` calls :meth:`_set_bins` first and
+    :meth:`_set_metadata` last."""
+
+    def _set_bins(self) -> int:
+        """Check and freeze ``ell_min``, ``ell_max`` (int) and ``ell_eff`` (finite); returns the number of bins."""
+        name = type(self).__name__
+        lo = np.array(self.ell_min, dtype=np.int64)
+        nb = lo.size
+        if lo.ndim != 1 or nb == 0:
+            raise InvalidInputError(f"{name}.ell_min must be a non-empty 1-d array of bin limits.")
+        hi = np.array(self.ell_max, dtype=np.int64)
+        if hi.shape != (nb,) or np.any(hi < lo) or np.any(lo[1:] <= hi[:-1]) or lo[0] < 0:
+            raise InvalidInputError(f"{name} bins must be (ell_min, ell_max) pairs from ell >= 0, "
+                                    "increasing without overlaps.")
+        self._freeze("ell_min", lo)
+        self._freeze("ell_max", hi)
+        self._freeze("ell_eff", self._finite_per_bin("ell_eff", self.ell_eff, nb))
+        return nb
+
+    def _finite_per_bin(self, field, value, nb):
+        a = np.array(value, dtype=np.float64)
+        if a.shape != (nb,) or not np.all(np.isfinite(a)):
+            raise InvalidInputError(f"{type(self).__name__}.{field} must hold {nb} finite numbers (one per bin).")
+        return a
+
+    def _freeze(self, field, a):
+        a.setflags(write=False)
+        object.__setattr__(self, field, a)
+
+    def _check_positive(self, f, label, why):
+        """Raise unless every ``f`` is finite and positive: ``"The {label}transfer function is ... in bin b (ell
+        lo-hi): {why}"``."""
+        bad = ~(np.isfinite(f) & (f > 0))
+        if np.any(bad):
+            b = int(np.argmax(bad))
+            raise InvalidInputError(f"The {label}transfer function is {f[b]:.3g} in bin {b} "
+                                    f"(ell {self.ell_min[b]}-{self.ell_max[b]}): {why}")
+
+    def _set_metadata(self):
+        """Metadata as str keys to number or str values."""
+        if not isinstance(self.metadata, dict):
+            raise InvalidInputError(f"{type(self).__name__}.metadata must be a dict of str to str or number.")
+        object.__setattr__(self, "metadata", {str(k): v if isinstance(v, (int, float)) else str(v)
+                                              for k, v in self.metadata.items()})
+
+    @property
+    def n_bins(self) -> int:
+        """Number of bins."""
+        return int(self.ell_min.size)
+
+
 @dataclasses.dataclass(frozen=True, eq=False)
-class BandpowerTransfer:
+class BandpowerTransfer(_PerBinTransfer):
     r"""Per-bin transfer function ``F_b`` of a pipeline, and its correction of bandpowers.
 
     ``F_b`` is the mean bandpower the pipeline recovers from simulated skies
@@ -61,41 +115,16 @@ class BandpowerTransfer:
     metadata: dict = dataclasses.field(default_factory=dict)
 
     def __post_init__(self):
-        lo = np.array(self.ell_min, dtype=np.int64)
-        nb = lo.size
-        if lo.ndim != 1 or nb == 0:
-            raise InvalidInputError("BandpowerTransfer.ell_min must be a non-empty 1-d array of bin limits.")
-        hi = np.array(self.ell_max, dtype=np.int64)
-        if hi.shape != (nb,) or np.any(hi < lo) or np.any(lo[1:] <= hi[:-1]) or lo[0] < 0:
-            raise InvalidInputError("BandpowerTransfer bins must be (ell_min, ell_max) pairs from ell >= 0, "
-                                    "increasing without overlaps.")
-        err = np.zeros(nb) if self.transfer_error is None else self.transfer_error
-        arrays = {"ell_min": lo, "ell_max": hi}
-        for name, value in (("ell_eff", self.ell_eff), ("transfer", self.transfer), ("transfer_error", err)):
-            a = np.array(value, dtype=np.float64)
-            if a.shape != (nb,) or not np.all(np.isfinite(a)):
-                raise InvalidInputError(f"BandpowerTransfer.{name} must hold {nb} finite numbers (one per bin).")
-            arrays[name] = a
-        if np.any(arrays["transfer"] <= 0):
-            b = int(np.argmax(arrays["transfer"] <= 0))
-            raise InvalidInputError(
-                f"The transfer function is {arrays['transfer'][b]:.3g} in bin {b} (ell {lo[b]}-{hi[b]}): a bin "
-                "that keeps no signal cannot be corrected (drop or widen it)."
-            )
-        if np.any(arrays["transfer_error"] < 0):
+        nb = self._set_bins()
+        transfer = self._finite_per_bin("transfer", self.transfer, nb)
+        err = self._finite_per_bin("transfer_error", np.zeros(nb) if self.transfer_error is None
+                                   else self.transfer_error, nb)
+        self._check_positive(transfer, "", "a bin that keeps no signal cannot be corrected (drop or widen it).")
+        if np.any(err < 0):
             raise InvalidInputError("BandpowerTransfer.transfer_error must be >= 0.")
-        for name, a in arrays.items():
-            a.setflags(write=False)
-            object.__setattr__(self, name, a)
-        if not isinstance(self.metadata, dict):
-            raise InvalidInputError("BandpowerTransfer.metadata must be a dict of str to str or number.")
-        object.__setattr__(self, "metadata", {str(k): v if isinstance(v, (int, float)) else str(v)
-                                              for k, v in self.metadata.items()})
-
-    @property
-    def n_bins(self) -> int:
-        """Number of bins."""
-        return int(self.ell_min.size)
+        self._freeze("transfer", transfer)
+        self._freeze("transfer_error", err)
+        self._set_metadata()
 
     @property
     def key(self) -> str:
@@ -353,7 +382,7 @@ POLARIZED_TRANSFER_COLUMNS = ("spectrum", "ell_min", "ell_max", "ell_eff", "tran
 
 
 @dataclasses.dataclass(frozen=True, eq=False)
-class PolarizedBandpowerTransfer:
+class PolarizedBandpowerTransfer(_PerBinTransfer):
     r"""Per-bin transfer functions of the six spectra of I, Q, U maps, and their correction of bandpowers.
 
     ``transfer[i]`` is ``F_b`` of spectrum ``SPECTRA[i]`` (TT, TE, TB, EE, EB, BB): the mean recovered
@@ -384,35 +413,18 @@ class PolarizedBandpowerTransfer:
     metadata: dict = dataclasses.field(default_factory=dict)
 
     def __post_init__(self):
-        base = BandpowerTransfer(self.ell_min, self.ell_max, self.ell_eff, np.ones(np.size(self.ell_min)))
-        nb = base.n_bins
-        for name in ("ell_min", "ell_max", "ell_eff"):
-            object.__setattr__(self, name, getattr(base, name))
+        nb = self._set_bins()
         for name in ("transfer", "transfer_error"):
             a = np.array(getattr(self, name), dtype=np.float64)
             if a.shape != (len(_POL_SPECTRA), nb):
                 raise InvalidInputError(f"PolarizedBandpowerTransfer.{name} must have shape (6, {nb}). "
                                         f"Got {a.shape} instead.")
-            a.setflags(write=False)
-            object.__setattr__(self, name, a)
+            self._freeze(name, a)
         for s in _AUTO:
-            f = self.transfer[_POL_SPECTRA.index(s)]
-            if not np.all(np.isfinite(f) & (f > 0)):
-                b = int(np.argmax(~(np.isfinite(f) & (f > 0))))
-                raise InvalidInputError(
-                    f"The {s} transfer function is {f[b]:.3g} in bin {b} (ell {self.ell_min[b]}-{self.ell_max[b]}): "
-                    "TT, EE and BB need a finite, positive F_b in every bin (a bin that keeps no signal cannot be "
-                    "corrected)."
-                )
-        if not isinstance(self.metadata, dict):
-            raise InvalidInputError("PolarizedBandpowerTransfer.metadata must be a dict of str to str or number.")
-        object.__setattr__(self, "metadata", {str(k): v if isinstance(v, (int, float)) else str(v)
-                                              for k, v in self.metadata.items()})
-
-    @property
-    def n_bins(self) -> int:
-        """Number of bins."""
-        return int(self.ell_min.size)
+            self._check_positive(self.transfer[_POL_SPECTRA.index(s)], f"{s} ",
+                                 "TT, EE and BB need a finite, positive F_b in every bin (a bin that keeps no "
+                                 "signal cannot be corrected).")
+        self._set_metadata()
 
     @property
     def factors(self) -> np.ndarray:
