@@ -211,6 +211,26 @@ def _tensor_bb_dl(model, lmax, r):
     if lmax_t < 2 or r == 0.0:
         return out
     extras = model.extras
+    k, ell_nodes, sources = _tensor_sources(model, lmax_t)
+    n_t = -r / 8.0
+    power = _TENSOR_NORMALIZATION * r * extras.amplitude_scalar * (k / extras.pivot_wavenumber_mpc) ** n_t
+    cl_nodes = np.zeros(ell_nodes.size)
+    for i, (sel, delta_b) in enumerate(sources):
+        cl_nodes[i] = 4.0 * math.pi * integrate.trapezoid(power[sel] * delta_b**2 / k[sel], k[sel])
+    ell_all = np.arange(2, lmax_t + 1)
+    dl_nodes = ell_nodes * (ell_nodes + 1.0) * cl_nodes / (2.0 * math.pi)
+    out[2 : lmax_t + 1] = np.exp(CubicSpline(ell_nodes, np.log(np.maximum(dl_nodes, 1e-300)))(ell_all))
+    return out * model.t0**2
+
+
+def _tensor_sources(model, lmax_t):
+    """What the tensor BB takes from the cosmology, not from r: the wavenumbers, the multipole nodes and, per node,
+    the wavenumbers used and the B-mode transfer ``delta_b(k)``.  Computed once per model and ``lmax_t`` (the
+    gravitational-wave equation and the projections are nearly all of the cost; r only sets the primordial
+    power), kept on the model."""
+    kept = model.__dict__.setdefault("_tensor_sources", {})
+    if lmax_t in kept:
+        return kept[lmax_t]
     _, eta = _nodes(model)  # last scattering only: z = 1600 .. 650, every Mpc
     g, tau = _history_at(model, eta)
     eta0 = model.eta_star + model.distance
@@ -233,21 +253,16 @@ def _tensor_bb_dl(model, lmax, r):
     keep = g > 1e-4 * g.max()  # the visibility vanishes elsewhere
     src = (g * psi * weights[None, :])[:, keep]
     dist_eta = (eta0 - eta)[keep]
-    n_t = -r / 8.0
-    power = _TENSOR_NORMALIZATION * r * extras.amplitude_scalar * (k / extras.pivot_wavenumber_mpc) ** n_t
     ell_nodes = np.unique(np.concatenate([np.arange(2, min(lmax_t, 30) + 1, 2), np.arange(30, lmax_t + 1, 30), [lmax_t]]))
-    cl_nodes = np.zeros(ell_nodes.size)
-    for i, ell in enumerate(ell_nodes):
+    sources = []
+    for ell in ell_nodes:
         sel = k * dist_eta.max() > 0.5 * ell  # j_l(x) is negligible for x < l/2
         xs = k[sel, None] * dist_eta[None, :]
         j = spherical_jn(int(ell), xs)
         dj = spherical_jn(int(ell), xs, derivative=True)
-        delta_b = np.sum(src[sel] * (2.0 * dj + 4.0 * j / xs), axis=1)
-        cl_nodes[i] = 4.0 * math.pi * integrate.trapezoid(power[sel] * delta_b**2 / k[sel], k[sel])
-    ell_all = np.arange(2, lmax_t + 1)
-    dl_nodes = ell_nodes * (ell_nodes + 1.0) * cl_nodes / (2.0 * math.pi)
-    out[2 : lmax_t + 1] = np.exp(CubicSpline(ell_nodes, np.log(np.maximum(dl_nodes, 1e-300)))(ell_all))
-    return out * model.t0**2
+        sources.append((sel, np.sum(src[sel] * (2.0 * dj + 4.0 * j / xs), axis=1)))
+    kept[lmax_t] = (k, ell_nodes, sources)
+    return kept[lmax_t]
 
 
 def lensing_bb_template(lmax, *, amplitude=1.0) -> np.ndarray:
