@@ -8,7 +8,9 @@ is within 3 standard errors of the mean of the binned input.  The same skies thr
 (``averaged_pixels=False``) show the bias that the default corrects: paired with pixel-centre maps of the same
 coefficients (for which that model is exact in expectation), the difference of their bandpowers is the bias of
 the pixel-centre model on averaged maps; it is several standard errors below zero in the bins near 2 nside and
-the default's correction removes it.
+the default's correction removes it.  Only the rings the mask occupies are simulated (as validate does): the
+other pixels never reach the bandpowers (the same bandpowers to the last bit; 0.07 s a sky instead of 0.19 s at
+nside 64).
 """
 
 import healpy as hp
@@ -44,13 +46,16 @@ def _run(nside, n_sims, seed):
     smooth = beam * pixel_window(nside, sky_lmax)
     dipole = 3e-3 * hp.ang2vec(30.0, 40.0, lonlat=True)
     noise_cl = np.full(3 * nside, np.mean(sigma[w > 0] ** 2) * 4 * np.pi / w.size)
+    rings = _sht.occupied_rings(w)
     out, diff = [], []
     for i in range(n_sims):
         rng = np.random.default_rng([seed, i])
         alm = gaussian_alm(cl, sky_lmax, rng=rng)
         extra = 100e-6 + vec @ dipole + sigma * rng.standard_normal(w.size)
-        averaged = pixel_averaged_map(_sht.almxfl(alm, beam, sky_lmax), nside, sky_lmax, nthreads=1) + extra
-        at_centres = _sht.alm2map(_sht.almxfl(alm, smooth, sky_lmax), nside, sky_lmax, nthreads=1) + extra
+        averaged = pixel_averaged_map(_sht.almxfl(alm, beam, sky_lmax), nside, sky_lmax, rings=rings, nthreads=1)
+        averaged += extra
+        at_centres = _sht.alm2map(_sht.almxfl(alm, smooth, sky_lmax), nside, sky_lmax, rings=rings, nthreads=1)
+        at_centres += extra
         bp = default.estimate(averaged, noise_cl=noise_cl)
         assert bp.metadata["pixels"].startswith("averaged")  # the default model, recorded with the bandpowers
         out.append(bp.cl)

@@ -92,7 +92,8 @@ def test_every_bin_unbiased_on_pixelised_skies_with_monopole_dipole_and_power_ab
     # estimator told that its maps are averaged (averaged_pixels=True), every reported bin up to 2.5 nside is
     # within 3 standard errors of the mean of the binned input spectrum; without the deprojection-bias
     # correction the first bin is not (it comes out near 0.81 of the input); without the pixel-averaging
-    # correction the bins from 1.2 nside up are off by 0.3-0.7 % (measured, printed on failure).
+    # correction the bins from 1.2 nside up are off by 0.3-0.7 % (measured, printed on failure).  Only the rings the
+    # mask occupies are simulated, as validate does: the other pixels never reach the bandpowers.
     nside, n_sims = 64, 300
     lmax, sky_lmax = 3 * nside - 1, 4 * nside - 1
     w, vec = cap_with_holes(nside)
@@ -107,11 +108,12 @@ def test_every_bin_unbiased_on_pixelised_skies_with_monopole_dipole_and_power_ab
     window_only = SpectrumEstimator(w, bins, **kwargs)
     beam = gaussian_beam(fwhm, sky_lmax)
     dipole = 3e-3 * hp.ang2vec(30.0, 40.0, lonlat=True)
+    rings = _sht.occupied_rings(w)
     out, out_plain, out_window = [], [], []
     for i in range(n_sims):
         rng = np.random.default_rng([11, i])
         alm = _sht.almxfl(gaussian_alm(cl, sky_lmax, rng=rng), beam, sky_lmax)
-        m = pixel_averaged_map(alm, nside, sky_lmax, nthreads=1)
+        m = pixel_averaged_map(alm, nside, sky_lmax, rings=rings, nthreads=1)
         m += 100e-6 + vec @ dipole + sigma * rng.standard_normal(m.size)
         out.append(est.estimate(m, noise_cl=noise_cl).cl)
         out_plain.append(plain.estimate(m, noise_cl=noise_cl).cl)
