@@ -444,8 +444,6 @@ def _leak_kernels(est, name):
     done = ("leak_kernels_done", name)
     if done in est._cache:
         return
-    from cmbtools.spectrum import coupling as coupling_pol
-    from cmbtools.spectrum.errors import _reduce_cols, _reduce_rows
 
     order, blocks = _structure(est, name)
     model = _Model(est, name, None, structure_only=True)
@@ -460,31 +458,18 @@ def _leak_kernels(est, name):
                     n_spin[key] = max(n_spin.get(key, 0), est._cache.get(("cov_kernel_spin_bins",) + ref_key, 0))
     exact_kernels = {}
     if lc >= 0 and wanted:
-        from cmbtools.spectrum.polarized_operator import _covariance_requests, _spin_kernel
+        from cmbtools.spectrum import spin_quadrature as _sq
+        from cmbtools.spectrum.polarized_operator import covariance_kernel, covariance_weights
 
         product = _products(model)
         keys = list(wanted)
         # the taper's products have broad kernels: their spectra to 2 lc, all the kernel can use
-        spectra = [_pair_spectrum(model, product, u, v, 2 * lc, est._threads()) for u, v in wanted.values()]
-        reqs = [[r for r in _covariance_requests(k[0], w)] for k, w in zip(keys, spectra)]
-        flat = coupling_pol.coupling_matrices([r for rq in reqs for r in rq], lc, nthreads=est._threads())
-        mats, pos = [], 0
-        for rq in reqs:
-            n_out = sum(2 if kind == "+-" else 1 for kind, _ in rq)
-            mats.append(flat[pos:pos + n_out])
-            pos += n_out
-        b = est.binning
-        r = np.zeros(lc + 1)
-        idx = b.bin_index[: lc + 1]
-        sel = np.nonzero(idx >= 0)[0]
-        r[sel] = 1.0 / b.n_ell[idx[sel]]
-        starts = b.ell_min[exact]
-        inv_cols = 1.0 / (2.0 * np.arange(lc + 1) + 1.0)
-        for k, ms in zip(keys, mats):
-            if k[0] == "00":
-                g = _reduce_cols(_reduce_rows(ms[0] * inv_cols[None, :], r, starts), r, starts)
-            else:
-                g, _ = _spin_kernel(ms, k[0], r, starts, inv_cols, n_low=min(n_spin[k], starts.size))
+        spectra = {n: _pair_spectrum(model, product, u, v, 2 * lc, est._threads()) for n, (u, v) in enumerate(wanted.values())}
+        q = _sq.SpinCouplingQuadrature(lc, spectra, nthreads=est._threads())
+        n_ex = int(np.count_nonzero(exact))
+        proj = q.project(["2m2", "20", "22", "P"], covariance_weights(est.binning, lc, n_ex))
+        for n, k in enumerate(keys):
+            g, _ = covariance_kernel(q, n, k[0], proj, n_ex, n_low=None if k[0] == "00" else min(n_spin[k], n_ex))
             exact_kernels[k] = 0.5 * (g + g.T)
     n_exact = int(np.count_nonzero(exact))
     for items in blocks.values():
