@@ -399,6 +399,35 @@ def _pair_spectrum(model, product, u, v, lmax, nthreads):
     return _sht.map_spectra([a, b], lmax, nthreads=nthreads, rings=rings)[2]
 
 
+def _pair_spectra(model, product, pairs, lmax, nthreads):
+    """Cross-spectra to ``lmax`` of the window products of every (u, v) pair: each distinct pair once, each
+    distinct product map transformed once (on the rings where it is not zero) when its coefficients are
+    held whole, else pair by pair as :func:`_pair_spectrum`."""
+    ids = [tuple(sorted((_ident(model, u), _ident(model, v)))) for u, v in pairs]
+    first = {}
+    for i, (u, v) in zip(ids, pairs):
+        first.setdefault(i, (u, v))
+    nside = int(round(np.sqrt(product(pairs[0][0]).size / 12))) if pairs else 0
+    n_maps = len({_ident(model, m) for uv in first.values() for m in uv})
+    done = {}
+    if pairs and not _sht.runs_in_pieces(nside, lmax, n_maps):
+        alms = {}
+
+        def alm(maps):
+            k = _ident(model, maps)
+            if k not in alms:
+                m = product(maps)
+                alms[k] = _sht.map2alm(m, lmax, nthreads=nthreads, rings=_sht.occupied_rings(m))
+            return alms[k]
+
+        for i, (u, v) in first.items():
+            done[i] = _sht.alm2cl(alm(u), alm(v), lmax=lmax)
+    else:
+        for i, (u, v) in first.items():
+            done[i] = _pair_spectrum(model, product, u, v, lmax, nthreads)
+    return [done[i] for i in ids]
+
+
 def covariance_requests(est, name):
     """(keys, spectra) of the main window-product kernels (no gradient) the pair needs and the cache lacks.
 
@@ -415,7 +444,7 @@ def covariance_requests(est, name):
                     missing[k] = pair
     product = _products(model)
     keys = list(missing)
-    spectra = [_pair_spectrum(model, product, u, v, est.lmax, est._threads()) for u, v in missing.values()]
+    spectra = _pair_spectra(model, product, list(missing.values()), est.lmax, est._threads())
     return keys, spectra
 
 
@@ -464,7 +493,7 @@ def _leak_kernels(est, name):
         product = _products(model)
         keys = list(wanted)
         # the taper's products have broad kernels: their spectra to 2 lc, all the kernel can use
-        spectra = {n: _pair_spectrum(model, product, u, v, 2 * lc, est._threads()) for n, (u, v) in enumerate(wanted.values())}
+        spectra = dict(enumerate(_pair_spectra(model, product, list(wanted.values()), 2 * lc, est._threads())))
         q = _sq.SpinCouplingQuadrature(lc, spectra, nthreads=est._threads())
         n_ex = int(np.count_nonzero(exact))
         proj = q.project(["2m2", "20", "22", "P"], covariance_weights(est.binning, lc, n_ex))

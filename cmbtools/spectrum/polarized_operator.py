@@ -28,6 +28,7 @@ import numpy as np
 from cmbtools._core import sht as _sht
 from cmbtools._core.checks import resolve_nthreads
 from cmbtools.exceptions import IllConditionedError
+from cmbtools.spectrum import coupling as _coupling
 from cmbtools.spectrum import polarized_corrections as _corrections
 from cmbtools.spectrum import spin_quadrature as _sq
 from cmbtools.spectrum.errors import _reduce_cols, _reduce_rows
@@ -71,27 +72,9 @@ def _freeze(a):
 PARITY_SHARE_SPIN_KERNELS = 0.1
 
 
-def _n_inv(lmax):
-    """``1 / N_l = sqrt((l-1) l (l+1) (l+2))`` for l = 0..lmax (zero below l = 2); see :func:`pure_b_ratio`."""
-    ell = np.arange(lmax + 1, dtype=np.float64)
-    return np.sqrt(np.clip((ell - 1) * ell * (ell + 1) * (ell + 2), 0.0, None))
-
-
 #: The coupling of each P-reduced kernel kind ('00R' is R.M00, R_ll' = N_l / N_l', ...) and the power of R.
 _KIND_BASE = {"00": ("00", 0), "00R": ("00", 1), "00RR": ("00", 2), "02": ("02", 0), "02R": ("02", 1),
               "++": ("++", 0), "--": ("--", 0), "+-": ("+-", 0)}
-
-
-def _reduced_weights(kind, p_w):
-    """(row weights, column factor or None) of a P-reduced kernel: ``sum_l p_l R_ll'^k M_ll'`` is separable,
-    ``R_ll' = n_inv(l') / n_inv(l)`` (zero where l or l' < 2)."""
-    power = _KIND_BASE[kind][1]
-    if power == 0:
-        return p_w, None
-    n = _n_inv(p_w.size - 1) ** power
-    with np.errstate(divide="ignore"):
-        inv = np.where(n > 0, 1.0 / np.where(n > 0, n, 1.0), 0.0)
-    return p_w * inv, n
 
 
 def _quadrature_types(kinds):
@@ -219,27 +202,44 @@ class _PolarizedOperator:
         (keys, spectra) of binned covariance kernels to compute too; a key's first item is its kind, '00',
         '02' or '++' (:func:`covariance_kernel`).  No matrix is formed: the P-reduced rows and the bin sums
         are exact Gauss-Legendre sums of Wigner d-functions (:mod:`cmbtools.spectrum.spin_quadrature`; equal
-        to ducc0's coupling kernel reduced the same way to rounding, tested).
+        to ducc0's coupling kernel reduced the same way to rounding, tested), except the pure B's kinds
+        (one call of ducc0's kernel, see below).
         """
         missing = sorted({k for k in wanted if ("kernel",) + k not in self._cache})
         cov_keys, cov_spectra = covariance if covariance is not None else ((), ())
         if not missing and not cov_keys:
             return {k: self._cache[("kernel",) + k] for k in wanted}
         lmax = self.lmax
-        spectra = {("mask", i, j): self._mask_spectrum(i, j) for _, i, j in missing}
-        spectra.update({("cov", n): w for n, w in enumerate(cov_spectra)})
-        q = _sq.SpinCouplingQuadrature(lmax, spectra, nthreads=self._threads())
         b = self.binning
         p_w = b.averaging_weights(lmax)
         nb = b.n_bins
+        # the pure B's kinds (R = N_l / N_l' grows as (l'/l)^2) from ducc0's kernel: its matrices keep their
+        # relative precision in the small far-off-diagonal entries that R multiplies (a sum on the nodes has
+        # an absolute rounding error, which R^2 would raise to 1e-11 of a row at lmax 32 and more above)
+        ratio_kinds = [k for k in missing if _KIND_BASE[k[0]][1] > 0]
+        missing = [k for k in missing if _KIND_BASE[k[0]][1] == 0]
+        if ratio_kinds:
+            base = {}
+            for kind, i, j in ratio_kinds:
+                base.setdefault((_KIND_BASE[kind][0], i, j), []).append(kind)
+            mats = _coupling.coupling_matrices([(k, self._mask_spectrum(i, j)) for k, i, j in base], lmax,
+                                               nthreads=self._threads())
+            ratio = _coupling.pure_b_ratio(lmax)
+            for m, (bk, i, j) in zip(mats, base):
+                for kind in base[(bk, i, j)]:
+                    r = ratio if _KIND_BASE[kind][1] == 1 else ratio * ratio
+                    self._cache[("kernel", kind, i, j)] = _freeze(_reduce_rows(m * r, p_w, b.ell_min))
+            del mats
+        spectra = {("mask", i, j): self._mask_spectrum(i, j) for _, i, j in missing}
+        spectra.update({("cov", n): w for n, w in enumerate(cov_spectra)})
+        if not missing and not cov_keys:
+            return {k: self._cache[("kernel",) + k] for k in wanted}
+        q = _sq.SpinCouplingQuadrature(lmax, spectra, nthreads=self._threads())
         # every weight vector in one projection per d-function table
         columns, where = [], {}
-        for kind, i, j in missing:
-            u, col = _reduced_weights(kind, p_w)
-            power = _KIND_BASE[kind][1]
-            if power not in where:
-                where[power] = (len(columns), col)
-                columns.append(_sq.bin_vectors(u, b.bin_index, nb))
+        if missing:
+            where[0] = (0, None)
+            columns.append(_sq.bin_vectors(p_w, b.bin_index, nb))
         if cov_keys:
             where["cov"] = (len(columns), None)
             columns.append(covariance_weights(b, lmax))
@@ -253,11 +253,8 @@ class _PolarizedOperator:
             return {t: v[:, offsets[k]:offsets[k + 1]] for t, v in proj.items()}
 
         if missing:
-            reqs = [(_KIND_BASE[kind][0], ("mask", i, j), part(_KIND_BASE[kind][1])) for kind, i, j in missing]
+            reqs = [(kind, ("mask", i, j), part(0)) for kind, i, j in missing]
             for (kind, i, j), m in zip(missing, q.reduced_rows(reqs)):
-                col = where[_KIND_BASE[kind][1]][1]
-                if col is not None:
-                    m *= col[None, :]
                 self._cache[("kernel", kind, i, j)] = _freeze(m)
         if cov_keys:
             pc = part("cov")
