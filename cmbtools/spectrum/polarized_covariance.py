@@ -19,7 +19,7 @@ polarization pairings the parity-even part of the spin-2 kernel that the E (or B
 kind of a pairing set is '00' without polarization fields, '++' with four, '02' otherwise).  The three
 kinds agree where l >> the window's bandwidth; at the largest scales of a small patch they do not, and
 there the spin kinds are used: in the rows and columns of the first bins, where the other parity takes
-more than 10 % of the spin-2 coupling of the window product (``polarized_operator._spin_kernel``), M00
+more than 10 % of the spin-2 coupling of the window product (``polarized_operator.covariance_kernel``), M00
 above (there the in-field reduction below carries the parity; the spin kinds in every bin lowered the
 errors at ell 18-80 by 1-3 %, away from the scatter).  Measured (the Monte Carlo test: 10-degree taper
 of a 40-degree cap, first bin ell 2-17), reported error / simulated scatter in the first bin with M00
@@ -431,7 +431,7 @@ def _pair_spectra(model, product, pairs, lmax, nthreads):
 def covariance_requests(est, name):
     """(keys, spectra) of the main window-product kernels (no gradient) the pair needs and the cache lacks.
 
-    These are computed to lmax in the estimator's kernel call; the leakage kernels are made by
+    Their bin sums are taken to lmax with the estimator's couplings (quadrature); the leakage kernels are made by
     :func:`_leak_kernels`.
     """
     order, blocks = _structure(est, name)
@@ -469,7 +469,7 @@ def _leak_lmax(est, name, model):
 
 
 def _leak_kernels(est, name):
-    """The binned leakage kernels: exact below the cut (one kernel call), scaled main kernels above."""
+    """The binned leakage kernels: exact below the cut (quadrature to the cut), scaled main kernels above."""
     done = ("leak_kernels_done", name)
     if done in est._cache:
         return

@@ -15,8 +15,9 @@ with the averaging operator ``P`` and the piecewise-flat model ``Q``, the system
 removes the E/B mixing of the mask on average.
 
 :class:`_PolarizedOperator` is the base of :class:`~cmbtools.spectrum.PolarizedSpectrumEstimator`: its
-immutable state, the masks' spectra and moments, every coupling kernel (one ducc0 kernel call for all the
-matrices the estimator needs) and the binned operator :class:`_Pair` of map 1 x map 1 and map 1 x map 2.
+immutable state, the masks' spectra and moments, the P-reduced coupling kernels and the binned covariance kernels
+(exact Gauss-Legendre sums of Wigner d-functions, :mod:`cmbtools.spectrum.spin_quadrature`: no matrix is formed;
+the pure B's kinds by ducc0's kernel) and the binned operator :class:`_Pair` of map 1 x map 1 and map 1 x map 2.
 """
 
 from __future__ import annotations
