@@ -94,8 +94,9 @@ def pytest_xdist_make_scheduler(config, log):
         """pytest-xdist's load scheduling, with the units of EXPECTED_SECONDS first, longest first.
 
         A process runs a test once it knows the next one (for fixture teardown), so it always holds two: while
-        it runs a long unit, the one it holds next is a short test (not a long unit another process could
-        take), and the next long unit goes to the first process that gets through its short one.
+        it runs a long unit, what it holds next is the short tests of one file (not a long unit another process
+        could take; a file's tests together, so its module-scoped fixtures are built once), and the next long
+        unit goes to the first process that gets through those.
         """
 
         _units: list = []
@@ -126,10 +127,22 @@ def pytest_xdist_make_scheduler(config, log):
             while len(held) < 2 and (self._units or self.pending):
                 if self._units and not (held and held[-1] in self._long):
                     indices = self._units.pop(0)
+                elif self.pending:
+                    indices = self._next_file()
                 else:
-                    indices = [self.pending.pop(0)] if self.pending else self._units.pop(0)
+                    indices = self._units.pop(0)
                 held.extend(indices)
                 node.send_runtest_some(indices)
+
+        def _next_file(self):
+            """The next short tests of one file (together: a module-scoped fixture is then built once)."""
+            first = self.collection[self.pending[0]].split("::")[0]
+            n = 1
+            while n < len(self.pending) and self.collection[self.pending[n]].split("::")[0] == first:
+                n += 1
+            indices = self.pending[:n]
+            del self.pending[:n]
+            return indices
 
         def check_schedule(self, node, duration=0):
             if self._units and not node.shutting_down:
