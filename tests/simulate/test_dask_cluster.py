@@ -1,8 +1,10 @@
 """The Monte Carlo engine on a real dask cluster: two local worker processes on this machine.
 
 The cluster is started once for the module (``distributed.LocalCluster`` with
-two single-threaded worker processes, no dashboard) and only listens on the
-loopback interface.
+two single-threaded worker processes) and only listens on the loopback interface,
+its HTTP server on a free port: on the fixed default port (8787, taken whenever
+another cluster runs on the machine, e.g. another test run's) distributed warns,
+which is an error here.
 """
 
 from __future__ import annotations
@@ -27,7 +29,7 @@ from _mc_kill_child import draw_normals  # noqa: E402  (light module for the wor
 @pytest.fixture(scope="module")
 def client():
     cluster = distributed.LocalCluster(
-        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None, host="127.0.0.1"
+        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0", host="127.0.0.1"
     )
     c = distributed.Client(cluster)
     try:
