@@ -242,6 +242,60 @@ def _rect_kernels(est, wanted):
     return {k: est._cache[("rect_kernel",) + k] for k in wanted}
 
 
+def _polarized_averaging_biases(est, a, b, components, grid, window_t):
+    """The pixel shapes' part of the expected pseudo-power of Q, U (and T x Q, U) maps averaged into pixels.
+
+    Per component of maps a x b: TE/TB (T of a with Q, U of b), ET/BT (Q, U of a with T of b), EE/BB/EB, from
+    :func:`~cmbtools.spectrum.polarized_averaging_bias.polarized_averaging_bias` with the guess as seen on the grid
+    (without the pixel windows).  With B-mode purification only the components without B (TE, ET, EE) are
+    corrected: the pure B's response to the pixel shapes is not modelled.
+    """
+    from cmbtools.spectrum.averaging_bias import pair_radius
+    from cmbtools.spectrum.polarized_averaging_bias import polarized_averaging_bias
+    from cmbtools.spectrum.spin2_pixel_window import polarization_pixel_window
+
+    sky = est.sky_lmax
+    lmax = est.lmax
+    window_p = np.zeros(sky + 1)
+    w = np.asarray(polarization_pixel_window(est.nside, sky, nthreads=est._threads()), dtype=np.float64)[: sky + 1]
+    window_p[: w.size] = w
+    wins = {"T": window_t, "E": window_p, "B": window_p}
+
+    def sky_spectrum(col):
+        """The guess of a column component on the grid without the two pixel windows (zero where they are)."""
+        prod = wins[col[0]] * wins[col[1]]
+        return np.where(prod > 0, grid(col) / np.where(prod > 0, prod, 1.0), 0.0)
+
+    def radius(x, y):
+        """:func:`pair_radius` of two mask names' fields (their beams, without the windows)."""
+        fa = est._sky_factors[x] * est._sky_factors[y]
+        wa, wb = wins["T" if x[0] == "t" else "E"], wins["T" if y[0] == "t" else "E"]
+        prod = wa * wb
+        return pair_radius(est.nside, np.where(prod > 0, fa / np.where(prod > 0, prod, 1.0), 0.0))
+
+    pure = est.purify_b
+    out = {}
+    if any(c in components for c in ("EE", "BB", "EB")):
+        pa, pb = "p" + a, "p" + b
+        same = est._key_of[pa] == est._key_of[pb]
+        got = polarized_averaging_bias(
+            "PP", est.masks[pa], None if same else est.masks[pb],
+            {k: sky_spectrum(k) for k in ("EE", "BB", "EB")}, window_p, window_p, lmax, radius=radius(pa, pb))
+        out["EE"] = got["EE"]
+        if not pure:
+            out["BB"], out["EB"] = got["BB"], got["EB"]
+    for c, t_side, p_side, other in (("TE", "t" + a, "p" + b, "TB"), ("ET", "t" + b, "p" + a, "BT")):
+        if c not in components:
+            continue
+        got = polarized_averaging_bias(
+            "TP", est.masks[t_side], est.masks[p_side], {k: sky_spectrum(k) for k in ("TE", "TB")},
+            window_t, window_p, lmax, radius=radius(t_side, p_side))
+        out[c] = got["TE"]
+        if not pure and other in components:
+            out[other] = got["TB"]
+    return out
+
+
 def binned_columns(binning, lmax):
     """(lmax+1,) bool: the multipoles inside the bins (the others, below and above, count as leakage)."""
     idx = np.full(lmax + 1, -1)
@@ -306,6 +360,8 @@ def row_factors(est, a, b, components, terms, kernels):
         shape = averaging_bias(ta, signal / safe, window, lmax, mask2=None if same else tb,
                                radius=pair_radius(est.nside, factor / safe), nthreads=est._threads())
         bias["TT"] = shape if "TT" not in bias else bias["TT"] + shape
+        for c, shape in _polarized_averaging_biases(est, a, b, components, grid, window).items():
+            bias[c] = shape if c not in bias else bias[c] + shape
     inside = binned_columns(est.binning, lmax)
     out = {}
     for c in components:
