@@ -113,10 +113,6 @@ def _tables(series, chord_max):
     return step, out
 
 
-def _lookup(table, step, chord2):
-    return _ab._lookup(table, step, chord2.copy())
-
-
 def _frames(vectors):
     """``e_theta + i e_phi`` at unit vectors (..., 3) (never at a pole: nodes and centres are inside pixels)."""
     x, y, z = vectors[..., 0], vectors[..., 1], vectors[..., 2]
@@ -126,6 +122,18 @@ def _frames(vectors):
     out[..., 1] = (z * y + 1j * x) / rho
     out[..., 2] = -rho
     return out
+
+
+def _double_angle(a, b):
+    """(cos 2 alpha, sin 2 alpha) of the direction (a, b) = (t . e_theta, t . e_phi); (1, 0) where it is null."""
+    m = a * a + b * b
+    same = m < 1e-24
+    inv = 1.0 / np.where(same, 1.0, m)
+    cos2 = (a * a - b * b) * inv
+    sin2 = 2.0 * a * b * inv
+    cos2[same] = 1.0
+    sin2[same] = 0.0
+    return cos2, sin2
 
 
 def _phase(raw):
@@ -165,25 +173,27 @@ def _key(kind, w_a, w_b, spectra, win_a, win_b, lmax, radius, max_centres, order
     return h.hexdigest()
 
 
-def polarized_averaging_bias(kind, mask, mask2, spectra, window, window2, lmax, *, radius=None,
-                             max_centres=_ab.MAX_CENTRES, order=_ab.ORDER) -> dict:
+def polarized_averaging_bias(mask, mask2, spectra, window_t, window_p, lmax, *, parts=("PP", "TP", "PT"),
+                             radius=None, max_centres=_ab.MAX_CENTRES, order=_ab.ORDER) -> dict:
     """Expected pseudo-spectra of pixel-averaged maps minus those of the window model, for given sky spectra.
 
     Parameters
     ----------
-    kind : {'PP', 'TP'}
-        'PP': Q, U of map a (weights ``mask``) with Q, U of map b (``mask2``): returns 'EE', 'BB', 'EB' (EB the
-        mean of E_a B_b and B_a E_b).  'TP': T of map a (``mask``) with Q, U of map b (``mask2``): returns
-        'TE', 'TB' (E_a T_b is 'TP' with the maps' roles swapped: the same pairs).
-    mask, mask2 : ndarray of shape (12 nside^2,)
-        Weights (RING); ``mask2`` None: the same as ``mask``.
+    mask : ndarray of shape (12 nside^2,)
+        Weights (RING) of map a's fields in ``parts``.
+    mask2 : ndarray of shape (12 nside^2,) or None
+        Weights of map b's fields (None: ``mask``, an auto-spectrum).
     spectra : dict of str to array_like
-        The beam-convolved sky spectra without pixel window, to the sky's band limit: 'EE', 'BB', 'EB' for
-        'PP', 'TE', 'TB' for 'TP' (missing keys: zero).
-    window, window2 : array_like
-        The pixel windows the estimator divides out for the fields of map a and map b (``w_T`` or ``w_P``).
+        The beam-convolved sky spectra without pixel window, from l = 0 to the sky's band limit: 'EE', 'BB', 'EB',
+        'TE', 'TB' (missing keys: zero).
+    window_t, window_p : array_like
+        The pixel windows the estimator divides out of T and of E, B.
     lmax : int
         Largest multipole of the result.
+    parts : sequence of {'PP', 'TP', 'PT'}
+        'PP': Q, U of map a with Q, U of map b -> 'EE', 'BB', 'EB' (EB the mean of E_a B_b and B_a E_b);
+        'TP': T of map a with Q, U of map b -> 'TE', 'TB'; 'PT': Q, U of map a with T of map b -> 'ET', 'BT'.
+        They share the pairs of pixels: one pass computes all.
     radius : float, optional
         Largest pair separation, radians (default 7 pixels).
     max_centres, order : int
@@ -193,13 +203,19 @@ def polarized_averaging_bias(kind, mask, mask2, spectra, window, window2, lmax, 
     -------
     dict of str to ndarray of shape (lmax+1,)
         The bias of each pseudo-spectrum, in the units of ``spectra`` (new arrays on every call).
+
+    Notes
+    -----
+    Results are kept in memory like :func:`~cmbtools.spectrum.averaging_bias.averaging_bias`'s (the last
+    ``CACHE_SIZE``, keyed by a hash of every input's values);
+    :func:`~cmbtools.spectrum.averaging_bias.clear_averaging_bias_cache` empties both.
     """
-    if kind not in ("PP", "TP"):
-        raise ValueError(kind)
-    names = ("EE", "BB", "EB") if kind == "PP" else ("TE", "TB")
-    n = max(np.size(spectra[k]) for k in names if k in spectra)
+    parts = tuple(sorted(set(parts)))
+    if not parts or any(p not in ("PP", "TP", "PT") for p in parts):
+        raise ValueError(f"parts must be some of 'PP', 'TP', 'PT'; got {parts!r}")
+    n = max([np.size(v) for v in spectra.values()] + [1])
     sp = {}
-    for k in names:
+    for k in ("EE", "BB", "EB", "TE", "TB"):
         v = np.zeros(n)
         if k in spectra:
             a = np.asarray(spectra[k], dtype=np.float64)
@@ -207,19 +223,19 @@ def polarized_averaging_bias(kind, mask, mask2, spectra, window, window2, lmax, 
         sp[k] = v
     w_a = np.asarray(mask, dtype=np.float64)
     w_b = None if mask2 is None else np.asarray(mask2, dtype=np.float64)
-    win_a = np.zeros(n)
-    win_b = np.zeros(n)
-    a = np.asarray(window, dtype=np.float64)[:n]
-    win_a[: a.size] = a
-    a = np.asarray(window2, dtype=np.float64)[:n]
-    win_b[: a.size] = a
-    key = _key(kind, w_a, w_b, sp, win_a, win_b, lmax, radius, max_centres, order)
+    wins = []
+    for win in (window_t, window_p):
+        v = np.zeros(n)
+        a = np.asarray(win, dtype=np.float64)[:n]
+        v[: a.size] = a
+        wins.append(v)
+    key = _key(",".join(parts), w_a, w_b, sp, wins[0], wins[1], lmax, radius, max_centres, order)
     with _cache_lock:
         kept = _cache.get(key)
         if kept is not None:
             _cache.move_to_end(key)
             return {k: v.copy() for k, v in kept.items()}
-    result = _pair_sums(kind, w_a, w_b, sp, win_a, win_b, lmax, radius, max_centres, order)
+    result = _pair_sums(parts, w_a, w_b, sp, wins[0], wins[1], lmax, radius, max_centres, order)
     with _cache_lock:
         _cache[key] = {k: v.copy() for k, v in result.items()}
         _cache.move_to_end(key)
@@ -228,52 +244,79 @@ def polarized_averaging_bias(kind, mask, mask2, spectra, window, window2, lmax, 
     return result
 
 
-def _pair_sums(kind, w_a, w_b, sp, win_a, win_b, lmax, radius, max_centres, order):
+def _gather(tables, step, chord2):
+    """Cubic interpolation of each table of ``tables`` (each (4, k), :func:`_tables`) at squared chords."""
+    pos = chord2 * (1.0 / step)
+    i = pos.astype(np.intp)
+    if tables:
+        np.minimum(i, tables[0].shape[1] - 1, out=i)
+    pos -= i
+    out = []
+    for t in tables:
+        v = np.take(t[3], i)
+        v *= pos
+        v += np.take(t[2], i)
+        v *= pos
+        v += np.take(t[1], i)
+        v *= pos
+        v += np.take(t[0], i)
+        out.append(v)
+    return out
+
+
+def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, order):
     import ducc0
 
+    symmetric_masks = w_b is None
     w_b = w_a if w_b is None else w_b
     npix = w_a.size
     nside = check_nside(int(round(math.sqrt(npix / 12))))
     if radius is None:
         radius = _ab.MIN_RADIUS_PIXELS * math.sqrt(4.0 * math.pi / npix)
-    pp = kind == "PP"
-    out_names = ("EE", "BB", "EB") if pp else ("TE", "TB")
+    want_pp, want_tp, want_pt = "PP" in parts, "TP" in parts, "PT" in parts
+    names = {"PP": ("EE", "BB", "EB"), "TP": ("TE", "TB"), "PT": ("ET", "BT")}
     if not np.any(w_a != 0.0) or not np.any(w_b != 0.0):
-        return {k: np.zeros(lmax + 1) for k in out_names}
-    ell = np.arange(sp[out_names[0]].size)
+        return {k: np.zeros(lmax + 1) for p in parts for k in names[p]}
+    ell = np.arange(sp["EE"].size)
     norm = (2.0 * ell + 1.0) / (4.0 * np.pi)
-    win2 = win_a * win_b
-    if pp:
-        # xi_+ (d22), xi_- (d2-2), xi_EB (d2-2): averaged (no window) then model (windowed)
-        series = [(norm * (sp["EE"] + sp["BB"]), (2, 2)), (norm * (sp["EE"] - sp["BB"]), (2, -2)),
-                  (norm * sp["EB"], (2, -2))]
-    else:
-        series = [(norm * sp["TE"], (2, 0)), (norm * sp["TB"], (2, 0))]
-    has = [bool(np.any(c != 0.0)) for c, _ in series]
-    series = series + [(c * win2, k) for c, k in series]
+    # the correlation functions in the great circle's frame (the module notes); T x P ones carry +xi_TE, +xi_TB
+    series = {}
+    if want_pp:
+        series.update({"plus": (norm * (sp["EE"] + sp["BB"]), (2, 2), win_p * win_p),
+                       "minus": (norm * (sp["EE"] - sp["BB"]), (2, -2), win_p * win_p),
+                       "eb": (norm * sp["EB"], (2, -2), win_p * win_p)})
+    if want_tp or want_pt:
+        series.update({"te": (norm * sp["TE"], (2, 0), win_t * win_p), "tb": (norm * sp["TB"], (2, 0), win_t * win_p)})
+    series = {k: v for k, v in series.items() if np.any(v[0] != 0.0)}
     base = ducc0.healpix.Healpix_Base(nside, "RING")
     reach = radius + 2.0 * base.max_pixrad()
     chord_max = 2.0 * math.sin(min(reach, math.pi) / 2.0) * 1.0001
-    step, tables = _tables([s for s, h in zip(series, has + has) if h], chord_max)
-    it = iter(tables)
-    tab = [next(it) if h else None for h in has + has]
-    ntab = len(has)
-    avg_t, mod_t = tab[:ntab], tab[ntab:]
+    names_s = list(series)
+    step, tabs = _tables([(series[k][0], series[k][1]) for k in names_s]
+                         + [(series[k][0] * series[k][2], series[k][1]) for k in names_s], chord_max)
+    ns = len(names_s)
+    avg_tab, mod_tab = tabs[:ns], tabs[ns:]
+    col = {k: j for j, k in enumerate(names_s)}
 
     centres, share = _ab._centres(w_a, max_centres)
     theta, phi = base.pix2ang(centres).T
     hist_chord_max = 2.0 * math.sin(min(radius, math.pi) / 2.0) * 1.0001
     scale = _ab._HIST_BINS / hist_chord_max
-    nh = 3 if pp else 2
-    hist = np.zeros((nh, _ab._HIST_BINS + 2))
-    block = max(1, (1 << 19) // (order**4))
-    symmetric = pp and w_b is w_a and centres.size == np.count_nonzero(w_a)
+    keys = [k for p in ("PP", "TP", "PT") if p in parts for k in {"PP": ("plus", "minus", "cross"), "TP": ("tq", "tu"),
+                                                                    "PT": ("qt", "ut")}[p]]
+    hist = {k: np.zeros(_ab._HIST_BINS + 2) for k in keys}
+    block = max(1, (1 << 18) // (order**4))
+    # each unordered pair once when both maps are one and every pixel of the mask is a centre: PP's terms are
+    # symmetric in p, q; T(p) P(q) and P(p) T(q) swap (both are computed and averaged)
+    symmetric = symmetric_masks and centres.size == np.count_nonzero(w_a)
+    if symmetric and (want_tp or want_pt):
+        want_tp = want_pt = True
     pairs_p, pairs_q, pairs_w = [], [], []
     for k, (p, th, ph) in enumerate(zip(centres, theta, phi)):
         ranges = base.query_disc(np.array([th, ph]), radius)
         q = np.concatenate([np.arange(a, b) for a, b in ranges])
         q = q[w_b[q] != 0.0]
-        if symmetric:  # each unordered pair once: Re and the d2-2 terms are symmetric in p, q
+        if symmetric:
             q = q[q >= p]
             pairs_w.append(np.where(q > p, 2.0, 1.0) * (w_a[p] * w_b[q]))
         else:
@@ -285,65 +328,103 @@ def _pair_sums(kind, w_a, w_b, sp, win_a, win_b, lmax, radius, max_centres, orde
     index_p, index_q = index[: pairs_p.size], index[pairs_p.size :]
     nodes, wt = _ab._pixel_nodes(nside, used, order)
     eps = _frames(nodes)
+    npts = nodes.shape[1]
+    # per pixel, its nodes' vectors, e_theta and e_phi stacked: one small product per pair of pixels gives every
+    # node pair's cos beta, y . e_theta(x), y . e_phi(x), x . e_theta(y), x . e_phi(y)
+    stacked = np.ascontiguousarray(np.concatenate([nodes, eps.real, eps.imag], axis=1))
+    del eps
     centre_vec = np.asarray(base.pix2vec(used))
     centre_eps = _frames(centre_vec)
     weight2 = np.outer(wt, wt).ravel()
+    npts = nodes.shape[1]
     for s in range(0, pairs_p.size, block):
         ip, iq = index_p[s : s + block], index_q[s : s + block]
         npair = ip.size
-        xp, xq = nodes[ip], nodes[iq]
-        c2 = np.matmul(xp, xq.transpose(0, 2, 1)).reshape(npair, -1)
+        g = np.matmul(stacked[ip], stacked[iq].transpose(0, 2, 1))  # (B, 3n, 3n)
+        n_ = npts
+        c2 = g[:, :n_, :n_].reshape(npair, -1)
         c2 *= -2.0
         c2 += 2.0
         np.clip(c2, 0.0, None, out=c2)
-        # frame factors: z_x at the nodes of p (towards the node of q), z_y at the nodes of q
-        zy = _phase(np.matmul(xp, eps[iq].transpose(0, 2, 1)).reshape(npair, -1))  # x . eps_y
+        vals = _gather(avg_tab, step, c2)  # per series, (B, n*n)
+        del c2
+        # e^{2i alpha} at p's node (towards q's node) and at q's node: (cos, sin) of twice the angle from
+        # (y . e_theta(x), y . e_phi(x)) and (x . e_theta(y), x . e_phi(y)); 1 for a node with itself
+        cos_x, sin_x = _double_angle(g[:, n_:2 * n_, :n_].reshape(npair, -1), g[:, 2 * n_:, :n_].reshape(npair, -1))
+        cos_y, sin_y = _double_angle(g[:, :n_, n_:2 * n_].reshape(npair, -1), g[:, :n_, 2 * n_:].reshape(npair, -1))
+        del g
         cp, cq = centre_vec[ip], centre_vec[iq]
         centre2 = np.sum((cp - cq) ** 2, axis=1)
-        zq = _phase(np.einsum("ij,ij->i", cp, centre_eps[iq]))  # centre frames
-        if pp:
-            zx = _phase(np.matmul(eps[ip], xq.transpose(0, 2, 1)).reshape(npair, -1))  # y . eps_x
-            zp = _phase(np.einsum("ij,ij->i", centre_eps[ip], cq))
-            # <P_r(p) P_r(q)*> and <P_r(p) P_r(q)> in the centres' frame, averaged over the node pairs
-            plus = (_lookup(avg_t[0], step, c2) * (zx * zy.conj())) @ weight2 * (zp.conj() * zq)
-            minus_nodes = np.zeros(c2.shape, dtype=np.complex128)
-            if has[1]:
-                minus_nodes += _lookup(avg_t[1], step, c2)
-            if has[2]:
-                minus_nodes += 2j * _lookup(avg_t[2], step, c2)
-            minus = (minus_nodes * (zx * zy)) @ weight2 * (zp.conj() * zq.conj())
-            d_plus = plus.real - _lookup(mod_t[0], step, centre2)
-            d_minus = minus.real - (_lookup(mod_t[1], step, centre2) if has[1] else 0.0)
-            d_cross = minus.imag - (2.0 * _lookup(mod_t[2], step, centre2) if has[2] else 0.0)
-            deltas = (d_plus, d_minus, d_cross)
-        else:
-            # <T(p) P_r(q)> = -(xi_TE + i xi_TB): the T node at p, the P node at q
-            nodes_val = np.zeros(c2.shape, dtype=np.complex128)
-            if has[0]:
-                nodes_val += _lookup(avg_t[0], step, c2)
-            if has[1]:
-                nodes_val += 1j * _lookup(avg_t[1], step, c2)
-            val = (nodes_val * zy) @ weight2 * zq.conj()
-            d_te = val.real - (_lookup(mod_t[0], step, centre2) if has[0] else 0.0)
-            d_tb = val.imag - (_lookup(mod_t[1], step, centre2) if has[1] else 0.0)
-            deltas = (d_te, d_tb)
+        model = _gather(mod_tab, step, centre2)  # per series, (B,)
+        zp = _phase(np.einsum("ij,ij->i", centre_eps[ip], cq))  # centre frames: at p towards q
+        zq = _phase(np.einsum("ij,ij->i", cp, centre_eps[iq]))  # at q
+        deltas = {}
+
+        def get(name, where):
+            return where[col[name]] if name in col else None
+
+        def wsum(*terms):
+            """sum over node pairs of the products of each (value, factor) term, weighted by the rule."""
+            out = np.zeros(npair)
+            for value, factor in terms:
+                if value is not None:
+                    out += (value * factor) @ weight2
+            return out
+
+        def model_of(name):
+            m = get(name, model)
+            return 0.0 if m is None else m
+
+        if want_pp:
+            # <P_r P_r*> = xi_+ turned by z_x conj(z_y); <P_r P_r> = xi_- + 2i xi_EB turned by z_x z_y
+            cd = cos_x * cos_y
+            ss = sin_x * sin_y
+            sc = sin_x * cos_y
+            cs = cos_x * sin_y
+            xi_p, xi_m, xi_eb = get("plus", vals), get("minus", vals), get("eb", vals)
+            plus = (wsum((xi_p, cd + ss)) + 1j * wsum((xi_p, sc - cs))) * (zp.conj() * zq)
+            v_re, v_im = cd - ss, sc + cs
+            minus = (wsum((xi_m, v_re), (xi_eb, -2.0 * v_im)) + 1j * wsum((xi_m, v_im), (xi_eb, 2.0 * v_re))) * (
+                zp.conj() * zq.conj())
+            deltas["plus"] = plus.real - model_of("plus")
+            deltas["minus"] = minus.real - model_of("minus")
+            deltas["cross"] = minus.imag - 2.0 * model_of("eb")
+        xi_te, xi_tb = (get("te", vals), get("tb", vals)) if (want_tp or want_pt) else (None, None)
+        if want_tp:  # T at p, P at q: (xi_TE + i xi_TB) turned by z_y, then into the centre frame of q
+            val = (wsum((xi_te, cos_y), (xi_tb, -sin_y)) + 1j * wsum((xi_te, sin_y), (xi_tb, cos_y))) * zq.conj()
+            deltas["tq"] = val.real - model_of("te")
+            deltas["tu"] = val.imag - model_of("tb")
+        if want_pt:  # P at p, T at q
+            val = (wsum((xi_te, cos_x), (xi_tb, -sin_x)) + 1j * wsum((xi_te, sin_x), (xi_tb, cos_x))) * zp.conj()
+            deltas["qt"] = val.real - model_of("te")
+            deltas["ut"] = val.imag - model_of("tb")
+        if symmetric and "tq" in deltas:
+            for a, b in (("tq", "qt"), ("tu", "ut")):
+                deltas[a] = deltas[b] = 0.5 * (deltas[a] + deltas[b])
         pos = np.sqrt(centre2) * scale
         i = np.minimum(pos.astype(np.intp), _ab._HIST_BINS)
         f = pos - i
         pw = pairs_w[s : s + block]
-        for h, d in zip(hist, deltas):
-            wgt = pw * d
+        for name in keys:
+            wgt = pw * deltas[name]
+            h = hist[name]
             h += np.bincount(i, weights=wgt * (1.0 - f), minlength=_ab._HIST_BINS + 2)[: _ab._HIST_BINS + 2]
             h[1:] += np.bincount(i, weights=wgt * f, minlength=_ab._HIST_BINS + 1)[: _ab._HIST_BINS + 1]
     chord = np.arange(_ab._HIST_BINS + 2) / scale
     x = 1.0 - chord**2 / 2.0
     omega = 4.0 * np.pi / npix
     f = omega**2 / (4.0 * np.pi)
-    if pp:
-        a = wigner_d_adjoint(hist[0], (2, 2), x, lmax)
-        b = wigner_d_adjoint(hist[1], (2, -2), x, lmax)
-        c = wigner_d_adjoint(hist[2], (2, -2), x, lmax)
-        return {"EE": f * 0.5 * (a + b), "BB": f * 0.5 * (a - b), "EB": f * 0.5 * c}
-    # the tables hold +xi_TE, +xi_TB, so the deltas are minus those of <T Q_r>, <T U_r>: TE~ = -f sum ... d20
-    return {"TE": f * wigner_d_adjoint(hist[0], (2, 0), x, lmax),
-            "TB": f * wigner_d_adjoint(hist[1], (2, 0), x, lmax)}
+    out = {}
+    if "PP" in parts:
+        a = wigner_d_adjoint(hist["plus"], (2, 2), x, lmax)
+        b = wigner_d_adjoint(hist["minus"], (2, -2), x, lmax)
+        c = wigner_d_adjoint(hist["cross"], (2, -2), x, lmax)
+        out.update({"EE": f * 0.5 * (a + b), "BB": f * 0.5 * (a - b), "EB": f * 0.5 * c})
+    # the deltas of T x P are minus those of <T Q_r>, <T U_r> (the tables hold +xi_TE, +xi_TB): TE~ = -f sum .. d20
+    if "TP" in parts:
+        out["TE"] = f * wigner_d_adjoint(hist["tq"], (2, 0), x, lmax)
+        out["TB"] = f * wigner_d_adjoint(hist["tu"], (2, 0), x, lmax)
+    if "PT" in parts:
+        out["ET"] = f * wigner_d_adjoint(hist["qt"], (2, 0), x, lmax)
+        out["BT"] = f * wigner_d_adjoint(hist["ut"], (2, 0), x, lmax)
+    return out

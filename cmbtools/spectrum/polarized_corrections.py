@@ -248,7 +248,8 @@ def _polarized_averaging_biases(est, a, b, components, grid, window_t):
     Per component of maps a x b: TE/TB (T of a with Q, U of b), ET/BT (Q, U of a with T of b), EE/BB/EB, from
     :func:`~cmbtools.spectrum.polarized_averaging_bias.polarized_averaging_bias` with the guess as seen on the grid
     (without the pixel windows).  With B-mode purification only the components without B (TE, ET, EE) are
-    corrected: the pure B's response to the pixel shapes is not modelled.
+    corrected: the pure B's response to the pixel shapes is not modelled.  The parts that share their masks
+    (T and P of a map under one mask) are computed in one pass over the pairs of pixels.
     """
     from cmbtools.spectrum.averaging_bias import pair_radius
     from cmbtools.spectrum.polarized_averaging_bias import polarized_averaging_bias
@@ -273,26 +274,29 @@ def _polarized_averaging_biases(est, a, b, components, grid, window_t):
         prod = wa * wb
         return pair_radius(est.nside, np.where(prod > 0, fa / np.where(prod > 0, prod, 1.0), 0.0))
 
-    pure = est.purify_b
+    spectra = {k: sky_spectrum(k) for k in ("EE", "BB", "EB", "TE", "TB")}
+    key = est._key_of
+    # the calls: (mask of map a's fields, mask of map b's fields, parts); parts sharing their masks share one pass
+    if a == b:
+        calls = ([("p" + a, None, ("PP", "TP"))] if key["t" + a] == key["p" + a]
+                 else [("p" + a, None, ("PP",)), ("t" + a, "p" + a, ("TP",))])
+    elif key["t" + a] == key["p" + a] and key["t" + b] == key["p" + b]:
+        calls = [("p" + a, "p" + b, ("PP", "TP", "PT"))]
+    else:
+        calls = [("p" + a, "p" + b, ("PP",)), ("t" + a, "p" + b, ("TP",)), ("p" + a, "t" + b, ("PT",))]
+    got = {}
+    for first, second, parts in calls:
+        same = second is None or key[first] == key[second]
+        fields = {"PP": ("p", "p"), "TP": ("t", "p"), "PT": ("p", "t")}[parts[0]]
+        got.update(polarized_averaging_bias(
+            est.masks[first], None if same else est.masks[second], spectra, window_t, window_p, lmax, parts=parts,
+            radius=radius(fields[0] + a, fields[1] + b)))
+    # the measured components of maps a x b: TE = T_a E_b ('TP'), ET = E_a T_b ('PT'), TB/BT likewise
+    names = {"EE": "EE", "BB": "BB", "EB": "EB", "TE": "TE", "TB": "TB", "ET": "ET", "BT": "BT"}
     out = {}
-    if any(c in components for c in ("EE", "BB", "EB")):
-        pa, pb = "p" + a, "p" + b
-        same = est._key_of[pa] == est._key_of[pb]
-        got = polarized_averaging_bias(
-            "PP", est.masks[pa], None if same else est.masks[pb],
-            {k: sky_spectrum(k) for k in ("EE", "BB", "EB")}, window_p, window_p, lmax, radius=radius(pa, pb))
-        out["EE"] = got["EE"]
-        if not pure:
-            out["BB"], out["EB"] = got["BB"], got["EB"]
-    for c, t_side, p_side, other in (("TE", "t" + a, "p" + b, "TB"), ("ET", "t" + b, "p" + a, "BT")):
-        if c not in components:
-            continue
-        got = polarized_averaging_bias(
-            "TP", est.masks[t_side], est.masks[p_side], {k: sky_spectrum(k) for k in ("TE", "TB")},
-            window_t, window_p, lmax, radius=radius(t_side, p_side))
-        out[c] = got["TE"]
-        if not pure and other in components:
-            out[other] = got["TB"]
+    for c, g in names.items():
+        if c in components and g in got and not (est.purify_b and "B" in c):
+            out[c] = got[g]
     return out
 
 
