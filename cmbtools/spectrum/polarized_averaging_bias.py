@@ -77,7 +77,22 @@ def _d_recurrence(kind, x, lmax):
 
 
 def wigner_d_series(coeffs, kind, x) -> np.ndarray:
-    """``sum_{l>=2} c_l d^l_{m1 m2}(beta)`` at ``x = cos beta`` (``kind`` = (2, 2), (2, -2) or (2, 0))."""
+    """``sum_{l>=2} c_l d^l_{m1 m2}(beta)`` at ``x = cos beta``.
+
+    Parameters
+    ----------
+    coeffs : array_like
+        c_l from l = 0 (the terms below l = 2 are ignored).
+    kind : tuple of int
+        (m1, m2): (2, 2), (2, -2) or (2, 0).
+    x : array_like
+        cos beta.
+
+    Returns
+    -------
+    ndarray
+        The series, shaped like ``x``.
+    """
     c = np.asarray(coeffs, dtype=np.float64)
     x = np.asarray(x, dtype=np.float64)
     out = np.zeros_like(x)
@@ -88,7 +103,23 @@ def wigner_d_series(coeffs, kind, x) -> np.ndarray:
 
 
 def wigner_d_adjoint(values, kind, x, lmax) -> np.ndarray:
-    """``sum_k v_k d^l_{m1 m2}(beta_k)`` for l = 0..lmax (zero below l = 2): the adjoint of the series."""
+    """``sum_k v_k d^l_{m1 m2}(beta_k)`` for l = 0..lmax (zero below l = 2): the adjoint of the series.
+
+    Parameters
+    ----------
+    values : array_like
+        v_k, one per point.
+    kind : tuple of int
+        (m1, m2): (2, 2), (2, -2) or (2, 0).
+    x : array_like
+        cos beta_k.
+    lmax : int
+        Largest multipole.
+
+    Returns
+    -------
+    ndarray of shape (lmax+1,)
+    """
     v = np.asarray(values, dtype=np.float64)
     out = np.zeros(lmax + 1)
     for ell, d in _d_recurrence(tuple(kind), np.asarray(x, dtype=np.float64), lmax):
