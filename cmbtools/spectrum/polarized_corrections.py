@@ -276,21 +276,32 @@ def _polarized_averaging_biases(est, a, b, components, grid, window_t):
 
     spectra = {k: sky_spectrum(k) for k in ("EE", "BB", "EB", "TE", "TB")}
     key = est._key_of
-    # the calls: (mask of map a's fields, mask of map b's fields, parts); parts sharing their masks share one pass
+    # E_a x T_b: the T x P sums with the beams of E_a and T_b (differ from T_a x E_b's when the maps' beams do)
+    spectra_et = dict(spectra, TE=sky_spectrum("ET"), TB=sky_spectrum("BT")) if a != b else spectra
+    et_same = all(np.array_equal(spectra[k], spectra_et[k]) for k in ("TE", "TB"))
+    # the calls: (mask of map a's fields, mask of map b's fields, parts, spectra); parts sharing their masks and
+    # spectra share one pass over the pairs
     if a == b:
-        calls = ([("p" + a, None, ("PP", "TP"))] if key["t" + a] == key["p" + a]
-                 else [("p" + a, None, ("PP",)), ("t" + a, "p" + a, ("TP",))])
+        calls = ([("p" + a, None, ("PP", "TP"), spectra)] if key["t" + a] == key["p" + a]
+                 else [("p" + a, None, ("PP",), spectra), ("t" + a, "p" + a, ("TP",), spectra)])
     elif key["t" + a] == key["p" + a] and key["t" + b] == key["p" + b]:
-        calls = [("p" + a, "p" + b, ("PP", "TP", "PT"))]
+        calls = ([("p" + a, "p" + b, ("PP", "TP", "PT"), spectra)] if et_same
+                 else [("p" + a, "p" + b, ("PP", "TP"), spectra), ("p" + a, "p" + b, ("PT",), spectra_et)])
+    elif key["t" + a] == key["t" + b] and key["p" + a] == key["p" + b] and et_same:
+        # both maps under the same pair of masks and beams: E_a T_b has the pairs of T_a E_b seen from the other end
+        calls = [("p" + a, "p" + b, ("PP",), spectra), ("t" + a, "p" + b, ("TP",), spectra)]
     else:
-        calls = [("p" + a, "p" + b, ("PP",)), ("t" + a, "p" + b, ("TP",)), ("p" + a, "t" + b, ("PT",))]
+        calls = [("p" + a, "p" + b, ("PP",), spectra), ("t" + a, "p" + b, ("TP",), spectra),
+                 ("p" + a, "t" + b, ("PT",), spectra_et)]
     got = {}
-    for first, second, parts in calls:
+    for first, second, parts, spec in calls:
         same = second is None or key[first] == key[second]
         fields = {"PP": ("p", "p"), "TP": ("t", "p"), "PT": ("p", "t")}[parts[0]]
         got.update(polarized_averaging_bias(
-            est.masks[first], None if same else est.masks[second], spectra, window_t, window_p, lmax, parts=parts,
+            est.masks[first], None if same else est.masks[second], spec, window_t, window_p, lmax, parts=parts,
             radius=radius(fields[0] + a, fields[1] + b)))
+    if "ET" in components and "ET" not in got:
+        got["ET"], got["BT"] = got["TE"], got["TB"]
     # the measured components of maps a x b: TE = T_a E_b ('TP'), ET = E_a T_b ('PT'), TB/BT likewise
     names = {"EE": "EE", "BB": "BB", "EB": "EB", "TE": "TE", "TB": "TB", "ET": "ET", "BT": "BT"}
     out = {}
