@@ -108,8 +108,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         uncorrected (the pure B's response is not modelled).  It adds about 3-4 times the temperature
         correction's cost to the first call (DEVELOPERS.md "pixel averages").  False: maps sampled at the
         pixel centres.  None (default): True with the HEALPix pixel
-        windows up to nside 512 (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`), like the
-        temperature estimator.
+        windows (at every nside), like the temperature estimator.
     nthreads : int, optional
         Threads of the transforms and of the coupling kernel.
     max_condition_number : float, default=1e3
@@ -234,7 +233,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 "instead."
             )
         sky_lmax = lmax if sky_lmax is None else check_int(sky_lmax, "sky_lmax", minimum=lmax, maximum=8 * nside)
-        if averaged_pixels is None:  # the temperature estimator's default: averaged maps up to nside 512
+        if averaged_pixels is None:  # the temperature estimator's default: averaged maps
             averaged_pixels = default_averaged_pixels(nside, pixel_window)
         if not isinstance(averaged_pixels, (bool, np.bool_)):
             raise InvalidInputError(
