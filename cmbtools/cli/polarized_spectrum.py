@@ -43,7 +43,9 @@ def run_polarized(args, outputs_checked) -> int:
     from cmbtools._core.checks import check_same_nside
     from cmbtools.cli.common import pixel_model_from_args
     from cmbtools._core.files import sha256_file
-    from cmbtools.cli.common import binning_from_args, bins_top, describe_binning, print_range_warning
+    from cmbtools.cli.common import (
+        binning_from_args, bins_top, corrected_covariance_key, describe_binning, print_range_warning,
+    )
     from cmbtools.exceptions import InvalidInputError
     from cmbtools.maps.polarized_fits import read_iqu
     from cmbtools.spectrum.one_call import drop_missing_pixels
@@ -69,13 +71,7 @@ def run_polarized(args, outputs_checked) -> int:
     transfer = None
     if args.transfer is not None:  # the table of `validate --polarized` (a spectrum column)
         transfer = sp.PolarizedBandpowerTransfer.read_csv(args.transfer)
-    corrected_key = None if covariance_from is None else covariance_from.settings.get("bandpower_transfer_key")
-    if corrected_key is not None and (transfer is None or corrected_key != transfer.key):
-        raise InvalidInputError(
-            f"{args.covariance_from}: the covariance is of bandpowers divided by a transfer function "
-            f"(key {corrected_key}); give the same table with --transfer"
-            + ("." if transfer is None else f" (the --transfer table has key {transfer.key}).")
-        )
+    corrected_key = corrected_covariance_key(covariance_from, transfer, args.covariance_from, args.transfer)
     m1, info1 = read_iqu(args.map, force=args.force)
     w1 = maps.read_mask(args.mask, force=args.force)
     p1 = maps.read_mask(args.pol_mask, force=args.force) if args.pol_mask else w1

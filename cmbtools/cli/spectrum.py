@@ -8,7 +8,8 @@ from cmbtools.cli.error_model import add_error_options
 from cmbtools.cli.noise_bias import add_noise_options
 from cmbtools.cli.polarized_spectrum import add_polarization_options
 from cmbtools.cli.common import (
-    add_binning, add_force, add_overwrite, add_pixel_model, add_threads, binning_from_args, bins_top, describe_binning,
+    add_binning, add_force, add_overwrite, add_pixel_model, add_threads, binning_from_args, bins_top,
+    corrected_covariance_key, describe_binning,
     pixel_model_from_args, positive_float, positive_int, print_range_warning,
 )
 
@@ -291,14 +292,8 @@ def run(args) -> int:
     bp, covariance, errors_text = apply_error_model(args, est, bp, raw, filtered_theory, noise_maps_for_errors,
                                                     cross=m2 is not None, nside=nside)
     measured = bp  # before the transfer correction: the noise bias table is of the measured power
-    corrected_key = None if covariance is None else covariance.settings.get("bandpower_transfer_key")
-    if corrected_key is not None and (transfer is None or corrected_key != transfer.key):
-        # a simulated covariance of `validate --transfer`: already of corrected bandpowers
-        raise InvalidInputError(
-            f"{args.covariance_from}: the covariance is of bandpowers divided by a transfer function "
-            f"(key {corrected_key}); give the same table with --transfer"
-            + ("." if transfer is None else f" (the --transfer table has key {transfer.key}).")
-        )
+    # a simulated covariance of `validate --transfer`: already of corrected bandpowers
+    corrected_key = corrected_covariance_key(covariance, transfer, args.covariance_from, args.transfer)
     if transfer is not None:
         bp = transfer.apply(bp).with_metadata(transfer_file=str(args.transfer),
                                               transfer_file_sha256=sha256_file(args.transfer))
