@@ -97,7 +97,8 @@ def add_arguments(parser):
                              "(--theory, else the built-in fiducial one); real skies: 4 nside - 1 (default: lmax; "
                              "the multipoles between the last bin and lmax are modelled in any case)")
     parser.add_argument("--transfer", metavar="FILE",
-                        help="per-bin transfer function table (transfer.csv of `cmbtools validate`, same bins): "
+                        help="per-bin transfer function table (transfer.csv of `cmbtools validate`, same bins; for "
+                             "I, Q, U maps that of `validate --polarized`, with a spectrum column): "
                              "divide the bandpowers, their errors and covariance by it, undoing a filtering of the "
                              "map that the estimator does not model")
     add_error_options(parser)
