@@ -48,7 +48,10 @@ a '# unit: uK^2' comment; cl without a unit is K^2), as 'cmbtools simulate
 (a spectrum table of N_l as observed, e.g. from 'cmbtools simulate
 --write-noise-spectrum', or a noise bandpower table from
 --write-noise-spectrum), --noise-maps (noise-only maps) or --half-difference
-(two halves of the data whose mean is MAP).
+(two halves of the data whose mean is MAP).  On I, Q, U maps --theory and
+--noise-spectrum take polarized tables (cl_tt_k2, cl_ee_k2, cl_bb_k2,
+cl_te_k2 ..., as 'cmbtools simulate --polarized' writes them, or the table
+of this command on I, Q, U maps, constant over each bin).
 
 Before the mask transforms and the mode-coupling matrix are computed, their
 memory is estimated; the command stops if it exceeds what the machine has
