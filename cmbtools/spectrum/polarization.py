@@ -111,8 +111,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
     max_condition_number : float, default=1e3
         Largest accepted condition number of the binned coupled system (beams etc. divided out).
     force : bool, default=False
-        Build even when the memory estimate (masks, window derivatives, mask transforms to 2 lmax, the dense
-        coupling and covariance kernels of one kernel call), made before any large allocation, exceeds what
+        Build even when the memory estimate (masks, window derivatives, mask transforms to 2 lmax, the
+        couplings' quadrature tables or the pure B's kernel matrices), made before any large allocation, exceeds what
         the machine has available: warn instead of raising.
 
     Attributes
@@ -308,7 +308,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
 
         separate = mask2 is not None or pol_mask2 is not None or beam2 is not None or pol_beam2 is not None
         names = ("11", "12") if separate else ("11",)  # the cross operator: now if asked for, else on first use
-        # every coupling and covariance kernel in one kernel call (ducc0 evaluates the 3j symbols once)
+        # every P-reduced coupling and binned covariance kernel in one quadrature (spin_quadrature: the d-function
+        # tables once for all of them; the pure B's kinds in one call of ducc0's kernel)
         wanted = {key for n in names for c in (_COMPONENTS_AUTO if n == "11" else _COMPONENTS_CROSS)
                   for _, key in self._terms(c, n[0], n[1])}
         keys, spectra = [], []
@@ -318,7 +319,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 if kk not in keys:
                     keys.append(kk)
                     spectra.append(ww)
-        # the removal's TT bias on the coarse grid needs no kernel: on a thread beside the kernel call
+        # the removal's TT bias on the coarse grid needs no coupling: on a thread beside the couplings
         executor = _corrections.start_tt_biases(self, names)
         try:
             self._kernels(wanted, covariance=(keys, spectra))
