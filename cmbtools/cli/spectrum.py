@@ -85,8 +85,8 @@ def add_arguments(parser):
                     help="Gaussian beam of MAP2 (default: the same as MAP's)")
     b2.add_argument("--beam2", metavar="FILE", help="beam table of MAP2")
     parser.add_argument("--no-pixel-window", action="store_true", help="do not deconvolve the HEALPix pixel window")
-    add_pixel_model(parser, "Default up to nside 512 (with the pixel window; for I, Q, U maps it corrects TT); above "
-                            "it, give this option to apply it (it costs about 2 s).")
+    add_pixel_model(parser, "The default with the pixel window, at every nside (for I, Q, U maps it corrects TT; "
+                            "it costs about 2 s of pair sums, run beside the coupling kernel).")
     parser.add_argument("--keep-monopole-dipole", action="store_true",
                         help="do not fit and remove the monopole and dipole before the transform")
     add_noise_options(parser)

@@ -104,8 +104,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         temperature estimator's :func:`~cmbtools.spectrum.averaging_bias.averaging_bias`; about 2 s more to
         build).  E and B get no such correction (measured in DEVELOPERS.md "pixel averages": about 1 % near
         1.5 nside).  False: maps sampled at the pixel centres.  None (default): True with the HEALPix pixel
-        windows up to nside 512 (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`), like the
-        temperature estimator.
+        windows (at every nside), like the temperature estimator.
     nthreads : int, optional
         Threads of the transforms and of the coupling kernel.
     max_condition_number : float, default=1e3
