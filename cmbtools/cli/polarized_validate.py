@@ -259,7 +259,8 @@ def run_polarized(args, outputs, run_dir, where) -> int:
           + f"; B-mode purification: {'yes' if args.purify_b else 'no'}")
     if not args.no_pixel_window:
         skies = "averaged over each pixel" if args.pixelise else "sampled at the pixel centres"
-        model = ("averaged pixels (pixel windows + the pixel shapes' correction of TT)" if averaged
+        model = (("averaged pixels (pixel windows + the pixel shapes' correction of TT, TE, EE"
+                  + (")" if args.purify_b else ", BB)")) if averaged
                  else "pixel centres (pixel windows only)")
         print(f"  pixels: skies {skies}; estimator's model: {model}")
     worst = result.worst_bin()
