@@ -106,6 +106,11 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         1.5 nside).  False: maps sampled at the pixel centres.  None (default): True with the HEALPix pixel
         windows up to nside 512 (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`), like the
         temperature estimator.
+    exact_low_bins : int, default=1
+        The number of lowest bins whose covariance (all six spectra, their cross-covariances) is computed
+        exactly for Gaussian skies and white noise instead of in the narrow-kernel approximation (see
+        :mod:`cmbtools.spectrum.low_ell_covariance`; built on the first estimate, 0.5-2 s at nside 32-128 for
+        a first bin of 16 multipoles); 0 turns it off.
     nthreads : int, optional
         Threads of the transforms and of the coupling kernel.
     max_condition_number : float, default=1e3
@@ -166,6 +171,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         correct_deprojection_bias=True,
         purify_b=False,
         averaged_pixels=None,
+        exact_low_bins=1,
         nthreads=None,
         max_condition_number=MAX_CONDITION_NUMBER,
         force=False,
@@ -205,6 +211,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 CmbtoolsWarning,
                 stacklevel=2,
             )
+        exact_low_bins = check_int(exact_low_bins, "exact_low_bins", minimum=0, maximum=binning.n_bins)
         max_cond = check_positive(max_condition_number, "max_condition_number")
         if max_cond < 1:
             raise InvalidInputError(
@@ -271,6 +278,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         self._set("binning", binning)
         self._set("purify_b", bool(purify_b))
         self._set("averaged_pixels", bool(averaged_pixels))
+        self._set("exact_low_bins", int(exact_low_bins))
         self._set("remove_monopole_dipole", bool(remove_monopole_dipole))
         self._set("masks", {k: unique[key_of[k]] for k in masks})
         self._set("descriptions", {
@@ -530,8 +538,12 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 raise InvalidInputError("The 'noise_maps' parameter is empty; give at least one noise map.")
             noise_vec = acc / count
         x = pair.ainv @ (vec if noise_vec is None else vec - noise_vec)
-        cov_x = pair.ainv @ _pseudo_cov(self, name, spectra_of) @ pair.ainv.T
         s = self._reporting_matrix(pair.components)
+        pseudo_cov = _pseudo_cov(self, name, spectra_of)
+        if self.exact_low_bins:
+            pseudo_cov = self._with_exact_low_bins(pseudo_cov, name, pair, (s @ x).reshape(len(SPECTRA), -1),
+                                                   fa, fb, cross, noise, noise_vec)
+        cov_x = pair.ainv @ pseudo_cov @ pair.ainv.T
         value = s @ x
         cov = s @ cov_x @ s.T
         cov = 0.5 * (cov + cov.T)
@@ -544,6 +556,48 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         if noise_vec is not None:
             meta["noise_bias_subtracted"] = "spectra" if noise is not None else f"{count} noise maps"
         return PolarizedBandpowers.from_arrays(b, cl.reshape(len(SPECTRA), nb), cov, meta)
+
+    def _with_exact_low_bins(self, pseudo_cov, name, pair, values, fa, fb, cross, noise, noise_vec):
+        """The pseudo-spectra's covariance with its lowest bins' block replaced by the exact one."""
+        from cmbtools.spectrum.low_ell_covariance import low_ell_block, sky_amplitudes
+
+        blk = low_ell_block(self, name)
+        amp = sky_amplitudes(dict(zip(SPECTRA, values)), values.shape[1], blk.groups)
+        b = self.binning
+        lo, hi = int(b.ell_min[0]), int(b.ell_max[-1])
+        ell = np.arange(lo, hi + 1)
+        modes = 2.0 * ell + 1.0
+        fields = {"P": (1,) if self.purify_b else (1, 2), "T": (0,)}
+
+        def white(side, kind, level):
+            mask = self.masks[("t" if kind == "T" else "p") + ("1" if side == "a" else "2")]
+            amp[("n", side, kind)] = max(float(level), 0.0) / (4.0 * np.pi / mask.size * float(np.mean(mask**2)))
+
+        if cross:  # each map's noise pseudo-power: its auto- minus the cross-pseudo-spectrum
+            for side, f in (("a", fa), ("b", fb)):
+                for kind, idx in fields.items():
+                    lev = [np.sum(modes * (_sht.alm2cl(f[i], f[i], lmax=self.lmax)
+                                           - _sht.alm2cl(fa[i], fb[i], lmax=self.lmax))[lo:hi + 1]) / modes.sum()
+                           for i in idx]
+                    white(side, kind, np.mean(lev))
+        elif noise_vec is not None:  # the subtracted noise bias (binned pseudo-spectra)
+            nb = b.n_bins
+            rows = np.add.reduceat(b.averaging_weights(self.lmax), b.ell_min)
+            for kind, comps in (("T", ("TT",)), ("P", ("EE",) if self.purify_b else ("EE", "BB"))):
+                lev = []
+                for c in comps:
+                    k = pair.components.index(c)
+                    per_bin = noise_vec[k * nb:(k + 1) * nb] / rows
+                    lev.append(np.sum(per_bin * b.n_ell * (2.0 * b.ell_eff + 1.0)) / np.sum(b.n_ell * (2.0 * b.ell_eff + 1.0)))
+                white("a", kind, np.mean(lev))
+        comps = pair.components
+        exact = blk.covariance(amp)
+        nb, ne = self.binning.n_bins, self.exact_low_bins
+        out = pseudo_cov.copy()
+        for i in range(len(comps)):
+            for j in range(len(comps)):
+                out[i * nb:i * nb + ne, j * nb:j * nb + ne] = exact[i, :, j, :]
+        return out
 
     def _reporting_matrix(self, comps):
         """(6 n_bins, n_comp n_bins): the six reported spectra from the components (means of TE/ET, TB/BT)."""
