@@ -51,6 +51,10 @@ from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, _beam_array, defaul
 __all__ = ["PolarizedSpectrumEstimator"]
 
 
+#: The default exact low-multipole block covers the first bin when it ends at or below this multipole.
+EXACT_LOW_BIN_MAX_ELL = 24
+
+
 class PolarizedSpectrumEstimator(_PolarizedOperator):
     r"""Masked-sky TT, TE, TB, EE, EB, BB bandpowers of I, Q, U maps (pseudo-Cl with MASTER), built once.
 
@@ -106,11 +110,12 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         1.5 nside).  False: maps sampled at the pixel centres.  None (default): True with the HEALPix pixel
         windows up to nside 512 (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`), like the
         temperature estimator.
-    exact_low_bins : int, default=1
+    exact_low_bins : int or None, default=None
         The number of lowest bins whose covariance (all six spectra, their cross-covariances) is computed
         exactly for Gaussian skies and white noise instead of in the narrow-kernel approximation (see
-        :mod:`cmbtools.spectrum.low_ell_covariance`; built on the first estimate, 0.5-2 s at nside 32-128 for
-        a first bin of 16 multipoles); 0 turns it off.
+        :mod:`cmbtools.spectrum.low_ell_covariance`; built on the first estimate: a few seconds for the default
+        first bin, ell 2-17, at any nside); 0 turns it off.  None (default): 1 when the first bin ends at or below
+        ``ell = EXACT_LOW_BIN_MAX_ELL`` (24; the cost grows as the fourth power of its last multipole), else 0.
     nthreads : int, optional
         Threads of the transforms and of the coupling kernel.
     max_condition_number : float, default=1e3
@@ -171,7 +176,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         correct_deprojection_bias=True,
         purify_b=False,
         averaged_pixels=None,
-        exact_low_bins=1,
+        exact_low_bins=None,
         nthreads=None,
         max_condition_number=MAX_CONDITION_NUMBER,
         force=False,
@@ -211,6 +216,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 CmbtoolsWarning,
                 stacklevel=2,
             )
+        if exact_low_bins is None:
+            exact_low_bins = 1 if binning.ell_max[0] <= EXACT_LOW_BIN_MAX_ELL else 0
         exact_low_bins = check_int(exact_low_bins, "exact_low_bins", minimum=0, maximum=binning.n_bins)
         max_cond = check_positive(max_condition_number, "max_condition_number")
         if max_cond < 1:
@@ -591,13 +598,28 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                     lev.append(np.sum(per_bin * b.n_ell * (2.0 * b.ell_eff + 1.0)) / np.sum(b.n_ell * (2.0 * b.ell_eff + 1.0)))
                 white("a", kind, np.mean(lev))
         comps = pair.components
-        exact = blk.covariance(amp)
-        nb, ne = self.binning.n_bins, self.exact_low_bins
-        out = pseudo_cov.copy()
-        for i in range(len(comps)):
-            for j in range(len(comps)):
-                out[i * nb:i * nb + ne, j * nb:j * nb + ne] = exact[i, :, j, :]
-        return out
+        nb, ne = b.n_bins, self.exact_low_bins
+        sm = self._reporting_matrix(comps)
+
+        def replaced(exact):
+            out = pseudo_cov.copy()
+            for i in range(len(comps)):
+                for j in range(len(comps)):
+                    out[i * nb:i * nb + ne, j * nb:j * nb + ne] = exact[i, :, j, :]
+            return out
+
+        # the amplitudes are measured: their own covariance (from the block with them) is taken out of the
+        # quadratic form, so that its mean is that of the true spectra
+        first = replaced(blk.covariance(amp))
+        m = sm @ pair.ainv
+        cov_values = m @ first @ m.T
+
+        def amp_cov(k1, k2):
+            if k1[0] != "s" or k2[0] != "s":
+                return 0.0
+            return cov_values[SPECTRA.index(k1[1]) * nb + k1[2], SPECTRA.index(k2[1]) * nb + k2[2]]
+
+        return replaced(blk.covariance(amp, amp_cov))
 
     def _reporting_matrix(self, comps):
         """(6 n_bins, n_comp n_bins): the six reported spectra from the components (means of TE/ET, TB/BT)."""
