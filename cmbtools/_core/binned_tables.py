@@ -94,20 +94,82 @@ def read_bandpower_table(path, table=None):
 def _spectrum_from_bandpowers(table):
     """C_l (K^2) constant over each bin of a bandpower table, zero below the first bin."""
     p, cols, _ = read_bandpower_table(table.path, table)
-    lo, hi, cb = cols["ell_min"], cols["ell_max"], cols["cl"]
+    return _constant_over_bins(p, cols["ell_min"], cols["ell_max"], cols["cl"], "", True)
+
+
+#: The columns of a polarized bandpower table (what :meth:`cmbtools.spectrum.PolarizedBandpowers.write_csv` writes).
+POLARIZED_BANDPOWER_COLUMNS = ("spectrum", "ell_min", "ell_max", "ell_eff", "cl", "cl_err", "dl", "dl_err")
+#: Its spectra, in the order of its rows.
+POLARIZED_BANDPOWER_SPECTRA = ("TT", "TE", "TB", "EE", "EB", "BB")
+
+
+def read_polarized_bandpower_table(path, table=None):
+    """Columns and metadata of a polarized bandpower table; see :meth:`cmbtools.spectrum.PolarizedBandpowers.read_csv`.
+
+    Returns ``(path, columns, metadata)``: ``ell_min``/``ell_max`` (int64) and ``ell_eff`` of shape (n_bins,), the
+    values ``cl``, ``cl_err``, ``dl``, ``dl_err`` (K^2) of shape (6, n_bins), spectra in the order
+    :data:`POLARIZED_BANDPOWER_SPECTRA`.
+    """
+    if table is None:
+        table = read_text_table(path, what="a polarized bandpower table", separator=",")
+    p = table.path
+    meta = result_metadata(table)
+    six, columns = POLARIZED_BANDPOWER_SPECTRA, POLARIZED_BANDPOWER_COLUMNS
+    if table.names != columns:
+        raise InputFileError(p, f"expected the columns {','.join(columns)}")
+    scale = result_unit_scale(p, meta)
+    names, values = [], []
+    for lineno, cells in table.rows:
+        if len(cells) != len(columns):
+            raise InputFileError(p, f"line {lineno}: expected {len(columns)} values, found {len(cells)}")
+        names.append(cells[0])
+        try:
+            values.append([float(c) for c in cells[1:]])
+        except ValueError:
+            raise InputFileError(p, f"line {lineno}: a value is not a number ({','.join(cells)!r})") from None
+    if not values or len(values) % len(six):
+        raise InputFileError(p, f"expected the same bins for each of {', '.join(six)}; found {len(values)} rows")
+    nb = len(values) // len(six)
+    a = np.array(values).reshape(len(six), nb, len(columns) - 1)
+    if names != [s for s in six for _ in range(nb)]:
+        raise InputFileError(p, f"the spectrum column must list {', '.join(six)} in that order, each over the same bins")
+    if not np.all(a[:, :, :3] == a[:1, :, :3]):
+        raise InputFileError(p, "the six spectra must have the same bins")
+    lims = a[0, :, :2]
+    if not np.all(np.isfinite(lims)) or np.any(lims != np.round(lims)) or np.any(np.abs(lims) > 2**62):
+        raise InputFileError(p, "ell_min and ell_max must be whole numbers")
+    cols = {"ell_min": a[0, :, 0].astype(np.int64), "ell_max": a[0, :, 1].astype(np.int64), "ell_eff": a[0, :, 2]}
+    cols.update({c: a[:, :, 3 + k] / scale for k, c in enumerate(_BANDPOWER_SPECTRA)})
+    return p, cols, meta
+
+
+def _constant_over_bins(p, lo, hi, cb, name, non_negative):
+    """C_l constant over each bin (zero below the first): a bandpower table read as a spectrum."""
     if lo[0] < 0 or np.any(hi < lo) or np.any(lo[1:] != hi[:-1] + 1):
         raise InputFileError(p, "the bins of a bandpower table read as a spectrum must follow each other without "
                                 "gaps or overlaps, from ell >= 0")
     if hi[-1] > LARGEST_ELL:
         raise InputFileError(p, f"ell_max {int(hi[-1])} is above the largest ell, {LARGEST_ELL}")
-    bad = ~np.isfinite(cb) | (cb < 0)
-    if bad.any():
+    bad = ~np.isfinite(cb) | ((cb < 0) if non_negative else False)
+    if np.any(bad):
         j = int(np.argmax(bad))
-        raise InputFileError(p, f"data row {j + 1}: cl = {float(cb[j])!r} is not a finite power >= 0")
+        what = "a finite power >= 0" if non_negative else "finite"
+        raise InputFileError(p, f"{name}data row {j + 1}: cl = {float(cb[j])!r} is not {what}")
     cl = np.zeros(int(hi[-1]) + 1)
     for a, b, v in zip(lo, hi, cb):
         cl[int(a): int(b) + 1] = v
     return cl
+
+
+def spectra_from_polarized_bandpowers(table, wanted) -> dict:
+    """C_l (K^2) of the ``wanted`` spectra of a polarized bandpower table, constant over each bin.
+
+    TT, EE and BB must be >= 0 in every bin (a spectrum), TE, TB and EB finite.
+    """
+    p, cols, _ = read_polarized_bandpower_table(table.path, table)
+    six = POLARIZED_BANDPOWER_SPECTRA
+    return {s: _constant_over_bins(p, cols["ell_min"], cols["ell_max"], cols["cl"][six.index(s)], f"{s} ",
+                                   s in ("TT", "EE", "BB")) for s in wanted}
 
 
 # --------------------------------------------------------------------------- transfer and filter tables

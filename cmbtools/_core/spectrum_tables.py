@@ -37,7 +37,11 @@ Recognised unit spellings (case-insensitive, ``^`` optional): ``K^2``,
 prefers an ``nl`` column) also accepts a bandpower table (the columns
 ``ell_min,ell_max,...,cl,...`` that :meth:`cmbtools.spectrum.Bandpowers.write_csv`
 writes): the spectrum is then taken as constant over each bin, C_l = C_b for
-ell_min <= l <= ell_max, and zero below the first bin.
+ell_min <= l <= ell_max, and zero below the first bin.  Likewise
+:func:`read_polarized_spectrum_table` accepts a polarized bandpower table
+(a ``spectrum`` column: what :meth:`cmbtools.spectrum.PolarizedBandpowers.write_csv`
+writes), each spectrum constant over its bins, and :func:`read_spectrum_table`
+takes its TT rows, as it takes a polarized spectrum table's TT column.
 """
 
 from __future__ import annotations
@@ -48,7 +52,7 @@ from pathlib import Path
 
 import numpy as np
 
-from cmbtools._core.binned_tables import _spectrum_from_bandpowers
+from cmbtools._core.binned_tables import _spectrum_from_bandpowers, spectra_from_polarized_bandpowers
 from cmbtools._core.checks import check_cl
 from cmbtools._core.tables import (
     LARGEST_ELL,
@@ -107,6 +111,8 @@ def _read_power_table(path, *, prefer) -> np.ndarray:
         raise InputFileError(p, "has no column names (expected a line such as 'ell,cl_k2')")
     names, _, header_line = header
     if "ell" not in names and "ell_min" in names and "ell_max" in names:
+        if "spectrum" in names:  # a polarized bandpower table: its TT rows (as a polarized table's TT column)
+            return spectra_from_polarized_bandpowers(table, ("TT",))["TT"]
         return _spectrum_from_bandpowers(table)
     if "ell" not in names:
         raise InputFileError(p, f"line {header_line}: no 'ell' column (columns: {', '.join(names)})")
@@ -255,6 +261,12 @@ def _polarized_spectra(table, wanted) -> dict:
     if table.names is None:
         raise InputFileError(p, "has no column names (expected a line such as 'ell,cl_tt_k2,cl_ee_k2,...')")
     names, header_line = list(table.names), table.header_line
+    if "ell" not in names and "ell_min" in names and "ell_max" in names:
+        if "spectrum" in names:  # a polarized bandpower table: each spectrum constant over its bins
+            return spectra_from_polarized_bandpowers(table, wanted)
+        raise InputFileError(p, f"line {header_line}: a temperature bandpower table (no 'spectrum' column); a "
+                                "polarized table needs TT, EE, BB and TE, e.g. the table of `cmbtools spectrum` on "
+                                "I, Q, U maps")
     if names.count("ell") != 1:
         raise InputFileError(p, f"line {header_line}: needs exactly one 'ell' column (columns: {', '.join(names)})")
     units = [(v, n) for v, n in table.comment_values("unit", before_header=True) if v]

@@ -6,7 +6,8 @@ import argparse
 
 __all__ = [
     "add_overwrite", "add_force", "add_threads", "positive_float", "positive_int", "non_negative_int", "finite_float",
-    "bounded_int", "add_pixel_model", "pixel_model_from_args", "add_binning", "binning_from_args", "bins_top", "print_range_warning", "bin_edges", "deprecated_alias", "MAX_THREADS", "MAX_SIMULATIONS",
+    "bounded_int", "add_pixel_model", "pixel_model_from_args", "add_binning", "binning_from_args", "bins_top", "print_range_warning", "bin_edges", "deprecated_alias",
+    "corrected_covariance_key", "MAX_THREADS", "MAX_SIMULATIONS",
 ]
 
 
@@ -240,3 +241,35 @@ def describe_binning(binning) -> str:
     width_text = f"{widths[0]}" if len(widths) == 1 else f"{widths[0]}-{widths[-1]}"
     return (f"{binning.n_bins} bins of {width_text} multipoles (ell {binning.lmin}-{binning.lmax}), "
             f"{binning.weighting.upper()[0]}{binning.weighting[1:]} weighting")
+
+
+# ----------------------------------------------------------------------------- covariance and transfer files
+
+
+def corrected_covariance_key(covariance, transfer, covariance_path, transfer_path=None):
+    """The transfer key recorded by a covariance of corrected bandpowers (None for a covariance of measured ones).
+
+    A covariance of bandpowers already divided by a transfer function (``validate --transfer``, or ``spectrum
+    --transfer --covariance``) records ``bandpower_transfer_key``; it is used with the same transfer table only,
+    else one error line (``spectrum`` on temperature and on I, Q, U maps).
+
+    Parameters
+    ----------
+    covariance : BandpowerCovariance or None
+        The covariance (as read from ``covariance_path``).
+    transfer : BandpowerTransfer, PolarizedBandpowerTransfer or None
+        The table given with ``--transfer``.
+    covariance_path : str
+        The covariance file, for the message.
+    """
+    from cmbtools.exceptions import InvalidInputError
+
+    key = None if covariance is None else covariance.settings.get("bandpower_transfer_key")
+    if key is not None and (transfer is None or key != transfer.key):
+        raise InvalidInputError(
+            f"{covariance_path}: the covariance is of bandpowers divided by a transfer function (key {key}); give "
+            "the same table with --transfer"
+            + ("." if transfer is None else f" (the --transfer table{' ' + str(transfer_path) if transfer_path else ''} "
+               f"has key {transfer.key}).")
+        )
+    return key

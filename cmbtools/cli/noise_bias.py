@@ -25,7 +25,8 @@ def add_noise_options(parser):
         "--noise-spectrum", metavar="FILE",
         help="noise of MAP: a spectrum table of N_l as observed, not beam-deconvolved (columns ell and nl, cl or dl; "
              "'cmbtools simulate --write-noise-spectrum' writes one), or a bandpower table of the noise bias with the "
-             "same bins, beam and pixel window (--write-noise-spectrum writes one)")
+             "same bins, beam and pixel window (--write-noise-spectrum writes one); for I, Q, U maps a polarized "
+             "table of N_l (TT, EE, BB, TE columns; 'cmbtools simulate --polarized --write-noise-spectrum' writes one)")
     choice.add_argument("--noise-maps", nargs="+", metavar="NOISE_MAP",
                         help="noise-only maps like MAP's noise (e.g. simulations): the mean of their spectra is the "
                              "noise bias")

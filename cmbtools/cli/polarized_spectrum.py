@@ -43,17 +43,20 @@ def run_polarized(args, outputs_checked) -> int:
     from cmbtools._core.checks import check_same_nside
     from cmbtools.cli.common import pixel_model_from_args
     from cmbtools._core.files import sha256_file
-    from cmbtools.cli.common import binning_from_args, bins_top, describe_binning, print_range_warning
+    from cmbtools.cli.common import (
+        binning_from_args, bins_top, corrected_covariance_key, describe_binning, print_range_warning,
+    )
     from cmbtools.exceptions import InvalidInputError
     from cmbtools.maps.polarized_fits import read_iqu
     from cmbtools.spectrum.one_call import drop_missing_pixels
 
-    for flag, given in (("--noise-spectrum", args.noise_spectrum), ("--operator-cache", args.operator_cache),
-                        ("--fast-coupling", args.fast_coupling), ("--write-noise-spectrum", args.write_noise_spectrum),
+    for flag, given in (("--operator-cache", args.operator_cache), ("--fast-coupling", args.fast_coupling),
+                        ("--write-noise-spectrum", args.write_noise_spectrum),
                         ("--template", getattr(args, "template", None))):
         if given:
             raise InvalidInputError(f"{flag} applies to temperature maps only; MAP holds I, Q, U "
-                                    "(for the noise bias of I, Q, U maps use --noise-maps or --half-difference).")
+                                    "(for the noise bias of I, Q, U maps use --noise-spectrum, --noise-maps or "
+                                    "--half-difference).")
     if args.errors == "knox":
         raise InvalidInputError("--errors knox applies to temperature maps only; the errors of I, Q, U maps are the "
                                 "Gaussian covariance of the six spectra (or --covariance-from FILE).")
@@ -69,13 +72,7 @@ def run_polarized(args, outputs_checked) -> int:
     transfer = None
     if args.transfer is not None:  # the table of `validate --polarized` (a spectrum column)
         transfer = sp.PolarizedBandpowerTransfer.read_csv(args.transfer)
-    corrected_key = None if covariance_from is None else covariance_from.settings.get("bandpower_transfer_key")
-    if corrected_key is not None and (transfer is None or corrected_key != transfer.key):
-        raise InvalidInputError(
-            f"{args.covariance_from}: the covariance is of bandpowers divided by a transfer function "
-            f"(key {corrected_key}); give the same table with --transfer"
-            + ("." if transfer is None else f" (the --transfer table has key {transfer.key}).")
-        )
+    corrected_key = corrected_covariance_key(covariance_from, transfer, args.covariance_from, args.transfer)
     m1, info1 = read_iqu(args.map, force=args.force)
     w1 = maps.read_mask(args.mask, force=args.force)
     p1 = maps.read_mask(args.pol_mask, force=args.force) if args.pol_mask else w1
@@ -134,8 +131,17 @@ def run_polarized(args, outputs_checked) -> int:
         for k, f in ((1, "Q"), (2, "U")):
             p2 = drop_missing_pixels(m2[k], p2, f"{args.map2} ({f})", "pol-mask2", stacklevel=2)
 
-    noise_maps = None
-    if args.noise_maps:
+    noise_maps = noise_cl = None
+    if args.noise_spectrum is not None:  # the noise spectra as observed, e.g. `simulate --polarized --write-noise-spectrum`
+        from cmbtools.simulate import read_polarized_spectrum_table
+
+        noise_cl = read_polarized_spectrum_table(args.noise_spectrum)
+        if noise_cl["TT"].size < lmax + 1:
+            raise InvalidInputError(
+                f"The noise spectrum table {str(args.noise_spectrum)!r} stops at ell={noise_cl['TT'].size - 1}; the "
+                f"transforms go to ell={lmax} (give a longer table, or a lower --lmax).")
+        noise_cl = {k: v[: lmax + 1] for k, v in noise_cl.items()}
+    elif args.noise_maps:
         noise_maps = [read_iqu(p, force=args.force)[0] for p in args.noise_maps]
     elif args.half_difference:
         h1, h2 = (read_iqu(p, force=args.force)[0] for p in args.half_difference)
@@ -154,7 +160,7 @@ def run_polarized(args, outputs_checked) -> int:
         correct_deprojection_bias=not args.no_deprojection_correction,
         purify_b=args.purify_b, averaged_pixels=pixel_model_from_args(args), nthreads=args.threads or None,
     )
-    bp = est.estimate(m1, m2, noise_maps=noise_maps)
+    bp = est.estimate(m1, m2, noise_maps=noise_maps, noise_cl=noise_cl)
     meta = dict(bp.metadata)
     meta.update({"map": str(args.map), "map_sha256": info1.sha256, "mask_file": str(args.mask),
                  "mask_file_sha256": sha256_file(args.mask)})
@@ -162,6 +168,18 @@ def run_polarized(args, outputs_checked) -> int:
         meta.update({"pol_mask_file": str(args.pol_mask), "pol_mask_file_sha256": sha256_file(args.pol_mask)})
     if m2 is not None:
         meta.update({"map2": str(args.map2), "map2_sha256": info2.sha256})
+    # the files, recorded as for temperature maps
+    for key, path in (("mask2_file", args.mask2 if m2 is not None else None),
+                      ("pol_mask2_file", args.pol_mask2 if m2 is not None else None)):
+        if path:
+            meta.update({key: str(path), key + "_sha256": sha256_file(path)})
+    for key, path in (("beam_file", args.beam), ("beam2_file", args.beam2 if m2 is not None else None),
+                      ("theory_file", args.theory)):
+        if path is not None:
+            meta[key] = str(path)
+    if args.noise_spectrum is not None:
+        meta.update({"noise_spectrum_file": str(args.noise_spectrum),
+                     "noise_spectrum_file_sha256": sha256_file(args.noise_spectrum)})
     cross = m2 is not None
     windows = est.cross_bandpower_windows if cross else est.bandpower_windows
     if covariance_from is not None:
@@ -214,8 +232,9 @@ def run_polarized(args, outputs_checked) -> int:
     print(f"  {describe_binning(binning)}")
     print(f"  beam: {meta['beam']}; polarization beam: {meta['pol_beam']}; pixel window: {meta['pixel_window']}")
     print(f"  B-mode purification: {'yes' if args.purify_b else 'no'}; condition number {est.condition_number:.3g}")
-    if noise_maps is not None:
-        print(f"  noise bias subtracted: {meta['noise_bias_subtracted']}")
+    if noise_maps is not None or noise_cl is not None:
+        source = f"noise spectra of {args.noise_spectrum}" if noise_cl is not None else meta["noise_bias_subtracted"]
+        print(f"  noise bias subtracted: {source}")
     print(f"  errors: {errors_text}")
     if transfer is not None:
         f = transfer.factors

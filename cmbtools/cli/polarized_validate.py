@@ -2,7 +2,9 @@
 
 The options mean what they mean for temperature; ``--pol-mask``/``--pol-mask2`` give the polarization masks
 (default: the temperature masks), ``--purify-b`` the B-mode purification, ``--tensor-ratio`` the tensor part of
-the built-in spectra, ``--spectrum`` a polarized spectrum table.
+the built-in spectra, ``--spectrum`` a polarized spectrum table.  ``--harmonic-filter`` multiplies T, E and B
+of every sky by the table's factor (I, Q, U filtered alike) and ``--transfer`` takes the polarized transfer table
+(a ``spectrum`` column) of an earlier run, as ``cmbtools spectrum --transfer`` does on I, Q, U maps.
 """
 
 from __future__ import annotations
@@ -42,11 +44,6 @@ def check_polarization_options(args):
         return
     if args.fast_coupling:
         raise InvalidInputError("--fast-coupling is not available with --polarized (its couplings are exact).")
-    for flag, given in (("--harmonic-filter", getattr(args, "harmonic_filter", None)),
-                        ("--transfer", getattr(args, "transfer", None))):
-        if given is not None:
-            raise InvalidInputError(f"{flag} applies to temperature validation only; it is not available with "
-                                    "--polarized.")
     if args.tensor_ratio is not None:
         if args.spectrum is not None:
             raise InvalidInputError("--tensor-ratio sets the built-in spectra; it cannot be combined with --spectrum.")
@@ -142,6 +139,28 @@ def run_polarized(args, outputs, run_dir, where) -> int:
         r = 0.0 if args.tensor_ratio is None else float(args.tensor_ratio)
         spectra = fiducial_spectra(sky_lmax, tensor_ratio=r, lensing_bb=True)
         spectrum_text = f"built-in fiducial spectra (r = {r:g}, lensing-like BB)"
+    harmonic_filter = None
+    if args.harmonic_filter is not None:  # one f_l for T, E and B: the same filtering of I and of Q, U
+        from cmbtools._core.binned_tables import read_filter_table
+
+        harmonic_filter = read_filter_table(args.harmonic_filter)
+        if args.sky_lmax is None and not cross and lmax + 1 <= harmonic_filter.size < sky_lmax + 1:
+            sky_lmax = harmonic_filter.size - 1  # a filter that stops earlier sets the default band limit
+            if isinstance(sky_beam, np.ndarray):
+                sky_beam = sky_beam[: sky_lmax + 1]
+        if harmonic_filter.size < sky_lmax + 1:
+            raise InvalidInputError(
+                f"The filter table {args.harmonic_filter!r} stops at ell={harmonic_filter.size - 1}; the skies go "
+                f"to ell={sky_lmax} (give the factor up to there, or a lower --sky-lmax)."
+            )
+        harmonic_filter = harmonic_filter[: sky_lmax + 1]
+    transfer = None
+    if args.transfer is not None:  # the table of an earlier `validate --polarized` (a spectrum column)
+        transfer = sp.PolarizedBandpowerTransfer.read_csv(args.transfer)
+        try:
+            transfer.check_bins(binning, "the validation")
+        except InvalidInputError as exc:
+            raise InvalidInputError(f"{args.transfer}: {exc}") from None
     from cmbtools.simulate import check_spectra
 
     spectra = check_spectra(spectra, sky_lmax)
@@ -167,7 +186,8 @@ def run_polarized(args, outputs, run_dir, where) -> int:
         est, spectra, n_sims=args.sims, seed=args.seed, noise=noise, run_dir=run_dir, executor=executor,
         workers=workers, threads_per_worker=args.threads or None, progress=False if args.no_progress else None,
         restart=args.restart, force=args.force, cross=cross, monopole=monopole * 1e-6, dipole=dipole,
-        sky_lmax=sky_lmax, sky_beam=sky_beam, pixelise=bool(args.pixelise),
+        sky_lmax=sky_lmax, sky_beam=sky_beam, pixelise=bool(args.pixelise), harmonic_filter=harmonic_filter,
+        bandpower_transfer=transfer,
     )
 
     meta = dict(result.metadata)
@@ -179,6 +199,11 @@ def run_polarized(args, outputs, run_dir, where) -> int:
             meta.update({key: str(path), key + "_sha256": sha256_file(path)})
     if args.hits is not None:
         meta["hits_file"] = str(args.hits)
+    if args.harmonic_filter is not None:
+        meta.update({"harmonic_filter_file": str(args.harmonic_filter),
+                     "harmonic_filter_file_sha256": sha256_file(args.harmonic_filter)})
+    if args.transfer is not None:
+        meta["transfer_file"] = str(args.transfer)
     result = dataclasses.replace(result, metadata=meta)
     from cmbtools._core.files import OutputGroup
 
@@ -189,19 +214,27 @@ def run_polarized(args, outputs, run_dir, where) -> int:
         samples, ell_min=result.ell_min, ell_max=result.ell_max, ell_eff=result.ell_eff,
         windows=est.cross_bandpower_windows if cross else est.bandpower_windows, spectra=sp.SPECTRA,
         settings={"spectrum": "polarized cross" if cross else "polarized auto", "seed": int(result.seed),
-                  "b_mode_purification": "yes" if args.purify_b else "no"})
-    skipped = None
+                  "b_mode_purification": "yes" if args.purify_b else "no",
+                  **({} if transfer is None else {"bandpower_transfer_key": transfer.key,
+                                                  "bandpower_transfer": f"divided out ({args.transfer})"})})
+    skipped = measured = None
     try:
-        transfer = sp.PolarizedBandpowerTransfer.from_validation(result)
+        measured = sp.PolarizedBandpowerTransfer.from_validation(result)
     except InvalidInputError as exc:  # TT, EE or BB keeps no signal in some bin: the table cannot correct it
-        transfer = None
         path = [o for o in outputs if o[0] == "transfer table"][0][1]
         skipped = f"{path} not written: {exc}"
         outputs = [o for o in outputs if o[0] != "transfer table"]
+    if measured is not None and transfer is not None:
+        # the whole F_b of the pipeline: what is left times what was divided out (TE, TB, EB: sqrt(F_XX F_YY))
+        f = transfer.factors
+        measured = dataclasses.replace(
+            measured, transfer=measured.transfer * f, transfer_error=measured.transfer_error * f,
+            metadata={**measured.metadata, "measured_by": "Monte Carlo validation of the polarized estimator (mean "
+                      f"/ expected per spectrum and bin, with {args.transfer} divided out and multiplied back)"})
     writers = {"table": lambda p: result.write_csv(p, overwrite=True, unit=args.unit),
                "JSON summary": lambda p: result.write_json(p, overwrite=True),
                "figure": lambda p: result.plot(p, overwrite=True),
-               "transfer table": lambda p: transfer.write_csv(p, overwrite=True)}
+               "transfer table": lambda p: measured.write_csv(p, overwrite=True)}
     with OutputGroup() as group:  # all of the outputs or none
         for what, path, overwrite in outputs:
             group.write(path, writers[what], overwrite=overwrite)
@@ -243,6 +276,15 @@ def run_polarized(args, outputs, run_dir, where) -> int:
         print(f"    {name}: max |bias| {num(v['max_abs_bias_sigma'], '5.2f')} sigma, rms "
               f"{num(v['rms_bias_sigma'], '4.2f')}; scatter / error {num(v['min_error_ratio'], '.3f')} to "
               f"{num(v['max_error_ratio'], '.3f')} (median {num(v['median_error_ratio'], '.3f')})")
+    if transfer is not None:
+        f = transfer.factors
+        print(f"  bandpowers and errors divided by F_b of {args.transfer} ({float(f.min()):.4g} to "
+              f"{float(f.max()):.4g}; TE, TB, EB by sqrt(F_XX F_YY))")
+    if transfer is not None or harmonic_filter is not None:
+        auto = np.array([result[x].transfer for x in ("TT", "EE", "BB")])
+        print(f"  transfer (mean / expected) of TT, EE, BB: from {float(np.nanmin(auto)):.4f} to "
+              f"{float(np.nanmax(auto)):.4f}"
+              + (f" (harmonic filter {args.harmonic_filter})" if args.harmonic_filter else ""))
     print("  wrote " + ", ".join(str(p) for p in written))
     if skipped is not None:
         import sys

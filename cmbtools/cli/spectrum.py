@@ -8,7 +8,8 @@ from cmbtools.cli.error_model import add_error_options
 from cmbtools.cli.noise_bias import add_noise_options
 from cmbtools.cli.polarized_spectrum import add_polarization_options
 from cmbtools.cli.common import (
-    add_binning, add_force, add_overwrite, add_pixel_model, add_threads, binning_from_args, bins_top, describe_binning,
+    add_binning, add_force, add_overwrite, add_pixel_model, add_threads, binning_from_args, bins_top,
+    corrected_covariance_key, describe_binning,
     pixel_model_from_args, positive_float, positive_int, print_range_warning,
 )
 
@@ -47,7 +48,10 @@ a '# unit: uK^2' comment; cl without a unit is K^2), as 'cmbtools simulate
 (a spectrum table of N_l as observed, e.g. from 'cmbtools simulate
 --write-noise-spectrum', or a noise bandpower table from
 --write-noise-spectrum), --noise-maps (noise-only maps) or --half-difference
-(two halves of the data whose mean is MAP).
+(two halves of the data whose mean is MAP).  On I, Q, U maps --theory and
+--noise-spectrum take polarized tables (cl_tt_k2, cl_ee_k2, cl_bb_k2,
+cl_te_k2 ..., as 'cmbtools simulate --polarized' writes them, or the table
+of this command on I, Q, U maps, constant over each bin).
 
 Before the mask transforms and the mode-coupling matrix are computed, their
 memory is estimated; the command stops if it exceeds what the machine has
@@ -81,8 +85,8 @@ def add_arguments(parser):
                     help="Gaussian beam of MAP2 (default: the same as MAP's)")
     b2.add_argument("--beam2", metavar="FILE", help="beam table of MAP2")
     parser.add_argument("--no-pixel-window", action="store_true", help="do not deconvolve the HEALPix pixel window")
-    add_pixel_model(parser, "Default up to nside 512 (with the pixel window; for I, Q, U maps it corrects TT); above "
-                            "it, give this option to apply it (it costs about 2 s).")
+    add_pixel_model(parser, "The default with the pixel window, at every nside (for I, Q, U maps it corrects TT; "
+                            "it costs about 2 s of pair sums, run beside the coupling kernel).")
     parser.add_argument("--keep-monopole-dipole", action="store_true",
                         help="do not fit and remove the monopole and dipole before the transform")
     add_noise_options(parser)
@@ -96,7 +100,8 @@ def add_arguments(parser):
                              "(--theory, else the built-in fiducial one); real skies: 4 nside - 1 (default: lmax; "
                              "the multipoles between the last bin and lmax are modelled in any case)")
     parser.add_argument("--transfer", metavar="FILE",
-                        help="per-bin transfer function table (transfer.csv of `cmbtools validate`, same bins): "
+                        help="per-bin transfer function table (transfer.csv of `cmbtools validate`, same bins; for "
+                             "I, Q, U maps that of `validate --polarized`, with a spectrum column): "
                              "divide the bandpowers, their errors and covariance by it, undoing a filtering of the "
                              "map that the estimator does not model")
     add_error_options(parser)
@@ -291,14 +296,8 @@ def run(args) -> int:
     bp, covariance, errors_text = apply_error_model(args, est, bp, raw, filtered_theory, noise_maps_for_errors,
                                                     cross=m2 is not None, nside=nside)
     measured = bp  # before the transfer correction: the noise bias table is of the measured power
-    corrected_key = None if covariance is None else covariance.settings.get("bandpower_transfer_key")
-    if corrected_key is not None and (transfer is None or corrected_key != transfer.key):
-        # a simulated covariance of `validate --transfer`: already of corrected bandpowers
-        raise InvalidInputError(
-            f"{args.covariance_from}: the covariance is of bandpowers divided by a transfer function "
-            f"(key {corrected_key}); give the same table with --transfer"
-            + ("." if transfer is None else f" (the --transfer table has key {transfer.key}).")
-        )
+    # a simulated covariance of `validate --transfer`: already of corrected bandpowers
+    corrected_key = corrected_covariance_key(covariance, transfer, args.covariance_from, args.transfer)
     if transfer is not None:
         bp = transfer.apply(bp).with_metadata(transfer_file=str(args.transfer),
                                               transfer_file_sha256=sha256_file(args.transfer))

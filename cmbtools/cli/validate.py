@@ -42,6 +42,10 @@ bias and the error ratio are reported per spectrum and bin, the table gains a
 figure one panel per spectrum; covariance.npz holds the six spectra's
 simulated covariance (spectrum-major) and transfer.csv gains a 'spectrum'
 column (TB and EB: nan), both read by 'cmbtools spectrum' on I, Q, U maps.
+--harmonic-filter and --transfer work as below: the filter multiplies the T,
+E and B coefficients of every sky alike (I, Q and U filtered the same way),
+and --transfer takes such a polarized transfer.csv (TT, EE, BB divided by
+their F_b; TE, TB, EB by sqrt(F_XX F_YY)).
 
 Outputs (by default in the run directory): summary.csv (one row per bin, a
 '# key: value' header with the settings), summary.json (the headline numbers
@@ -120,13 +124,14 @@ def add_arguments(parser):
                        help="knee multipole of correlated noise N_l = N_white (1 + (ELL/l)^SLOPE)")
     noise.add_argument("--noise-slope", type=positive_float, metavar="SLOPE", help="slope of the correlated noise")
     parser.add_argument("--harmonic-filter", metavar="FILE",
-                        help="multiply every simulated sky's harmonic coefficients by a factor per multipole "
-                             "(table with columns ell,factor from ell 0 to the skies' band limit): a stand-in for the "
-                             "filtering of the real maps, measured in transfer.csv")
+                        help="multiply every simulated sky's harmonic coefficients (with --polarized: T, E and B "
+                             "alike) by a factor per multipole (table with columns ell,factor from ell 0 to the skies' "
+                             "band limit): a stand-in for the filtering of the real maps, measured in transfer.csv")
     parser.add_argument("--transfer", metavar="FILE",
-                        help="per-bin transfer function table (transfer.csv of an earlier run, same bins) divided "
-                             "out of every simulation's bandpowers, as 'cmbtools spectrum --transfer' does: checks the "
-                             "corrected pipeline (use another --seed)")
+                        help="per-bin transfer function table (transfer.csv of an earlier run, same bins; with "
+                             "--polarized the one with a 'spectrum' column) divided out of every simulation's "
+                             "bandpowers, as 'cmbtools spectrum --transfer' does: checks the corrected pipeline (use "
+                             "another --seed)")
     parser.add_argument("--spectrum", metavar="FILE",
                         help="input sky spectrum table (columns ell and cl or dl; default: the built-in fiducial spectrum)")
     sims = parser.add_argument_group("simulations")

@@ -41,6 +41,7 @@ class _PolarizedSetup:
     cross: bool
     sky_lmax: int
     pixelise: bool
+    dipole_factor: float = 1.0  # f_1 of the harmonic filter (T's), which multiplies the dipole as every a_1m
 
     @property
     def cache_key(self) -> str:
@@ -59,6 +60,8 @@ class _PolarizedSetup:
             repr(self.noise), None if self.noise is None or self.noise.hits is None else sha256_arrays(self.noise.hits),
             self.monopole, repr(self.dipole), self.cross, self.sky_lmax, self.pixelise,
         ]
+        if self.dipole_factor != 1.0:  # a filtered dipole (the runs without a filter keep their identity)
+            parts.append(("dipole_factor", self.dipole_factor))
         h.update(repr(parts).encode())
         return h.hexdigest()
 
@@ -91,7 +94,7 @@ def _simulate_and_estimate_iqu(index, rng, setup):
     if setup.monopole:
         sky[0] += setup.monopole
     if setup.dipole is not None:
-        sky[0] += _dipole_map(nside, _dipole_vector(setup.dipole))
+        sky[0] += setup.dipole_factor * _dipole_map(nside, _dipole_vector(setup.dipole))
 
     def noisy(maps):
         if setup.noise is None:
@@ -177,6 +180,16 @@ def _sky_amplitudes(estimator, sky_beam, sky_lmax, pixelise):
     return b_t * window[0], b_p * window[1]
 
 
+def _filter_pair(harmonic_filter, lmax):
+    """(f_T, f_P) to lmax from one f_l (I, Q, U alike) or a pair of tables (T; E and B)."""
+    from cmbtools._core.checks import check_cl
+
+    pair = harmonic_filter
+    if not (isinstance(pair, (tuple, list)) and len(pair) == 2 and np.ndim(pair[0]) == 1):
+        pair = (harmonic_filter, harmonic_filter)
+    return tuple(check_cl(f, "harmonic_filter", lmax=lmax, allow_negative=True)[: lmax + 1].copy() for f in pair)
+
+
 def _masked_noise_spectra(spectra, noise, estimator):
     """The model noise spectra at the level the masks see: exact for white noise shaped by hits.
 
@@ -234,6 +247,8 @@ def validate_polarized_estimator(
     sky_lmax=None,
     sky_beam=None,
     pixelise=False,
+    harmonic_filter=None,
+    bandpower_transfer=None,
 ) -> PolarizedValidationResult:
     """Check a polarized spectrum estimator on simulated I, Q, U skies: bias and error ratio per spectrum and bin.
 
@@ -299,6 +314,24 @@ def validate_polarized_estimator(
         Gauss-Legendre rule per pixel,
         :func:`cmbtools.simulate.pixel_averaging.pixel_averaged_map`), as a
         detector's map is made.
+    harmonic_filter : array_like or (array_like, array_like), optional
+        A filter in harmonic space from ell = 0 to ``sky_lmax`` (a stand-in
+        for the filtering of a real survey's maps): one ``f_l`` for T, E and
+        B (the same filter on I and on Q, U), or a pair ``(f_T, f_P)``.
+        Every ``a_lm`` of the sky (T's monopole and dipole included) is
+        multiplied by it before noise is added, so the power becomes
+        ``f^X_l f^Y_l C^XY_l``; folded into the synthesis amplitudes, it costs
+        nothing.  The per-spectrum ``transfer`` of the result measures its
+        effect; :meth:`cmbtools.spectrum.PolarizedBandpowerTransfer.from_validation`
+        turns it into the correction of bandpowers of maps filtered alike.
+    bandpower_transfer : PolarizedBandpowerTransfer, optional
+        Per-bin transfer functions (the estimator's bins) divided out of
+        every simulation's bandpowers and errors, spectrum by spectrum by
+        their ``factors`` (as ``cmbtools spectrum --transfer`` does on I, Q, U
+        maps): checks the corrected pipeline (use another ``seed`` than the
+        run that measured them).  The result's ``transfer`` is then what is
+        left (1 when the correction is right); the simulation records on disk
+        keep the measured bandpowers.
 
     Returns
     -------
@@ -334,12 +367,30 @@ def validate_polarized_estimator(
     spectra = check_spectra(spectra, sky_lmax)
     spectra = {k: np.array(v[: sky_lmax + 1], dtype=np.float64) for k, v in spectra.items()}
     amp_t, amp_p = _sky_amplitudes(estimator, sky_beam, sky_lmax, bool(pixelise))
+    filter_text, dipole_factor = "none", 1.0
+    if harmonic_filter is not None:  # every a_lm times f_l: the synthesis amplitudes, T's monopole and dipole
+        from cmbtools._core.files import sha256_arrays
+
+        f_t, f_p = _filter_pair(harmonic_filter, sky_lmax)
+        amp_t, amp_p = amp_t * f_t, amp_p * f_p
+        dipole_factor = float(f_t[1]) if sky_lmax >= 1 else 0.0
+        filter_text = (f"f_l table sha256={sha256_arrays(f_t, f_p)[:16]} (T: f_l from {float(f_t.min()):.4g} to "
+                       f"{float(f_t.max()):.4g}; E, B: from {float(f_p.min()):.4g} to {float(f_p.max()):.4g})")
+    if bandpower_transfer is not None:
+        from cmbtools.spectrum.transfer import PolarizedBandpowerTransfer
+
+        if not isinstance(bandpower_transfer, PolarizedBandpowerTransfer):
+            raise InvalidInputError(
+                "The 'bandpower_transfer' parameter must be a cmbtools.spectrum.PolarizedBandpowerTransfer or None "
+                f"for a polarized estimator. Got {type(bandpower_transfer).__name__} instead.")
+        bandpower_transfer.check_bins(estimator.binning, "the estimator")
     try:
         monopole = float(monopole)
     except (TypeError, ValueError):
         raise InvalidInputError(f"The 'monopole' parameter must be a number in K. Got {monopole!r} instead.") from None
     if not math.isfinite(monopole):
         raise InvalidInputError(f"The 'monopole' parameter must be finite. Got {monopole!r} instead.")
+    sky_monopole = monopole if harmonic_filter is None else monopole * float(f_t[0])
     noise_cl = None
     if noise is not None:
         if not isinstance(noise, NoiseModel):
@@ -369,7 +420,8 @@ def validate_polarized_estimator(
             noise_cl = _masked_noise_spectra(polarized_noise_spectra(noise, lmax, nside), noise, estimator)
     setup = _PolarizedSetup(
         estimator=estimator, spectra=spectra, amplitude_t=amp_t, amplitude_p=amp_p, noise=noise, noise_cl=noise_cl,
-        monopole=monopole, dipole=dipole, cross=bool(cross), sky_lmax=int(sky_lmax), pixelise=bool(pixelise),
+        monopole=sky_monopole, dipole=dipole, cross=bool(cross), sky_lmax=int(sky_lmax), pixelise=bool(pixelise),
+        dipole_factor=dipole_factor,
     )
     sims = run_simulations(
         _simulate_and_estimate_iqu, n_sims, seed=seed, context=setup, run_dir=run_dir, executor=executor,
@@ -396,13 +448,19 @@ def validate_polarized_estimator(
         "dipole": "none" if dipole is None else repr(dipole),
         "sky_lmax": int(sky_lmax),
         "pixelised": "yes (averaged over each pixel's area)" if pixelise else "no",
+        "harmonic_filter": filter_text,
         "expected": "the input to lmax through the estimator's bandpower windows",
         "error_model": "the estimator's reported errors, averaged over the simulations",
         "n_resumed": sims.n_resumed,
         "run_dir": "" if sims.run_dir is None else str(sims.run_dir),
     }
+    samples, reported = sims["cl"], sims["cl_err"]
+    if bandpower_transfer is not None:  # each spectrum over its factor (TE, TB, EB over sqrt(F_XX F_YY))
+        samples = samples / bandpower_transfer.factors
+        reported = reported / bandpower_transfer.factors
+        metadata.update(bandpower_transfer.record())
     return PolarizedValidationResult.from_samples(
-        sims["cl"], sims["cl_err"], np.array([expected[s] for s in _SIX]),
+        samples, reported, np.array([expected[s] for s in _SIX]),
         ell_min=binning.ell_min, ell_max=binning.ell_max, ell_eff=binning.ell_eff, dl_factor=binning.dl_factor,
         seed=sims.seed, metadata=metadata,
     )

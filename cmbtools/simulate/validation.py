@@ -282,7 +282,9 @@ def validate_estimator(
         chooses the matching one itself).
     sky_beam : float, array_like or (array_like, array_like), optional
         Polarized estimator only: the beam of the skies to ``sky_lmax`` (see
-        :func:`validate_polarized_estimator`).
+        :func:`validate_polarized_estimator`, which also takes
+        ``harmonic_filter`` as a (f_T, f_P) pair and a
+        ``PolarizedBandpowerTransfer`` as ``bandpower_transfer``).
 
     Returns
     -------
@@ -309,7 +311,8 @@ def validate_estimator(
             estimator, cl, n_sims=n_sims, seed=seed, noise=noise, monopole=monopole, dipole=dipole, run_dir=run_dir,
             executor=executor, workers=workers, threads_per_worker=threads_per_worker, progress=progress,
             restart=restart, max_restarts=max_restarts, force=force, cross=cross, sky_lmax=sky_lmax,
-            pixelise=pixelise, sky_beam=sky_beam,
+            pixelise=pixelise, sky_beam=sky_beam, harmonic_filter=harmonic_filter,
+            bandpower_transfer=bandpower_transfer,
         )
     if sky_beam is not None:
         raise InvalidInputError("The 'sky_beam' parameter applies to a polarized estimator only.")

@@ -22,22 +22,24 @@ within a radius, for a guess spectrum, as the formula above (pixel means by
 each pixel's Gauss-Legendre rule, the correlation functions from tables made
 by ducc0's m = 0 transforms, the Legendre sums of the pair histogram by its
 adjoint), over every pixel p of the mask when it has at most
-``MAX_CENTRES``, else over a stratified sample of that many (runs of the
-mask's pixels in RING order, one drawn from each: the sum is unbiased; its
-sampling error, measured against all the pixels, is 1-2e-4 of the
-pseudo-power in bins of 16 at nside 64 and 6-7e-4 in bins of 32 at nside
-256, at the top of the default range).  The operator folds it into the
+``MAX_CENTRES``, else over a stratified sample of that many (the mask's pixels
+grouped by their place on the grid, bands of rings and, in the polar caps, the
+folded azimuth within a ring's quarter, where the pixels' shapes change; one
+pixel drawn from each of ``MAX_CENTRES`` runs of the grouped list: the sum is
+unbiased, and its sampling error is measured in DEVELOPERS.md, "pixel
+averages").  The operator folds it into the
 binned matrix's coupling rows like the leakage of power above the bins, so
 it is exact when the sky has the shape of the guess.
 
 Cost: about 2 s for 4096 centres (0.4-0.7 ms each, with the pair radius of
 7 pixels; quiet 2-core machine) whatever the nside; below 4096 pixels in the
-mask, less (an auto-spectrum then sums each unordered pair once).  The last
+mask, less (an auto-spectrum then sums each unordered pair once).  The
+estimator runs it on a thread beside the mask's transform and the coupling
+kernel, and applies it by default at every nside
+(:func:`cmbtools.spectrum.settings.default_averaged_pixels`).  The last
 :data:`CACHE_SIZE` results are kept in memory (keyed by a hash of the inputs'
 values), so estimators built again with the same mask, spectrum, window and
-lmax skip the sums.  That is
-why the estimator's default (``averaged_pixels=None``) applies it up to
-nside 512 only (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`).
+lmax skip the sums.
 A cheaper path through the grid's symmetries (the pair sum of a pixel
 depends only on its ring and, in the polar caps, its folded azimuth and the
 ring's parity) was tried and left out: with ~300 representative pixels its
@@ -78,6 +80,8 @@ ORDER = 3
 _TABLE_POINTS = 1 << 13
 #: Bins of the pair-separation histogram (linear assignment).
 _HIST_BINS = 1 << 11
+#: Seed of the stratified sample of centres (fixed: the same inputs give the same result).
+_SAMPLE_SEED = 20261203
 
 
 def pair_radius(nside, sky_factor) -> float:
@@ -165,19 +169,48 @@ def _pixel_nodes(nside, pixels, order):
 def _centres(w_a, max_centres):
     """The pixels whose pairs are summed and the number of the mask's pixels each one stands for.
 
-    Every pixel of mask a when it has at most ``max_centres``; else a stratified sample: the mask's pixels in
-    RING order cut into ``max_centres`` runs of consecutive pixels (strips along the rings), one pixel drawn
-    from each run (a fixed seed) standing for the run's pixels.  Every pixel of the mask is drawn with the
-    chance of one over the count it stands for, so the sum is unbiased; the runs spread the sample over the
-    mask.
+    Every pixel of mask a when it has at most ``max_centres``; else a stratified sample.  The mask's pixels are
+    grouped by where they sit on the grid, so that each group holds pixels of nearly the same shape and
+    latitude: bands of rings (``sqrt(max_centres)`` of them) and, in the polar caps, where a ring's pixels
+    change shape along the ring, the folded azimuth within the ring's quarter (the shape repeats every quarter
+    and is mirrored about its middle) cut into as many classes; in RING order within a group.  The list is
+    cut into ``max_centres`` runs of consecutive pixels and one pixel drawn from each run (a fixed seed)
+    stands for the run's pixels.  Every pixel of the mask is drawn with the chance of one over the count it
+    stands for, so the sum is unbiased; the grouping makes it 2-8 times more accurate than runs in plain RING
+    order (measured in DEVELOPERS.md, "pixel averages").
     """
-    inside = np.flatnonzero(w_a)
-    if inside.size <= max_centres:
-        return inside, np.ones(inside.size)
-    edges = np.linspace(0, inside.size, max_centres + 1).astype(np.intp)
+    total = int(np.count_nonzero(w_a))
+    if total <= max_centres:
+        return np.flatnonzero(w_a), np.ones(total)
+    nside = int(round(math.sqrt(w_a.size / 12)))
+    bands = max(1, min(int(math.sqrt(max_centres)), 4 * nside - 1))
+    # the rings: 4 i pixels in ring i of the north cap (i < nside), 4 nside in the belt, mirrored in the south;
+    # a band of rings is a run of RING indices, so the sorted list is built (and held) one band at a time
+    i = np.arange(1, 4 * nside, dtype=np.int64)
+    ring_size = 4 * np.minimum(np.minimum(i, 4 * nside - i), nside)
+    ring_start = np.concatenate([[0], np.cumsum(ring_size)])
+    first_ring = np.searchsorted(np.arange(4 * nside - 1) * bands // (4 * nside - 1), np.arange(bands + 1))
+    band_start = ring_start[first_ring]
+    in_band = np.array([np.count_nonzero(w_a[a:b]) for a, b in zip(band_start[:-1], band_start[1:])])
+    edges = np.linspace(0, total, max_centres + 1).astype(np.intp)
     count = np.diff(edges)
-    pick = edges[:-1] + np.floor(np.random.default_rng(20261203).random(max_centres) * count).astype(np.intp)
-    return inside[pick], count.astype(np.float64)
+    rank = edges[:-1] + np.floor(np.random.default_rng(_SAMPLE_SEED).random(max_centres) * count).astype(np.intp)
+    band_rank = np.concatenate([[0], np.cumsum(in_band)])
+    centres = np.empty(max_centres, dtype=np.int64)
+    for b in range(bands):
+        lo, hi = np.searchsorted(rank, band_rank[b : b + 2])
+        if lo == hi:
+            continue
+        a = band_start[b]
+        pix = a + np.flatnonzero(w_a[a : band_start[b + 1]])
+        rings = first_ring[b] + np.arange(first_ring[b + 1] - first_ring[b])
+        per_ring = np.diff(np.searchsorted(pix, ring_start[first_ring[b] : first_ring[b + 1] + 1]))
+        quarter = np.repeat(ring_size[rings] // 4, per_ring)
+        k = (pix - np.repeat(ring_start[rings], per_ring)) % quarter
+        cls = np.minimum(k, quarter - 1 - k) * (2 * bands) // quarter  # folded azimuth class, 0 .. bands - 1
+        cls[quarter == nside] = 0  # the belt: a ring's pixels have one shape
+        centres[lo:hi] = pix[np.argsort(cls, kind="stable")[rank[lo:hi] - band_rank[b]]]
+    return centres, count.astype(np.float64)
 
 
 #: Results kept in memory by :func:`averaging_bias` (least recently used dropped first; each is lmax + 1
@@ -219,11 +252,12 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
 
     With at most ``max_centres`` pixels in the mask, the pair sum of the module's formula is done over every
     pixel p of the mask and every pixel q of the second mask within ``radius`` (exact up to the radius and the
-    pixel quadrature).  Above it, the sum over p is estimated from a stratified sample: the mask's pixels in
-    RING order are cut into ``max_centres`` runs of consecutive pixels, one pixel p drawn from each run (a fixed
-    seed) has its pairs summed exactly (``W_a(p) W_b(q)`` for every q within the radius) and stands for the
-    run's pixels, weighted by their number; the estimate is unbiased and the runs spread it over the mask
-    (measured accuracy in DEVELOPERS.md, "pixel averages").
+    pixel quadrature).  Above it, the sum over p is estimated from a stratified sample: the mask's pixels,
+    grouped by band of rings and (in the polar caps) folded azimuth within the ring's quarter, are cut into
+    ``max_centres`` runs, one pixel p drawn from each run (a fixed seed) has its pairs summed exactly
+    (``W_a(p) W_b(q)`` for every q within the radius) and stands for the run's pixels, weighted by their number;
+    the estimate is unbiased and the groups put pixels of nearly one shape and latitude in each run (measured
+    accuracy in DEVELOPERS.md, "pixel averages").
 
     Parameters
     ----------

@@ -312,11 +312,15 @@ def write_covariance(path, covariance, *, overwrite=False) -> Path:
       'knox'), ``n_sims``, ``unit`` ('K^4') and the recorded settings.  A file
       without ``spectra`` (written before the spectrum axis) is temperature.
     * ``.fits``: primary header with ``CMBFMT``, ``KIND``, ``NSIMS``, ``BUNIT``,
-      ``NSPEC`` and the settings as ``HIERARCH`` cards; extension ``BINS``
-      (table ``ELL_MIN``, ``ELL_MAX``, ``ELL_EFF``), extension ``SPECTRA``
-      (table ``SPECTRUM``), image ``BLOCKS`` (1 = computed), image
-      ``COVARIANCE`` and image ``WINDOWS`` (rows = spectrum-major bins, columns
-      = spectrum-major ell from 0).
+      ``NSPEC`` and the settings as ``HIERARCH`` cards (for the eye: ASCII, at
+      most 60 characters); extension ``BINS`` (table ``ELL_MIN``, ``ELL_MAX``,
+      ``ELL_EFF``), extension ``SPECTRA`` (table ``SPECTRUM``), image
+      ``BLOCKS`` (1 = computed), image ``COVARIANCE``, table ``SETTINGS`` (one
+      row, column ``JSON``: the same JSON string as the npz file's
+      ``settings``, which is what is read back) and image ``WINDOWS`` (rows =
+      spectrum-major bins, columns = spectrum-major ell from 0).  A FITS file
+      without ``SETTINGS`` (written before it) reads with its kind and count
+      only.
 
     Parameters
     ----------
@@ -355,9 +359,9 @@ def write_covariance(path, covariance, *, overwrite=False) -> Path:
     primary.header["NSIMS"] = c.n_sims
     primary.header["BUNIT"] = "K^4"
     primary.header["NSPEC"] = len(c.spectra)
-    for k, v in c.settings.items():
-        text = v if isinstance(v, (int, float)) else " ".join(str(v).splitlines())[:60]
-        primary.header[f"HIERARCH {k.upper()}"[:60]] = text
+    for k, v in c.settings.items():  # for the eye (ASCII, cut to 60 characters); the SETTINGS extension is read
+        text = v if isinstance(v, (int, float)) and not isinstance(v, bool) else _header_text(v)
+        primary.header[f"HIERARCH {_header_text(k).upper()}"[:60]] = text
     bins = fits.BinTableHDU.from_columns([
         fits.Column(name="ELL_MIN", format="K", array=c.ell_min),
         fits.Column(name="ELL_MAX", format="K", array=c.ell_max),
@@ -365,13 +369,22 @@ def write_covariance(path, covariance, *, overwrite=False) -> Path:
     ], name="BINS")
     spectra = fits.BinTableHDU.from_columns([fits.Column(name="SPECTRUM", format="2A", array=np.array(c.spectra))],
                                             name="SPECTRA")
+    text = json.dumps(meta, sort_keys=True)  # ASCII (JSON escapes the rest): the npz file's settings string
+    settings = fits.BinTableHDU.from_columns(
+        [fits.Column(name="JSON", format=f"{max(len(text), 1)}A", array=np.array([text]))], name="SETTINGS")
     hdus = [primary, bins, spectra, fits.ImageHDU(np.asarray(c.blocks, dtype=np.int16), name="BLOCKS"),
-            fits.ImageHDU(np.asarray(c.matrix), name="COVARIANCE")]
+            fits.ImageHDU(np.asarray(c.matrix), name="COVARIANCE"), settings]
     if c.windows is not None:
         hdus.append(fits.ImageHDU(np.asarray(c.windows), name="WINDOWS"))
     with atomic_output(out, overwrite=overwrite, suffix=".fits") as tmp:
         fits.HDUList(hdus).writeto(tmp)
     return out
+
+
+def _header_text(value) -> str:
+    """One line of printable ASCII (non-ASCII characters escaped), at most 60 characters: a FITS card's value."""
+    text = " ".join(str(value).splitlines()).encode("ascii", "backslashreplace").decode("ascii")
+    return "".join(ch if " " <= ch <= "~" else "?" for ch in text)[:60]
 
 
 def read_covariance(path) -> BandpowerCovariance:
@@ -415,7 +428,12 @@ def read_covariance(path) -> BandpowerCovariance:
                 spectra = (tuple(str(x).strip() for x in hdul["SPECTRA"].data["SPECTRUM"]) if "SPECTRA" in hdul
                            else ("TT",))
                 blocks = np.array(hdul["BLOCKS"].data) if "BLOCKS" in hdul else None
-                meta = {"kind": hdul[0].header["KIND"], "n_sims": int(hdul[0].header["NSIMS"])}
+                if "SETTINGS" in hdul:  # the settings as the npz file holds them (JSON)
+                    meta = json.loads(str(hdul["SETTINGS"].data["JSON"][0]))
+                    if meta.get("format") != _FORMAT:
+                        raise InputFileError(p, "not a cmbtools covariance file (its SETTINGS name another format)")
+                else:  # a file written before the SETTINGS extension: its kind and count only
+                    meta = {"kind": hdul[0].header["KIND"], "n_sims": int(hdul[0].header["NSIMS"])}
     except InputFileError:
         raise
     except Exception as exc:  # noqa: BLE001 - any decoding failure: not a readable covariance file

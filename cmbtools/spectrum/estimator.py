@@ -159,8 +159,9 @@ class SpectrumEstimator(_MapPreparation):
         first call).  Needs ``pixel_window=True``.  False: maps sampled at the
         pixel centres (synthesised from harmonic coefficients, e.g.
         simulations made with the pixel window), for which the window alone
-        is exact.  None (default): True with the HEALPix pixel window up to
-        nside 512, else False.
+        is exact.  None (default): True with the HEALPix pixel window (at
+        every nside; the pair sums run on a thread beside the coupling
+        kernel), else False.
     coupling : {'exact', 'fast'}, default='exact'
         ``'fast'`` uses the approximation of Louis et al. 2020 (PRD 102,
         123538) for large lmax: exact rows below ``fast_exact_below``, a band of

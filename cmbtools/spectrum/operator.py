@@ -71,13 +71,18 @@ def build_operator(inp, nthreads) -> dict:
 
     # the coarse-grid monopole/dipole bias needs neither the fine mask spectrum nor the coupling: it runs on a
     # thread while the mask's transform and the coupling kernel run
+    # and so do the pixel shapes' sums of averaged maps (after it, on the same thread: the kernels use the cores)
     executor, pending = None, {}
-    if _coarse_bias_applies(inp):
+    coarse, averaged = _coarse_bias_applies(inp), bool(inp.averaged_pixels and inp.sky_factors is not None)
+    if coarse or averaged:
         import concurrent.futures
 
         executor = concurrent.futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="cmbtools-bias")
-        for which in ("11",) if inp.mask2 is None else ("11", "12", "22"):
+        couplings = ("11",) if inp.mask2 is None else ("11", "12", "22")
+        for which in couplings if coarse else ():
             pending[which] = executor.submit(_coarse_bias_below, inp, which, nthreads)
+        for which in couplings if averaged else ():
+            pending["averaged" + which] = executor.submit(_averaging_shape, inp, which, nthreads)
     try:
         return _build_operator(inp, nthreads, lmax, binning, lw, p, fast, f1, f2, f12, same_factor, pending)
     finally:
@@ -110,7 +115,8 @@ def _build_operator(inp, nthreads, lmax, binning, lw, p, fast, f1, f2, f12, same
     def pm_of(w, which):
         # P (1 + r) M for the windows and the noise; P (1 + r + t) M for the binned matrix (t: power above the bins)
         m = _coupling.coupling_matrix(w, lmax, fast=fast, nthreads=nthreads)
-        rows = _correction_rows(inp, m, which, deps, nthreads, mask_cl=w, coarse_below=pending.get(which))
+        rows = _correction_rows(inp, m, which, deps, nthreads, mask_cl=w, coarse_below=pending.get(which),
+                                averaged=pending.get("averaged" + which))
         if rows is None:
             pm = _reduce_rows(m, p, binning.ell_min)
             return pm, pm
@@ -264,7 +270,19 @@ def _coarse_bias_below(inp, which, nthreads):
                                        nthreads=nthreads)
 
 
-def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None, coarse_below=None):
+def _averaging_shape(inp, which, nthreads):
+    """The pixel shapes' part of the expected pseudo-power of averaged maps for the coupling ``which``."""
+    from cmbtools.spectrum.averaging_bias import averaging_bias, pair_radius
+    from cmbtools.spectrum.pixel_windows import pixel_window
+
+    factor, signal, mask_a, mask_b = _signal_and_masks(inp, which)
+    window = np.asarray(pixel_window(inp.nside, inp.sky_lmax, nthreads=nthreads), dtype=np.float64)
+    safe = np.where(window > 0, window**2, 1.0)
+    return averaging_bias(mask_a, signal / safe, window, inp.lmax, mask2=None if mask_b is mask_a else mask_b,
+                          radius=pair_radius(inp.nside, factor / safe), nthreads=nthreads)
+
+
+def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None, coarse_below=None, averaged=None):
     """Row factors of the coupling matrix ``m`` for the deprojection bias and the power above the bins, or None.
 
     With the monopole/dipole removal alone on a grid finer than
@@ -276,9 +294,6 @@ def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None, coarse_below=N
     if inp.sky_factors is None:
         return None
     from cmbtools.spectrum import deprojection as _dep
-    from cmbtools.spectrum.averaging_bias import averaging_bias, pair_radius
-    from cmbtools.spectrum.pixel_windows import pixel_window
-
     lmax = inp.lmax
     factor, signal, mask_a, mask_b = _signal_and_masks(inp, which)
     bias = None
@@ -315,10 +330,8 @@ def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None, coarse_below=N
     if inp.averaged_pixels:
         # the pixel shapes' part of the expected pseudo-power of averaged maps: the sky's, not the noise's, so it
         # joins the binned matrix's rows (like the leakage), not those of the noise bias and the windows
-        window = np.asarray(pixel_window(inp.nside, inp.sky_lmax, nthreads=nthreads), dtype=np.float64)
-        safe = np.where(window > 0, window**2, 1.0)
-        shape = averaging_bias(mask_a, signal / safe, window, lmax, mask2=None if mask_b is mask_a else mask_b,
-                               radius=pair_radius(inp.nside, factor / safe), nthreads=nthreads)
+        # (computed on build_operator's thread when it started one: ``averaged`` is its future)
+        shape = averaged.result() if averaged is not None else _averaging_shape(inp, which, nthreads)
         leakage = shape if leakage is None else leakage + shape
     with_bias = _dep.row_factors(m, signal, lmax, bias=bias)
     return with_bias, _dep.row_factors(m, signal, lmax, bias=bias, leakage=leakage)

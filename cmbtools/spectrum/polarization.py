@@ -108,8 +108,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         temperature estimator's :func:`~cmbtools.spectrum.averaging_bias.averaging_bias`; about 2 s more to
         build).  E and B get no such correction (measured in DEVELOPERS.md "pixel averages": about 1 % near
         1.5 nside).  False: maps sampled at the pixel centres.  None (default): True with the HEALPix pixel
-        windows up to nside 512 (:data:`cmbtools.spectrum.settings.AVERAGED_PIXELS_MAX_NSIDE`), like the
-        temperature estimator.
+        windows (at every nside), like the temperature estimator.
     exact_low_bins : int or None, default=None
         The number of lowest bins whose covariance (all six spectra, their cross-covariances) is computed
         exactly for Gaussian skies and white noise instead of in the narrow-kernel approximation (see
@@ -121,8 +120,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
     max_condition_number : float, default=1e3
         Largest accepted condition number of the binned coupled system (beams etc. divided out).
     force : bool, default=False
-        Build even when the memory estimate (masks, window derivatives, mask transforms to 2 lmax, the dense
-        coupling and covariance kernels of one kernel call), made before any large allocation, exceeds what
+        Build even when the memory estimate (masks, window derivatives, mask transforms to 2 lmax, the
+        couplings' quadrature tables or the pure B's kernel matrices), made before any large allocation, exceeds what
         the machine has available: warn instead of raising.
 
     Attributes
@@ -325,7 +324,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
 
         separate = mask2 is not None or pol_mask2 is not None or beam2 is not None or pol_beam2 is not None
         names = ("11", "12") if separate else ("11",)  # the cross operator: now if asked for, else on first use
-        # every coupling and covariance kernel in one kernel call (ducc0 evaluates the 3j symbols once)
+        # every P-reduced coupling and binned covariance kernel in one quadrature (spin_quadrature: the d-function
+        # tables once for all of them; the pure B's kinds in one call of ducc0's kernel)
         wanted = {key for n in names for c in (_COMPONENTS_AUTO if n == "11" else _COMPONENTS_CROSS)
                   for _, key in self._terms(c, n[0], n[1])}
         keys, spectra = [], []
@@ -335,7 +335,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 if kk not in keys:
                     keys.append(kk)
                     spectra.append(ww)
-        # the removal's TT bias on the coarse grid needs no kernel: on a thread beside the kernel call
+        # the removal's TT bias on the coarse grid needs no coupling: on a thread beside the couplings
         executor = _corrections.start_tt_biases(self, names)
         try:
             self._kernels(wanted, covariance=(keys, spectra))

@@ -18,17 +18,17 @@ import numpy as np
 
 from cmbtools._core import files as _io
 from cmbtools._core.checks import check_cl
-from cmbtools._core.binned_tables import result_metadata, result_unit_scale
-from cmbtools._core.tables import metadata_comments, power_unit_scale, read_text_table, write_text_table
+from cmbtools._core.binned_tables import POLARIZED_BANDPOWER_COLUMNS, POLARIZED_BANDPOWER_SPECTRA
+from cmbtools._core.tables import metadata_comments, power_unit_scale, write_text_table
 from cmbtools.exceptions import InputFileError, InvalidInputError
 from cmbtools.spectrum.bandpowers import clean_metadata, write_bandpower_fits
 
 __all__ = ["SPECTRA", "POLARIZED_COLUMNS", "PolarizedBandpowers"]
 
 #: The six spectra, in the order of every table and array.
-SPECTRA = ("TT", "TE", "TB", "EE", "EB", "BB")
+SPECTRA = POLARIZED_BANDPOWER_SPECTRA
 #: The columns of a polarized bandpower table.
-POLARIZED_COLUMNS = ("spectrum", "ell_min", "ell_max", "ell_eff", "cl", "cl_err", "dl", "dl_err")
+POLARIZED_COLUMNS = POLARIZED_BANDPOWER_COLUMNS
 _VALUES = ("cl", "cl_err", "dl", "dl_err")
 
 
@@ -176,35 +176,12 @@ class PolarizedBandpowers:
             Missing file, wrong columns, a cell that is not a number, spectra or bins that do not repeat
             the same bins for TT, TE, TB, EE, EB, BB in that order, or an unknown unit.
         """
-        table = read_text_table(path, what="a polarized bandpower table", separator=",")
-        p = table.path
-        meta = result_metadata(table)
-        if table.names != POLARIZED_COLUMNS:
-            raise InputFileError(p, f"expected the columns {','.join(POLARIZED_COLUMNS)}")
-        scale = result_unit_scale(p, meta)
-        names, values = [], []
-        for lineno, cells in table.rows:
-            if len(cells) != len(POLARIZED_COLUMNS):
-                raise InputFileError(p, f"line {lineno}: expected {len(POLARIZED_COLUMNS)} values, found {len(cells)}")
-            names.append(cells[0])
-            try:
-                values.append([float(c) for c in cells[1:]])
-            except ValueError:
-                raise InputFileError(p, f"line {lineno}: a value is not a number ({','.join(cells)!r})") from None
-        if not values or len(values) % len(SPECTRA):
-            raise InputFileError(p, f"expected the same bins for each of {', '.join(SPECTRA)}; found {len(values)} rows")
-        nb = len(values) // len(SPECTRA)
-        a = np.array(values).reshape(len(SPECTRA), nb, len(POLARIZED_COLUMNS) - 1)
-        if names != [s for s in SPECTRA for _ in range(nb)]:
-            raise InputFileError(p, f"the spectrum column must list {', '.join(SPECTRA)} in that order, each over the same bins")
-        if not np.all(a[:, :, :3] == a[:1, :, :3]):
-            raise InputFileError(p, "the six spectra must have the same bins")
-        lims = a[0, :, :2]
-        if not np.all(np.isfinite(lims)) or np.any(lims != np.round(lims)) or np.any(np.abs(lims) > 2**62):
-            raise InputFileError(p, "ell_min and ell_max must be whole numbers")
+        from cmbtools._core.binned_tables import read_polarized_bandpower_table
+
+        p, cols, meta = read_polarized_bandpower_table(path)
         try:
-            return cls(a[0, :, 0].astype(np.int64), a[0, :, 1].astype(np.int64), a[0, :, 2],
-                       a[:, :, 3] / scale, a[:, :, 4] / scale, a[:, :, 5] / scale, a[:, :, 6] / scale, None, meta)
+            return cls(cols["ell_min"], cols["ell_max"], cols["ell_eff"], cols["cl"], cols["cl_err"], cols["dl"],
+                       cols["dl_err"], None, meta)
         except InvalidInputError as exc:
             raise InputFileError(p, str(exc)) from None
 

@@ -19,7 +19,7 @@ polarization pairings the parity-even part of the spin-2 kernel that the E (or B
 kind of a pairing set is '00' without polarization fields, '++' with four, '02' otherwise).  The three
 kinds agree where l >> the window's bandwidth; at the largest scales of a small patch they do not, and
 there the spin kinds are used: in the rows and columns of the first bins, where the other parity takes
-more than 10 % of the spin-2 coupling of the window product (``polarized_operator._spin_kernel``), M00
+more than 10 % of the spin-2 coupling of the window product (``polarized_operator.covariance_kernel``), M00
 above (there the in-field reduction below carries the parity; the spin kinds in every bin lowered the
 errors at ell 18-80 by 1-3 %, away from the scatter).  Measured (the Monte Carlo test: 10-degree taper
 of a 40-degree cap, first bin ell 2-17), reported error / simulated scatter in the first bin with M00
@@ -399,10 +399,39 @@ def _pair_spectrum(model, product, u, v, lmax, nthreads):
     return _sht.map_spectra([a, b], lmax, nthreads=nthreads, rings=rings)[2]
 
 
+def _pair_spectra(model, product, pairs, lmax, nthreads):
+    """Cross-spectra to ``lmax`` of the window products of every (u, v) pair: each distinct pair once, each
+    distinct product map transformed once (on the rings where it is not zero) when its coefficients are
+    held whole, else pair by pair as :func:`_pair_spectrum`."""
+    ids = [tuple(sorted((_ident(model, u), _ident(model, v)))) for u, v in pairs]
+    first = {}
+    for i, (u, v) in zip(ids, pairs):
+        first.setdefault(i, (u, v))
+    nside = int(round(np.sqrt(product(pairs[0][0]).size / 12))) if pairs else 0
+    n_maps = len({_ident(model, m) for uv in first.values() for m in uv})
+    done = {}
+    if pairs and not _sht.runs_in_pieces(nside, lmax, n_maps):
+        alms = {}
+
+        def alm(maps):
+            k = _ident(model, maps)
+            if k not in alms:
+                m = product(maps)
+                alms[k] = _sht.map2alm(m, lmax, nthreads=nthreads, rings=_sht.occupied_rings(m))
+            return alms[k]
+
+        for i, (u, v) in first.items():
+            done[i] = _sht.alm2cl(alm(u), alm(v), lmax=lmax)
+    else:
+        for i, (u, v) in first.items():
+            done[i] = _pair_spectrum(model, product, u, v, lmax, nthreads)
+    return [done[i] for i in ids]
+
+
 def covariance_requests(est, name):
     """(keys, spectra) of the main window-product kernels (no gradient) the pair needs and the cache lacks.
 
-    These are computed to lmax in the estimator's kernel call; the leakage kernels are made by
+    Their bin sums are taken to lmax with the estimator's couplings (quadrature); the leakage kernels are made by
     :func:`_leak_kernels`.
     """
     order, blocks = _structure(est, name)
@@ -415,7 +444,7 @@ def covariance_requests(est, name):
                     missing[k] = pair
     product = _products(model)
     keys = list(missing)
-    spectra = [_pair_spectrum(model, product, u, v, est.lmax, est._threads()) for u, v in missing.values()]
+    spectra = _pair_spectra(model, product, list(missing.values()), est.lmax, est._threads())
     return keys, spectra
 
 
@@ -440,12 +469,10 @@ def _leak_lmax(est, name, model):
 
 
 def _leak_kernels(est, name):
-    """The binned leakage kernels: exact below the cut (one kernel call), scaled main kernels above."""
+    """The binned leakage kernels: exact below the cut (quadrature to the cut), scaled main kernels above."""
     done = ("leak_kernels_done", name)
     if done in est._cache:
         return
-    from cmbtools.spectrum import coupling as coupling_pol
-    from cmbtools.spectrum.errors import _reduce_cols, _reduce_rows
 
     order, blocks = _structure(est, name)
     model = _Model(est, name, None, structure_only=True)
@@ -460,31 +487,18 @@ def _leak_kernels(est, name):
                     n_spin[key] = max(n_spin.get(key, 0), est._cache.get(("cov_kernel_spin_bins",) + ref_key, 0))
     exact_kernels = {}
     if lc >= 0 and wanted:
-        from cmbtools.spectrum.polarized_operator import _covariance_requests, _spin_kernel
+        from cmbtools.spectrum import spin_quadrature as _sq
+        from cmbtools.spectrum.polarized_operator import covariance_kernel, covariance_weights
 
         product = _products(model)
         keys = list(wanted)
         # the taper's products have broad kernels: their spectra to 2 lc, all the kernel can use
-        spectra = [_pair_spectrum(model, product, u, v, 2 * lc, est._threads()) for u, v in wanted.values()]
-        reqs = [[r for r in _covariance_requests(k[0], w)] for k, w in zip(keys, spectra)]
-        flat = coupling_pol.coupling_matrices([r for rq in reqs for r in rq], lc, nthreads=est._threads())
-        mats, pos = [], 0
-        for rq in reqs:
-            n_out = sum(2 if kind == "+-" else 1 for kind, _ in rq)
-            mats.append(flat[pos:pos + n_out])
-            pos += n_out
-        b = est.binning
-        r = np.zeros(lc + 1)
-        idx = b.bin_index[: lc + 1]
-        sel = np.nonzero(idx >= 0)[0]
-        r[sel] = 1.0 / b.n_ell[idx[sel]]
-        starts = b.ell_min[exact]
-        inv_cols = 1.0 / (2.0 * np.arange(lc + 1) + 1.0)
-        for k, ms in zip(keys, mats):
-            if k[0] == "00":
-                g = _reduce_cols(_reduce_rows(ms[0] * inv_cols[None, :], r, starts), r, starts)
-            else:
-                g, _ = _spin_kernel(ms, k[0], r, starts, inv_cols, n_low=min(n_spin[k], starts.size))
+        spectra = dict(enumerate(_pair_spectra(model, product, list(wanted.values()), 2 * lc, est._threads())))
+        q = _sq.SpinCouplingQuadrature(lc, spectra, nthreads=est._threads())
+        n_ex = int(np.count_nonzero(exact))
+        proj = q.project(["2m2", "20", "22", "P"], covariance_weights(est.binning, lc, n_ex))
+        for n, k in enumerate(keys):
+            g, _ = covariance_kernel(q, n, k[0], proj, n_ex, n_low=None if k[0] == "00" else min(n_spin[k], n_ex))
             exact_kernels[k] = 0.5 * (g + g.T)
     n_exact = int(np.count_nonzero(exact))
     for items in blocks.values():

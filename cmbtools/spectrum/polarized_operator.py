@@ -15,8 +15,9 @@ with the averaging operator ``P`` and the piecewise-flat model ``Q``, the system
 removes the E/B mixing of the mask on average.
 
 :class:`_PolarizedOperator` is the base of :class:`~cmbtools.spectrum.PolarizedSpectrumEstimator`: its
-immutable state, the masks' spectra and moments, every coupling kernel (one ducc0 kernel call for all the
-matrices the estimator needs) and the binned operator :class:`_Pair` of map 1 x map 1 and map 1 x map 2.
+immutable state, the masks' spectra and moments, the P-reduced coupling kernels and the binned covariance kernels
+(exact Gauss-Legendre sums of Wigner d-functions, :mod:`cmbtools.spectrum.spin_quadrature`: no matrix is formed;
+the pure B's kinds by ducc0's kernel) and the binned operator :class:`_Pair` of map 1 x map 1 and map 1 x map 2.
 """
 
 from __future__ import annotations
@@ -28,8 +29,9 @@ import numpy as np
 from cmbtools._core import sht as _sht
 from cmbtools._core.checks import resolve_nthreads
 from cmbtools.exceptions import IllConditionedError
-from cmbtools.spectrum import coupling as coupling_pol
+from cmbtools.spectrum import coupling as _coupling
 from cmbtools.spectrum import polarized_corrections as _corrections
+from cmbtools.spectrum import spin_quadrature as _sq
 from cmbtools.spectrum.errors import _reduce_cols, _reduce_rows
 
 __all__ = []
@@ -71,42 +73,61 @@ def _freeze(a):
 PARITY_SHARE_SPIN_KERNELS = 0.1
 
 
-def _covariance_requests(kind, w):
-    """The coupling requests of one covariance kernel of the given kind: '00' alone; '02' and '++' also need
-    the M00 and the ++/-- kernels of the same window product (see :func:`_spin_kernel`)."""
-    if kind == "00":
-        return [("00", w)]
-    return [("00", w), ("+-", w)] + ([("02", w)] if kind == "02" else [])
+#: The coupling of each P-reduced kernel kind ('00R' is R.M00, R_ll' = N_l / N_l', ...) and the power of R.
+_KIND_BASE = {"00": ("00", 0), "00R": ("00", 1), "00RR": ("00", 2), "02": ("02", 0), "02R": ("02", 1),
+              "++": ("++", 0), "--": ("--", 0), "+-": ("+-", 0)}
 
 
-def _spin_kernel(mats, kind, r, starts, inv_cols, n_low=None):
-    """The binned covariance kernel of kind '02' or '++' from (M00, M++, M--[, M02]) of one window product.
+def _quadrature_types(kinds):
+    return sorted({t for k in kinds for t, _ in _sq._TERMS[k]})
 
-    The spin kind (``polarized_covariance``'s module notes) in the rows and columns of the first bins, those
-    where the other parity takes more than ``PARITY_SHARE_SPIN_KERNELS`` of the spin-2 coupling (the
-    largest scales of a patch); M00 elsewhere (there the in-field reduction terms carry the parity: with
-    the spin kinds in every bin the polarized errors at ell 18-80 came out 1-3 % lower, and M00 matched
-    the scatter; measured).
+
+def covariance_kernel(q, key, kind, proj, nb, n_low=None):
+    """The binned covariance kernel ``G_bb' = sum_{l in b, l' in b'} r_l M_ll'/(2l'+1) r_l'`` of one window
+    product (quadrature ``q``, spectrum ``key``) and its number of spin-kind bins.
+
+    ``proj``: the projections (:meth:`SpinCouplingQuadrature.project`) of the (lmax+1, nb + 1) weights, the
+    per-bin ``r_l`` columns and a last column ``2l'+1`` over every multipole (the row sums).  Kind '00': M00.
+    Kinds '02' and '++': the spin kind (M02, or M++) in the rows and columns of the first bins, those where
+    the other parity takes more than ``PARITY_SHARE_SPIN_KERNELS`` of the spin-2 coupling (the largest
+    scales of a patch); M00 elsewhere (there the in-field reduction terms carry the parity: with the spin
+    kinds in every bin the polarized errors at ell 18-80 came out 1-3 % lower, and M00 matched the scatter;
+    measured).  ``n_low``: the number of spin-kind bins if fixed by the caller.
     """
-    m00, mpp, mmm = mats[:3]
-    spin = mats[3] if kind == "02" else mpp
-
-    def binned(m):
-        return _reduce_cols(_reduce_rows(m * inv_cols[None, :], r, starts), r, starts)
-
-    g = binned(m00)
+    a = {t: v[:, :nb] for t, v in proj.items()}
+    g = q.binned("00", key, a, a)
+    if kind == "00":
+        return g, 0
     if n_low is None:
-        rows_pp = np.add.reduceat(r * mpp.sum(axis=1), starts)
-        rows_mm = np.add.reduceat(r * mmm.sum(axis=1), starts)
+        ones = {t: v[:, nb:nb + 1] for t, v in proj.items() if t in ("22", "2m2")}
+        rows_pp = q.binned("++", key, a, ones)[:, 0]
+        rows_mm = q.binned("--", key, a, ones)[:, 0]
         with np.errstate(invalid="ignore", divide="ignore"):
             share = np.where(rows_pp + rows_mm > 0, rows_mm / (rows_pp + rows_mm), 0.0)
         above = share > PARITY_SHARE_SPIN_KERNELS
         n_low = int(np.argmin(above)) if not above.all() else above.size
     if n_low:
-        gs = binned(spin)
+        gs = q.binned("02" if kind == "02" else "++", key, a, a)
         g[:n_low, :] = gs[:n_low, :]
         g[:, :n_low] = gs[:, :n_low]
     return g, n_low
+
+
+def covariance_weights(binning, lmax, n_bins=None):
+    """(lmax+1, n_bins + 1): the per-bin ``r_l = 1/n_b`` columns of the first ``n_bins`` bins (default all) and
+    the column ``2l'+1`` of the row sums, for :func:`covariance_kernel`."""
+    nb = binning.n_bins if n_bins is None else int(n_bins)
+    idx = np.full(lmax + 1, -1)
+    n = min(lmax + 1, binning.bin_index.size)
+    idx[:n] = binning.bin_index[:n]
+    idx[idx >= nb] = -1
+    r = np.zeros(lmax + 1)
+    sel = np.nonzero(idx >= 0)[0]
+    r[sel] = 1.0 / binning.n_ell[idx[sel]]
+    u = np.zeros((lmax + 1, nb + 1))
+    u[:, :nb] = _sq.bin_vectors(r, idx, nb)
+    u[:, nb] = 2.0 * np.arange(lmax + 1) + 1.0
+    return u
 
 
 class _PolarizedOperator:
@@ -175,66 +196,74 @@ class _PolarizedOperator:
         return self._cached(("mask_spectrum", i, j), make)
 
     def _kernels(self, wanted, covariance=None):
-        """P-reduced coupling matrices (n_bins, lmax+1) for keys (kind, i, j); missing ones in one kernel call.
+        """P-reduced coupling matrices (n_bins, lmax+1) for keys (kind, i, j); missing ones computed and cached.
 
         Kinds: '00', '02', '++', '--', '+-' (= ++ minus --), and for the pure B '00R' (R.M00), '00RR'
         (R^2.M00), '02R' (R.M02), with ``R = N_l / N_l'`` (:func:`pure_b_ratio`).  ``covariance``: the
-        (keys, spectra) of covariance kernels to compute in the same kernel call (ducc0 evaluates the 3j
-        symbols once for all the matrices of a call); a key's first item is its kind, '00', '02' or '++'.
+        (keys, spectra) of binned covariance kernels to compute too; a key's first item is its kind, '00',
+        '02' or '++' (:func:`covariance_kernel`).  No matrix is formed: the P-reduced rows and the bin sums
+        are exact Gauss-Legendre sums of Wigner d-functions (:mod:`cmbtools.spectrum.spin_quadrature`; equal
+        to ducc0's coupling kernel reduced the same way to rounding, tested), except the pure B's kinds
+        (one call of ducc0's kernel, see below).
         """
         missing = sorted({k for k in wanted if ("kernel",) + k not in self._cache})
         cov_keys, cov_spectra = covariance if covariance is not None else ((), ())
         if not missing and not cov_keys:
             return {k: self._cache[("kernel",) + k] for k in wanted}
-        base = {}
-        for kind, i, j in missing:
-            b = {"00": "00", "00R": "00", "00RR": "00", "02": "02", "02R": "02"}.get(kind, "+-")
-            base.setdefault((b, i, j), []).append(kind)
-        requests = list(base)
-        mats = coupling_pol.coupling_matrices(
-            [(b, self._mask_spectrum(i, j)) for b, i, j in requests]
-            + [req for k, w in zip(cov_keys, cov_spectra) for req in _covariance_requests(k[0], w)],
-            self.lmax, nthreads=self._threads(),
-        )
-        p_w = self.binning.averaging_weights(self.lmax)
-        starts = self.binning.ell_min
-        ratio = coupling_pol.pure_b_ratio(self.lmax) if any(k[0].endswith("R") for k in missing) else None
-        pos = 0
-        for (b, i, j) in requests:
-            if b == "+-":
-                mpp, mmm = mats[pos], mats[pos + 1]
-                pos += 2
-                made = {"++": mpp, "--": mmm, "+-": None}
-            else:
-                made = {b: mats[pos]}
-                pos += 1
-            for kind in base[(b, i, j)]:
-                if kind == "+-":
-                    m = mpp - mmm
-                elif kind.endswith("RR"):
-                    m = made[b] * (ratio * ratio)
-                elif kind.endswith("R"):
-                    m = made[b] * ratio
-                else:
-                    m = made[kind].copy()
-                self._cache[("kernel", kind, i, j)] = _freeze(_reduce_rows(m, p_w, starts))
+        lmax = self.lmax
+        b = self.binning
+        p_w = b.averaging_weights(lmax)
+        nb = b.n_bins
+        # the pure B's kinds (R = N_l / N_l' grows as (l'/l)^2) from ducc0's kernel: its matrices keep their
+        # relative precision in the small far-off-diagonal entries that R multiplies (a sum on the nodes has
+        # an absolute rounding error, which R^2 would raise to 1e-11 of a row at lmax 32 and more above)
+        ratio_kinds = [k for k in missing if _KIND_BASE[k[0]][1] > 0]
+        missing = [k for k in missing if _KIND_BASE[k[0]][1] == 0]
+        if ratio_kinds:
+            base = {}
+            for kind, i, j in ratio_kinds:
+                base.setdefault((_KIND_BASE[kind][0], i, j), []).append(kind)
+            mats = _coupling.coupling_matrices([(k, self._mask_spectrum(i, j)) for k, i, j in base], lmax,
+                                               nthreads=self._threads())
+            ratio = _coupling.pure_b_ratio(lmax)
+            for m, (bk, i, j) in zip(mats, base):
+                for kind in base[(bk, i, j)]:
+                    r = ratio if _KIND_BASE[kind][1] == 1 else ratio * ratio
+                    self._cache[("kernel", kind, i, j)] = _freeze(_reduce_rows(m * r, p_w, b.ell_min))
+            del mats
+        spectra = {("mask", i, j): self._mask_spectrum(i, j) for _, i, j in missing}
+        spectra.update({("cov", n): w for n, w in enumerate(cov_spectra)})
+        if not missing and not cov_keys:
+            return {k: self._cache[("kernel",) + k] for k in wanted}
+        q = _sq.SpinCouplingQuadrature(lmax, spectra, nthreads=self._threads())
+        # every weight vector in one projection per d-function table
+        columns, where = [], {}
+        if missing:
+            where[0] = (0, None)
+            columns.append(_sq.bin_vectors(p_w, b.bin_index, nb))
         if cov_keys:
-            b = self.binning
-            r = np.zeros(self.lmax + 1)
-            idx = b.bin_index
-            sel = np.nonzero(idx >= 0)[0]
-            r[sel] = 1.0 / b.n_ell[idx[sel]]
-            inv_cols = 1.0 / (2.0 * np.arange(self.lmax + 1) + 1.0)
-            for k in cov_keys:
-                if k[0] == "00":
-                    g = _reduce_cols(_reduce_rows(mats[pos] * inv_cols[None, :], r, b.ell_min), r, b.ell_min)
-                    pos += 1
-                else:
-                    g, n_low = _spin_kernel(mats[pos:pos + (4 if k[0] == "02" else 3)], k[0], r, b.ell_min, inv_cols)
-                    pos += 4 if k[0] == "02" else 3
+            where["cov"] = (len(columns), None)
+            columns.append(covariance_weights(b, lmax))
+        types = _quadrature_types([_KIND_BASE[k][0] for k, _, _ in missing]
+                                  + (["00", "02", "++"] if cov_keys else []))
+        proj = q.project(types, np.concatenate(columns, axis=1))
+        offsets = np.cumsum([0] + [c.shape[1] for c in columns])
+
+        def part(slot):
+            k = where[slot][0]
+            return {t: v[:, offsets[k]:offsets[k + 1]] for t, v in proj.items()}
+
+        if missing:
+            reqs = [(kind, ("mask", i, j), part(0)) for kind, i, j in missing]
+            for (kind, i, j), m in zip(missing, q.reduced_rows(reqs)):
+                self._cache[("kernel", kind, i, j)] = _freeze(m)
+        if cov_keys:
+            pc = part("cov")
+            for n, k in enumerate(cov_keys):
+                g, n_low = covariance_kernel(q, ("cov", n), k[0], pc, nb)
+                if k[0] != "00":
                     self._cache[("cov_kernel_spin_bins",) + k] = n_low
                 self._cache[("cov_kernel",) + k] = _freeze(0.5 * (g + g.T))
-        del mats
         return {k: self._cache[("kernel",) + k] for k in wanted}
 
     def _terms(self, comp, a, b):

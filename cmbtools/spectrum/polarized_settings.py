@@ -55,7 +55,10 @@ def _check_memory(mask, lmax, others, purify, force):
     derivatives = estimate_map_bytes(nside, 4 * min(2, n_masks)) if purify else 0
     derivatives += estimate_map_bytes(nside, 4)  # the covariance's |eth w|, lap w and window products
     transform = 3 * estimate_alm_bytes(2 * lmax) + _sht._leg_bytes(nside, 2 * lmax)
-    kernels = estimate_coupling_bytes(lmax, 2 + 4 * n_masks)
+    # the pure B's kernel matrices, or the quadrature's d-function tables (4 of (2 lmax + 1) nodes, in blocks of
+    # at most 2**23 doubles each; spectrum.spin_quadrature)
+    tables = 4 * 8 * (2 * lmax + 1) * min(lmax + 1, max(64, 2**23 // (2 * lmax + 1)))
+    kernels = max(estimate_coupling_bytes(lmax, 2 + 4 * n_masks), tables)
     need = masks + derivatives + max(transform, kernels)
     return check_memory(need, f"Building the polarized spectrum estimator at nside {nside} with lmax {lmax}",
                         force=force)

@@ -168,16 +168,11 @@ class EstimatorSettings:
         )
 
 
-#: The largest nside at which the estimator's default model is a map averaged into its pixels
-#: (``averaged_pixels=None``); above it the default is pixel centres (the correction adds about 2 s to the first
-#: call whatever the nside, measured in DEVELOPERS.md "pixel averages").
-AVERAGED_PIXELS_MAX_NSIDE = 512
-
-
 def default_averaged_pixels(nside, pixel_window=True) -> bool:
-    """Whether ``averaged_pixels=None`` means averaged maps: with the HEALPix pixel window, up to
-    :data:`AVERAGED_PIXELS_MAX_NSIDE`."""
-    return pixel_window is True and int(nside) <= AVERAGED_PIXELS_MAX_NSIDE
+    """Whether ``averaged_pixels=None`` means averaged maps: whenever the HEALPix pixel window is divided out
+    (at every nside; the correction's pair sums cost about the same at every nside and run on a thread beside
+    the coupling kernel, DEVELOPERS.md "pixel averages")."""
+    return pixel_window is True
 
 
 @renamed_keywords(fast_l_exact="fast_exact_below", fast_l_toeplitz="fast_banded_below",

@@ -150,3 +150,25 @@ def test_validate_checks_the_corrected_pipeline_and_its_covariance_is_not_divide
     err = capsys.readouterr().err
     assert "the covariance is of bandpowers divided by a transfer function" in err and err.count("\n") == 1
     assert not refused.exists()
+
+
+@pytest.mark.parametrize("suffix", [".npz", ".fits"])
+def test_a_corrected_covariance_file_keeps_its_transfer_key_and_needs_that_table(files, tmp_path, capsys, suffix):
+    # `spectrum --transfer --covariance` writes the covariance of corrected bandpowers; read back (npz or FITS)
+    # it is used with the same table only (the FITS reader once dropped the key, and with it this guard)
+    bins = dict(ell_min=[2, 10, 18, 26, 34], ell_max=[9, 17, 25, 33, 40], ell_eff=[5.5, 13.5, 21.5, 29.5, 37.0])
+    table = BandpowerTransfer(**bins, transfer=[0.4, 0.8, 0.9, 0.95, 1.0]).write_csv(tmp_path / "t.csv")
+    other = BandpowerTransfer(**bins, transfer=[0.5, 0.8, 0.9, 0.95, 1.0]).write_csv(tmp_path / "t2.csv")
+    cov_path = tmp_path / f"cov{suffix}"
+    assert main(_spectrum_args(files, tmp_path / "a.csv", "--transfer", str(table), "--covariance", str(cov_path))) == 0
+    cov = read_covariance(cov_path)
+    assert cov.settings["bandpower_transfer_key"] == BandpowerTransfer.read_csv(table).key
+    capsys.readouterr()
+    out = tmp_path / "b.csv"
+    for extra in ((), ("--transfer", str(other))):
+        assert main(_spectrum_args(files, out, "--covariance-from", str(cov_path), *extra)) == 2
+        err = capsys.readouterr().err
+        assert "the covariance is of bandpowers divided by a transfer function" in err and err.count("\n") == 1
+        assert str(cov_path) in err and not out.exists()
+    assert main(_spectrum_args(files, out, "--covariance-from", str(cov_path), "--transfer", str(table))) == 0
+    np.testing.assert_allclose(Bandpowers.read_csv(out).cl_err, np.sqrt(np.diag(cov.matrix)), rtol=1e-12)

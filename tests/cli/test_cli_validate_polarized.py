@@ -70,7 +70,7 @@ def test_polarized_validate_writes_six_spectra(files, capsys, monkeypatch):
     (("--pol-mask", "{tmp}/pol_mask.fits"), "--pol-mask needs --polarized"),
     (("--purify-b",), "--purify-b needs --polarized"),
     (("--polarized", "--fast-coupling"), "--fast-coupling is not available with --polarized"),
-    (("--polarized", "--harmonic-filter", "{tmp}/pol.csv"), "--harmonic-filter applies to temperature validation"),
+    (("--polarized", "--harmonic-filter", "{tmp}/pol.csv"), "one 'factor' column (found ell,cl_tt_k2"),
     (("--polarized", "--tensor-ratio", "0.1", "--spectrum", "{tmp}/pol.csv"), "cannot be combined with --spectrum"),
     (("--polarized", "--tensor-ratio", "-1"), "--tensor-ratio must be in [0, 10]"),
     (("--polarized", "--spectrum", "{tmp}/short.csv"), "stops at ell=29"),

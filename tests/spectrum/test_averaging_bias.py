@@ -137,3 +137,39 @@ def test_cache_keeps_the_most_recent_results_only(monkeypatch):
     assert len(calls) == module.CACHE_SIZE + 1
     averaging_bias(mask, sky_cl, window, lmax)  # the oldest: dropped
     assert len(calls) == module.CACHE_SIZE + 2
+
+
+def test_stratified_sample_is_a_partition_of_the_mask_and_close_to_the_full_sum():
+    """Above max_centres pixels the pair sums come from a stratified sample (one pixel per run of pixels grouped by
+    band of rings and folded azimuth): each drawn pixel is a distinct pixel of the mask standing for its run, the
+    runs cover the mask once, and the sum is close to the one over every pixel of the mask."""
+    import sys
+    from pathlib import Path
+
+    import cmbtools.spectrum.averaging_bias as module
+
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+    from _masks import cap_with_holes
+
+    nside = 32
+    mask = cap_with_holes(nside)[0]  # tapered cap with holes: 2177 pixels, both zones of the grid
+    inside = np.count_nonzero(mask)
+    for n in (64, 512):
+        centres, share = module._centres(mask, n)
+        assert centres.size == n and np.unique(centres).size == n and np.all(mask[centres] > 0)
+        assert share.sum() == inside and share.min() >= inside // n
+    sky_lmax, lmax = 4 * nside - 1, 3 * nside - 1
+    ell = np.arange(sky_lmax + 1)
+    sky_cl = np.where(ell > 1, 1.0 / np.maximum(ell * (ell + 1.0), 1.0), 0.0) * hp.gauss_beam(np.radians(2 * 1.83), sky_lmax) ** 2
+    window = np.asarray(pixel_window(nside, sky_lmax))
+    full = averaging_bias(mask, sky_cl, window, lmax)  # every pixel a centre
+    sampled = averaging_bias(mask, sky_cl, window, lmax, max_centres=512)
+    width = 16
+    pseudo = np.add.reduceat((sky_cl * window**2)[:lmax + 1], np.arange(2, lmax + 1, width)) * np.mean(mask**2)
+    bias = np.add.reduceat(full, np.arange(2, lmax + 1, width))
+    error = np.add.reduceat(sampled - full, np.arange(2, lmax + 1, width))
+    below = np.arange(2, lmax + 1, width) < 2 * nside
+    # the bias reaches 1.4 % of the pseudo-power at ell 66-81; 512 of the 2177 pixels reproduce it below 2 nside
+    # to within 1.5e-3 of the pseudo-power (measured with six seeds of the sample: at most 5.8e-4; 256 pixels: 2.4e-3)
+    assert np.max(np.abs(bias / pseudo)) > 1e-2
+    assert np.max(np.abs(error / pseudo)[below]) < 1.5e-3

@@ -3,6 +3,8 @@ polarized transfer table: round trips, shapes, refusals."""
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 
@@ -157,3 +159,45 @@ def test_transfer_tables_of_the_other_kind_are_refused(tmp_path):
     (tmp_path / "neg.csv").write_text(text)
     with pytest.raises(InputFileError, match="BB transfer function is -0.7 in bin 0"):
         PolarizedBandpowerTransfer.read_csv(tmp_path / "neg.csv")
+
+
+@pytest.mark.parametrize("suffix", [".npz", ".fits"])
+@pytest.mark.parametrize("polarized", [False, True])
+def test_settings_round_trip_in_both_formats(tmp_path, suffix, polarized):
+    # FITS keeps the same settings as npz (the SETTINGS extension holds their JSON): long, multi-line and
+    # non-ASCII values, numbers as numbers; the header cards are a shortened ASCII copy for the eye
+    rng = np.random.default_rng(8)
+    settings = {"bandpower_transfer_key": "0123456789abcdef", "bandpower_transfer_max_relative_error": 0.125,
+                "seed": 7, "map": "/data/tern/" + "very_long_directory/" * 6 + "carte_été.fits",
+                "note": "two\nlines", "observer": "Zoë"}
+    if polarized:
+        c = dataclasses.replace(_six(rng), settings=settings, kind="simulation", n_sims=40)
+    else:
+        a = rng.standard_normal((3, 3))
+        c = BandpowerCovariance(matrix=a @ a.T, kind="simulation", n_sims=40, settings=settings, **BINS)
+    back = read_covariance(c.write(tmp_path / f"cov{suffix}"))
+    assert back.settings == settings and (back.kind, back.n_sims) == ("simulation", 40)
+    assert isinstance(back.settings["seed"], int) and isinstance(back.settings["bandpower_transfer_max_relative_error"],
+                                                                 float)
+    if suffix == ".fits":
+        from astropy.io import fits
+
+        header = fits.getheader(tmp_path / f"cov{suffix}")
+        assert header["MAP"] == settings["map"][:60] and header["OBSERVER"] == "Zo\\xeb"
+        assert header["NOTE"] == "two lines"
+        assert header["BANDPOWER_TRANSFER_KEY"] == "0123456789abcdef"
+
+
+def test_a_fits_file_without_settings_reads_its_kind_and_count(tmp_path):
+    # the layout before the SETTINGS extension
+    from astropy.io import fits
+
+    rng = np.random.default_rng(9)
+    a = rng.standard_normal((3, 3))
+    path = BandpowerCovariance(matrix=a @ a.T, kind="simulation", n_sims=12, settings={"seed": 1},
+                               **BINS).write(tmp_path / "cov.fits")
+    with fits.open(path) as hdul:
+        fits.HDUList([h for h in hdul if h.name != "SETTINGS"]).writeto(tmp_path / "old.fits")
+    back = read_covariance(tmp_path / "old.fits")
+    assert (back.kind, back.n_sims, back.settings) == ("simulation", 12, {})
+    np.testing.assert_array_equal(back.matrix, a @ a.T)
