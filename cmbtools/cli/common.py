@@ -102,6 +102,43 @@ def deprecated_alias(parser, old, new, dest, **kwargs):
     parser.add_argument(old, dest=dest, action=_DeprecatedAlias, new_name=new, help=argparse.SUPPRESS, **kwargs)
 
 
+# ----------------------------------------------------------------------------- monopole and dipole (simulate, validate)
+
+#: Direction of a dipole given by its amplitude alone (``--dipole UK``): galactic-style (lon, lat) in degrees.
+DIPOLE_DIRECTION = (60.0, 30.0)
+
+
+def add_monopole_dipole(parser, monopole_default, dipole_default):
+    """``--monopole UK`` and ``--dipole UK [LON LAT]``: the same options for every command that adds them."""
+    parser.add_argument("--monopole", type=finite_float, metavar="UK",
+                        help=f"monopole added to every sky, uK ({monopole_default})")
+    parser.add_argument("--dipole", type=finite_float, nargs="+", metavar=("UK", "LON LAT"),
+                        help=f"dipole of amplitude UK added to every sky, towards (LON, LAT) degrees, by default "
+                             f"({DIPOLE_DIRECTION[0]:g}, {DIPOLE_DIRECTION[1]:g}) ({dipole_default})")
+
+
+def monopole_dipole_from_args(args, monopole_default, dipole_default):
+    """(monopole in K, :class:`~cmbtools.simulate.Dipole` or None) from ``--monopole`` and ``--dipole``.
+
+    Raises InvalidInputError (one line, exit status 2) for a count of dipole values other than 1 or 3 and for
+    values beyond 1e9 uK.
+    """
+    from cmbtools.exceptions import InvalidInputError
+    from cmbtools.simulate import Dipole
+
+    monopole = monopole_default if args.monopole is None else args.monopole
+    values = [dipole_default] if args.dipole is None else list(args.dipole)
+    if len(values) not in (1, 3):
+        raise InvalidInputError(f"--dipole takes UK or UK LON LAT (amplitude in uK, direction in degrees). "
+                                f"Got {len(values)} values instead.")
+    amplitude, (lon, lat) = values[0], (values[1:] if len(values) == 3 else DIPOLE_DIRECTION)
+    for name, value in (("--monopole", monopole), ("--dipole", amplitude)):
+        if abs(value) > 1e9:
+            raise InvalidInputError(f"{name} must be a finite number of uK below 1e9. Got {value!r} instead.")
+    dipole = Dipole(amplitude * 1e-6, lon, lat) if amplitude else None
+    return monopole * 1e-6, dipole
+
+
 # ----------------------------------------------------------------------------- pixels (spectrum and validate)
 
 

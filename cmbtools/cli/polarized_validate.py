@@ -66,10 +66,11 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     from cmbtools._core.checks import check_same_nside
     from cmbtools._core.files import sha256_file
     from cmbtools.cli.common import (
-        binning_from_args, bins_top, describe_binning, pixel_model_from_args, print_range_warning,
+        binning_from_args, bins_top, describe_binning, monopole_dipole_from_args, pixel_model_from_args,
+        print_range_warning,
     )
     from cmbtools.exceptions import InvalidInputError
-    from cmbtools.simulate import Dipole, NoiseModel, validate_polarized_estimator
+    from cmbtools.simulate import NoiseModel, validate_polarized_estimator
 
     # inputs, all read and checked before the estimator is built
     mask = maps.read_mask(args.mask, force=args.force)
@@ -165,12 +166,7 @@ def run_polarized(args, outputs, run_dir, where) -> int:
 
     spectra = check_spectra(spectra, sky_lmax)
     removal = not args.keep_monopole_dipole
-    monopole = (100.0 if removal else 0.0) if args.monopole is None else args.monopole
-    dipole_uk = (3000.0 if removal else 0.0) if args.dipole is None else args.dipole
-    for name, value in (("--monopole", monopole), ("--dipole", dipole_uk)):
-        if not np.isfinite(value) or abs(value) > 1e9:
-            raise InvalidInputError(f"{name} must be a finite number of uK below 1e9. Got {value!r} instead.")
-    dipole = Dipole(abs(dipole_uk) * 1e-6, 60.0, 30.0) if dipole_uk else None
+    monopole, dipole = monopole_dipole_from_args(args, 100.0 if removal else 0.0, 3000.0 if removal else 0.0)
     # the model of the skies simulated: averaged pixels with --pixelise, pixel centres without (unless told)
     averaged = pixel_model_from_args(args, default=bool(args.pixelise) and not args.no_pixel_window)
     if averaged and args.no_pixel_window:
@@ -185,7 +181,7 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     result = validate_polarized_estimator(
         est, spectra, n_sims=args.sims, seed=args.seed, noise=noise, run_dir=run_dir, executor=executor,
         workers=workers, threads_per_worker=args.threads or None, progress=False if args.no_progress else None,
-        restart=args.restart, force=args.force, cross=cross, monopole=monopole * 1e-6, dipole=dipole,
+        restart=args.restart, force=args.force, cross=cross, monopole=monopole, dipole=dipole,
         sky_lmax=sky_lmax, sky_beam=sky_beam, pixelise=bool(args.pixelise), harmonic_filter=harmonic_filter,
         bandpower_transfer=transfer,
     )
@@ -263,7 +259,8 @@ def run_polarized(args, outputs, run_dir, where) -> int:
           + f"; B-mode purification: {'yes' if args.purify_b else 'no'}")
     if not args.no_pixel_window:
         skies = "averaged over each pixel" if args.pixelise else "sampled at the pixel centres"
-        model = ("averaged pixels (pixel windows + the pixel shapes' correction of TT)" if averaged
+        model = (("averaged pixels (pixel windows + the pixel shapes' correction of TT, TE, EE"
+                  + (")" if args.purify_b else ", BB)")) if averaged
                  else "pixel centres (pixel windows only)")
         print(f"  pixels: skies {skies}; estimator's model: {model}")
     worst = result.worst_bin()

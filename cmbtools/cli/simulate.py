@@ -6,8 +6,8 @@ import argparse
 import contextlib
 
 from cmbtools.cli.common import (
-    MAX_SIMULATIONS, add_force, add_overwrite, add_threads, bounded_int, deprecated_alias, finite_float,
-    non_negative_int, positive_float, positive_int,
+    MAX_SIMULATIONS, add_force, add_monopole_dipole, add_overwrite, add_threads, bounded_int, deprecated_alias,
+    finite_float, monopole_dipole_from_args, non_negative_int, positive_float, positive_int,
 )
 
 HELP = "write simulated Gaussian CMB maps with beam, pixel window and noise"
@@ -60,9 +60,9 @@ def add_arguments(parser):
                      help="average every sky over the area of each pixel, as a detector's map does (instead of the "
                           "pixel window at the pixel centres): the maps the spectrum estimator assumes by default "
                           "(about 0.8 s a map at nside 128)")
-    sky.add_argument("--monopole-uk", type=finite_float, default=0.0, metavar="UK", help="add a constant, in uK")
-    sky.add_argument("--dipole-uk", type=finite_float, nargs=3, metavar=("AMPLITUDE", "LON", "LAT"),
-                     help="add a dipole of AMPLITUDE uK towards (LON, LAT) degrees")
+    add_monopole_dipole(sky, "default 0", "default none")
+    deprecated_alias(sky, "--monopole-uk", "--monopole", "monopole", type=finite_float)
+    deprecated_alias(sky, "--dipole-uk", "--dipole", "dipole", type=finite_float, nargs=3)
 
     noise = parser.add_argument_group("noise")
     noise.add_argument("--noise-depth", type=positive_float, metavar="UK_ARCMIN",
@@ -111,7 +111,7 @@ def _check_map_memory(args, nside, lmax):
     from cmbtools._core.memory import check_memory, estimate_map_bytes, estimate_simulated_maps_bytes
 
     need = estimate_simulated_maps_bytes(
-        nside, lmax, with_dipole=args.dipole_uk is not None, with_noise=args.noise_depth is not None,
+        nside, lmax, with_dipole=args.dipole is not None, with_noise=args.noise_depth is not None,
         correlated_noise=args.noise_knee is not None, with_hits=args.hits is not None,
     )
     if args.splits:  # the sky and every split are kept until the split maps are written
@@ -275,11 +275,7 @@ def _run(args, created, group, printed) -> int:
         beam, beam_text = read_beam(args.beam, lmax=lmax), f"table {args.beam}"
     else:
         beam, beam_text = None, "none"
-    dipole = None
-    if args.dipole_uk is not None:
-        amp, lon, lat = args.dipole_uk
-        dipole = simulate.Dipole(amp * 1e-6, lon, lat)
-    monopole = args.monopole_uk * 1e-6
+    monopole, dipole = monopole_dipole_from_args(args, 0.0, 0.0)
     nthreads = args.threads or None
 
     from cmbtools.maps import write_sky_map
@@ -388,10 +384,7 @@ def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs, group, pri
         beam, beam_text = read_beam(args.beam, lmax=lmax), f"table {args.beam}"
     else:
         beam, beam_text = None, "none"
-    dipole = None
-    if args.dipole_uk is not None:
-        amp, lon, lat = args.dipole_uk
-        dipole = simulate.Dipole(amp * 1e-6, lon, lat)
+    monopole, dipole = monopole_dipole_from_args(args, 0.0, 0.0)
     nthreads = args.threads or None
     print(f"simulating {args.sims} I, Q, U map(s): nside {nside}, lmax {lmax}, seed {seed}, spectra: {source}")
     for i, paths in zip(range(args.first_index, args.first_index + args.sims), outputs):
@@ -401,7 +394,7 @@ def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs, group, pri
                 warnings.filterwarnings("ignore", message=".*would need about .* going ahead", category=CmbtoolsWarning)
             sky = simulate.gaussian_iqu_sky(spectra, nside, lmax=lmax, beam=beam,
                                             pixel_window=not args.no_pixel_window, pixelise=args.pixelise,
-                                            monopole=args.monopole_uk * 1e-6,
+                                            monopole=monopole,
                                             dipole=dipole, rng=rng, nthreads=nthreads, force=args.force)
             split_maps = []
             for _path in paths:

@@ -7,7 +7,7 @@ import sys
 
 from cmbtools.cli.common import (
     MAX_SIMULATIONS, MAX_THREADS, add_binning, add_force, add_overwrite, binning_from_args, bins_top, bounded_int,
-    add_pixel_model, deprecated_alias, describe_binning, non_negative_int, pixel_model_from_args, positive_float,
+    add_monopole_dipole, add_pixel_model, monopole_dipole_from_args, describe_binning, non_negative_int, pixel_model_from_args, positive_float,
     positive_int, print_range_warning,
 )
 
@@ -109,11 +109,8 @@ def add_arguments(parser):
     parser.add_argument("--pixelise", action="store_true",
                         help="average every sky over the area of each pixel, as a detector's map does (instead of the "
                              "pixel window at the pixel centres)")
-    parser.add_argument("--monopole", type=float, metavar="UK",
-                        help="monopole added to every sky, uK (default 100; 0 with --keep-monopole-dipole)")
-    parser.add_argument("--dipole", type=float, metavar="UK",
-                        help="dipole amplitude added to every sky, uK, towards (lon, lat) = (60, 30) "
-                             "(default 3000; 0 with --keep-monopole-dipole)")
+    add_monopole_dipole(parser, "default 100; 0 with --keep-monopole-dipole",
+                        "default 3000; 0 with --keep-monopole-dipole")
     parser.add_argument("--fast-coupling", action="store_true",
                         help="approximate the mode-coupling matrix (faster at large lmax; exact when lmax > 2 nside, where the approximation fails)")
     noise = parser.add_argument_group("noise (default: none)")
@@ -324,14 +321,7 @@ def run(args) -> int:
                 f"to ell={sky_lmax} (give the factor up to there, or a lower --sky-lmax)."
             )
     removal = not args.keep_monopole_dipole
-    monopole = (100.0 if removal else 0.0) if args.monopole is None else args.monopole
-    dipole_uk = (3000.0 if removal else 0.0) if args.dipole is None else args.dipole
-    for name, value in (("--monopole", monopole), ("--dipole", dipole_uk)):
-        if not np.isfinite(value) or abs(value) > 1e9:
-            raise InvalidInputError(f"{name} must be a finite number of uK below 1e9. Got {value!r} instead.")
-    from cmbtools.simulate import Dipole
-
-    dipole = Dipole(abs(dipole_uk) * 1e-6, 60.0, 30.0) if dipole_uk else None
+    monopole, dipole = monopole_dipole_from_args(args, 100.0 if removal else 0.0, 3000.0 if removal else 0.0)
     # the model of the skies simulated: averaged pixels with --pixelise, pixel centres without (unless told)
     averaged = pixel_model_from_args(args, default=bool(args.pixelise) and not args.no_pixel_window)
     if averaged and args.no_pixel_window:
@@ -357,7 +347,7 @@ def run(args) -> int:
             est, cl, n_sims=args.sims, seed=args.seed, noise=noise, run_dir=run_dir, executor=client,
             workers=None if client is not None else n_workers, threads_per_worker=args.threads or None,
             progress=False if args.no_progress else None, restart=args.restart, force=args.force, cross=cross,
-            monopole=monopole * 1e-6, dipole=dipole, harmonic_filter=harmonic_filter, bandpower_transfer=transfer,
+            monopole=monopole, dipole=dipole, harmonic_filter=harmonic_filter, bandpower_transfer=transfer,
             sky_lmax=sky_lmax, pixelise=bool(args.pixelise),
         )
     finally:

@@ -222,9 +222,15 @@ _cache_lock = threading.Lock()
 
 
 def clear_averaging_bias_cache() -> None:
-    """Forget every result kept by :func:`averaging_bias` (the next call computes again; used by the benchmark)."""
+    """Forget every result kept by :func:`averaging_bias` and by the polarized one (the next call computes again;
+    used by the benchmark)."""
+    import sys
+
     with _cache_lock:
         _cache.clear()
+    polarized = sys.modules.get("cmbtools.spectrum.polarized_averaging_bias")
+    if polarized is not None:
+        polarized.clear_polarized_averaging_bias_cache()
 
 
 def _cache_key(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads) -> str:

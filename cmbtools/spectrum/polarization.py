@@ -103,11 +103,15 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         one spin-1 and one spin-0 transform more per map.  Accurate up to ``lmax = 2 nside``; above, the
         pixel grid's quadrature leaks E into the pure B (a warning says so).
     averaged_pixels : bool or None, default=None
-        True: the maps hold the sky averaged over each pixel (a detector's map); TT's rows then also carry the
-        pixel shapes' bias that the isotropic pixel window leaves out, from the guess TT spectrum (the
-        temperature estimator's :func:`~cmbtools.spectrum.averaging_bias.averaging_bias`; about 2 s more to
-        build).  E and B get no such correction (measured in DEVELOPERS.md "pixel averages": about 1 % near
-        1.5 nside).  False: maps sampled at the pixel centres.  None (default): True with the HEALPix pixel
+        True: the maps hold the sky averaged over each pixel (a detector's map: I, and Q, U in each point's own
+        frame); the rows of TT, TE, EE and BB (and of TB, EB where their guess gives pseudo-power) then also
+        carry the pixel shapes' bias that the isotropic pixel windows leave out, from the guess spectra: TT's
+        from the temperature estimator's :func:`~cmbtools.spectrum.averaging_bias.averaging_bias`, the others
+        from its spin-2 form :func:`~cmbtools.spectrum.polarized_averaging_bias.polarized_averaging_bias`
+        (including the small E/B mixing of the averaging).  With ``purify_b`` the rows with B are left
+        uncorrected (the pure B's response is not modelled).  It adds about 3-4 times the temperature
+        correction's cost to the first call (DEVELOPERS.md "pixel averages").  False: maps sampled at the
+        pixel centres.  None (default): True with the HEALPix pixel
         windows (at every nside), like the temperature estimator.
     exact_low_bins : int or None, default=None
         The number of lowest bins whose covariance (all six spectra, their cross-covariances) is computed
@@ -245,7 +249,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 "instead."
             )
         sky_lmax = lmax if sky_lmax is None else check_int(sky_lmax, "sky_lmax", minimum=lmax, maximum=8 * nside)
-        if averaged_pixels is None:  # the temperature estimator's default: averaged maps up to nside 512
+        if averaged_pixels is None:  # the temperature estimator's default: averaged maps
             averaged_pixels = default_averaged_pixels(nside, pixel_window)
         if not isinstance(averaged_pixels, (bool, np.bool_)):
             raise InvalidInputError(
@@ -801,8 +805,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         meta["sky_lmax"] = self.sky_lmax
         meta["guess_spectrum"] = self.descriptions.get("guess_cl", "none")
         meta["b_mode_purification"] = "yes" if self.purify_b else "no"
-        meta["pixels"] = ("averaged: the pixel shapes' bias of TT corrected with the guess spectrum" if self.averaged_pixels
-                          else "pixel centres")
+        meta["pixels"] = (("averaged: the pixel shapes' bias corrected with the guess spectra (TT, TE, EE"
+                           + (")" if self.purify_b else ", BB, TB, EB)")) if self.averaged_pixels else "pixel centres")
         meta["coupling"] = "exact"
         meta["condition_number"] = float(f"{self.condition_number:.6g}")
         meta["errors"] = ("Gaussian pseudo-spectrum covariance (improved narrow-kernel approximation, E-to-B leakage "

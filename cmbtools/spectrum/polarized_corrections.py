@@ -242,6 +242,75 @@ def _rect_kernels(est, wanted):
     return {k: est._cache[("rect_kernel",) + k] for k in wanted}
 
 
+def _polarized_averaging_biases(est, a, b, components, grid, window_t):
+    """The pixel shapes' part of the expected pseudo-power of Q, U (and T x Q, U) maps averaged into pixels.
+
+    Per component of maps a x b: TE/TB (T of a with Q, U of b), ET/BT (Q, U of a with T of b), EE/BB/EB, from
+    :func:`~cmbtools.spectrum.polarized_averaging_bias.polarized_averaging_bias` with the guess as seen on the grid
+    (without the pixel windows).  With B-mode purification only the components without B (TE, ET, EE) are
+    corrected: the pure B's response to the pixel shapes is not modelled.  The parts that share their masks
+    (T and P of a map under one mask) are computed in one pass over the pairs of pixels.
+    """
+    from cmbtools.spectrum.averaging_bias import pair_radius
+    from cmbtools.spectrum.polarized_averaging_bias import polarized_averaging_bias
+    from cmbtools.spectrum.spin2_pixel_window import polarization_pixel_window
+
+    sky = est.sky_lmax
+    lmax = est.lmax
+    window_p = np.zeros(sky + 1)
+    w = np.asarray(polarization_pixel_window(est.nside, sky, nthreads=est._threads()), dtype=np.float64)[: sky + 1]
+    window_p[: w.size] = w
+    wins = {"T": window_t, "E": window_p, "B": window_p}
+
+    def sky_spectrum(col):
+        """The guess of a column component on the grid without the two pixel windows (zero where they are)."""
+        prod = wins[col[0]] * wins[col[1]]
+        return np.where(prod > 0, grid(col) / np.where(prod > 0, prod, 1.0), 0.0)
+
+    def radius(x, y):
+        """:func:`pair_radius` of two mask names' fields (their beams, without the windows)."""
+        fa = est._sky_factors[x] * est._sky_factors[y]
+        wa, wb = wins["T" if x[0] == "t" else "E"], wins["T" if y[0] == "t" else "E"]
+        prod = wa * wb
+        return pair_radius(est.nside, np.where(prod > 0, fa / np.where(prod > 0, prod, 1.0), 0.0))
+
+    spectra = {k: sky_spectrum(k) for k in ("EE", "BB", "EB", "TE", "TB")}
+    key = est._key_of
+    # E_a x T_b: the T x P sums with the beams of E_a and T_b (differ from T_a x E_b's when the maps' beams do)
+    spectra_et = dict(spectra, TE=sky_spectrum("ET"), TB=sky_spectrum("BT")) if a != b else spectra
+    et_same = all(np.array_equal(spectra[k], spectra_et[k]) for k in ("TE", "TB"))
+    # the calls: (mask of map a's fields, mask of map b's fields, parts, spectra); parts sharing their masks and
+    # spectra share one pass over the pairs
+    if a == b:
+        calls = ([("p" + a, None, ("PP", "TP"), spectra)] if key["t" + a] == key["p" + a]
+                 else [("p" + a, None, ("PP",), spectra), ("t" + a, "p" + a, ("TP",), spectra)])
+    elif key["t" + a] == key["p" + a] and key["t" + b] == key["p" + b]:
+        calls = ([("p" + a, "p" + b, ("PP", "TP", "PT"), spectra)] if et_same
+                 else [("p" + a, "p" + b, ("PP", "TP"), spectra), ("p" + a, "p" + b, ("PT",), spectra_et)])
+    elif key["t" + a] == key["t" + b] and key["p" + a] == key["p" + b] and et_same:
+        # both maps under the same pair of masks and beams: E_a T_b has the pairs of T_a E_b seen from the other end
+        calls = [("p" + a, "p" + b, ("PP",), spectra), ("t" + a, "p" + b, ("TP",), spectra)]
+    else:
+        calls = [("p" + a, "p" + b, ("PP",), spectra), ("t" + a, "p" + b, ("TP",), spectra),
+                 ("p" + a, "t" + b, ("PT",), spectra_et)]
+    got = {}
+    for first, second, parts, spec in calls:
+        same = second is None or key[first] == key[second]
+        fields = {"PP": ("p", "p"), "TP": ("t", "p"), "PT": ("p", "t")}[parts[0]]
+        got.update(polarized_averaging_bias(
+            est.masks[first], None if same else est.masks[second], spec, window_t, window_p, lmax, parts=parts,
+            radius=radius(fields[0] + a, fields[1] + b)))
+    if "ET" in components and "ET" not in got:
+        got["ET"], got["BT"] = got["TE"], got["TB"]
+    # the measured components of maps a x b: TE = T_a E_b ('TP'), ET = E_a T_b ('PT'), TB/BT likewise
+    names = {"EE": "EE", "BB": "BB", "EB": "EB", "TE": "TE", "TB": "TB", "ET": "ET", "BT": "BT"}
+    out = {}
+    for c, g in names.items():
+        if c in components and g in got and not (est.purify_b and "B" in c):
+            out[c] = got[g]
+    return out
+
+
 def binned_columns(binning, lmax):
     """(lmax+1,) bool: the multipoles inside the bins (the others, below and above, count as leakage)."""
     idx = np.full(lmax + 1, -1)
@@ -306,6 +375,8 @@ def row_factors(est, a, b, components, terms, kernels):
         shape = averaging_bias(ta, signal / safe, window, lmax, mask2=None if same else tb,
                                radius=pair_radius(est.nside, factor / safe), nthreads=est._threads())
         bias["TT"] = shape if "TT" not in bias else bias["TT"] + shape
+        for c, shape in _polarized_averaging_biases(est, a, b, components, grid, window).items():
+            bias[c] = shape if c not in bias else bias[c] + shape
     inside = binned_columns(est.binning, lmax)
     out = {}
     for c in components:

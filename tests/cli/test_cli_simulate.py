@@ -39,8 +39,8 @@ def test_maps_match_the_library_and_record_the_seed(tmp_path, table, capsys):
     path, cl = table
     out = tmp_path / "sims"
     common = ["simulate", "--spectrum", str(path), "--nside", "16", "--lmax", "40", "--beam-fwhm", "120",
-              "--noise-depth", "300", "--noise-knee", "10", "--noise-slope", "2", "--monopole-uk", "50",
-              "--dipole-uk", "80", "120", "-30", "--seed", "5", "--prefix", "sky", "--threads", "1"]
+              "--noise-depth", "300", "--noise-knee", "10", "--noise-slope", "2", "--monopole", "50",
+              "--dipole", "80", "120", "-30", "--seed", "5", "--prefix", "sky", "--threads", "1"]
     assert main(common + ["--sims", "2", "--output-dir", str(out)]) == 0
     printed = capsys.readouterr().out
     assert "seed 5" in printed and "wrote" in printed

@@ -217,14 +217,53 @@ def test_the_same_thing_has_the_same_option_name_everywhere(tmp_path):
     # one name per thing
     for name in ("simulate", "spectrum", "validate"):
         assert {"--beam", "--beam-fwhm", "--noise-depth"} <= options[name] | {"--noise-depth"}
-    assert {"--noise-knee", "--noise-slope", "--hits", "--sims"} <= options["simulate"] & options["validate"]
+    assert {"--noise-knee", "--noise-slope", "--hits", "--sims", "--monopole", "--dipole"} <= (
+        options["simulate"] & options["validate"])
     assert "--field" in options["mask"] and "--field" in options["inspect"]
-    assert not {"--beam-file", "--knee-ell", "--knee-slope", "--count", "--map-field"} & set().union(*options.values())
+    assert not {"--beam-file", "--knee-ell", "--knee-slope", "--count", "--map-field", "--monopole-uk",
+                "--dipole-uk"} & set().union(*options.values())
     assert "--json" in options["physics"] and "--json" not in options["validate"]  # a flag: print as JSON
     assert "--json-file" in options["validate"]
     # the old spellings still work for one release, with a warning
     out = cmbtools("simulate", "--nside", 16, "--seed", 1, "--count", 1, "--output-dir", "old", cwd=tmp_path)
     assert out.returncode == 0 and "--count is deprecated" in out.stderr and (tmp_path / "old" / "sky_0000.fits").exists()
+
+
+def test_monopole_and_dipole_take_the_same_values_in_simulate_and_validate(tmp_path, capsys):
+    """--monopole UK and --dipole UK [LON LAT] mean the same in both commands: the maps of simulate with the
+    former simulate-only spellings (--monopole-uk, --dipole-uk, kept with a warning) equal those of the new ones;
+    a dipole given by its amplitude alone points to (60, 30) like validate's; other counts are refused."""
+    from cmbtools import cli, maps
+
+    def simulate(*extra, out):
+        argv = ["simulate", "--nside", "8", "--seed", "4", "--sims", "1", "--no-pixel-window", "--threads", "1",
+                "--output-dir", str(tmp_path / out), *map(str, extra)]
+        code = cli.main(argv)
+        return code, capsys.readouterr()
+
+    code, _ = simulate("--monopole", 50, "--dipole", 80, 60, 30, out="new")
+    assert code == 0
+    code, printed = simulate("--monopole-uk", 50, "--dipole-uk", 80, 60, 30, out="old")
+    assert code == 0 and "--monopole-uk is deprecated" in printed.err and "--dipole-uk is deprecated" in printed.err
+    code, _ = simulate("--monopole", 50, "--dipole", 80, out="short")
+    assert code == 0
+    new = maps.read_sky_map(tmp_path / "new" / "sky_0000.fits")[0]
+    np.testing.assert_array_equal(maps.read_sky_map(tmp_path / "old" / "sky_0000.fits")[0], new)
+    np.testing.assert_array_equal(maps.read_sky_map(tmp_path / "short" / "sky_0000.fits")[0], new)
+    base, _ = simulate(out="plain")
+    plain = maps.read_sky_map(tmp_path / "plain" / "sky_0000.fits")[0]
+    # the added dipole: 80 uK towards (60, 30) on top of 50 uK (healpy's own unit vectors, common practice)
+    import healpy as hp
+
+    vec = np.array(hp.pix2vec(8, np.arange(768)))
+    np.testing.assert_allclose(new - plain, 50e-6 + 80e-6 * (hp.ang2vec(60.0, 30.0, lonlat=True) @ vec), atol=1e-12)
+    for command, extra in (("simulate", ["--nside", "8", "--seed", "4", "--output-dir", str(tmp_path / "bad")]),
+                           ("validate", [str(MAPS / "tern_mask.fits"), "--run-dir", str(tmp_path / "badrun")])):
+        code = cli.main([command, *extra, "--dipole", "80", "60"])
+        printed = capsys.readouterr()
+        assert code == 2 and printed.err.count("\n") == 1
+        assert "--dipole takes UK or UK LON LAT" in printed.err and "Got 2 values" in printed.err
+    assert not (tmp_path / "bad").exists() and not (tmp_path / "badrun").exists()
 
 
 def test_every_command_says_wrote(tmp_path):

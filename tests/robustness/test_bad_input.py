@@ -936,7 +936,7 @@ def test_simulate_cli_memory_refusal_and_force(tmp_path, capsys, monkeypatch):
     one_error_line(err, "cmbtools simulate: error: Simulating maps at nside 1048576 with lmax 3145727 would need about",
                    "TB but the machine has", "--force")
     assert not (tmp_path / "huge").exists()  # refused before the output directory is made
-    argv = ("simulate", "--nside", 16, "--seed", 3, "--sims", 2, "--noise-depth", 30, "--dipole-uk", 100, 10, 20,
+    argv = ("simulate", "--nside", 16, "--seed", 3, "--sims", 2, "--noise-depth", 30, "--dipole", 100, 10, 20,
             "--spectrum", _spectrum_file(tmp_path / "cl.csv"), "--no-pixel-window", "--threads", 1, "--output-dir")
     monkeypatch.setenv("CMBTOOLS_MEMORY_LIMIT", "10kB")
     code, out, err = run_cli(capsys, *argv, tmp_path / "forced")

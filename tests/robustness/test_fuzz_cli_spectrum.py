@@ -338,8 +338,8 @@ def simulate_argv(draw):
         "--beam-fwhm": number(0.1, 600.0),
         "--beam": inputs("beam", "beam_short", "beam_bad", "missing", "map16"),
         "--no-pixel-window": st.none(),
-        "--monopole-uk": number(-1e3, 1e3, st.sampled_from(["1e300", "-1e300", "1e30", "-1e-300"])),
-        "--dipole-uk": st.tuples(number(0, 5e3), number(-400, 400), number(-90, 90, st.sampled_from(["90", "-90"]))),
+        "--monopole": number(-1e3, 1e3, st.sampled_from(["1e300", "-1e300", "1e30", "-1e-300"])),
+        "--dipole": st.tuples(number(0, 5e3), number(-400, 400), number(-90, 90, st.sampled_from(["90", "-90"]))),
         "--noise-depth": number(0.1, 500.0),
         "--hits": inputs("hits16", "map16", "mask16", "map32", "text", "missing"),
         "--noise-knee": number(1.0, 200.0),
@@ -463,8 +463,8 @@ def test_validate_command_exits_0_or_2(argv):
 
 _NUMERIC = {
     "spectrum": {"--beam-fwhm": (0.1, 600.0), "--beam2-fwhm": (0.1, 600.0)},
-    "simulate": {"--beam-fwhm": (0.1, 600.0), "--monopole-uk": (-1e3, 1e3), "--noise-depth": (0.1, 500.0),
-                 "--noise-knee": (1.0, 200.0), "--noise-slope": (0.5, 5.0), "--dipole-uk": (0.0, 5e3)},
+    "simulate": {"--beam-fwhm": (0.1, 600.0), "--monopole": (-1e3, 1e3), "--noise-depth": (0.1, 500.0),
+                 "--noise-knee": (1.0, 200.0), "--noise-slope": (0.5, 5.0), "--dipole": (0.0, 5e3)},
     "validate": {"--beam-fwhm": (0.1, 600.0), "--noise-depth": (0.1, 500.0), "--noise-knee": (1.0, 100.0),
                  "--noise-slope": (0.5, 4.0)},
 }
@@ -486,7 +486,7 @@ def extreme_argv(draw, command):
     for opt in draw(st.lists(st.sampled_from(sorted(numeric)), min_size=1, max_size=3, unique=True)):
         lo, hi = numeric[opt]
         value = draw(st.one_of(_small_float(lo, hi), _HUGE, _HUGE.map(lambda v: "-" + v) if lo < 0 else _HUGE))
-        argv += [opt, value] + (["10", "20"] if opt == "--dipole-uk" else [])
+        argv += [opt, value] + (["10", "20"] if opt == "--dipole" else [])
     # the noise options need one another
     if ("--noise-knee" in argv) != ("--noise-slope" in argv):
         argv += ["--noise-slope", "2"] if "--noise-knee" in argv else ["--noise-knee", "50"]
