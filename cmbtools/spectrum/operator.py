@@ -272,14 +272,15 @@ def _coarse_bias_below(inp, which, nthreads):
 
 def _averaging_shape(inp, which, nthreads):
     """The pixel shapes' part of the expected pseudo-power of averaged maps for the coupling ``which``."""
-    from cmbtools.spectrum.averaging_bias import averaging_bias, pair_radius
+    from cmbtools.spectrum.averaging_bias import averaging_bias, default_centres, pair_radius
     from cmbtools.spectrum.pixel_windows import pixel_window
 
     factor, signal, mask_a, mask_b = _signal_and_masks(inp, which)
     window = np.asarray(pixel_window(inp.nside, inp.sky_lmax, nthreads=nthreads), dtype=np.float64)
     safe = np.where(window > 0, window**2, 1.0)
     return averaging_bias(mask_a, signal / safe, window, inp.lmax, mask2=None if mask_b is mask_a else mask_b,
-                          radius=pair_radius(inp.nside, factor / safe), nthreads=nthreads)
+                          radius=pair_radius(inp.nside, factor / safe), max_centres=default_centres(inp.nside),
+                          nthreads=nthreads)
 
 
 def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None, coarse_below=None, averaged=None):

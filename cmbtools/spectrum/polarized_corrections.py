@@ -251,7 +251,7 @@ def _polarized_averaging_biases(est, a, b, components, grid, window_t):
     corrected: the pure B's response to the pixel shapes is not modelled.  The parts that share their masks
     (T and P of a map under one mask) are computed in one pass over the pairs of pixels.
     """
-    from cmbtools.spectrum.averaging_bias import pair_radius
+    from cmbtools.spectrum.averaging_bias import default_centres, pair_radius
     from cmbtools.spectrum.polarized_averaging_bias import polarized_averaging_bias
     from cmbtools.spectrum.spin2_pixel_window import polarization_pixel_window
 
@@ -299,7 +299,7 @@ def _polarized_averaging_biases(est, a, b, components, grid, window_t):
         fields = {"PP": ("p", "p"), "TP": ("t", "p"), "PT": ("p", "t")}[parts[0]]
         got.update(polarized_averaging_bias(
             est.masks[first], None if same else est.masks[second], spec, window_t, window_p, lmax, parts=parts,
-            radius=radius(fields[0] + a, fields[1] + b)))
+            radius=radius(fields[0] + a, fields[1] + b), max_centres=default_centres(est.nside)))
     if "ET" in components and "ET" not in got:
         got["ET"], got["BT"] = got["TE"], got["TB"]
     # the measured components of maps a x b: TE = T_a E_b ('TP'), ET = E_a T_b ('PT'), TB/BT likewise
@@ -361,7 +361,7 @@ def row_factors(est, a, b, components, terms, kernels):
     if getattr(est, "averaged_pixels", False):
         # maps averaged into pixels: the pixel shapes' part of TT's expected pseudo-power (the temperature
         # estimator's correction, the sky's power, joined to the leakage)
-        from cmbtools.spectrum.averaging_bias import averaging_bias, pair_radius
+        from cmbtools.spectrum.averaging_bias import averaging_bias, default_centres, pair_radius
         from cmbtools.spectrum.pixel_windows import pixel_window
 
         window = np.zeros(sky + 1)
@@ -373,7 +373,8 @@ def row_factors(est, a, b, components, terms, kernels):
         same = est._key_of["t" + a] == est._key_of["t" + b]
         factor = est._sky_factors["t" + a] * est._sky_factors["t" + b]
         shape = averaging_bias(ta, signal / safe, window, lmax, mask2=None if same else tb,
-                               radius=pair_radius(est.nside, factor / safe), nthreads=est._threads())
+                               radius=pair_radius(est.nside, factor / safe), max_centres=default_centres(est.nside),
+                               nthreads=est._threads())
         bias["TT"] = shape if "TT" not in bias else bias["TT"] + shape
         for c, shape in _polarized_averaging_biases(est, a, b, components, grid, window).items():
             bias[c] = shape if c not in bias else bias[c] + shape
