@@ -181,9 +181,13 @@ def _pixel_nodes(nside, pixels, order):
     u, wu = 0.5 * (t + 1.0), 0.5 * w
     a, b = np.meshgrid(u, u, indexing="ij")
     weight = np.outer(wu, wu).ravel()
-    xyf = ducc0.healpix.Healpix_Base(nside, "RING").pix2xyf(np.asarray(pixels, dtype=np.int64))
-    vec = face_to_vectors((xyf[:, 0:1] + a.ravel()[None, :]) / nside, (xyf[:, 1:2] + b.ravel()[None, :]) / nside,
-                          xyf[:, 2:3])
+    pixels = np.asarray(pixels, dtype=np.int64)
+    base = ducc0.healpix.Healpix_Base(nside, "RING")
+    vec = np.empty((pixels.size, order * order, 3))
+    for s in range(0, pixels.size, 1 << 14):  # in pieces: the face-to-sphere step holds ~5 times the result
+        xyf = base.pix2xyf(pixels[s : s + (1 << 14)])
+        vec[s : s + (1 << 14)] = face_to_vectors((xyf[:, 0:1] + a.ravel()[None, :]) / nside,
+                                                  (xyf[:, 1:2] + b.ravel()[None, :]) / nside, xyf[:, 2:3])
     return vec, weight
 
 
@@ -223,14 +227,23 @@ def _centres(w_a, max_centres):
         if lo == hi:
             continue
         a = band_start[b]
-        pix = a + np.flatnonzero(w_a[a : band_start[b + 1]])
+        # (32-bit offsets within the band, in place where possible: a band of nside 2048 holds ~2 million pixels,
+        # and this runs beside the coupling kernel, whose memory peaks at the same time)
+        pix = np.flatnonzero(w_a[a : band_start[b + 1]]).astype(np.int32)
         rings = first_ring[b] + np.arange(first_ring[b + 1] - first_ring[b])
-        per_ring = np.diff(np.searchsorted(pix, ring_start[first_ring[b] : first_ring[b + 1] + 1]))
-        quarter = np.repeat(ring_size[rings] // 4, per_ring)
-        k = (pix - np.repeat(ring_start[rings], per_ring)) % quarter
-        cls = np.minimum(k, quarter - 1 - k) * (2 * bands) // quarter  # folded azimuth class, 0 .. bands - 1
-        cls[quarter == nside] = 0  # the belt: a ring's pixels have one shape
-        centres[lo:hi] = pix[np.argsort(cls, kind="stable")[rank[lo:hi] - band_rank[b]]]
+        per_ring = np.diff(np.searchsorted(pix, ring_start[first_ring[b] : first_ring[b + 1] + 1] - a))
+        quarter = np.repeat((ring_size[rings] // 4).astype(np.int32), per_ring)
+        k = pix - np.repeat((ring_start[rings] - a).astype(np.int32), per_ring)
+        k %= quarter
+        other = quarter - 1
+        other -= k
+        np.minimum(k, other, out=k)
+        del other
+        k *= 2 * bands
+        k //= quarter  # folded azimuth class, 0 .. bands - 1
+        k[quarter == nside] = 0  # the belt: a ring's pixels have one shape
+        del quarter
+        centres[lo:hi] = a + pix[np.argsort(k, kind="stable")[rank[lo:hi] - band_rank[b]]]
     return centres, count.astype(np.float64)
 
 
@@ -459,7 +472,7 @@ def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
     hist_chord_max = 2.0 * math.sin(min(radius, math.pi) / 2.0) * 1.0001
     scale = _HIST_BINS / hist_chord_max
     hist = np.zeros(_HIST_BINS + 2)
-    block = max(1, (1 << 21) // (order**4))
+    block = max(1, (1 << 19) // (order**4))  # node pairs per block: ~20 MB of temporaries (they run beside the kernel)
     # every pair (p, q) of a centre p and a pixel q of the second mask within the radius; for an auto-spectrum
     # with every pixel of the mask a centre, the pair (q, p) is (p, q) again (same weight, same difference): each
     # unordered pair once, counted twice (half the work at small nside; the same sum to rounding)
