@@ -155,7 +155,6 @@ def run(args) -> int:
 
 
 def _run(args, created, group, printed) -> int:
-    import math
     import os
     import re
     import warnings

@@ -14,7 +14,7 @@ from cmbtools.exceptions import InputFileError, InvalidInputError
 from cmbtools.simulate import Dipole, NoiseModel, fiducial_cl, gaussian_alm, noise_map, noise_spectrum, validate_estimator
 from cmbtools.simulate.pixel_averaging import pixel_averaged_map
 from cmbtools.spectrum import (
-    BandpowerCovariance, BandpowerTransfer, Binning, SpectrumEstimator, gaussian_beam, pixel_window,
+    BandpowerCovariance, BandpowerTransfer, Binning, SpectrumEstimator, gaussian_beam,
 )
 
 
