@@ -139,7 +139,9 @@ def run_polarized(args, outputs, run_dir, where) -> int:
 
         r = 0.0 if args.tensor_ratio is None else float(args.tensor_ratio)
         spectra = fiducial_spectra(sky_lmax, tensor_ratio=r, lensing_bb=True)
-        spectrum_text = f"built-in fiducial spectra (r = {r:g}, lensing-like BB)"
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_MODEL
+
+        spectrum_text = f"built-in fiducial spectra ({FIDUCIAL_MODEL}; r = {r:g}, lensing-like BB)"
     harmonic_filter = None
     if args.harmonic_filter is not None:  # one f_l for T, E and B: the same filtering of I and of Q, U
         from cmbtools._core.binned_tables import read_filter_table

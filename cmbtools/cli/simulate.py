@@ -248,8 +248,10 @@ def _run(args, created, group, printed) -> int:
             )
         source = f"table {args.spectrum}"
     else:
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_LABEL
+
         cl = simulate.fiducial_cl(lmax)
-        source = "built-in fiducial spectrum (Planck18 cosmology, default extras)"
+        source = FIDUCIAL_LABEL
     cl = cl[: lmax + 1]
     if args.write_spectrum is not None:
         group.write(args.write_spectrum, lambda p: simulate.write_spectrum_table(
@@ -359,8 +361,10 @@ def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs, group, pri
     else:
         if not 0.0 <= args.tensor_ratio <= 10.0:
             raise InvalidInputError(f"--tensor-ratio must be in [0, 10]. Got {args.tensor_ratio!r} instead.")
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_MODEL
+
         spectra = simulate.fiducial_spectra(lmax, tensor_ratio=args.tensor_ratio)
-        source = f"built-in fiducial spectra (Planck18 cosmology, default extras, r = {args.tensor_ratio:g})"
+        source = f"built-in fiducial spectra ({FIDUCIAL_MODEL}; r = {args.tensor_ratio:g})"
     spectra = simulate.check_spectra(spectra, lmax)
     if args.write_spectrum is not None:
         group.write(args.write_spectrum, lambda p: simulate.write_spectrum_table(

@@ -273,10 +273,10 @@ def run(args) -> int:
             )
         spectrum_text = f"{args.spectrum} (sha256 {sha256_file(args.spectrum)[:16]}...)"
     else:
-        from cmbtools.simulate.theory_spectrum import fiducial_cl
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_LABEL, fiducial_cl
 
         cl = fiducial_cl(lmax)
-        spectrum_text = "built-in fiducial spectrum"
+        spectrum_text = FIDUCIAL_LABEL
 
     cross = args.cross or args.mask2 is not None
     mask2 = None

@@ -359,9 +359,10 @@ def validate_polarized_estimator(
     )
     if spectra is None:
         from cmbtools.simulate.polarized_theory import fiducial_spectra
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_MODEL
 
         spectra = fiducial_spectra(sky_lmax, lensing_bb=True)
-        source = "built-in fiducial spectra (r = 0, lensing-like BB)"
+        source = f"built-in fiducial spectra ({FIDUCIAL_MODEL}; r = 0, lensing-like BB)"
     else:
         source = "user spectra"
     spectra = check_spectra(spectra, sky_lmax)
