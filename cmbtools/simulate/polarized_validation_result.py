@@ -4,18 +4,18 @@
 from __future__ import annotations
 
 import dataclasses
-import json
 import math
 from pathlib import Path
 
 import numpy as np
 
-from cmbtools._core.files import atomic_output, check_output_path
+from cmbtools._core.files import atomic_output
 from cmbtools._core.tables import key_value_lines
 from cmbtools._version import __version__
 from cmbtools.exceptions import InvalidInputError
 from cmbtools.simulate.validation_result import (
-    _TABLE_COLUMNS, ValidationResult, _column_lines, _plain_value, _write_validation_table,
+    _TABLE_COLUMNS, ValidationResult, _column_lines, _finite_list, _plain_value, _write_validation_json,
+    _write_validation_table,
 )
 
 __all__ = ["PolarizedValidationResult", "POLARIZED_SPECTRA"]
@@ -256,24 +256,10 @@ class PolarizedValidationResult:
         pathlib.Path
             The file written.
         """
-        out = check_output_path(path, overwrite=overwrite)
-
-        def clean(a):
-            return [None if not math.isfinite(float(v)) else float(v) for v in np.asarray(a).ravel()]
-
-        doc = self.summary()
-        doc["software"] = f"cmbtools {__version__}"
-        doc["settings"] = dict(self.metadata)
-        doc["bins"] = {
-            "ell_min": [int(v) for v in self.ell_min],
-            "ell_max": [int(v) for v in self.ell_max],
-            "ell_eff": clean(self.ell_eff),
-            **{s: {name: clean(getattr(r, name)) for name in _TABLE_COLUMNS[3:]} for s, r in self.results.items()},
-        }
-        doc["unit"] = "K^2"
-        with atomic_output(out, overwrite=overwrite) as tmp:
-            tmp.write_text(json.dumps(doc, indent=2) + "\n")
-        return out
+        columns = {"ell_eff": _finite_list(self.ell_eff),
+                   **{s: {name: _finite_list(getattr(r, name)) for name in _TABLE_COLUMNS[3:]}
+                      for s, r in self.results.items()}}
+        return _write_validation_json(path, self.summary(), self.metadata, self, columns, overwrite=overwrite)
 
     def plot(self, path, *, overwrite=False, title=None) -> Path:
         """Draw one panel per spectrum: input and mean recovered ``D_l`` with scatter bands, bias and error ratio.

@@ -62,6 +62,25 @@ def _write_validation_table(path, results, comments, *, spectra=None, unit="uK",
                               number=lambda v: f"{v:.10g}", ell_eff_number=lambda v: f"{v:.6g}")
 
 
+def _finite_list(a) -> list:
+    """The values as Python floats for JSON, None for a value that is not finite."""
+    return [None if not math.isfinite(float(v)) else float(v) for v in np.asarray(a).ravel()]
+
+
+def _write_validation_json(path, summary, metadata, bins, columns, *, overwrite=False) -> Path:
+    """The JSON document of a validation: ``summary``, the software, the settings, ``bins`` (``ell_min``,
+    ``ell_max`` of ``bins``, then ``columns``) and the unit, written atomically."""
+    out = check_output_path(path, overwrite=overwrite)
+    doc = dict(summary)
+    doc["software"] = f"cmbtools {__version__}"
+    doc["settings"] = dict(metadata)
+    doc["bins"] = {"ell_min": [int(v) for v in bins.ell_min], "ell_max": [int(v) for v in bins.ell_max], **columns}
+    doc["unit"] = "K^2"
+    with atomic_output(out, overwrite=overwrite) as tmp:
+        tmp.write_text(json.dumps(doc, indent=2) + "\n")
+    return out
+
+
 def _plain_value(value):
     if isinstance(value, (bool, np.bool_)):
         return "yes" if value else "no"
@@ -305,23 +324,9 @@ class ValidationResult:
         pathlib.Path
             The file written.
         """
-        out = check_output_path(path, overwrite=overwrite)
-
-        def clean(a):
-            return [None if not math.isfinite(float(v)) else float(v) for v in np.asarray(a).ravel()]
-
-        doc = dict(self.summary())
-        doc["software"] = f"cmbtools {__version__}"
-        doc["settings"] = dict(self.metadata)
-        doc["bins"] = {
-            "ell_min": [int(v) for v in self.ell_min],
-            "ell_max": [int(v) for v in self.ell_max],
-            **{name: clean(getattr(self, name)) for name in _TABLE_COLUMNS[2:]},
-        }
-        doc["unit"] = "K^2"
-        with atomic_output(out, overwrite=overwrite) as tmp:
-            tmp.write_text(json.dumps(doc, indent=2) + "\n")
-        return out
+        return _write_validation_json(path, self.summary(), self.metadata, self,
+                                      {name: _finite_list(getattr(self, name)) for name in _TABLE_COLUMNS[2:]},
+                                      overwrite=overwrite)
 
     def plot(self, path, *, overwrite=False, title=None) -> Path:
         """Draw the input against the mean recovered ``D_l`` with scatter bands, and the bias per bin below.
