@@ -526,8 +526,24 @@ def above_bins_leakage(mask, signal_cl, lmax, first_unbinned, *, mask2=None, nth
     return out[0][:, cols] @ weights
 
 
-def row_factors(coupling, signal_cl, lmax, *, bias=None, leakage=None) -> np.ndarray:
+def binned_columns(binning, lmax):
+    """(lmax+1,) bool: the multipoles inside the bins (the binned matrix's columns; the others count as leakage)."""
+    idx = np.full(lmax + 1, -1)
+    n = min(lmax + 1, binning.bin_index.size)
+    idx[:n] = binning.bin_index[:n]
+    return idx >= 0
+
+
+def row_factors(coupling, signal_cl, lmax, *, bias=None, leakage=None, modelled=None) -> np.ndarray:
     """``1 + (delta_l + leak_l) / (M S)_l``: the row factors that fold the corrections into the coupling matrix.
+
+    With ``modelled`` (the columns that the binned matrix models: the multipoles inside the bins), the
+    guess's power in the other columns up to ``lmax`` (below the first bin, between bins, above the last)
+    joins the leakage and the base is the modelled columns' share: ``1 + (delta_l + leak_l +
+    (M S_out)_l) / (M S_in)_l``, so that the binned matrix with these rows gives the whole expected
+    pseudo-spectrum of a sky whose spectrum is the guess (times any constant).  ``leakage`` then holds only
+    the columns above ``lmax``.  Without it (the rows of the windows and the noise), ``1 + delta_l / (M S)_l``
+    over every column.
 
     Parameters
     ----------
@@ -539,6 +555,8 @@ def row_factors(coupling, signal_cl, lmax, *, bias=None, leakage=None) -> np.nda
         Largest multipole.
     bias, leakage : ndarray of shape (lmax+1,), optional
         :func:`deprojection_bias` and :func:`above_bins_leakage` for the same spectrum.
+    modelled : ndarray of shape (lmax+1,) of bool, optional
+        The columns the binned matrix models (inside the bins).
 
     Returns
     -------
@@ -546,8 +564,13 @@ def row_factors(coupling, signal_cl, lmax, *, bias=None, leakage=None) -> np.nda
         Dimensionless; 1 where the guess gives no pseudo-power.
     """
     s = np.asarray(signal_cl, dtype=np.float64)[: lmax + 1]
-    base = coupling @ s
     extra = np.zeros(lmax + 1)
+    if modelled is None:
+        base = coupling @ s
+    else:
+        inside = np.asarray(modelled, dtype=bool)[: lmax + 1]
+        base = coupling @ np.where(inside, s, 0.0)
+        extra += coupling @ np.where(inside, 0.0, s)
     if bias is not None:
         extra += bias
     if leakage is not None:

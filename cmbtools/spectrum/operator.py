@@ -323,10 +323,13 @@ def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None, coarse_below=N
         else:
             da, db = dep_of(0), dep_of(1)
         bias = _dep.deprojection_bias(da, signal, lmax, deprojection2=None if db is da else db, nthreads=nthreads)
+    # the guess's power outside the bins: the columns up to lmax that no bin covers (below the first bin, between
+    # bins, above the last) through ``m`` itself (row_factors' ``modelled``), the columns above lmax through the
+    # rectangular coupling matrix
     leakage = None
-    if inp.sky_lmax > inp.binning.lmax:
+    if inp.sky_lmax > lmax:
         leakage = _dep.above_bins_leakage(
-            mask_a, signal, lmax, inp.binning.lmax + 1, mask2=None if mask_b is mask_a else mask_b, nthreads=nthreads
+            mask_a, signal, lmax, lmax + 1, mask2=None if mask_b is mask_a else mask_b, nthreads=nthreads
         )
     if inp.averaged_pixels:
         # the pixel shapes' part of the expected pseudo-power of averaged maps: the sky's, not the noise's, so it
@@ -335,4 +338,6 @@ def _correction_rows(inp, m, which, deps, nthreads, mask_cl=None, coarse_below=N
         shape = averaged.result() if averaged is not None else _averaging_shape(inp, which, nthreads)
         leakage = shape if leakage is None else leakage + shape
     with_bias = _dep.row_factors(m, signal, lmax, bias=bias)
-    return with_bias, _dep.row_factors(m, signal, lmax, bias=bias, leakage=leakage)
+    return with_bias, _dep.row_factors(m, signal, lmax, bias=bias, leakage=leakage,
+                                       modelled=_dep.binned_columns(inp.binning, lmax))
+

@@ -46,7 +46,7 @@ from cmbtools.spectrum.polarized_operator import (
 from cmbtools.spectrum.polarized_settings import (
     _check_memory, _guess_spectra, _pixel_windows, _pol_beam_array, _sky_factors, _transfers,
 )
-from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, _beam_array, default_averaged_pixels
+from cmbtools.spectrum.settings import MAX_CONDITION_NUMBER, _beam_array, default_averaged_pixels, unbinned_below
 
 __all__ = ["PolarizedSpectrumEstimator"]
 
@@ -261,7 +261,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 "The 'averaged_pixels' parameter needs the HEALPix pixel windows (pixel_window=True): it corrects what "
                 "the window leaves out of maps averaged into pixels."
             )
-        needs = (remove_monopole_dipole and correct_deprojection_bias) or sky_lmax > binning.lmax or averaged_pixels
+        needs = ((remove_monopole_dipole and correct_deprojection_bias) or sky_lmax > binning.lmax or averaged_pixels
+                 or unbinned_below(binning))
         guess, d_guess = _guess_spectra(guess_cl, sky_lmax, needs)
         if guess is not None and sky_lmax > lmax:
             sky_factors = _sky_factors(

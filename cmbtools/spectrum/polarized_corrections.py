@@ -34,6 +34,7 @@ import numpy as np
 from cmbtools._core import sht as _sht
 from cmbtools.spectrum import coupling as _coupling
 from cmbtools.spectrum import deprojection as _dep
+from cmbtools.spectrum.deprojection import binned_columns  # noqa: F401 (the polarized estimator's too)
 from cmbtools.spectrum.errors import _reduce_rows
 
 __all__ = []
@@ -309,14 +310,6 @@ def _polarized_averaging_biases(est, a, b, components, grid, window_t):
         if c in components and g in got and not (est.purify_b and "B" in c):
             out[c] = got[g]
     return out
-
-
-def binned_columns(binning, lmax):
-    """(lmax+1,) bool: the multipoles inside the bins (the others, below and above, count as leakage)."""
-    idx = np.full(lmax + 1, -1)
-    n = min(lmax + 1, binning.bin_index.size)
-    idx[:n] = binning.bin_index[:n]
-    return idx >= 0
 
 
 def row_factors(est, a, b, components, terms, kernels):

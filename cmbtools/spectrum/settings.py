@@ -357,6 +357,16 @@ def _fiducial_label() -> str:
     return FIDUCIAL_LABEL
 
 
+def unbinned_below(binning) -> bool:
+    """Whether multipoles from ell 2 up to the last bin are outside the bins (below the first bin or in gaps).
+
+    Their power leaks into the bins through the mask; the estimator models it from the guess spectrum.
+    """
+    from cmbtools.spectrum.deprojection import binned_columns
+
+    return bool(not np.all(binned_columns(binning, binning.lmax)[2:]))
+
+
 def _resolve_corrections(w1, w2, binning, nside, lmax, templates, guess_cl, sky_lmax, correct, remove_md, raw,
                          nthreads, averaged=False):
     """Templates, guess spectrum, sky band limit and the spectra on the grid that the corrections need."""
@@ -392,7 +402,7 @@ def _resolve_corrections(w1, w2, binning, nside, lmax, templates, guess_cl, sky_
     else:
         sky_lmax = check_int(sky_lmax, "sky_lmax", minimum=lmax, maximum=8 * nside)
     deprojects = bool(remove_md or temps)
-    needs = (deprojects and correct) or sky_lmax > binning.lmax or averaged
+    needs = (deprojects and correct) or sky_lmax > binning.lmax or averaged or unbinned_below(binning)
     if not needs:
         if guess_cl is not None:
             check_cl(guess_cl, "guess_cl")
