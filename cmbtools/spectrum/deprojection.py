@@ -46,6 +46,13 @@ the guess spectrum, and folded into the same row factors
 (``r_l += leak_l / (M F C_guess)_l``).  On skies with power to 4 nside - 1 this
 removes the excess of the top bins (nside 64, beam of one pixel, bins to
 2 nside: top bin +17 standard errors of the mean without it, -0.6 with it).
+The multipoles up to lmax that no bin covers (below the first bin, in gaps,
+between the last bin and lmax) are columns of ``M`` itself: with
+``modelled`` (the binned columns) :func:`row_factors` counts their guess
+power as leakage and takes the binned columns' share as its base, so that
+bins starting above ell 2 are unbiased too (bins of 8 from ell 10, nside 32,
+tapered cap with holes: 1.07-2.6 times the input without it, within 1.9
+standard errors of the mean with it, 200 skies).
 """
 
 from __future__ import annotations
