@@ -199,7 +199,7 @@ def test_gaussian_errors_match_the_scatter_of_simulations():
 
     The finer map (nside 64) carries its own pixel window, so that the mean of its four pixels is the sky averaged
     over the coarse pixel: point values there would add 1/p_l(64)^2 of power, which biased the bandpowers by 4, 7,
-    11 and 19 % in bins 2-5 and the covariance's comparison with them (measured at this seed; 0.3-1.5 % with the
+    11 and 19 % in bins 2-5 and the covariance's comparison with them (measured at this seed; within 1.7 % with the
     window, 3 % in the cross-spectrum's last bin).
 
     Every reported bin must have simulated scatter / error in [0.9, 1.1] (the ratio's own standard
