@@ -140,22 +140,29 @@ def _correlation_tables(spectra, chord_max, nthreads):
     """
     from cmbtools._core.sht import legendre_series
 
-    step = chord_max**2 / _TABLE_POINTS
-    u = step * np.arange(_TABLE_POINTS + 3)
+    step, u = _table_grid(chord_max)
     theta = 2.0 * np.arcsin(np.clip(np.sqrt(u) / 2.0, 0.0, 1.0))
     coeffs = np.array([(2.0 * np.arange(cl.size) + 1.0) / (4.0 * np.pi) * cl for cl in spectra])
     values = legendre_series(coeffs, theta, nthreads=nthreads)
-    out = []
-    for v in values:
-        # interval i (from u_i to u_i+1) takes the points i-1 .. i+2; the first one 0 .. 3
-        f0, f1, f2, f3 = v[:-3], v[1:-2], v[2:-1], v[3:]
-        c = np.stack([f1, (-2 * f0 - 3 * f1 + 6 * f2 - f3) / 6.0, (f0 - 2 * f1 + f2) / 2.0,
-                      (-f0 + 3 * f1 - 3 * f2 + f3) / 6.0])
-        first = np.array([f0[0], (-11 * f0[0] + 18 * f1[0] - 9 * f2[0] + 2 * f3[0]) / 6.0,
-                          (2 * f0[0] - 5 * f1[0] + 4 * f2[0] - f3[0]) / 2.0, c[3, 0]])
-        c = np.concatenate([first[:, None], c], axis=1)
-        out.append(np.ascontiguousarray(c))
-    return step, out
+    return step, [_cubic_table(v) for v in values]
+
+
+def _table_grid(chord_max):
+    """The tables' step in chord^2 and their points u = chord^2 (``_TABLE_POINTS + 3`` of them)."""
+    step = chord_max**2 / _TABLE_POINTS
+    return step, step * np.arange(_TABLE_POINTS + 3)
+
+
+def _cubic_table(v):
+    """(4, n) coefficients of the local cubics through the values ``v`` at the points of :func:`_table_grid`
+    (shared with the spin-2 tables of :mod:`polarized_averaging_bias`)."""
+    # interval i (from u_i to u_i+1) takes the points i-1 .. i+2; the first one 0 .. 3
+    f0, f1, f2, f3 = v[:-3], v[1:-2], v[2:-1], v[3:]
+    c = np.stack([f1, (-2 * f0 - 3 * f1 + 6 * f2 - f3) / 6.0, (f0 - 2 * f1 + f2) / 2.0,
+                  (-f0 + 3 * f1 - 3 * f2 + f3) / 6.0])
+    first = np.array([f0[0], (-11 * f0[0] + 18 * f1[0] - 9 * f2[0] + 2 * f3[0]) / 6.0,
+                      (2 * f0[0] - 5 * f1[0] + 4 * f2[0] - f3[0]) / 2.0, c[3, 0]])
+    return np.ascontiguousarray(np.concatenate([first[:, None], c], axis=1))
 
 
 def _lookup(table, step, chord2):
@@ -307,9 +314,23 @@ def _cache_key(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads) -
 
     The nside is the masks' length; the module's table and histogram sizes are constants of the code.
     """
+    return _digest(_code_hash(), (("mask", w_a), ("mask2", w_b), ("sky", sky), ("window", win)),
+                   _settings(lmax, radius, max_centres, order, nthreads))
+
+
+def _settings(lmax, radius, max_centres, order, *extra):
+    """The pair sums' settings as both modules' keys hold them (``extra``: the temperature sums' nthreads), with
+    the module's constants behind the numbers."""
+    return (int(lmax), None if radius is None else float(radius).hex(), int(max_centres), int(order), *extra,
+            MIN_RADIUS_PIXELS, _TABLE_POINTS, _HIST_BINS)
+
+
+def _digest(head, arrays, settings) -> str:
+    """blake2b (32 bytes, hex) of ``head``, each (name, array or None) of ``arrays`` (name, shape, float64 bytes)
+    and ``settings``' repr: the cache keys of this module and of :mod:`polarized_averaging_bias`."""
     h = hashlib.blake2b(digest_size=32)
-    h.update(_code_hash().encode())
-    for name, arr in (("mask", w_a), ("mask2", w_b), ("sky", sky), ("window", win)):
+    h.update(head.encode())
+    for name, arr in arrays:
         h.update(name.encode())
         if arr is None:
             h.update(b"none")
@@ -317,8 +338,7 @@ def _cache_key(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads) -
         a = np.ascontiguousarray(arr, dtype=np.float64)
         h.update(repr(a.shape).encode())
         h.update(a.view(np.uint8).reshape(-1) if a.size else b"")
-    h.update(repr((int(lmax), None if radius is None else float(radius).hex(), int(max_centres), int(order),
-                   nthreads, MIN_RADIUS_PIXELS, _TABLE_POINTS, _HIST_BINS)).encode())
+    h.update(repr(settings).encode())
     return h.hexdigest()
 
 
@@ -449,34 +469,31 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
     return result
 
 
-def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
-    """:func:`averaging_bias` without the cache (``w_b`` None: the auto-spectrum)."""
+def _pair_grid(npix, radius):
+    """The sums' grid: nside, the HEALPix base (RING), the radius (default :data:`MIN_RADIUS_PIXELS` pixels), the
+    tables' largest chord (the radius plus two pixel radii) and the pair histogram's bins per unit chord (both
+    modules)."""
     import ducc0
 
-    from cmbtools._core.sht import legendre_adjoint
-
-    w_b = w_a if w_b is None else w_b
-    npix = w_a.size
     nside = check_nside(int(round(math.sqrt(npix / 12))))
     if radius is None:
         radius = MIN_RADIUS_PIXELS * math.sqrt(4.0 * math.pi / npix)
-    if not np.any(w_a != 0.0) or not np.any(w_b != 0.0):
-        return np.zeros(lmax + 1)
     base = ducc0.healpix.Healpix_Base(nside, "RING")
     reach = radius + 2.0 * base.max_pixrad()
     chord_max = 2.0 * math.sin(min(reach, math.pi) / 2.0) * 1.0001
-    step, (xi_avg, xi_model) = _correlation_tables([sky, sky * win**2], chord_max, nthreads)
-
-    centres, share = _centres(w_a, max_centres)
-    theta, phi = base.pix2ang(centres).T
     hist_chord_max = 2.0 * math.sin(min(radius, math.pi) / 2.0) * 1.0001
-    scale = _HIST_BINS / hist_chord_max
-    hist = np.zeros(_HIST_BINS + 2)
-    block = max(1, (1 << 19) // (order**4))  # node pairs per block: ~20 MB of temporaries (they run beside the kernel)
-    # every pair (p, q) of a centre p and a pixel q of the second mask within the radius; for an auto-spectrum
-    # with every pixel of the mask a centre, the pair (q, p) is (p, q) again (same weight, same difference): each
-    # unordered pair once, counted twice (half the work at small nside; the same sum to rounding)
-    symmetric = w_b is w_a and centres.size == np.count_nonzero(w_a)
+    return nside, base, radius, chord_max, _HIST_BINS / hist_chord_max
+
+
+def _pixel_pairs(base, w_a, w_b, centres, share, radius, symmetric):
+    """Every pair (p, q) of a centre p and a pixel q of the second mask within the radius, and its weight.
+
+    ``share``: the pixels each centre stands for (:func:`_centres`).  ``symmetric`` (an auto-spectrum with every
+    pixel of the mask a centre): the pair (q, p) is (p, q) again, so each unordered pair is kept once, counted
+    twice.  Returns the pixels involved (sorted, once each), the index of p and of q into them, and the weights
+    ``share W_a(p) W_b(q)``.
+    """
+    theta, phi = base.pix2ang(centres).T
     pairs_p, pairs_q, pairs_w = [], [], []
     for k, (p, th, ph) in enumerate(zip(centres, theta, phi)):
         ranges = base.query_disc(np.array([th, ph]), radius)
@@ -490,13 +507,46 @@ def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
         pairs_p.append(np.full(q.size, p))
         pairs_q.append(q)
     pairs_p, pairs_q, pairs_w = np.concatenate(pairs_p), np.concatenate(pairs_q), np.concatenate(pairs_w)
-    # the nodes of every pixel involved, once
     used, index = np.unique(np.concatenate([pairs_p, pairs_q]), return_inverse=True)
-    index_p, index_q = index[: pairs_p.size], index[pairs_p.size :]
+    return used, index[: pairs_p.size], index[pairs_p.size :], pairs_w
+
+
+def _histogram_place(centre2, scale):
+    """Bin and fraction of the linear assignment of squared centre chords to the pair histogram."""
+    pos = np.sqrt(centre2) * scale
+    i = np.minimum(pos.astype(np.intp), _HIST_BINS)
+    return i, pos - i
+
+
+def _histogram_add(hist, i, f, weight):
+    """Add ``weight`` to the histogram (``_HIST_BINS + 2`` bins) at the places of :func:`_histogram_place`."""
+    hist += np.bincount(i, weights=weight * (1.0 - f), minlength=_HIST_BINS + 2)[: _HIST_BINS + 2]
+    hist[1:] += np.bincount(i, weights=weight * f, minlength=_HIST_BINS + 1)[: _HIST_BINS + 1]
+
+
+def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
+    """:func:`averaging_bias` without the cache (``w_b`` None: the auto-spectrum)."""
+    from cmbtools._core.sht import legendre_adjoint
+
+    w_b = w_a if w_b is None else w_b
+    npix = w_a.size
+    nside, base, radius, chord_max, scale = _pair_grid(npix, radius)
+    if not np.any(w_a != 0.0) or not np.any(w_b != 0.0):
+        return np.zeros(lmax + 1)
+    step, (xi_avg, xi_model) = _correlation_tables([sky, sky * win**2], chord_max, nthreads)
+
+    centres, share = _centres(w_a, max_centres)
+    hist = np.zeros(_HIST_BINS + 2)
+    block = max(1, (1 << 19) // (order**4))  # node pairs per block: ~20 MB of temporaries (they run beside the kernel)
+    # for an auto-spectrum with every pixel of the mask a centre, each unordered pair once, counted twice (half
+    # the work at small nside; the same sum to rounding)
+    symmetric = w_b is w_a and centres.size == np.count_nonzero(w_a)
+    used, index_p, index_q, pairs_w = _pixel_pairs(base, w_a, w_b, centres, share, radius, symmetric)
+    # the nodes of every pixel involved, once
     nodes, wt = _pixel_nodes(nside, used, order)
     centre_vec = base.pix2vec(used)
     weight2 = np.outer(wt, wt).ravel()
-    for s in range(0, pairs_p.size, block):
+    for s in range(0, pairs_w.size, block):
         ip, iq = index_p[s : s + block], index_q[s : s + block]
         c2 = np.matmul(nodes[ip], nodes[iq].transpose(0, 2, 1)).reshape(ip.size, -1)
         c2 *= -2.0
@@ -504,14 +554,9 @@ def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
         np.clip(c2, 0.0, None, out=c2)
         mean = _lookup(xi_avg, step, c2) @ weight2
         centre2 = np.sum((centre_vec[ip] - centre_vec[iq]) ** 2, axis=1)
-        centre_chord = np.sqrt(centre2)
+        i, f = _histogram_place(centre2, scale)
         delta = mean - _lookup(xi_model, step, centre2)
-        weight = pairs_w[s : s + block] * delta
-        pos = centre_chord * scale
-        i = np.minimum(pos.astype(np.intp), _HIST_BINS)
-        f = pos - i
-        hist += np.bincount(i, weights=weight * (1.0 - f), minlength=_HIST_BINS + 2)[: _HIST_BINS + 2]
-        hist[1:] += np.bincount(i, weights=weight * f, minlength=_HIST_BINS + 1)[: _HIST_BINS + 1]
+        _histogram_add(hist, i, f, pairs_w[s : s + block] * delta)
     chord = np.arange(_HIST_BINS + 2) / scale
     omega = 4.0 * np.pi / npix
     angle = 2.0 * np.arcsin(np.clip(chord / 2.0, 0.0, 1.0))
