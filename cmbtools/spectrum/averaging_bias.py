@@ -78,8 +78,24 @@ __all__ = ["averaging_bias", "clear_averaging_bias_cache", "pair_radius"]
 
 #: The pairs are summed to this many pixel sizes at least ...
 MIN_RADIUS_PIXELS = 7.0
-#: ... and to this many times the beam's FWHM (estimated from where B_l^2 falls to one half).
+#: ... and to this many times the beam's FWHM (estimated from where B_l^2 falls to one half) ...
 RADIUS_BEAMS = 3.0
+#: ... and to this many times FWHM^2 / pixel (the e-folding length in l of the beamed pseudo-power near the top of
+#: the default bins, 2.5 nside, is about 1.1 pixel / FWHM^2 in 1/radians: the cut pair sum smooths the bias over
+#: a few 1/radius in l, which must stay well inside it; a beam of 2.2 pixels then sums to 10 pixels) ...
+RADIUS_BEAM_AREAS = 2.1
+#: ... but not beyond this many pixels (a beam of 2.8 pixels or more; the cost grows as the radius squared).
+MAX_RADIUS_PIXELS = 16.0
+#: Above l ~ 10 / radius the pairs' weights fall as cos^2 over this outer fraction of the radius: a sharp cut of
+#: the pair sums smooths the bias over l with a ringing kernel, which matters where the pseudo-power falls steeply
+#: (on the demo survey, 2.4 nside with a 2.2-pixel beam, a sharp cut at 7 pixels put the top bin's bias at -2.0 %
+#: of its pseudo-power against -1.14 % by brute force), while at low l the taper's loss of distant pairs costs more
+#: (0.2-0.3 % of the pseudo-power at l < 10 / radius, nside 16).  See DEVELOPERS.md, "pixel averages".  A radius
+#: covering the sphere sums every pair at full weight at every l.
+TAPER_FRACTION = 0.5
+#: The result is the sharp cut's below l = TAPER_FROM / radius, the tapered one's above l = TAPER_FULL / radius,
+#: linear in l between.
+TAPER_FROM, TAPER_FULL = 10.0, 15.0
 #: The pairs of every pixel of the mask are summed when it has at most this many; above it, the pairs of a
 #: stratified sample of this many of its pixels, each weighted by the number of pixels it stands for (see
 #: :func:`averaging_bias`).
@@ -106,7 +122,7 @@ _SAMPLE_SEED = 20261203
 
 
 def pair_radius(nside, sky_factor) -> float:
-    """Angular radius of the pair sums: ``max(7 pixels, 3 FWHM)``.
+    """Angular radius of the pair sums: ``max(7 pixels, 3 FWHM, 2.1 FWHM^2 / pixel)``, at most 16 pixels.
 
     Parameters
     ----------
@@ -128,7 +144,9 @@ def pair_radius(nside, sky_factor) -> float:
     if below.size and below[0] > 1:
         l_half = float(below[0])
         sigma = math.sqrt(math.log(2.0)) / math.sqrt(l_half * (l_half + 1.0))
-        radius = max(radius, RADIUS_BEAMS * 2.0 * math.sqrt(2.0 * math.log(2.0)) * sigma)
+        fwhm = 2.0 * math.sqrt(2.0 * math.log(2.0)) * sigma
+        radius = max(radius, min(max(RADIUS_BEAMS * fwhm, RADIUS_BEAM_AREAS * fwhm * fwhm / pixel),
+                                 MAX_RADIUS_PIXELS * pixel))
     return radius
 
 
@@ -322,7 +340,7 @@ def _settings(lmax, radius, max_centres, order, *extra):
     """The pair sums' settings as both modules' keys hold them (``extra``: the temperature sums' nthreads), with
     the module's constants behind the numbers."""
     return (int(lmax), None if radius is None else float(radius).hex(), int(max_centres), int(order), *extra,
-            MIN_RADIUS_PIXELS, _TABLE_POINTS, _HIST_BINS)
+            MIN_RADIUS_PIXELS, TAPER_FRACTION, TAPER_FROM, TAPER_FULL, _TABLE_POINTS, _HIST_BINS)
 
 
 def _digest(head, arrays, settings) -> str:
@@ -511,11 +529,47 @@ def _pixel_pairs(base, w_a, w_b, centres, share, radius, symmetric):
     return used, index[: pairs_p.size], index[pairs_p.size :], pairs_w
 
 
-def _histogram_place(centre2, scale):
-    """Bin and fraction of the linear assignment of squared centre chords to the pair histogram."""
-    pos = np.sqrt(centre2) * scale
+def _histogram_place(centre2, scale, radius):
+    """Bin and fraction of the linear assignment of squared centre chords to the pair histogram, and the pairs'
+    taper (:data:`TAPER_FRACTION`: 1 to ``(1 - TAPER_FRACTION) radius``, cos^2 to 0 at the radius), or None for a
+    radius covering the sphere."""
+    chord = np.sqrt(centre2)
+    pos = chord * scale
     i = np.minimum(pos.astype(np.intp), _HIST_BINS)
-    return i, pos - i
+    if not _tapered(radius):
+        return i, pos - i, None
+    t = (2.0 * np.arcsin(np.minimum(chord / 2.0, 1.0)) / radius - (1.0 - TAPER_FRACTION)) / TAPER_FRACTION
+    taper = np.cos(0.5 * np.pi * np.clip(t, 0.0, 1.0)) ** 2
+    return i, pos - i, taper
+
+
+def _tapered(radius):
+    return radius < math.pi and TAPER_FRACTION > 0.0
+
+
+def _taper_share(lmax, radius):
+    """(lmax+1,) share of the tapered sums in the result: 0 below l = TAPER_FROM / radius, 1 above TAPER_FULL /
+    radius (all 0 for a radius covering the sphere)."""
+    if not _tapered(radius):
+        return np.zeros(lmax + 1)
+    x = np.arange(lmax + 1) * radius
+    return np.clip((x - TAPER_FROM) / (TAPER_FULL - TAPER_FROM), 0.0, 1.0)
+
+
+def _histograms_add(sharp, tapered, i, f, taper, weight):
+    """Add ``weight`` to the sharp-cut histogram and ``weight * taper`` to the tapered one (None: no taper)."""
+    _histogram_add(sharp, i, f, weight)
+    if taper is not None:
+        _histogram_add(tapered, i, f, weight * taper)
+
+
+def _blend(adjoint, sharp, tapered, lmax, radius):
+    """The result from the two histograms (:func:`_taper_share`): ``adjoint(h)`` maps a histogram to l = 0..lmax."""
+    out = adjoint(sharp)
+    share = _taper_share(lmax, radius)
+    if np.any(share > 0.0):
+        out += share * adjoint(tapered - sharp)
+    return out
 
 
 def _histogram_add(hist, i, f, weight):
@@ -536,7 +590,7 @@ def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
     step, (xi_avg, xi_model) = _correlation_tables([sky, sky * win**2], chord_max, nthreads)
 
     centres, share = _centres(w_a, max_centres)
-    hist = np.zeros(_HIST_BINS + 2)
+    hist, hist_t = np.zeros(_HIST_BINS + 2), np.zeros(_HIST_BINS + 2)
     block = max(1, (1 << 19) // (order**4))  # node pairs per block: ~20 MB of temporaries (they run beside the kernel)
     # for an auto-spectrum with every pixel of the mask a centre, each unordered pair once, counted twice (half
     # the work at small nside; the same sum to rounding)
@@ -554,10 +608,11 @@ def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
         np.clip(c2, 0.0, None, out=c2)
         mean = _lookup(xi_avg, step, c2) @ weight2
         centre2 = np.sum((centre_vec[ip] - centre_vec[iq]) ** 2, axis=1)
-        i, f = _histogram_place(centre2, scale)
+        i, f, taper = _histogram_place(centre2, scale, radius)
         delta = mean - _lookup(xi_model, step, centre2)
-        _histogram_add(hist, i, f, pairs_w[s : s + block] * delta)
+        _histograms_add(hist, hist_t, i, f, taper, pairs_w[s : s + block] * delta)
     chord = np.arange(_HIST_BINS + 2) / scale
     omega = 4.0 * np.pi / npix
     angle = 2.0 * np.arcsin(np.clip(chord / 2.0, 0.0, 1.0))
-    return omega**2 / (4.0 * np.pi) * legendre_adjoint(hist, angle, lmax, nthreads=nthreads)
+    return omega**2 / (4.0 * np.pi) * _blend(lambda h: legendre_adjoint(h, angle, lmax, nthreads=nthreads),
+                                            hist, hist_t, lmax, radius)

@@ -302,6 +302,7 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
     keys = [k for p in ("PP", "TP", "PT") if p in parts for k in {"PP": ("plus", "minus", "cross"), "TP": ("tq", "tu"),
                                                                     "PT": ("qt", "ut")}[p]]
     hist = {k: np.zeros(_ab._HIST_BINS + 2) for k in keys}
+    hist_t = {k: np.zeros(_ab._HIST_BINS + 2) for k in keys}
     block = max(1, (1 << 18) // (order**4))
     # each unordered pair once when both maps are one and every pixel of the mask is a centre: PP's terms are
     # symmetric in p, q; T(p) P(q) and P(p) T(q) swap (both are computed and averaged)
@@ -384,25 +385,29 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
         if symmetric and "tq" in deltas:
             for a, b in (("tq", "qt"), ("tu", "ut")):
                 deltas[a] = deltas[b] = 0.5 * (deltas[a] + deltas[b])
-        i, f = _ab._histogram_place(centre2, scale)
+        i, f, taper = _ab._histogram_place(centre2, scale, radius)
         pw = pairs_w[s : s + block]
         for name in keys:
-            _ab._histogram_add(hist[name], i, f, pw * deltas[name])
+            _ab._histograms_add(hist[name], hist_t[name], i, f, taper, pw * deltas[name])
     chord = np.arange(_ab._HIST_BINS + 2) / scale
     x = 1.0 - chord**2 / 2.0
     omega = 4.0 * np.pi / npix
     f = omega**2 / (4.0 * np.pi)
     out = {}
+
+    def adjoint(name, kind):
+        return _ab._blend(lambda h: wigner_d_adjoint(h, kind, x, lmax), hist[name], hist_t[name], lmax, radius)
+
     if "PP" in parts:
-        a = wigner_d_adjoint(hist["plus"], (2, 2), x, lmax)
-        b = wigner_d_adjoint(hist["minus"], (2, -2), x, lmax)
-        c = wigner_d_adjoint(hist["cross"], (2, -2), x, lmax)
+        a = adjoint("plus", (2, 2))
+        b = adjoint("minus", (2, -2))
+        c = adjoint("cross", (2, -2))
         out.update({"EE": f * 0.5 * (a + b), "BB": f * 0.5 * (a - b), "EB": f * 0.5 * c})
     # the deltas of T x P are minus those of <T Q_r>, <T U_r> (the tables hold +xi_TE, +xi_TB): TE~ = -f sum .. d20
     if "TP" in parts:
-        out["TE"] = f * wigner_d_adjoint(hist["tq"], (2, 0), x, lmax)
-        out["TB"] = f * wigner_d_adjoint(hist["tu"], (2, 0), x, lmax)
+        out["TE"] = f * adjoint("tq", (2, 0))
+        out["TB"] = f * adjoint("tu", (2, 0))
     if "PT" in parts:
-        out["ET"] = f * wigner_d_adjoint(hist["qt"], (2, 0), x, lmax)
-        out["BT"] = f * wigner_d_adjoint(hist["ut"], (2, 0), x, lmax)
+        out["ET"] = f * adjoint("qt", (2, 0))
+        out["BT"] = f * adjoint("ut", (2, 0))
     return out
