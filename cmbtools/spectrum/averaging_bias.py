@@ -18,7 +18,8 @@ widths) apart, because it comes from the shapes of the pixels: pixels change
 shape across the sphere (so the pixels under a mask do not respond as the
 all-sky mean), and the averaging changes how the grid aliases power near
 2-3 nside.  :func:`averaging_bias` sums the difference over the pairs
-within a radius, for a guess spectrum, as the formula above (pixel means by
+within a radius (:func:`pair_radius`; above l ~ 10 / radius with the pairs'
+weights tapered towards it, see :data:`TAPER_FRACTION`), for a guess spectrum, as the formula above (pixel means by
 each pixel's Gauss-Legendre rule, the correlation functions from tables made
 by ducc0's m = 0 transforms, the Legendre sums of the pair histogram by its
 adjoint), over every pixel p of the mask when it has at most
@@ -32,7 +33,8 @@ binned matrix's coupling rows like the leakage of power above the bins, so
 it is exact when the sky has the shape of the guess.
 
 Cost: about 2 s for 4096 centres (0.4-0.7 ms each, with the pair radius of
-7 pixels; quiet 2-core machine) whatever the nside; below 4096 pixels in the
+7 pixels; quiet 2-core machine) whatever the nside, growing as the radius
+squared (twice that with a beam of 2.2 pixels); below 4096 pixels in the
 mask, less (an auto-spectrum then sums each unordered pair once).  The
 estimator runs it on a thread beside the mask's transform and the coupling
 kernel, and applies it by default at every nside
