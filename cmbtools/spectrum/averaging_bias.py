@@ -18,8 +18,8 @@ widths) apart, because it comes from the shapes of the pixels: pixels change
 shape across the sphere (so the pixels under a mask do not respond as the
 all-sky mean), and the averaging changes how the grid aliases power near
 2-3 nside.  :func:`averaging_bias` sums the difference over the pairs
-within a radius (:func:`pair_radius`; above l ~ 10 / radius with the pairs'
-weights tapered towards it, see :data:`TAPER_FRACTION`), for a guess spectrum, as the formula above (pixel means by
+within a radius (:func:`pair_radius`; when the beam sets it, above l ~ 10 / radius
+with the pairs' weights tapered towards it, see :data:`TAPER_FRACTION`), for a guess spectrum, as the formula above (pixel means by
 each pixel's Gauss-Legendre rule, the correlation functions from tables made
 by ducc0's m = 0 transforms, the Legendre sums of the pair histogram by its
 adjoint), over every pixel p of the mask when it has at most
@@ -92,8 +92,9 @@ MAX_RADIUS_PIXELS = 16.0
 #: the pair sums smooths the bias over l with a ringing kernel, which matters where the pseudo-power falls steeply
 #: (on the demo survey, 2.4 nside with a 2.2-pixel beam, a sharp cut at 7 pixels put the top bin's bias at -2.0 %
 #: of its pseudo-power against -1.14 % by brute force), while at low l the taper's loss of distant pairs costs more
-#: (0.2-0.3 % of the pseudo-power at l < 10 / radius, nside 16).  See DEVELOPERS.md, "pixel averages".  A radius
-#: covering the sphere sums every pair at full weight at every l.
+#: (0.2-0.3 % of the pseudo-power at l < 10 / radius, nside 16).  See DEVELOPERS.md, "pixel averages".  At the
+#: minimum radius (:data:`MIN_RADIUS_PIXELS`), where it did not help, and for a radius covering the sphere, every
+#: pair is summed at full weight at every l.
 TAPER_FRACTION = 0.5
 #: The result is the sharp cut's below l = TAPER_FROM / radius, the tapered one's above l = TAPER_FULL / radius,
 #: linear in l between.
@@ -491,8 +492,9 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
 
 def _pair_grid(npix, radius):
     """The sums' grid: nside, the HEALPix base (RING), the radius (default :data:`MIN_RADIUS_PIXELS` pixels), the
-    tables' largest chord (the radius plus two pixel radii) and the pair histogram's bins per unit chord (both
-    modules)."""
+    tables' largest chord (the radius plus two pixel radii), the pair histogram's bins per unit chord, and the
+    radius of the taper (both modules): None (a sharp cut at every l) at the minimum radius, where the taper
+    does not help (measured in DEVELOPERS.md, "pixel averages"), and for a radius covering the sphere."""
     import ducc0
 
     nside = check_nside(int(round(math.sqrt(npix / 12))))
@@ -502,7 +504,9 @@ def _pair_grid(npix, radius):
     reach = radius + 2.0 * base.max_pixrad()
     chord_max = 2.0 * math.sin(min(reach, math.pi) / 2.0) * 1.0001
     hist_chord_max = 2.0 * math.sin(min(radius, math.pi) / 2.0) * 1.0001
-    return nside, base, radius, chord_max, _HIST_BINS / hist_chord_max
+    pixel = math.sqrt(4.0 * math.pi / npix)
+    tapered = TAPER_FRACTION > 0.0 and MIN_RADIUS_PIXELS * pixel * (1.0 + 1e-9) < radius < math.pi
+    return nside, base, radius, chord_max, _HIST_BINS / hist_chord_max, (radius if tapered else None)
 
 
 def _pixel_pairs(base, w_a, w_b, centres, share, radius, symmetric):
@@ -531,30 +535,26 @@ def _pixel_pairs(base, w_a, w_b, centres, share, radius, symmetric):
     return used, index[: pairs_p.size], index[pairs_p.size :], pairs_w
 
 
-def _histogram_place(centre2, scale, radius):
+def _histogram_place(centre2, scale, taper_radius):
     """Bin and fraction of the linear assignment of squared centre chords to the pair histogram, and the pairs'
-    taper (:data:`TAPER_FRACTION`: 1 to ``(1 - TAPER_FRACTION) radius``, cos^2 to 0 at the radius), or None for a
-    radius covering the sphere."""
+    taper (:data:`TAPER_FRACTION`: 1 to ``(1 - TAPER_FRACTION) taper_radius``, cos^2 to 0 there), or None
+    (``taper_radius`` None: :func:`_pair_grid`)."""
     chord = np.sqrt(centre2)
     pos = chord * scale
     i = np.minimum(pos.astype(np.intp), _HIST_BINS)
-    if not _tapered(radius):
+    if taper_radius is None:
         return i, pos - i, None
-    t = (2.0 * np.arcsin(np.minimum(chord / 2.0, 1.0)) / radius - (1.0 - TAPER_FRACTION)) / TAPER_FRACTION
+    t = (2.0 * np.arcsin(np.minimum(chord / 2.0, 1.0)) / taper_radius - (1.0 - TAPER_FRACTION)) / TAPER_FRACTION
     taper = np.cos(0.5 * np.pi * np.clip(t, 0.0, 1.0)) ** 2
     return i, pos - i, taper
 
 
-def _tapered(radius):
-    return radius < math.pi and TAPER_FRACTION > 0.0
-
-
-def _taper_share(lmax, radius):
+def _taper_share(lmax, taper_radius):
     """(lmax+1,) share of the tapered sums in the result: 0 below l = TAPER_FROM / radius, 1 above TAPER_FULL /
-    radius (all 0 for a radius covering the sphere)."""
-    if not _tapered(radius):
+    radius (all 0 without a taper)."""
+    if taper_radius is None:
         return np.zeros(lmax + 1)
-    x = np.arange(lmax + 1) * radius
+    x = np.arange(lmax + 1) * taper_radius
     return np.clip((x - TAPER_FROM) / (TAPER_FULL - TAPER_FROM), 0.0, 1.0)
 
 
@@ -565,10 +565,10 @@ def _histograms_add(sharp, tapered, i, f, taper, weight):
         _histogram_add(tapered, i, f, weight * taper)
 
 
-def _blend(adjoint, sharp, tapered, lmax, radius):
+def _blend(adjoint, sharp, tapered, lmax, taper_radius):
     """The result from the two histograms (:func:`_taper_share`): ``adjoint(h)`` maps a histogram to l = 0..lmax."""
     out = adjoint(sharp)
-    share = _taper_share(lmax, radius)
+    share = _taper_share(lmax, taper_radius)
     if np.any(share > 0.0):
         out += share * adjoint(tapered - sharp)
     return out
@@ -586,7 +586,7 @@ def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
 
     w_b = w_a if w_b is None else w_b
     npix = w_a.size
-    nside, base, radius, chord_max, scale = _pair_grid(npix, radius)
+    nside, base, radius, chord_max, scale, taper_radius = _pair_grid(npix, radius)
     if not np.any(w_a != 0.0) or not np.any(w_b != 0.0):
         return np.zeros(lmax + 1)
     step, (xi_avg, xi_model) = _correlation_tables([sky, sky * win**2], chord_max, nthreads)
@@ -610,11 +610,11 @@ def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
         np.clip(c2, 0.0, None, out=c2)
         mean = _lookup(xi_avg, step, c2) @ weight2
         centre2 = np.sum((centre_vec[ip] - centre_vec[iq]) ** 2, axis=1)
-        i, f, taper = _histogram_place(centre2, scale, radius)
+        i, f, taper = _histogram_place(centre2, scale, taper_radius)
         delta = mean - _lookup(xi_model, step, centre2)
         _histograms_add(hist, hist_t, i, f, taper, pairs_w[s : s + block] * delta)
     chord = np.arange(_HIST_BINS + 2) / scale
     omega = 4.0 * np.pi / npix
     angle = 2.0 * np.arcsin(np.clip(chord / 2.0, 0.0, 1.0))
     return omega**2 / (4.0 * np.pi) * _blend(lambda h: legendre_adjoint(h, angle, lmax, nthreads=nthreads),
-                                            hist, hist_t, lmax, radius)
+                                            hist, hist_t, lmax, taper_radius)

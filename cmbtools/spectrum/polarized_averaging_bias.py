@@ -275,7 +275,7 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
     symmetric_masks = w_b is None
     w_b = w_a if w_b is None else w_b
     npix = w_a.size
-    nside, base, radius, chord_max, scale = _ab._pair_grid(npix, radius)
+    nside, base, radius, chord_max, scale, taper_radius = _ab._pair_grid(npix, radius)
     want_pp, want_tp, want_pt = "PP" in parts, "TP" in parts, "PT" in parts
     names = {"PP": ("EE", "BB", "EB"), "TP": ("TE", "TB"), "PT": ("ET", "BT")}
     if not np.any(w_a != 0.0) or not np.any(w_b != 0.0):
@@ -385,7 +385,7 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
         if symmetric and "tq" in deltas:
             for a, b in (("tq", "qt"), ("tu", "ut")):
                 deltas[a] = deltas[b] = 0.5 * (deltas[a] + deltas[b])
-        i, f, taper = _ab._histogram_place(centre2, scale, radius)
+        i, f, taper = _ab._histogram_place(centre2, scale, taper_radius)
         pw = pairs_w[s : s + block]
         for name in keys:
             _ab._histograms_add(hist[name], hist_t[name], i, f, taper, pw * deltas[name])
@@ -396,7 +396,7 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
     out = {}
 
     def adjoint(name, kind):
-        return _ab._blend(lambda h: wigner_d_adjoint(h, kind, x, lmax), hist[name], hist_t[name], lmax, radius)
+        return _ab._blend(lambda h: wigner_d_adjoint(h, kind, x, lmax), hist[name], hist_t[name], lmax, taper_radius)
 
     if "PP" in parts:
         a = adjoint("plus", (2, 2))
