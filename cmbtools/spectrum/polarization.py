@@ -572,10 +572,11 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
 
     def _with_exact_low_bins(self, pseudo_cov, name, pair, values, fa, fb, cross, noise, noise_vec):
         """The pseudo-spectra's covariance with its lowest bins' block replaced by the exact one."""
-        from cmbtools.spectrum.low_ell_covariance import low_ell_block, sky_amplitudes
+        from cmbtools.spectrum.low_ell_covariance import low_ell_block, low_ell_temperature_block, sky_amplitudes
 
         blk = low_ell_block(self, name)
-        amp = sky_amplitudes(dict(zip(SPECTRA, values)), values.shape[1], blk.groups)
+        blk_t = low_ell_temperature_block(self, name)
+        amp = sky_amplitudes(dict(zip(SPECTRA, values)), values.shape[1], sorted(set(blk.groups) | set(blk_t.groups)))
         b = self.binning
         lo, hi = int(b.ell_min[0]), int(b.ell_max[-1])
         ell = np.arange(lo, hi + 1)
@@ -607,16 +608,21 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         nb, ne = b.n_bins, self.exact_low_bins
         sm = self._reporting_matrix(comps)
 
-        def replaced(exact):
+        tt = comps.index("TT")
+        nt = blk_t.n_exact
+
+        def replaced(exact, exact_t):
             out = pseudo_cov.copy()
             for i in range(len(comps)):
                 for j in range(len(comps)):
                     out[i * nb:i * nb + ne, j * nb:j * nb + ne] = exact[i, :, j, :]
+            # TT x TT: the temperature-only block, one bin further
+            out[tt * nb:tt * nb + nt, tt * nb:tt * nb + nt] = exact_t[0, :, 0, :]
             return out
 
         # the amplitudes are measured: their own covariance (from the block with them) is taken out of the
         # quadratic form, so that its mean is that of the true spectra
-        first = replaced(blk.covariance(amp))
+        first = replaced(blk.covariance(amp), blk_t.covariance(amp))
         m = sm @ pair.ainv
         cov_values = m @ first @ m.T
 
@@ -625,7 +631,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 return 0.0
             return cov_values[SPECTRA.index(k1[1]) * nb + k1[2], SPECTRA.index(k2[1]) * nb + k2[2]]
 
-        return replaced(blk.covariance(amp, amp_cov))
+        return replaced(blk.covariance(amp, amp_cov), blk_t.covariance(amp, amp_cov))
 
     def _reporting_matrix(self, comps):
         """(6 n_bins, n_comp n_bins): the six reported spectra from the components (means of TE/ET, TB/BT)."""
