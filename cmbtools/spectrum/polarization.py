@@ -119,6 +119,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         :mod:`cmbtools.spectrum.low_ell_covariance`; built on the first estimate: a few seconds for the default
         first bin, ell 2-17, at any nside); 0 turns it off.  None (default): 1 when the first bin ends at or below
         ``ell = EXACT_LOW_BIN_MAX_ELL`` (24; the cost grows as the fourth power of its last multipole), else 0.
+        TT's own block (TT x TT, no polarization field: a fraction of the cost) reaches one bin further
+        (:func:`~cmbtools.spectrum.low_ell_covariance.temperature_bins`).
     nthreads : int, optional
         Threads of the transforms and of the coupling kernel.
     max_condition_number : float, default=1e3
@@ -149,10 +151,10 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
     way (see :mod:`cmbtools.spectrum.polarized_covariance`).  Propagated through the inverse coupled
     system.  On the full sky it is the Knox formula.  Measured against 600 simulations of a 10-degree
     tapered cap with holes, the default bins from ell 2 (``tests/spectrum/test_polarization_montecarlo.py``):
-    reported error / simulated scatter within 0.90-1.09 in every bin above the first for the six spectra with
-    and without purification (TT at ell 18-33: 1.12).  The first bin's block is the exact Gaussian covariance
-    (``exact_low_bins``, :mod:`cmbtools.spectrum.low_ell_covariance`): 0.99-1.09 there (0.73-1.30 in the
-    narrow-kernel approximation).
+    reported error / simulated scatter within 0.9-1.1 in every bin of the six spectra with and without
+    purification.  The first bin's block is the exact Gaussian covariance (``exact_low_bins``,
+    :mod:`cmbtools.spectrum.low_ell_covariance`; 0.73-1.30 in the narrow-kernel approximation there), and for
+    TT the first two bins' (TT at ell 18-33: 1.116 with the first bin alone exact, 1.08 with both).
 
     Corrections (:mod:`cmbtools.spectrum.polarized_corrections`): the monopole/dipole removal's bias of TT,
     TE, TB and the power above the bins, as one factor per bin on the rows of each spectrum's coupled system,
