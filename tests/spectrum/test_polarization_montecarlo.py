@@ -7,8 +7,8 @@ above 4 nside - 1, as on a real map); a large monopole and dipole in I; inhomoge
 the I noise per pixel, common practice); a temperature mask with holes and a polarization mask without, both
 tapered; the cross-spectra of two halves with independent noise, measured with the default bins (ell 2 to
 2.5 nside in bins of 16) with and without B-mode purification.  Every bin of every spectrum is judged against
-the bin average of the input spectra.  190-260 s on the loaded 2-core machine (load 6-7); the skies' synthesis at
-nside 128 and the two estimators share it.
+the bin average of the input spectra.  190-260 s on the loaded 2-core machine (load 6-7; 793 s at load 10-12);
+the skies' synthesis at nside 128 and the two estimators share it.
 """
 
 from __future__ import annotations
