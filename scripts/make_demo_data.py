@@ -155,7 +155,7 @@ def make_demo_data(output_dir, *, overwrite=False, nthreads=None, log=print):
 
     cl = simulate.fiducial_cl(LMAX)
     simulate.write_spectrum_table(paths["fiducial_cl.csv"], cl, overwrite=overwrite,
-                                  header={"source": "cmbtools built-in fiducial spectrum, Planck18 cosmology, default extras"})
+                                  header={"source": f"cmbtools {simulate.theory_spectrum.FIDUCIAL_LABEL}"})
     beam = gaussian_beam(BEAM_FWHM_ARCMIN, LMAX)
     write_beam(paths["tern_beam.csv"], beam, overwrite=overwrite,
                header=f"Tern Sky Survey (invented demo data): Gaussian beam, FWHM {BEAM_FWHM_ARCMIN:g} arcmin")
@@ -208,8 +208,9 @@ def _write_polarized(paths, header, hits, n1, n2, sources, half_noise, overwrite
     spectra = simulate.fiducial_spectra(LMAX, lensing_bb=True)
     simulate.write_spectrum_table(paths["fiducial_pol_cl.csv"], {k: spectra[k] for k in ("TT", "EE", "BB", "TE")},
                                   overwrite=overwrite,
-                                  header={"source": "cmbtools built-in fiducial spectra, Planck18 cosmology, default "
-                                                    "extras, r = 0, lensing-like BB template"})
+                                  header={"source": "cmbtools built-in fiducial spectra "
+                                                    f"({simulate.theory_spectrum.FIDUCIAL_MODEL}; r = 0, "
+                                                    "lensing-like BB template)"})
     iqu = simulate.gaussian_iqu_sky(
         spectra, NSIDE, lmax=LMAX, beam=BEAM_FWHM_ARCMIN, pixelise=PIXELISE_POLARIZED, monopole=MONOPOLE_UK * 1e-6,
         dipole=simulate.Dipole(DIPOLE_UK[0] * 1e-6, DIPOLE_UK[1], DIPOLE_UK[2]),

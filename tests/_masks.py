@@ -1,5 +1,5 @@
 """Shared survey set-up of the statistical tests (test_deprojection.py, test_averaged_pixels_default.py,
-test_polarized_averaged_pixels.py).
+test_polarized_averaged_pixels.py, test_transfer.py).
 
 * :func:`cos_taper` - a cosine taper from 0 to 1 over ``width`` degrees;
 * :func:`cap_with_holes` - a 50-degree cap around galactic (250, -55) with 15 holes of one degree, every edge

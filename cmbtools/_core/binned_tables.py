@@ -2,9 +2,11 @@
 
 A bandpower table (what :meth:`cmbtools.spectrum.Bandpowers.write_csv` writes)
 has the columns :data:`BANDPOWER_COLUMNS`; a transfer table (what
-:meth:`cmbtools.spectrum.BandpowerTransfer.write` writes) the columns
+:meth:`cmbtools.spectrum.BandpowerTransfer.write_csv` writes) the columns
 :data:`TRANSFER_COLUMNS`.  A filter table gives a factor per multipole.  All
-of them are read by :func:`cmbtools._core.tables.read_text_table`.
+of them are read by :func:`cmbtools._core.tables.read_text_table`; every per-bin
+table (bandpowers, transfer functions, validation tables, and their polarized
+forms with a ``spectrum`` column) is written by :func:`write_binned_table`.
 """
 
 from __future__ import annotations
@@ -14,7 +16,9 @@ from pathlib import Path
 
 import numpy as np
 
-from cmbtools._core.tables import LARGEST_ELL, POWER_UNITS, number_cell, read_text_table, write_text_table
+from cmbtools._core.tables import (
+    LARGEST_ELL, POWER_UNITS, key_value_lines, number_cell, read_text_table, write_text_table,
+)
 from cmbtools.exceptions import InputFileError
 
 __all__ = []
@@ -178,6 +182,56 @@ def spectra_from_polarized_bandpowers(table, wanted) -> dict:
 TRANSFER_COLUMNS = ("ell_min", "ell_max", "ell_eff", "transfer", "transfer_error")
 
 
+def _exact(value) -> str:
+    """A float cell that reads back to the same double (17 significant digits at most, ``nan`` as ``nan``)."""
+    return repr(float(value))
+
+
+def write_binned_table(path, names, ell_min, ell_max, ell_eff, values, *, spectra=None, comments=(),
+                       overwrite=False, number=_exact, ell_eff_number=None) -> Path:
+    """Write a table of per-bin values, the layout of every binned table cmbtools writes (bandpowers, transfer
+    functions, validation tables; temperature and polarized).
+
+    The columns are ``ell_min,ell_max,ell_eff`` then ``names``, preceded by ``spectrum`` when ``spectra``
+    is given; one row per bin, or per spectrum and bin (the first spectrum's bins first).
+
+    Parameters
+    ----------
+    path : str or path-like
+        Output file (checked, then written atomically).
+    names : sequence of str
+        The value columns after ``ell_eff``.
+    ell_min, ell_max, ell_eff : array_like of shape (n_bins,)
+        Bin limits (whole numbers, inclusive) and effective multipoles.
+    values : sequence of array_like
+        One per name: shape (n_bins,), or (len(spectra), n_bins) with ``spectra``.
+    spectra : sequence of str, optional
+        The ``spectrum`` column's names, in the order of the values' first axis.
+    comments : sequence of str, optional
+        Comment lines (see :func:`cmbtools._core.tables.write_text_table`).
+    overwrite : bool, default=False
+        Replace an existing file.
+    number : callable, optional
+        Float to cell text (default: ``repr``, exact when read back).
+    ell_eff_number : callable, optional
+        The same for ``ell_eff`` (default: ``number``).
+
+    Returns
+    -------
+    Path
+    """
+    eff_text = number if ell_eff_number is None else ell_eff_number
+    bins = [[str(int(a)), str(int(b)), eff_text(e)] for a, b, e in zip(ell_min, ell_max, ell_eff)]
+    if spectra is None:
+        rows = [cells + [number(v[j]) for v in values] for j, cells in enumerate(bins)]
+    else:
+        rows = [[s] + cells + [number(v[i][j]) for v in values]
+                for i, s in enumerate(spectra) for j, cells in enumerate(bins)]
+    head = ("spectrum",) if spectra is not None else ()
+    return write_text_table(path, head + ("ell_min", "ell_max", "ell_eff") + tuple(names), rows, comments=comments,
+                            overwrite=overwrite)
+
+
 def write_transfer_table(path, ell_min, ell_max, ell_eff, transfer, transfer_error, *, metadata=None,
                          overwrite=False) -> Path:
     """Write a per-bin transfer function as a text table (the layout :func:`read_transfer_table` reads).
@@ -195,10 +249,9 @@ def write_transfer_table(path, ell_min, ell_max, ell_eff, transfer, transfer_err
     comments = ["cmbtools bandpower transfer function",
                 "columns: ell_min, ell_max = bin limits (inclusive); ell_eff; transfer = F_b, the mean recovered "
                 "bandpower over the expected one; transfer_error = its standard error"]
-    comments += [f"{k}: {' '.join(str(v).splitlines())}" for k, v in dict(metadata or {}).items()]
-    rows = [(str(int(a)), str(int(b)), repr(float(e)), repr(float(t)), repr(float(s)))
-            for a, b, e, t, s in zip(ell_min, ell_max, ell_eff, transfer, transfer_error)]
-    return write_text_table(path, TRANSFER_COLUMNS, rows, comments=comments, overwrite=overwrite)
+    comments += key_value_lines(dict(metadata or {}).items())
+    return write_binned_table(path, TRANSFER_COLUMNS[3:], ell_min, ell_max, ell_eff, (transfer, transfer_error),
+                              comments=comments, overwrite=overwrite)
 
 
 def read_transfer_table(path):

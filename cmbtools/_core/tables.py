@@ -211,8 +211,12 @@ def write_text_table(path, names, rows, *, comments=(), overwrite=False) -> Path
     return out
 
 
+def key_value_lines(items) -> list:
+    """``key: value`` comment lines, one per ``(key, value)`` pair, each value folded onto one line (its line
+    breaks become spaces), so that every line stays a comment of the table."""
+    return [f"{k}: {' '.join(str(v).splitlines())}" for k, v in items]
+
+
 def metadata_comments(title, unit, metadata) -> list:
     """Comment lines of a result table: the title, ``unit: <unit>^2``, then ``key: value`` per metadata item."""
-    lines = [title, f"unit: {unit}^2"]
-    lines += [f"{k}: {v}" for k, v in metadata.items() if k != "unit"]
-    return lines
+    return [title, f"unit: {unit}^2"] + key_value_lines((k, v) for k, v in metadata.items() if k != "unit")

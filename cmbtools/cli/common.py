@@ -139,6 +139,31 @@ def monopole_dipole_from_args(args, monopole_default, dipole_default):
     return monopole * 1e-6, dipole
 
 
+def beam_from_args(fwhm, path, lmax):
+    """The beam of a ``--beam-fwhm``/``--beam`` pair (or ``--beam2-fwhm``/``--beam2``): the FWHM in arcmin, the
+    table's B_l to ``lmax``, or None when neither is given."""
+    if fwhm is not None:
+        return float(fwhm)
+    if path is not None:
+        from cmbtools.spectrum.beams import read_beam
+
+        return read_beam(path, lmax=lmax)
+    return None
+
+
+def noise_model_from_args(args):
+    """The :class:`~cmbtools.simulate.NoiseModel` of ``--noise-depth``, ``--hits`` (relative weights with no unit:
+    the map's values as they are), ``--noise-knee`` and ``--noise-slope``; None without ``--noise-depth``
+    (``simulate`` and ``validate``, both kinds)."""
+    if args.noise_depth is None:
+        return None
+    from cmbtools.maps import read_sky_map
+    from cmbtools.simulate import NoiseModel
+
+    hits = None if args.hits is None else read_sky_map(args.hits, unit="K", force=args.force)[0]
+    return NoiseModel(args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
+
+
 # ----------------------------------------------------------------------------- pixels (spectrum and validate)
 
 

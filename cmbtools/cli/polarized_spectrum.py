@@ -44,7 +44,7 @@ def run_polarized(args, outputs_checked) -> int:
     from cmbtools.cli.common import pixel_model_from_args
     from cmbtools._core.files import sha256_file
     from cmbtools.cli.common import (
-        binning_from_args, bins_top, corrected_covariance_key, describe_binning, print_range_warning,
+        beam_from_args, binning_from_args, bins_top, corrected_covariance_key, describe_binning, print_range_warning,
     )
     from cmbtools.exceptions import InvalidInputError
     from cmbtools.maps.polarized_fits import read_iqu
@@ -89,16 +89,8 @@ def run_polarized(args, outputs_checked) -> int:
             p2 = p1 if (args.pol_mask or not args.mask2) else w2
     nside = int(round(np.sqrt(m1.shape[1] / 12)))
     lmax = 3 * nside - 1 if args.lmax is None else args.lmax
-
-    def beam_of(fwhm, path):
-        if fwhm is not None:
-            return float(fwhm)
-        if path is not None:
-            return sp.read_beam(path, lmax=lmax)
-        return None
-
-    beam1 = beam_of(args.beam_fwhm, args.beam)
-    beam2 = beam_of(args.beam2_fwhm, args.beam2) if args.map2 is not None else None
+    beam1 = beam_from_args(args.beam_fwhm, args.beam, lmax)
+    beam2 = beam_from_args(args.beam2_fwhm, args.beam2, lmax) if args.map2 is not None else None
     binning = binning_from_args(args, bins_top(args, nside, lmax, beam1, beam2), float(np.mean(p1)))
     if binning.lmin < 2:
         raise InvalidInputError(f"The bins start at ell={binning.lmin}; polarized spectra need bins from ell >= 2.")

@@ -66,11 +66,11 @@ def run_polarized(args, outputs, run_dir, where) -> int:
     from cmbtools._core.checks import check_same_nside
     from cmbtools._core.files import sha256_file
     from cmbtools.cli.common import (
-        binning_from_args, bins_top, describe_binning, monopole_dipole_from_args, pixel_model_from_args,
-        print_range_warning,
+        binning_from_args, bins_top, describe_binning, monopole_dipole_from_args, noise_model_from_args,
+        pixel_model_from_args, print_range_warning,
     )
     from cmbtools.exceptions import InvalidInputError
-    from cmbtools.simulate import NoiseModel, validate_polarized_estimator
+    from cmbtools.simulate import validate_polarized_estimator
 
     # inputs, all read and checked before the estimator is built
     mask = maps.read_mask(args.mask, force=args.force)
@@ -114,12 +114,7 @@ def run_polarized(args, outputs, run_dir, where) -> int:
                                 float(np.mean(mask if pol_mask is None else np.minimum(mask, pol_mask))))
     if binning.lmin < 2:
         raise InvalidInputError(f"The bins start at ell={binning.lmin}; polarized spectra need bins from ell >= 2.")
-    noise = None
-    if args.noise_depth is not None:
-        hits = None
-        if args.hits is not None:
-            hits, _info = maps.read_sky_map(args.hits, unit="K", force=args.force)
-        noise = NoiseModel(depth_uk_arcmin=args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
+    noise = noise_model_from_args(args)
     if args.spectrum is not None:
         from cmbtools._core.spectrum_tables import read_polarized_spectrum_table
 
@@ -139,7 +134,9 @@ def run_polarized(args, outputs, run_dir, where) -> int:
 
         r = 0.0 if args.tensor_ratio is None else float(args.tensor_ratio)
         spectra = fiducial_spectra(sky_lmax, tensor_ratio=r, lensing_bb=True)
-        spectrum_text = f"built-in fiducial spectra (r = {r:g}, lensing-like BB)"
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_MODEL
+
+        spectrum_text = f"built-in fiducial spectra ({FIDUCIAL_MODEL}; r = {r:g}, lensing-like BB)"
     harmonic_filter = None
     if args.harmonic_filter is not None:  # one f_l for T, E and B: the same filtering of I and of Q, U
         from cmbtools._core.binned_tables import read_filter_table

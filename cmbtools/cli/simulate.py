@@ -6,8 +6,9 @@ import argparse
 import contextlib
 
 from cmbtools.cli.common import (
-    MAX_SIMULATIONS, add_force, add_monopole_dipole, add_overwrite, add_threads, bounded_int, deprecated_alias,
-    finite_float, monopole_dipole_from_args, non_negative_int, positive_float, positive_int,
+    MAX_SIMULATIONS, add_force, add_monopole_dipole, add_overwrite, add_threads, beam_from_args, bounded_int,
+    deprecated_alias, finite_float, monopole_dipole_from_args, noise_model_from_args, non_negative_int, positive_float,
+    positive_int,
 )
 
 HELP = "write simulated Gaussian CMB maps with beam, pixel window and noise"
@@ -155,7 +156,6 @@ def run(args) -> int:
 
 
 def _run(args, created, group, printed) -> int:
-    import math
     import os
     import re
     import warnings
@@ -225,17 +225,9 @@ def _run(args, created, group, printed) -> int:
                 args.write_noise_spectrum):
             raise InvalidInputError("--write-spectrum and --write-noise-spectrum name the same file")
 
-    noise = None
-    if args.noise_depth is not None:
-        hits = None
-        if args.hits is not None:
-            from cmbtools.maps import read_sky_map
-
-            # hits are relative weights with no unit: read the values as they are
-            hits, _ = read_sky_map(args.hits, unit="K", force=args.force)
-        noise = simulate.NoiseModel(args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
-        if noise.nside is not None and nside is not None and noise.nside != nside:
-            raise InvalidInputError(f"--hits has nside {noise.nside} but --nside is {nside}")
+    noise = noise_model_from_args(args)
+    if noise is not None and noise.nside is not None and nside is not None and noise.nside != nside:
+        raise InvalidInputError(f"--hits has nside {noise.nside} but --nside is {nside}")
     if args.tensor_ratio and not args.polarized:
         raise InvalidInputError("--tensor-ratio needs --polarized")
     if args.polarized:
@@ -249,8 +241,10 @@ def _run(args, created, group, printed) -> int:
             )
         source = f"table {args.spectrum}"
     else:
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_LABEL
+
         cl = simulate.fiducial_cl(lmax)
-        source = "built-in fiducial spectrum (Planck18 cosmology, default extras)"
+        source = FIDUCIAL_LABEL
     cl = cl[: lmax + 1]
     if args.write_spectrum is not None:
         group.write(args.write_spectrum, lambda p: simulate.write_spectrum_table(
@@ -267,14 +261,7 @@ def _run(args, created, group, printed) -> int:
     if args.sims == 0:
         return 0
 
-    if args.beam_fwhm is not None:
-        beam, beam_text = args.beam_fwhm, f"Gaussian {args.beam_fwhm:g} arcmin"
-    elif args.beam is not None:
-        from cmbtools.spectrum.beams import read_beam
-
-        beam, beam_text = read_beam(args.beam, lmax=lmax), f"table {args.beam}"
-    else:
-        beam, beam_text = None, "none"
+    beam, beam_text = _beam_from_args(args, lmax)
     monopole, dipole = monopole_dipole_from_args(args, 0.0, 0.0)
     nthreads = args.threads or None
 
@@ -304,6 +291,13 @@ def _run(args, created, group, printed) -> int:
             _write_one(path, m, i, k if args.splits else None, args, seed, lmax, beam_text, noise, write_sky_map,
                        missing_pixels, group, printed)
     return 0
+
+
+def _beam_from_args(args, lmax):
+    """(beam for the skies: FWHM in arcmin, B_l or None; its description) from --beam-fwhm or --beam."""
+    text = (f"Gaussian {args.beam_fwhm:g} arcmin" if args.beam_fwhm is not None
+            else f"table {args.beam}" if args.beam is not None else "none")
+    return beam_from_args(args.beam_fwhm, args.beam, lmax), text
 
 
 def _pixel_text(args):
@@ -360,8 +354,10 @@ def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs, group, pri
     else:
         if not 0.0 <= args.tensor_ratio <= 10.0:
             raise InvalidInputError(f"--tensor-ratio must be in [0, 10]. Got {args.tensor_ratio!r} instead.")
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_MODEL
+
         spectra = simulate.fiducial_spectra(lmax, tensor_ratio=args.tensor_ratio)
-        source = f"built-in fiducial spectra (Planck18 cosmology, default extras, r = {args.tensor_ratio:g})"
+        source = f"built-in fiducial spectra ({FIDUCIAL_MODEL}; r = {args.tensor_ratio:g})"
     spectra = simulate.check_spectra(spectra, lmax)
     if args.write_spectrum is not None:
         group.write(args.write_spectrum, lambda p: simulate.write_spectrum_table(
@@ -376,14 +372,7 @@ def _run_polarized(args, simulate, nside, lmax, seed, noise, outputs, group, pri
         printed.append(f"wrote {args.write_noise_spectrum} (noise spectra, ell 0..{lmax})")
     if args.sims == 0:
         return 0
-    if args.beam_fwhm is not None:
-        beam, beam_text = args.beam_fwhm, f"Gaussian {args.beam_fwhm:g} arcmin"
-    elif args.beam is not None:
-        from cmbtools.spectrum.beams import read_beam
-
-        beam, beam_text = read_beam(args.beam, lmax=lmax), f"table {args.beam}"
-    else:
-        beam, beam_text = None, "none"
+    beam, beam_text = _beam_from_args(args, lmax)
     monopole, dipole = monopole_dipole_from_args(args, 0.0, 0.0)
     nthreads = args.threads or None
     print(f"simulating {args.sims} I, Q, U map(s): nside {nside}, lmax {lmax}, seed {seed}, spectra: {source}")

@@ -8,7 +8,7 @@ from cmbtools.cli.error_model import add_error_options
 from cmbtools.cli.noise_bias import add_noise_options
 from cmbtools.cli.polarized_spectrum import add_polarization_options
 from cmbtools.cli.common import (
-    add_binning, add_force, add_overwrite, add_pixel_model, add_threads, binning_from_args, bins_top,
+    add_binning, add_force, add_overwrite, add_pixel_model, add_threads, beam_from_args, binning_from_args, bins_top,
     corrected_covariance_key, describe_binning,
     pixel_model_from_args, positive_float, positive_int, print_range_warning,
 )
@@ -211,16 +211,8 @@ def run(args) -> int:
         check_same_nside(m1, m2, args.map, args.map2)
     nside = info1.nside
     lmax = 3 * nside - 1 if args.lmax is None else args.lmax
-
-    def beam_of(fwhm, path):
-        if fwhm is not None:
-            return float(fwhm)
-        if path is not None:
-            return sp.read_beam(path, lmax=lmax)
-        return None
-
-    beam1 = beam_of(args.beam_fwhm, args.beam)
-    beam2 = beam_of(args.beam2_fwhm, args.beam2) if args.map2 is not None else None
+    beam1 = beam_from_args(args.beam_fwhm, args.beam, lmax)
+    beam2 = beam_from_args(args.beam2_fwhm, args.beam2, lmax) if args.map2 is not None else None
     noise_kind, noise_value = read_noise_inputs(args, nside, args.force)
     theory = read_spectrum_table(args.theory) if args.theory is not None else None
 

@@ -8,7 +8,7 @@ import sys
 from cmbtools.cli.common import (
     MAX_SIMULATIONS, MAX_THREADS, add_binning, add_force, add_overwrite, binning_from_args, bins_top, bounded_int,
     add_monopole_dipole, add_pixel_model, monopole_dipole_from_args, describe_binning, non_negative_int, pixel_model_from_args, positive_float,
-    positive_int, print_range_warning,
+    beam_from_args, noise_model_from_args, positive_int, print_range_warning,
 )
 
 HELP = "check the spectrum estimator on simulated skies with your mask, beam and noise (Monte Carlo)"
@@ -186,7 +186,7 @@ def run(args) -> int:
     from cmbtools import maps
     from cmbtools import spectrum as sp
     from cmbtools._core.files import check_output_path, sha256_file
-    from cmbtools.simulate import NoiseModel, validate_estimator
+    from cmbtools.simulate import validate_estimator
     from cmbtools._core.checks import resolve_nthreads
     from cmbtools.exceptions import InvalidInputError, OutputPathError
 
@@ -253,15 +253,8 @@ def run(args) -> int:
     lmax = 3 * nside - 1 if args.lmax is None else args.lmax
     if args.lmin > lmax:
         raise InvalidInputError(f"--lmin ({args.lmin}) must not exceed lmax ({lmax}).")
-    beam = float(args.beam_fwhm) if args.beam_fwhm is not None else None
-    if args.beam is not None:
-        beam = sp.read_beam(args.beam, lmax=lmax)
-    noise = None
-    if args.noise_depth is not None:
-        hits = None
-        if args.hits is not None:
-            hits, _info = maps.read_sky_map(args.hits, unit="K", force=args.force)
-        noise = NoiseModel(depth_uk_arcmin=args.noise_depth, hits=hits, ell_knee=args.noise_knee, alpha=args.noise_slope)
+    beam = beam_from_args(args.beam_fwhm, args.beam, lmax)
+    noise = noise_model_from_args(args)
     if args.spectrum is not None:
         from cmbtools._core.spectrum_tables import read_spectrum_table
 
@@ -273,10 +266,10 @@ def run(args) -> int:
             )
         spectrum_text = f"{args.spectrum} (sha256 {sha256_file(args.spectrum)[:16]}...)"
     else:
-        from cmbtools.simulate.theory_spectrum import fiducial_cl
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_LABEL, fiducial_cl
 
         cl = fiducial_cl(lmax)
-        spectrum_text = "built-in fiducial spectrum"
+        spectrum_text = FIDUCIAL_LABEL
 
     cross = args.cross or args.mask2 is not None
     mask2 = None

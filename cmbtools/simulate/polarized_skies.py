@@ -194,14 +194,15 @@ def _combine(chol, g):
     return alm
 
 
-def _field_beams(beam, lmax):
-    """(B_T, B_P) up to lmax from None, a Gaussian FWHM in arcmin, one array, or a pair of arrays."""
+def _field_beams(beam, lmax, name="beam"):
+    """(B_T, B_P) up to lmax (copies) from None, a Gaussian FWHM in arcmin, one array, or a pair of arrays;
+    ``name`` is the parameter's name in the messages (``gaussian_iqu_sky``'s beam, the validation's sky_beam)."""
     from cmbtools.spectrum.beams import gaussian_beam, gaussian_polarized_beam
 
     if beam is None:
         return None, None
     if isinstance(beam, numbers.Real) and not isinstance(beam, bool):
-        fwhm = check_positive(beam, "beam", allow_zero=True)
+        fwhm = check_positive(beam, name, allow_zero=True)
         return gaussian_beam(fwhm, lmax), gaussian_polarized_beam(fwhm, lmax)
     pair = beam if isinstance(beam, (tuple, list)) and len(beam) == 2 and np.ndim(beam[0]) == 1 else (beam, beam)
     out = []
@@ -210,14 +211,15 @@ def _field_beams(beam, lmax):
             a = np.asarray(b, dtype=np.float64)
         except (TypeError, ValueError):
             raise InvalidInputError(
-                "The 'beam' parameter must be None, a FWHM in arcmin, an array B_l or a pair (B_T, B_P). "
+                f"The {name!r} parameter must be None, a FWHM in arcmin, an array B_l or a pair (B_T, B_P). "
                 f"Got {beam!r} instead."
             ) from None
         if a.ndim != 1 or a.size < lmax + 1:
-            raise InvalidInputError(f"The 'beam' arrays must be 1-d and extend to ell={lmax}. Got shape {a.shape} instead.")
+            raise InvalidInputError(f"The {name!r} arrays must be 1-d and extend to ell={lmax}. Got shape {a.shape} "
+                                    "instead.")
         if not np.all(np.isfinite(a)):
-            raise InvalidInputError("The 'beam' array has non-finite values.")
-        out.append(a[: lmax + 1])
+            raise InvalidInputError(f"The {name!r} array has non-finite values.")
+        out.append(a[: lmax + 1].copy())
     return out[0], out[1]
 
 

@@ -12,7 +12,6 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import math
-import numbers
 
 import numpy as np
 
@@ -113,38 +112,13 @@ def _simulate_and_estimate_iqu(index, rng, setup):
     return {"cl": np.asarray(bp.cl, dtype=np.float64), "cl_err": np.asarray(bp.cl_err, dtype=np.float64)}
 
 
-def _beam_pair(beam, lmax):
-    """(B_T, B_P) to lmax from a Gaussian FWHM in arcmin, one table or a (B_T, B_P) pair."""
-    from cmbtools.spectrum.beams import gaussian_beam, gaussian_polarized_beam
-
-    if isinstance(beam, numbers.Real) and not isinstance(beam, bool):
-        if not math.isfinite(float(beam)) or beam < 0:
-            raise InvalidInputError(f"The 'sky_beam' FWHM must be a finite number of arcmin >= 0. Got {beam!r} instead.")
-        return gaussian_beam(float(beam), lmax), gaussian_polarized_beam(float(beam), lmax)
-    pair = beam if isinstance(beam, (tuple, list)) and len(beam) == 2 and np.ndim(beam[0]) == 1 else (beam, beam)
-    out = []
-    for b in pair:
-        try:
-            a = np.asarray(b, dtype=np.float64)
-        except (TypeError, ValueError):
-            raise InvalidInputError(
-                "The 'sky_beam' parameter must be a FWHM in arcmin, a table B_l or a pair (B_T, B_P). "
-                f"Got {beam!r} instead."
-            ) from None
-        if a.ndim != 1 or a.size < lmax + 1 or not np.all(np.isfinite(a)):
-            raise InvalidInputError(
-                f"The 'sky_beam' tables must be finite 1-d arrays to ell={lmax} (sky_lmax). Got shape {a.shape} instead."
-            )
-        out.append(a[: lmax + 1].copy())
-    return out[0], out[1]
-
-
 def _sky_amplitudes(estimator, sky_beam, sky_lmax, pixelise):
     """B_T w_T and B_P w_P of the simulated skies to ``sky_lmax`` (B_T and B_P alone with ``pixelise``).
 
     Up to the estimator's lmax they must be what the estimator divides out (its beams times its pixel windows);
     without ``sky_beam`` and with ``sky_lmax == lmax`` they are exactly that.
     """
+    from cmbtools.simulate.polarized_skies import _field_beams
     from cmbtools.spectrum.pixel_windows import pixel_window, polarization_pixel_window
 
     nside, lmax = int(estimator.nside), int(estimator.lmax)
@@ -157,7 +131,7 @@ def _sky_amplitudes(estimator, sky_beam, sky_lmax, pixelise):
                 "of the estimator, to sky_lmax), since the estimator holds its beam only to lmax."
             )
         return f_t.copy(), f_p.copy()
-    b_t, b_p = _beam_pair(sky_beam, sky_lmax)
+    b_t, b_p = _field_beams(sky_beam, sky_lmax, "sky_beam")
     w_t = np.asarray(pixel_window(nside, sky_lmax), dtype=np.float64)[: sky_lmax + 1]
     w_p = np.asarray(polarization_pixel_window(nside, sky_lmax), dtype=np.float64)[: sky_lmax + 1]
     window = None
@@ -359,9 +333,10 @@ def validate_polarized_estimator(
     )
     if spectra is None:
         from cmbtools.simulate.polarized_theory import fiducial_spectra
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_MODEL
 
         spectra = fiducial_spectra(sky_lmax, lensing_bb=True)
-        source = "built-in fiducial spectra (r = 0, lensing-like BB)"
+        source = f"built-in fiducial spectra ({FIDUCIAL_MODEL}; r = 0, lensing-like BB)"
     else:
         source = "user spectra"
     spectra = check_spectra(spectra, sky_lmax)

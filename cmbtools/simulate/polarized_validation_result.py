@@ -4,17 +4,19 @@
 from __future__ import annotations
 
 import dataclasses
-import json
 import math
 from pathlib import Path
 
 import numpy as np
 
-from cmbtools._core.files import atomic_output, check_output_path
-from cmbtools._core.tables import power_unit_scale, write_text_table
+from cmbtools._core.files import atomic_output
+from cmbtools._core.tables import key_value_lines
 from cmbtools._version import __version__
 from cmbtools.exceptions import InvalidInputError
-from cmbtools.simulate.validation_result import _TABLE_COLUMNS, _POWER_COLUMNS, ValidationResult, _plain_value
+from cmbtools.simulate.validation_result import (
+    _TABLE_COLUMNS, ValidationResult, _column_lines, _finite_list, _plain_value, _write_validation_json,
+    _write_validation_table,
+)
 
 __all__ = ["PolarizedValidationResult", "POLARIZED_SPECTRA"]
 
@@ -208,18 +210,12 @@ class PolarizedValidationResult:
 
     def _header_lines(self, unit):
         s = self.summary()
-        lines = ["cmbtools " + __version__ + ": Monte Carlo validation of the polarized spectrum estimator"]
-        for key, value in s.items():
-            if key != "spectra":
-                lines.append(f"{key}: {value}")
-        for name, numbers in s["spectra"].items():
-            lines.append(f"{name}: " + ", ".join(f"{k} {v}" for k, v in numbers.items()))
-        for key, value in self.metadata.items():
-            lines.append(f"{key}: " + " ".join(str(value).splitlines()))
-        lines.append(f"unit: {unit}^2 (columns expected, mean, std, analytic_error; C_l bandpowers)")
-        lines.append("bias_sigma = (mean - expected) / (std / sqrt(n_sims)); error_ratio = std / analytic_error;"
-                     " transfer = mean / expected")
-        return lines
+        per = s.pop("spectra")
+        return (["cmbtools " + __version__ + ": Monte Carlo validation of the polarized spectrum estimator"]
+                + key_value_lines(s.items())
+                + key_value_lines((name, ", ".join(f"{k} {v}" for k, v in numbers.items()))
+                                  for name, numbers in per.items())
+                + key_value_lines(self.metadata.items()) + _column_lines(unit))
 
     def write_csv(self, path, *, overwrite=False, unit="uK") -> Path:
         """Write the per-bin table of the six spectra as CSV with a commented header (``# key: value`` lines).
@@ -242,17 +238,8 @@ class PolarizedValidationResult:
         pathlib.Path
             The file written.
         """
-        scale = power_unit_scale(unit)
-        rows = []
-        for s, r in self.results.items():
-            for b in range(r.n_bins):
-                row = [s, str(int(r.ell_min[b])), str(int(r.ell_max[b])), f"{r.ell_eff[b]:.6g}"]
-                for name in _TABLE_COLUMNS[3:]:
-                    v = getattr(r, name)[b] * (scale if name in _POWER_COLUMNS else 1.0)
-                    row.append(f"{v:.10g}")
-                rows.append(row)
-        return write_text_table(path, ("spectrum",) + _TABLE_COLUMNS, rows, comments=self._header_lines(unit),
-                                overwrite=overwrite)
+        return _write_validation_table(path, list(self.results.values()), self._header_lines(unit),
+                                      spectra=tuple(self.results), unit=unit, overwrite=overwrite)
 
     def write_json(self, path, *, overwrite=False) -> Path:
         """Write :meth:`summary`, the settings and each spectrum's per-bin columns (C_l in K^2) as JSON, atomically.
@@ -269,24 +256,10 @@ class PolarizedValidationResult:
         pathlib.Path
             The file written.
         """
-        out = check_output_path(path, overwrite=overwrite)
-
-        def clean(a):
-            return [None if not math.isfinite(float(v)) else float(v) for v in np.asarray(a).ravel()]
-
-        doc = self.summary()
-        doc["software"] = f"cmbtools {__version__}"
-        doc["settings"] = dict(self.metadata)
-        doc["bins"] = {
-            "ell_min": [int(v) for v in self.ell_min],
-            "ell_max": [int(v) for v in self.ell_max],
-            "ell_eff": clean(self.ell_eff),
-            **{s: {name: clean(getattr(r, name)) for name in _TABLE_COLUMNS[3:]} for s, r in self.results.items()},
-        }
-        doc["unit"] = "K^2"
-        with atomic_output(out, overwrite=overwrite) as tmp:
-            tmp.write_text(json.dumps(doc, indent=2) + "\n")
-        return out
+        columns = {"ell_eff": _finite_list(self.ell_eff),
+                   **{s: {name: _finite_list(getattr(r, name)) for name in _TABLE_COLUMNS[3:]}
+                      for s, r in self.results.items()}}
+        return _write_validation_json(path, self.summary(), self.metadata, self, columns, overwrite=overwrite)
 
     def plot(self, path, *, overwrite=False, title=None) -> Path:
         """Draw one panel per spectrum: input and mean recovered ``D_l`` with scatter bands, bias and error ratio.

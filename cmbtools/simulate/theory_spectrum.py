@@ -103,6 +103,13 @@ from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
 
 __all__ = ["fiducial_cl", "fiducial_dl", "FIDUCIAL_LMAX_LIMIT"]
 
+#: What the built-in spectra are, in the words of every message, run record and table header that names them:
+#: cmbtools' own model evaluated for the parameter set astropy bundles as ``Planck18`` (with the default
+#: ``CosmologyExtras``), not a published spectrum.
+FIDUCIAL_MODEL = "cmbtools' model with astropy's Planck18 parameters"
+#: The name of the built-in temperature spectrum in messages and records.
+FIDUCIAL_LABEL = f"built-in fiducial spectrum ({FIDUCIAL_MODEL})"
+
 #: Largest multipole :func:`fiducial_cl` computes (the model is meaningless far into the damping tail).
 FIDUCIAL_LMAX_LIMIT = 10000
 

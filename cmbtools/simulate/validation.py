@@ -335,10 +335,10 @@ def validate_estimator(
         sky_lmax, "sky_lmax", minimum=lmax, maximum=(8 if pixelise else 4) * nside - 1
     )
     if cl is None:
-        from cmbtools.simulate.theory_spectrum import fiducial_cl
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_LABEL, fiducial_cl
 
         cl = fiducial_cl(sky_lmax)
-        cl_source = "built-in fiducial spectrum"
+        cl_source = FIDUCIAL_LABEL
     else:
         cl_source = "user spectrum"
     cl = check_cl(cl, "cl", lmax=sky_lmax)[: sky_lmax + 1].copy()

@@ -24,7 +24,8 @@ from cmbtools._core.figures import (
     style_axes,
 )
 from cmbtools._core.files import atomic_output, check_output_path
-from cmbtools._core.tables import power_unit_scale, write_text_table
+from cmbtools._core.binned_tables import write_binned_table
+from cmbtools._core.tables import key_value_lines, power_unit_scale
 from cmbtools._version import __version__
 from cmbtools.exceptions import InvalidInputError
 
@@ -37,6 +38,47 @@ _TABLE_COLUMNS = (
     "ell_min", "ell_max", "ell_eff", "expected", "mean", "std", "analytic_error", "bias_sigma", "error_ratio", "transfer",
 )
 _POWER_COLUMNS = ("expected", "mean", "std", "analytic_error")
+
+
+def _column_lines(unit):
+    """The comment lines of a validation table that say what its columns hold."""
+    return [f"unit: {unit}^2 (columns expected, mean, std, analytic_error; C_l bandpowers)",
+            "bias_sigma = (mean - expected) / (std / sqrt(n_sims)); error_ratio = std / analytic_error;"
+            " transfer = mean / expected"]
+
+
+def _write_validation_table(path, results, comments, *, spectra=None, unit="uK", overwrite=False) -> Path:
+    """The per-bin table of one validation (``results = [result]``) or of one per spectrum (``spectra``): the
+    columns ``_TABLE_COLUMNS`` (after ``spectrum``), ``ell_eff`` to 6 and the others to 10 significant digits,
+    the power columns in ``unit``^2."""
+    scale = power_unit_scale(unit)
+    first = results[0]
+    values = [np.array([getattr(r, name) for r in results]) * (scale if name in _POWER_COLUMNS else 1.0)
+              for name in _TABLE_COLUMNS[3:]]
+    if spectra is None:
+        values = [v[0] for v in values]
+    return write_binned_table(path, _TABLE_COLUMNS[3:], first.ell_min, first.ell_max, first.ell_eff, values,
+                              spectra=spectra, comments=comments, overwrite=overwrite,
+                              number=lambda v: f"{v:.10g}", ell_eff_number=lambda v: f"{v:.6g}")
+
+
+def _finite_list(a) -> list:
+    """The values as Python floats for JSON, None for a value that is not finite."""
+    return [None if not math.isfinite(float(v)) else float(v) for v in np.asarray(a).ravel()]
+
+
+def _write_validation_json(path, summary, metadata, bins, columns, *, overwrite=False) -> Path:
+    """The JSON document of a validation: ``summary``, the software, the settings, ``bins`` (``ell_min``,
+    ``ell_max`` of ``bins``, then ``columns``) and the unit, written atomically."""
+    out = check_output_path(path, overwrite=overwrite)
+    doc = dict(summary)
+    doc["software"] = f"cmbtools {__version__}"
+    doc["settings"] = dict(metadata)
+    doc["bins"] = {"ell_min": [int(v) for v in bins.ell_min], "ell_max": [int(v) for v in bins.ell_max], **columns}
+    doc["unit"] = "K^2"
+    with atomic_output(out, overwrite=overwrite) as tmp:
+        tmp.write_text(json.dumps(doc, indent=2) + "\n")
+    return out
 
 
 def _plain_value(value):
@@ -241,14 +283,8 @@ class ValidationResult:
         }
 
     def _header_lines(self, unit):
-        lines = [f"# cmbtools {__version__}: Monte Carlo validation of the spectrum estimator"]
-        for key, value in {**self.summary(), **self.metadata}.items():
-            text = " ".join(str(value).splitlines())
-            lines.append(f"# {key}: {text}")
-        lines.append(f"# unit: {unit}^2 (columns expected, mean, std, analytic_error; C_l bandpowers)")
-        lines.append("# bias_sigma = (mean - expected) / (std / sqrt(n_sims)); error_ratio = std / analytic_error;"
-                     " transfer = mean / expected")
-        return lines
+        return ([f"cmbtools {__version__}: Monte Carlo validation of the spectrum estimator"]
+                + key_value_lines({**self.summary(), **self.metadata}.items()) + _column_lines(unit))
 
     def write_csv(self, path, *, overwrite=False, unit="uK") -> Path:
         """Write the per-bin table as CSV with a commented header (``# key: value`` lines).
@@ -271,16 +307,7 @@ class ValidationResult:
         pathlib.Path
             The file written.
         """
-        scale = power_unit_scale(unit)
-        rows = []
-        for b in range(self.n_bins):
-            row = [str(int(self.ell_min[b])), str(int(self.ell_max[b])), f"{self.ell_eff[b]:.6g}"]
-            for name in _TABLE_COLUMNS[3:]:
-                v = getattr(self, name)[b] * (scale if name in _POWER_COLUMNS else 1.0)
-                row.append(f"{v:.10g}")
-            rows.append(row)
-        return write_text_table(path, _TABLE_COLUMNS, rows, comments=[c[2:] for c in self._header_lines(unit)],
-                                overwrite=overwrite)
+        return _write_validation_table(path, [self], self._header_lines(unit), unit=unit, overwrite=overwrite)
 
     def write_json(self, path, *, overwrite=False) -> Path:
         """Write :meth:`summary`, the settings and the per-bin columns (C_l in K^2) as JSON, atomically.
@@ -297,23 +324,9 @@ class ValidationResult:
         pathlib.Path
             The file written.
         """
-        out = check_output_path(path, overwrite=overwrite)
-
-        def clean(a):
-            return [None if not math.isfinite(float(v)) else float(v) for v in np.asarray(a).ravel()]
-
-        doc = dict(self.summary())
-        doc["software"] = f"cmbtools {__version__}"
-        doc["settings"] = dict(self.metadata)
-        doc["bins"] = {
-            "ell_min": [int(v) for v in self.ell_min],
-            "ell_max": [int(v) for v in self.ell_max],
-            **{name: clean(getattr(self, name)) for name in _TABLE_COLUMNS[2:]},
-        }
-        doc["unit"] = "K^2"
-        with atomic_output(out, overwrite=overwrite) as tmp:
-            tmp.write_text(json.dumps(doc, indent=2) + "\n")
-        return out
+        return _write_validation_json(path, self.summary(), self.metadata, self,
+                                      {name: _finite_list(getattr(self, name)) for name in _TABLE_COLUMNS[2:]},
+                                      overwrite=overwrite)
 
     def plot(self, path, *, overwrite=False, title=None) -> Path:
         """Draw the input against the mean recovered ``D_l`` with scatter bands, and the bias per bin below.

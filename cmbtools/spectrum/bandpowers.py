@@ -32,8 +32,8 @@ from cmbtools._core.figures import (
     save_figure,
     style_axes,
 )
-from cmbtools._core.binned_tables import BANDPOWER_COLUMNS, read_bandpower_table
-from cmbtools._core.tables import metadata_comments, power_unit_scale, write_text_table
+from cmbtools._core.binned_tables import BANDPOWER_COLUMNS, read_bandpower_table, write_binned_table
+from cmbtools._core.tables import metadata_comments, power_unit_scale
 from cmbtools.spectrum.binning import Binning
 from cmbtools._core.checks import check_cl
 from cmbtools.exceptions import InputFileError, InvalidInputError
@@ -206,13 +206,10 @@ class Bandpowers:
         Path
         """
         scale = power_unit_scale(unit)
-        rows = []
-        for i in range(self.n_bins):
-            row = [str(int(self.ell_min[i])), str(int(self.ell_max[i])), repr(float(self.ell_eff[i]))]
-            row += [repr(float(getattr(self, c)[i] * scale)) for c in _SPECTRUM_COLUMNS]
-            rows.append(row)
-        comments = metadata_comments("cmbtools bandpowers", unit, self.metadata)
-        return write_text_table(path, COLUMNS, rows, comments=comments, overwrite=overwrite)
+        return write_binned_table(path, _SPECTRUM_COLUMNS, self.ell_min, self.ell_max, self.ell_eff,
+                                  [getattr(self, c) * scale for c in _SPECTRUM_COLUMNS],
+                                  comments=metadata_comments("cmbtools bandpowers", unit, self.metadata),
+                                  overwrite=overwrite)
 
     @classmethod
     def read_csv(cls, path) -> "Bandpowers":

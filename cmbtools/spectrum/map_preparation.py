@@ -31,6 +31,32 @@ _LARGEST_MAP_VALUE = 1e100
 _LARGEST_PLAIN_VALUE = 1e29
 
 
+def _checked_values(a, mask, name, field="", one_call="cmbtools.spectrum.estimate_spectrum"):
+    """``a`` (a float64 map) with its missing pixels outside ``mask`` set to 0; refuse missing pixels or values
+    above :data:`_LARGEST_MAP_VALUE` where ``mask`` is non-zero (``field``: 'Q ' etc. in the messages;
+    ``one_call``: the function that zeroes the mask there for the user)."""
+    lo, hi = float(a.min()), float(a.max())  # (NaN propagates) two passes, no map-sized temporary
+    if -_LARGEST_PLAIN_VALUE <= lo and hi <= _LARGEST_PLAIN_VALUE:
+        return a  # no missing pixel, no value too large: nothing else to look at
+    bad = missing_pixels(a)
+    if bad.any():
+        n_in = int((bad & (mask > 0)).sum())
+        if n_in:
+            raise InvalidInputError(
+                f"The {name!r} has {n_in} missing (UNSEEN/NaN/inf) {field}pixels where its mask is non-zero; "
+                f"the precomputed coupling matrix would be wrong. Zero the mask there and build a new "
+                f"estimator, or use {one_call}, which does that for you."
+            )
+        a = np.where(bad, 0.0, a)
+    peak = float(np.max(np.abs(a[mask > 0]), initial=0.0))
+    if peak > _LARGEST_MAP_VALUE:
+        raise InvalidInputError(
+            f"The {name!r} has {field}values up to {peak:.3g} inside the mask; the transforms square and sum them, "
+            f"which overflows double precision beyond {_LARGEST_MAP_VALUE:g} (K). Check the map's unit."
+        )
+    return a
+
+
 class _MapPreparation:
     """Map checks, monopole/dipole removal or template deprojection, and transforms of the spectrum estimator."""
 
@@ -70,27 +96,7 @@ class _MapPreparation:
         """The map as float64, missing pixels outside the mask set to 0; refuse missing or too large values inside."""
         a = as_map(m, name)
         check_same_nside(a, mask, name, "mask2" if is_second else "mask")
-        lo, hi = float(a.min()), float(a.max())  # (NaN propagates) two passes, no map-sized temporary
-        if -_LARGEST_PLAIN_VALUE <= lo and hi <= _LARGEST_PLAIN_VALUE:
-            return a  # no missing pixel, no value too large: nothing else to look at
-        bad = missing_pixels(a)
-        if bad.any():
-            inside = bad & (mask > 0)
-            n_in = int(inside.sum())
-            if n_in:
-                raise InvalidInputError(
-                    f"The {name!r} has {n_in} missing (UNSEEN/NaN/inf) pixels where the mask is non-zero; "
-                    f"the precomputed coupling matrix would be wrong. Zero the mask there and build a new "
-                    f"estimator, or use cmbtools.spectrum.estimate_spectrum, which does that for you."
-                )
-            a = np.where(bad, 0.0, a)
-        peak = float(np.max(np.abs(a[mask > 0]), initial=0.0))
-        if peak > _LARGEST_MAP_VALUE:
-            raise InvalidInputError(
-                f"The {name!r} has values up to {peak:.3g} inside the mask; the transforms square and sum them, "
-                f"which overflows double precision beyond {_LARGEST_MAP_VALUE:g} (K). Check the map's unit."
-            )
-        return a
+        return _checked_values(a, mask, name)
 
     def _cached(self, key, make):
         """A small derived quantity of the masks, computed on first use and kept."""

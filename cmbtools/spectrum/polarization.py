@@ -25,7 +25,7 @@ import numpy as np
 from cmbtools._core import files as _io
 from cmbtools._core import sht as _sht
 from cmbtools._core.checks import (
-    as_map, check_cl, check_int, check_lmax, check_mask, check_positive, check_same_nside, missing_pixels,
+    as_map, check_cl, check_int, check_lmax, check_mask, check_positive, check_same_nside,
     nside_from_npix, resolve_nthreads,
 )
 from cmbtools._version import __version__
@@ -37,7 +37,7 @@ from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
 from cmbtools.spectrum.polarized_covariance import covariance_requests as _covariance_requests
 from cmbtools.spectrum.polarized_covariance import pseudo_covariance as _pseudo_cov
 from cmbtools.spectrum.errors import _reduce_rows
-from cmbtools.spectrum.map_preparation import _LARGEST_MAP_VALUE
+from cmbtools.spectrum.map_preparation import _checked_values
 from cmbtools.spectrum import polarized_corrections as _corrections
 from cmbtools.spectrum.polarized_corrections import binned_columns
 from cmbtools.spectrum.polarized_operator import (
@@ -396,23 +396,7 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         for k, (field, w) in enumerate((("I", t_mask), ("Q", p_mask), ("U", p_mask))):
             a = as_map(m[k], f"{name}[{field}]")
             check_same_nside(a, w, f"{name}[{field}]", "mask" if field == "I" else "pol_mask")
-            bad = missing_pixels(a)
-            if bad.any():
-                n_in = int((bad & (w > 0)).sum())
-                if n_in:
-                    raise InvalidInputError(
-                        f"The {name!r} has {n_in} missing (UNSEEN/NaN/inf) {field} pixels where its mask is "
-                        f"non-zero; the precomputed coupling would be wrong. Zero the mask there and build a new "
-                        f"estimator, or use estimate_polarized_spectra, which does that for you."
-                    )
-                a = np.where(bad, 0.0, a)
-            peak = float(np.max(np.abs(a[w > 0]), initial=0.0))
-            if peak > _LARGEST_MAP_VALUE:
-                raise InvalidInputError(
-                    f"The {name!r} has {field} values up to {peak:.3g} inside the mask; the transforms square and "
-                    f"sum them, which overflows double precision beyond {_LARGEST_MAP_VALUE:g} (K). Check the unit."
-                )
-            comps.append(a)
+            comps.append(_checked_values(a, w, name, f"{field} ", "cmbtools.spectrum.estimate_polarized_spectra"))
         nthreads = self._nthreads
         lmax = self.lmax
         rings_t = self._cached(("rings", "t" + which), lambda: _sht.occupied_rings(t_mask))

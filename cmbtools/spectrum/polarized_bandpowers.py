@@ -18,8 +18,8 @@ import numpy as np
 
 from cmbtools._core import files as _io
 from cmbtools._core.checks import check_cl
-from cmbtools._core.binned_tables import POLARIZED_BANDPOWER_COLUMNS, POLARIZED_BANDPOWER_SPECTRA
-from cmbtools._core.tables import metadata_comments, power_unit_scale, write_text_table
+from cmbtools._core.binned_tables import POLARIZED_BANDPOWER_COLUMNS, POLARIZED_BANDPOWER_SPECTRA, write_binned_table
+from cmbtools._core.tables import metadata_comments, power_unit_scale
 from cmbtools.exceptions import InputFileError, InvalidInputError
 from cmbtools.spectrum.bandpowers import clean_metadata, write_bandpower_fits
 
@@ -130,13 +130,6 @@ class PolarizedBandpowers:
                           self.dl_err[i], cov, meta)
 
     # ------------------------------------------------------------------ tables
-    def _rows(self, scale):
-        for i, s in enumerate(SPECTRA):
-            for b in range(self.n_bins):
-                yield [s, str(int(self.ell_min[b])), str(int(self.ell_max[b])), repr(float(self.ell_eff[b]))] + [
-                    repr(float(getattr(self, c)[i, b] * scale)) for c in _VALUES
-                ]
-
     def write_csv(self, path, *, overwrite=False, unit="uK") -> Path:
         """Write the table as CSV: ``# key: value`` lines, the column names, one row per spectrum and bin.
 
@@ -154,8 +147,10 @@ class PolarizedBandpowers:
         Path
         """
         scale = power_unit_scale(unit)
-        comments = metadata_comments("cmbtools polarized bandpowers", unit, self.metadata)
-        return write_text_table(path, POLARIZED_COLUMNS, list(self._rows(scale)), comments=comments, overwrite=overwrite)
+        return write_binned_table(path, _VALUES, self.ell_min, self.ell_max, self.ell_eff,
+                                  [getattr(self, c) * scale for c in _VALUES], spectra=SPECTRA,
+                                  comments=metadata_comments("cmbtools polarized bandpowers", unit, self.metadata),
+                                  overwrite=overwrite)
 
     @classmethod
     def read_csv(cls, path) -> "PolarizedBandpowers":

@@ -330,7 +330,7 @@ def row_factors(est, a, b, components, terms, kernels):
     guess = est._guess
     if guess is None:
         return None
-    lmax, lb, sky = est.lmax, est.binning.lmax, est.sky_lmax
+    lmax, sky = est.lmax, est.sky_lmax
     nb = est.binning.n_bins
     p_w = est.binning.averaging_weights(lmax)
 

@@ -112,10 +112,11 @@ def _guess_spectra(guess_cl, sky_lmax, needed):
         if not needed:
             return None, "none"
         from cmbtools.simulate.polarized_theory import fiducial_spectra
+        from cmbtools.simulate.theory_spectrum import FIDUCIAL_MODEL
 
         spectra = fiducial_spectra(sky_lmax, lensing_bb=True)
         return {s: np.asarray(spectra[s], dtype=np.float64)[: sky_lmax + 1].copy() for s in SPECTRA}, \
-            "built-in fiducial spectra"
+            f"built-in fiducial spectra ({FIDUCIAL_MODEL}; lensing-like BB)"
     unknown = sorted(set(guess_cl) - set(SPECTRA))
     if unknown:
         raise InvalidInputError(f"The 'guess_cl' parameter has unknown spectra {unknown}; use {', '.join(SPECTRA)}.")

@@ -312,7 +312,7 @@ def resolve_settings(
         "transfer2": d_t2,
         "templates": str(len(temps)),
         "guess_cl": "none" if guess is None else (
-            "built-in fiducial spectrum" if guess_cl is None else f"table sha256={_io.sha256_arrays(guess)[:16]}"
+            _fiducial_label() if guess_cl is None else f"table sha256={_io.sha256_arrays(guess)[:16]}"
         ),
     }
     return EstimatorSettings(
@@ -349,6 +349,12 @@ def _padded(a, n):
     k = min(n, a.size)
     out[:k] = a[:k]
     return out
+
+
+def _fiducial_label() -> str:
+    from cmbtools.simulate.theory_spectrum import FIDUCIAL_LABEL
+
+    return FIDUCIAL_LABEL
 
 
 def _resolve_corrections(w1, w2, binning, nside, lmax, templates, guess_cl, sky_lmax, correct, remove_md, raw,

@@ -38,7 +38,7 @@ nside 16, 1.5e-4 at nside 64, 1.3e-5 at nside 256.  A first computation
 takes about 2.5 s at nside 256 on one core (cost grows as nside**2); later
 calls read the cache.
 
-Cache: ``cmbtools._io.cache_dir()/pixel_window_pol_nside{N}_v{ALGORITHM_VERSION}.npz``,
+Cache: ``cmbtools._core.files.cache_dir()/pixel_window_pol_nside{N}_v{ALGORITHM_VERSION}.npz``,
 with the inputs, their hash and a checksum of the table, as for the
 temperature window.
 """
@@ -174,7 +174,7 @@ def polarization_pixel_window(nside, lmax=None, *, use_cache=True, nthreads=None
     lmax : int, optional
         Largest multipole, at most ``8 * nside``.  Default ``4 * nside``.
     use_cache : bool, default=True
-        Read the table from, and store it in, ``cmbtools._io.cache_dir()``.
+        Read the table from, and store it in, ``cmbtools._core.files.cache_dir()``.
     nthreads : int, optional
         Threads for the first computation.
 

@@ -484,19 +484,18 @@ class PolarizedBandpowerTransfer(_PerBinTransfer):
         -------
         Path
         """
-        from cmbtools._core.tables import write_text_table
+        from cmbtools._core.binned_tables import write_binned_table
+        from cmbtools._core.tables import key_value_lines
 
         comments = ["cmbtools polarized bandpower transfer function",
                     "columns: spectrum (TT, TE, TB, EE, EB, BB); ell_min, ell_max = bin limits (inclusive); ell_eff; "
                     "transfer = F_b, the mean recovered bandpower over the expected one (nan: not measured, the "
                     "expectation is zero); transfer_error = its standard error; TE, TB and EB are corrected by "
                     "sqrt(F_XX F_YY)"]
-        comments += [f"{k}: {' '.join(str(v).splitlines())}" for k, v in self.metadata.items()]
-        rows = [(s, str(int(a)), str(int(b)), repr(float(ee)), repr(float(self.transfer[i, j])),
-                 repr(float(self.transfer_error[i, j])))
-                for i, s in enumerate(_POL_SPECTRA)
-                for j, (a, b, ee) in enumerate(zip(self.ell_min, self.ell_max, self.ell_eff))]
-        return write_text_table(path, POLARIZED_TRANSFER_COLUMNS, rows, comments=comments, overwrite=overwrite)
+        comments += key_value_lines(self.metadata.items())
+        return write_binned_table(path, POLARIZED_TRANSFER_COLUMNS[4:], self.ell_min, self.ell_max, self.ell_eff,
+                                  (self.transfer, self.transfer_error), spectra=_POL_SPECTRA, comments=comments,
+                                  overwrite=overwrite)
 
     @classmethod
     def read_csv(cls, path) -> "PolarizedBandpowerTransfer":

@@ -150,7 +150,8 @@ def test_validate_default_fiducial_spectrum(tmp_path, capsys, monkeypatch):
     out = capsys.readouterr().out
     assert "input: built-in fiducial spectrum" in out and "beam: none" in out
     doc = json.loads((tmp_path / "run" / "summary.json").read_text())
-    assert doc["settings"]["pixel_window"] == "no" and doc["settings"]["input_spectrum"] == "built-in fiducial spectrum"
+    assert doc["settings"]["pixel_window"] == "no" and doc["settings"]["input_spectrum"] == (
+        "built-in fiducial spectrum (cmbtools' model with astropy's Planck18 parameters)")
     assert (tmp_path / "fig.pdf").read_bytes()[:5] == b"%PDF-"
     assert "# unit: K^2" in (tmp_path / "run" / "summary.csv").read_text()
 

@@ -7,6 +7,8 @@ import healpy as hp
 import numpy as np
 import pytest
 
+from _masks import cap_with_holes
+
 from cmbtools._core import sht as _sht
 from cmbtools._core.binned_tables import read_filter_table, read_transfer_table
 from cmbtools._core.tables import write_text_table
@@ -14,29 +16,8 @@ from cmbtools.exceptions import InputFileError, InvalidInputError
 from cmbtools.simulate import Dipole, NoiseModel, fiducial_cl, gaussian_alm, noise_map, noise_spectrum, validate_estimator
 from cmbtools.simulate.pixel_averaging import pixel_averaged_map
 from cmbtools.spectrum import (
-    BandpowerCovariance, BandpowerTransfer, Binning, SpectrumEstimator, gaussian_beam, pixel_window,
+    BandpowerCovariance, BandpowerTransfer, Binning, SpectrumEstimator, gaussian_beam,
 )
-
-
-def _cos_taper(dist_deg, width):
-    return 0.5 - 0.5 * np.cos(np.pi * np.clip(dist_deg / width, 0.0, 1.0))
-
-
-def _cap_with_holes(nside):
-    """A 50-degree cap with 6 two-degree holes, every edge tapered (5-6 degrees, a few pixels at nside 32)."""
-    vec = np.array(hp.pix2vec(nside, np.arange(12 * nside**2))).T
-    centre = hp.ang2vec(250.0, -55.0, lonlat=True)
-    w = _cos_taper(50.0 - np.degrees(np.arccos(np.clip(vec @ centre, -1, 1))), 6.0)
-    rng = np.random.default_rng(5)
-    for _ in range(6):
-        while True:
-            v = rng.standard_normal(3)
-            v /= np.linalg.norm(v)
-            if np.degrees(np.arccos(v @ centre)) < 40.0:
-                break
-        d = np.degrees(np.arccos(np.clip(vec @ v, -1, 1)))
-        w *= np.where(d < 2.0, 0.0, _cos_taper(d - 2.0, 5.0))
-    return w, vec, centre
 
 
 def _high_pass(lmax, ell_cut=20.0):
@@ -63,7 +44,8 @@ def test_measured_transfer_undoes_a_high_pass_on_independent_realistic_maps(one_
     # filtered bins are low by many standard errors.
     nside, n_sims = 32, 300
     lmax, sky_lmax = 3 * nside - 1, 4 * nside - 1
-    w, vec, centre = _cap_with_holes(nside)
+    w, vec = cap_with_holes(nside)  # tests/_masks.py: a 50-degree cap with 15 holes, edges tapered by 3 degrees
+    centre = hp.ang2vec(250.0, -55.0, lonlat=True)  # the cap's centre: the noise is lowest there
     fwhm = 2 * np.degrees(np.sqrt(4 * np.pi / w.size)) * 60
     cl = fiducial_cl(sky_lmax)
     f = _high_pass(sky_lmax)
@@ -76,9 +58,9 @@ def test_measured_transfer_undoes_a_high_pass_on_independent_realistic_maps(one_
                                  pixelise=True, executor=pool, progress=False)
     transfer = BandpowerTransfer.from_validation(run)
     binned_f2 = bins.bin_spectrum(f**2 * cl) / bins.bin_spectrum(cl)
-    # F_b follows the binned filter power; the mask's coupling moves it by up to a few per cent (0.20 against
-    # 0.22 in the first bin), the Monte Carlo error is about 1 %
-    np.testing.assert_allclose(transfer.transfer, binned_f2, rtol=0.08)
+    # F_b follows the binned filter power; the mask's coupling moves it (measured: -7.6 % in the first bin, 0.199
+    # against 0.216, +1.8 to +7.2 % in the others), the Monte Carlo error is 0.8-1.4 % (measured)
+    np.testing.assert_allclose(transfer.transfer, binned_f2, rtol=0.1)
     assert np.all(transfer.transfer_error / transfer.transfer < 0.02)
 
     noise_cl = noise_spectrum(noise, lmax, nside)
@@ -154,7 +136,7 @@ def test_table_round_trip_and_what_apply_scales(tmp_path):
 
 def test_the_validation_summary_table_is_a_transfer_table(tmp_path, one_thread):
     nside = 16
-    w, _vec, _c = _cap_with_holes(nside)
+    w, _vec = cap_with_holes(nside)
     est = SpectrumEstimator(w, Binning.uniform(4, 40, 9), lmax=40, pixel_window=False, nthreads=1)
     cl = fiducial_cl(40)
     with ThreadPoolExecutor(2) as pool:
