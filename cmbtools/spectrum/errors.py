@@ -14,9 +14,18 @@ __all__ = ["covariance_kernel", "mode_counts", "bandpower_covariance"]
 
 
 def _reduce_rows(matrix, weights, starts):
-    """``P @ matrix`` for a bin-averaging ``P`` given by per-ell weights and bin starts (in place on ``matrix``)."""
-    matrix *= weights[:, None]
-    return np.add.reduceat(matrix, starts, axis=0)
+    """``P @ matrix`` for a bin-averaging ``P`` given by per-ell weights and bin starts.
+
+    One weighted sum of each bin's rows (bin ``b`` runs from ``starts[b]`` to the next start, the
+    last to the matrix's last row, like ``np.add.reduceat``); ``matrix`` is left unchanged and no
+    temporary of its size is made (at lmax 6143 a coupling matrix is 0.3 GB).
+    """
+    starts = np.asarray(starts)
+    ends = np.append(starts[1:], matrix.shape[0])
+    out = np.empty((starts.size, matrix.shape[1]), dtype=np.result_type(matrix, weights))
+    for b, (s, e) in enumerate(zip(starts, ends)):
+        np.dot(weights[s:e], matrix[s:e], out=out[b])
+    return out
 
 
 def _reduce_cols(matrix, weights, starts):

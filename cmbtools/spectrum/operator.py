@@ -120,14 +120,11 @@ def _build_operator(inp, nthreads, lmax, binning, lw, p, fast, f1, f2, f12, same
         if rows is None:
             pm = _reduce_rows(m, p, binning.ell_min)
             return pm, pm
-        bias_rows, leak_rows = rows  # (reduce_rows scales its argument in place: one copy, then m itself)
+        bias_rows, leak_rows = rows  # row factors folded into the bin weights: no copy of m
+        pm = _reduce_rows(m, p * bias_rows, binning.ell_min)
         if np.array_equal(bias_rows, leak_rows):  # no power above the bins: no second matrix
-            m *= bias_rows[:, None]
-            pm = _reduce_rows(m, p, binning.ell_min)
             return pm, pm
-        pm_leak = _reduce_rows(m * leak_rows[:, None], p, binning.ell_min)
-        m *= bias_rows[:, None]
-        return _reduce_rows(m, p, binning.ell_min), pm_leak
+        return pm, _reduce_rows(m, p * leak_rows, binning.ell_min)
 
     shape = in_bin_shape(binning, lmax, inp.guess_cl)
     what = "binned mode-coupling matrix"
@@ -163,7 +160,7 @@ def _build_operator(inp, nthreads, lmax, binning, lw, p, fast, f1, f2, f12, same
         )
         del sq
         if inp.mask2 is None:
-            g12 = None if same_factor else _covariance_kernel(m2.copy(), f12, binning, lmax)
+            g12 = None if same_factor else _covariance_kernel(m2, f12, binning, lmax)
             g11 = _covariance_kernel(m2, f1, binning, lmax)
         else:
             g11 = _covariance_kernel(m2, f1, binning, lmax)

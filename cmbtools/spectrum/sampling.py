@@ -5,10 +5,12 @@ and band-limited where the coupling matrix ends.  Real maps differ near the
 grid's limit of 3 nside in three ways, measured with ``cmbtools validate`` on
 the demo survey's mask (nside 128, 400 simulations, power to 4 nside - 1):
 
-- the plain HEALPix quadrature of the transform aliases the much larger power
-  of lower multipoles into a few m modes near 3 nside.  The mean is modelled
-  (the coupling uses the same quadrature) but the scatter is not: the
-  Gaussian covariance is too small there, by factors growing with
+- the mask leaks the much larger power of lower multipoles into the
+  multipoles where the beam has suppressed the sky's own.  The mean is
+  modelled (the coupling) but the scatter is not: the Gaussian covariance's
+  narrow-kernel approximation treats the leaked power as if it were the local
+  sky's (the same shortfall against the exact covariance with and without the
+  HEALPix grid, nside 16 and 32), so it is too small there, by factors growing with
   ``l / nside`` and with the beam's suppression ``B_l^2`` (scatter / error
   1.02 at 2.5 nside and 1.45 at 2.7 nside for a 60 arcmin beam, 1.09 at
   2 nside and 1.64 at 2.2 nside for 90 arcmin, without noise);
