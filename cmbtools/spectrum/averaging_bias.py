@@ -18,7 +18,8 @@ widths) apart, because it comes from the shapes of the pixels: pixels change
 shape across the sphere (so the pixels under a mask do not respond as the
 all-sky mean), and the averaging changes how the grid aliases power near
 2-3 nside.  :func:`averaging_bias` sums the difference over the pairs
-within a radius, for a guess spectrum, as the formula above (pixel means by
+within a radius (:func:`pair_radius`; when the beam sets it, above l ~ 10 / radius
+with the pairs' weights tapered towards it, see :data:`TAPER_FRACTION`), for a guess spectrum, as the formula above (pixel means by
 each pixel's Gauss-Legendre rule, the correlation functions from tables made
 by ducc0's m = 0 transforms, the Legendre sums of the pair histogram by its
 adjoint), over every pixel p of the mask when it has at most
@@ -32,7 +33,8 @@ binned matrix's coupling rows like the leakage of power above the bins, so
 it is exact when the sky has the shape of the guess.
 
 Cost: about 2 s for 4096 centres (0.4-0.7 ms each, with the pair radius of
-7 pixels; quiet 2-core machine) whatever the nside; below 4096 pixels in the
+7 pixels; quiet 2-core machine) whatever the nside, growing as the radius
+squared (twice that with a beam of 2.2 pixels); below 4096 pixels in the
 mask, less (an auto-spectrum then sums each unordered pair once).  The
 estimator runs it on a thread beside the mask's transform and the coupling
 kernel, and applies it by default at every nside
@@ -78,8 +80,25 @@ __all__ = ["averaging_bias", "clear_averaging_bias_cache", "pair_radius"]
 
 #: The pairs are summed to this many pixel sizes at least ...
 MIN_RADIUS_PIXELS = 7.0
-#: ... and to this many times the beam's FWHM (estimated from where B_l^2 falls to one half).
+#: ... and to this many times the beam's FWHM (estimated from where B_l^2 falls to one half) ...
 RADIUS_BEAMS = 3.0
+#: ... and to this many times FWHM^2 / pixel (the e-folding length in l of the beamed pseudo-power near the top of
+#: the default bins, 2.5 nside, is about 1.1 pixel / FWHM^2 in 1/radians: the cut pair sum smooths the bias over
+#: a few 1/radius in l, which must stay well inside it; a beam of 2.2 pixels then sums to 10 pixels) ...
+RADIUS_BEAM_AREAS = 2.1
+#: ... but not beyond this many pixels (a beam of 2.8 pixels or more; the cost grows as the radius squared).
+MAX_RADIUS_PIXELS = 16.0
+#: Above l ~ 10 / radius the pairs' weights fall as cos^2 over this outer fraction of the radius: a sharp cut of
+#: the pair sums smooths the bias over l with a ringing kernel, which matters where the pseudo-power falls steeply
+#: (on the demo survey, 2.4 nside with a 2.2-pixel beam, a sharp cut at 7 pixels put the top bin's bias at -2.0 %
+#: of its pseudo-power against -1.14 % by brute force), while at low l the taper's loss of distant pairs costs more
+#: (0.2-0.3 % of the pseudo-power at l < 10 / radius, nside 16).  See DEVELOPERS.md, "pixel averages".  At the
+#: minimum radius (:data:`MIN_RADIUS_PIXELS`), where it did not help, and for a radius covering the sphere, every
+#: pair is summed at full weight at every l.
+TAPER_FRACTION = 0.5
+#: The result is the sharp cut's below l = TAPER_FROM / radius, the tapered one's above l = TAPER_FULL / radius,
+#: linear in l between.
+TAPER_FROM, TAPER_FULL = 10.0, 15.0
 #: The pairs of every pixel of the mask are summed when it has at most this many; above it, the pairs of a
 #: stratified sample of this many of its pixels, each weighted by the number of pixels it stands for (see
 #: :func:`averaging_bias`).
@@ -106,7 +125,7 @@ _SAMPLE_SEED = 20261203
 
 
 def pair_radius(nside, sky_factor) -> float:
-    """Angular radius of the pair sums: ``max(7 pixels, 3 FWHM)``.
+    """Angular radius of the pair sums: ``max(7 pixels, 3 FWHM, 2.1 FWHM^2 / pixel)``, at most 16 pixels.
 
     Parameters
     ----------
@@ -128,7 +147,9 @@ def pair_radius(nside, sky_factor) -> float:
     if below.size and below[0] > 1:
         l_half = float(below[0])
         sigma = math.sqrt(math.log(2.0)) / math.sqrt(l_half * (l_half + 1.0))
-        radius = max(radius, RADIUS_BEAMS * 2.0 * math.sqrt(2.0 * math.log(2.0)) * sigma)
+        fwhm = 2.0 * math.sqrt(2.0 * math.log(2.0)) * sigma
+        radius = max(radius, min(max(RADIUS_BEAMS * fwhm, RADIUS_BEAM_AREAS * fwhm * fwhm / pixel),
+                                 MAX_RADIUS_PIXELS * pixel))
     return radius
 
 
@@ -140,22 +161,29 @@ def _correlation_tables(spectra, chord_max, nthreads):
     """
     from cmbtools._core.sht import legendre_series
 
-    step = chord_max**2 / _TABLE_POINTS
-    u = step * np.arange(_TABLE_POINTS + 3)
+    step, u = _table_grid(chord_max)
     theta = 2.0 * np.arcsin(np.clip(np.sqrt(u) / 2.0, 0.0, 1.0))
     coeffs = np.array([(2.0 * np.arange(cl.size) + 1.0) / (4.0 * np.pi) * cl for cl in spectra])
     values = legendre_series(coeffs, theta, nthreads=nthreads)
-    out = []
-    for v in values:
-        # interval i (from u_i to u_i+1) takes the points i-1 .. i+2; the first one 0 .. 3
-        f0, f1, f2, f3 = v[:-3], v[1:-2], v[2:-1], v[3:]
-        c = np.stack([f1, (-2 * f0 - 3 * f1 + 6 * f2 - f3) / 6.0, (f0 - 2 * f1 + f2) / 2.0,
-                      (-f0 + 3 * f1 - 3 * f2 + f3) / 6.0])
-        first = np.array([f0[0], (-11 * f0[0] + 18 * f1[0] - 9 * f2[0] + 2 * f3[0]) / 6.0,
-                          (2 * f0[0] - 5 * f1[0] + 4 * f2[0] - f3[0]) / 2.0, c[3, 0]])
-        c = np.concatenate([first[:, None], c], axis=1)
-        out.append(np.ascontiguousarray(c))
-    return step, out
+    return step, [_cubic_table(v) for v in values]
+
+
+def _table_grid(chord_max):
+    """The tables' step in chord^2 and their points u = chord^2 (``_TABLE_POINTS + 3`` of them)."""
+    step = chord_max**2 / _TABLE_POINTS
+    return step, step * np.arange(_TABLE_POINTS + 3)
+
+
+def _cubic_table(v):
+    """(4, n) coefficients of the local cubics through the values ``v`` at the points of :func:`_table_grid`
+    (shared with the spin-2 tables of :mod:`polarized_averaging_bias`)."""
+    # interval i (from u_i to u_i+1) takes the points i-1 .. i+2; the first one 0 .. 3
+    f0, f1, f2, f3 = v[:-3], v[1:-2], v[2:-1], v[3:]
+    c = np.stack([f1, (-2 * f0 - 3 * f1 + 6 * f2 - f3) / 6.0, (f0 - 2 * f1 + f2) / 2.0,
+                  (-f0 + 3 * f1 - 3 * f2 + f3) / 6.0])
+    first = np.array([f0[0], (-11 * f0[0] + 18 * f1[0] - 9 * f2[0] + 2 * f3[0]) / 6.0,
+                      (2 * f0[0] - 5 * f1[0] + 4 * f2[0] - f3[0]) / 2.0, c[3, 0]])
+    return np.ascontiguousarray(np.concatenate([first[:, None], c], axis=1))
 
 
 def _lookup(table, step, chord2):
@@ -307,9 +335,23 @@ def _cache_key(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads) -
 
     The nside is the masks' length; the module's table and histogram sizes are constants of the code.
     """
+    return _digest(_code_hash(), (("mask", w_a), ("mask2", w_b), ("sky", sky), ("window", win)),
+                   _settings(lmax, radius, max_centres, order, nthreads))
+
+
+def _settings(lmax, radius, max_centres, order, *extra):
+    """The pair sums' settings as both modules' keys hold them (``extra``: the temperature sums' nthreads), with
+    the module's constants behind the numbers."""
+    return (int(lmax), None if radius is None else float(radius).hex(), int(max_centres), int(order), *extra,
+            MIN_RADIUS_PIXELS, TAPER_FRACTION, TAPER_FROM, TAPER_FULL, _TABLE_POINTS, _HIST_BINS)
+
+
+def _digest(head, arrays, settings) -> str:
+    """blake2b (32 bytes, hex) of ``head``, each (name, array or None) of ``arrays`` (name, shape, float64 bytes)
+    and ``settings``' repr: the cache keys of this module and of :mod:`polarized_averaging_bias`."""
     h = hashlib.blake2b(digest_size=32)
-    h.update(_code_hash().encode())
-    for name, arr in (("mask", w_a), ("mask2", w_b), ("sky", sky), ("window", win)):
+    h.update(head.encode())
+    for name, arr in arrays:
         h.update(name.encode())
         if arr is None:
             h.update(b"none")
@@ -317,8 +359,7 @@ def _cache_key(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads) -
         a = np.ascontiguousarray(arr, dtype=np.float64)
         h.update(repr(a.shape).encode())
         h.update(a.view(np.uint8).reshape(-1) if a.size else b"")
-    h.update(repr((int(lmax), None if radius is None else float(radius).hex(), int(max_centres), int(order),
-                   nthreads, MIN_RADIUS_PIXELS, _TABLE_POINTS, _HIST_BINS)).encode())
+    h.update(repr(settings).encode())
     return h.hexdigest()
 
 
@@ -449,34 +490,34 @@ def averaging_bias(mask, sky_cl, window, lmax, *, mask2=None, radius=None, max_c
     return result
 
 
-def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
-    """:func:`averaging_bias` without the cache (``w_b`` None: the auto-spectrum)."""
+def _pair_grid(npix, radius):
+    """The sums' grid: nside, the HEALPix base (RING), the radius (default :data:`MIN_RADIUS_PIXELS` pixels), the
+    tables' largest chord (the radius plus two pixel radii), the pair histogram's bins per unit chord, and the
+    radius of the taper (both modules): None (a sharp cut at every l) at the minimum radius, where the taper
+    does not help (measured in DEVELOPERS.md, "pixel averages"), and for a radius covering the sphere."""
     import ducc0
 
-    from cmbtools._core.sht import legendre_adjoint
-
-    w_b = w_a if w_b is None else w_b
-    npix = w_a.size
     nside = check_nside(int(round(math.sqrt(npix / 12))))
     if radius is None:
         radius = MIN_RADIUS_PIXELS * math.sqrt(4.0 * math.pi / npix)
-    if not np.any(w_a != 0.0) or not np.any(w_b != 0.0):
-        return np.zeros(lmax + 1)
     base = ducc0.healpix.Healpix_Base(nside, "RING")
     reach = radius + 2.0 * base.max_pixrad()
     chord_max = 2.0 * math.sin(min(reach, math.pi) / 2.0) * 1.0001
-    step, (xi_avg, xi_model) = _correlation_tables([sky, sky * win**2], chord_max, nthreads)
-
-    centres, share = _centres(w_a, max_centres)
-    theta, phi = base.pix2ang(centres).T
     hist_chord_max = 2.0 * math.sin(min(radius, math.pi) / 2.0) * 1.0001
-    scale = _HIST_BINS / hist_chord_max
-    hist = np.zeros(_HIST_BINS + 2)
-    block = max(1, (1 << 19) // (order**4))  # node pairs per block: ~20 MB of temporaries (they run beside the kernel)
-    # every pair (p, q) of a centre p and a pixel q of the second mask within the radius; for an auto-spectrum
-    # with every pixel of the mask a centre, the pair (q, p) is (p, q) again (same weight, same difference): each
-    # unordered pair once, counted twice (half the work at small nside; the same sum to rounding)
-    symmetric = w_b is w_a and centres.size == np.count_nonzero(w_a)
+    pixel = math.sqrt(4.0 * math.pi / npix)
+    tapered = TAPER_FRACTION > 0.0 and MIN_RADIUS_PIXELS * pixel * (1.0 + 1e-9) < radius < math.pi
+    return nside, base, radius, chord_max, _HIST_BINS / hist_chord_max, (radius if tapered else None)
+
+
+def _pixel_pairs(base, w_a, w_b, centres, share, radius, symmetric):
+    """Every pair (p, q) of a centre p and a pixel q of the second mask within the radius, and its weight.
+
+    ``share``: the pixels each centre stands for (:func:`_centres`).  ``symmetric`` (an auto-spectrum with every
+    pixel of the mask a centre): the pair (q, p) is (p, q) again, so each unordered pair is kept once, counted
+    twice.  Returns the pixels involved (sorted, once each), the index of p and of q into them, and the weights
+    ``share W_a(p) W_b(q)``.
+    """
+    theta, phi = base.pix2ang(centres).T
     pairs_p, pairs_q, pairs_w = [], [], []
     for k, (p, th, ph) in enumerate(zip(centres, theta, phi)):
         ranges = base.query_disc(np.array([th, ph]), radius)
@@ -490,13 +531,78 @@ def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
         pairs_p.append(np.full(q.size, p))
         pairs_q.append(q)
     pairs_p, pairs_q, pairs_w = np.concatenate(pairs_p), np.concatenate(pairs_q), np.concatenate(pairs_w)
-    # the nodes of every pixel involved, once
     used, index = np.unique(np.concatenate([pairs_p, pairs_q]), return_inverse=True)
-    index_p, index_q = index[: pairs_p.size], index[pairs_p.size :]
+    return used, index[: pairs_p.size], index[pairs_p.size :], pairs_w
+
+
+def _histogram_place(centre2, scale, taper_radius):
+    """Bin and fraction of the linear assignment of squared centre chords to the pair histogram, and the pairs'
+    taper (:data:`TAPER_FRACTION`: 1 to ``(1 - TAPER_FRACTION) taper_radius``, cos^2 to 0 there), or None
+    (``taper_radius`` None: :func:`_pair_grid`)."""
+    chord = np.sqrt(centre2)
+    pos = chord * scale
+    i = np.minimum(pos.astype(np.intp), _HIST_BINS)
+    if taper_radius is None:
+        return i, pos - i, None
+    t = (2.0 * np.arcsin(np.minimum(chord / 2.0, 1.0)) / taper_radius - (1.0 - TAPER_FRACTION)) / TAPER_FRACTION
+    taper = np.cos(0.5 * np.pi * np.clip(t, 0.0, 1.0)) ** 2
+    return i, pos - i, taper
+
+
+def _taper_share(lmax, taper_radius):
+    """(lmax+1,) share of the tapered sums in the result: 0 below l = TAPER_FROM / radius, 1 above TAPER_FULL /
+    radius (all 0 without a taper)."""
+    if taper_radius is None:
+        return np.zeros(lmax + 1)
+    x = np.arange(lmax + 1) * taper_radius
+    return np.clip((x - TAPER_FROM) / (TAPER_FULL - TAPER_FROM), 0.0, 1.0)
+
+
+def _histograms_add(sharp, tapered, i, f, taper, weight):
+    """Add ``weight`` to the sharp-cut histogram and ``weight * taper`` to the tapered one (None: no taper)."""
+    _histogram_add(sharp, i, f, weight)
+    if taper is not None:
+        _histogram_add(tapered, i, f, weight * taper)
+
+
+def _blend(adjoint, sharp, tapered, lmax, taper_radius):
+    """The result from the two histograms (:func:`_taper_share`): ``adjoint(h)`` maps a histogram to l = 0..lmax."""
+    out = adjoint(sharp)
+    share = _taper_share(lmax, taper_radius)
+    if np.any(share > 0.0):
+        out += share * adjoint(tapered - sharp)
+    return out
+
+
+def _histogram_add(hist, i, f, weight):
+    """Add ``weight`` to the histogram (``_HIST_BINS + 2`` bins) at the places of :func:`_histogram_place`."""
+    hist += np.bincount(i, weights=weight * (1.0 - f), minlength=_HIST_BINS + 2)[: _HIST_BINS + 2]
+    hist[1:] += np.bincount(i, weights=weight * f, minlength=_HIST_BINS + 1)[: _HIST_BINS + 1]
+
+
+def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
+    """:func:`averaging_bias` without the cache (``w_b`` None: the auto-spectrum)."""
+    from cmbtools._core.sht import legendre_adjoint
+
+    w_b = w_a if w_b is None else w_b
+    npix = w_a.size
+    nside, base, radius, chord_max, scale, taper_radius = _pair_grid(npix, radius)
+    if not np.any(w_a != 0.0) or not np.any(w_b != 0.0):
+        return np.zeros(lmax + 1)
+    step, (xi_avg, xi_model) = _correlation_tables([sky, sky * win**2], chord_max, nthreads)
+
+    centres, share = _centres(w_a, max_centres)
+    hist, hist_t = np.zeros(_HIST_BINS + 2), np.zeros(_HIST_BINS + 2)
+    block = max(1, (1 << 19) // (order**4))  # node pairs per block: ~20 MB of temporaries (they run beside the kernel)
+    # for an auto-spectrum with every pixel of the mask a centre, each unordered pair once, counted twice (half
+    # the work at small nside; the same sum to rounding)
+    symmetric = w_b is w_a and centres.size == np.count_nonzero(w_a)
+    used, index_p, index_q, pairs_w = _pixel_pairs(base, w_a, w_b, centres, share, radius, symmetric)
+    # the nodes of every pixel involved, once
     nodes, wt = _pixel_nodes(nside, used, order)
     centre_vec = base.pix2vec(used)
     weight2 = np.outer(wt, wt).ravel()
-    for s in range(0, pairs_p.size, block):
+    for s in range(0, pairs_w.size, block):
         ip, iq = index_p[s : s + block], index_q[s : s + block]
         c2 = np.matmul(nodes[ip], nodes[iq].transpose(0, 2, 1)).reshape(ip.size, -1)
         c2 *= -2.0
@@ -504,15 +610,11 @@ def _pair_sums(w_a, w_b, sky, win, lmax, radius, max_centres, order, nthreads):
         np.clip(c2, 0.0, None, out=c2)
         mean = _lookup(xi_avg, step, c2) @ weight2
         centre2 = np.sum((centre_vec[ip] - centre_vec[iq]) ** 2, axis=1)
-        centre_chord = np.sqrt(centre2)
+        i, f, taper = _histogram_place(centre2, scale, taper_radius)
         delta = mean - _lookup(xi_model, step, centre2)
-        weight = pairs_w[s : s + block] * delta
-        pos = centre_chord * scale
-        i = np.minimum(pos.astype(np.intp), _HIST_BINS)
-        f = pos - i
-        hist += np.bincount(i, weights=weight * (1.0 - f), minlength=_HIST_BINS + 2)[: _HIST_BINS + 2]
-        hist[1:] += np.bincount(i, weights=weight * f, minlength=_HIST_BINS + 1)[: _HIST_BINS + 1]
+        _histograms_add(hist, hist_t, i, f, taper, pairs_w[s : s + block] * delta)
     chord = np.arange(_HIST_BINS + 2) / scale
     omega = 4.0 * np.pi / npix
     angle = 2.0 * np.arcsin(np.clip(chord / 2.0, 0.0, 1.0))
-    return omega**2 / (4.0 * np.pi) * legendre_adjoint(hist, angle, lmax, nthreads=nthreads)
+    return omega**2 / (4.0 * np.pi) * _blend(lambda h: legendre_adjoint(h, angle, lmax, nthreads=nthreads),
+                                            hist, hist_t, lmax, taper_radius)

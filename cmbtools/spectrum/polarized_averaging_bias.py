@@ -40,13 +40,11 @@ every node pair); TE adds one pass more.  Results are kept in memory like the te
 from __future__ import annotations
 
 import collections
-import hashlib
 import math
 import threading
 
 import numpy as np
 
-from cmbtools._core.checks import check_nside
 from cmbtools.spectrum import averaging_bias as _ab
 
 __all__ = ["polarized_averaging_bias", "wigner_d_series", "wigner_d_adjoint"]
@@ -129,19 +127,9 @@ def wigner_d_adjoint(values, kind, x, lmax) -> np.ndarray:
 
 def _tables(series, chord_max):
     """Cubic tables (the layout of averaging_bias's) of d-function series: (coeffs, kind) -> table."""
-    step = chord_max**2 / _ab._TABLE_POINTS
-    u = step * np.arange(_ab._TABLE_POINTS + 3)
+    step, u = _ab._table_grid(chord_max)
     x = 1.0 - u / 2.0
-    out = []
-    for coeffs, kind in series:
-        v = wigner_d_series(coeffs, kind, x)
-        f0, f1, f2, f3 = v[:-3], v[1:-2], v[2:-1], v[3:]
-        c = np.stack([f1, (-2 * f0 - 3 * f1 + 6 * f2 - f3) / 6.0, (f0 - 2 * f1 + f2) / 2.0,
-                      (-f0 + 3 * f1 - 3 * f2 + f3) / 6.0])
-        first = np.array([f0[0], (-11 * f0[0] + 18 * f1[0] - 9 * f2[0] + 2 * f3[0]) / 6.0,
-                          (2 * f0[0] - 5 * f1[0] + 4 * f2[0] - f3[0]) / 2.0, c[3, 0]])
-        out.append(np.ascontiguousarray(np.concatenate([first[:, None], c], axis=1)))
-    return step, out
+    return step, [_ab._cubic_table(wigner_d_series(coeffs, kind, x)) for coeffs, kind in series]
 
 
 def _frames(vectors):
@@ -187,21 +175,9 @@ def clear_polarized_averaging_bias_cache() -> None:
 
 
 def _key(kind, w_a, w_b, spectra, win_a, win_b, lmax, radius, max_centres, order):
-    h = hashlib.blake2b(digest_size=32)
-    h.update(kind.encode())
     arrays = [("mask", w_a), ("mask2", w_b), ("win_a", win_a), ("win_b", win_b)]
     arrays += [("cl_" + k, spectra[k]) for k in sorted(spectra)]
-    for name, arr in arrays:
-        h.update(name.encode())
-        if arr is None:
-            h.update(b"none")
-            continue
-        a = np.ascontiguousarray(arr, dtype=np.float64)
-        h.update(repr(a.shape).encode())
-        h.update(a.view(np.uint8).reshape(-1) if a.size else b"")
-    h.update(repr((int(lmax), None if radius is None else float(radius).hex(), int(max_centres), int(order),
-                   _ab.MIN_RADIUS_PIXELS, _ab._TABLE_POINTS, _ab._HIST_BINS)).encode())
-    return h.hexdigest()
+    return _ab._digest(kind, arrays, _ab._settings(lmax, radius, max_centres, order))
 
 
 def polarized_averaging_bias(mask, mask2, spectra, window_t, window_p, lmax, *, parts=("PP", "TP", "PT"),
@@ -296,14 +272,10 @@ def _gather(tables, step, chord2):
 
 
 def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, order):
-    import ducc0
-
     symmetric_masks = w_b is None
     w_b = w_a if w_b is None else w_b
     npix = w_a.size
-    nside = check_nside(int(round(math.sqrt(npix / 12))))
-    if radius is None:
-        radius = _ab.MIN_RADIUS_PIXELS * math.sqrt(4.0 * math.pi / npix)
+    nside, base, radius, chord_max, scale, taper_radius = _ab._pair_grid(npix, radius)
     want_pp, want_tp, want_pt = "PP" in parts, "TP" in parts, "PT" in parts
     names = {"PP": ("EE", "BB", "EB"), "TP": ("TE", "TB"), "PT": ("ET", "BT")}
     if not np.any(w_a != 0.0) or not np.any(w_b != 0.0):
@@ -319,9 +291,6 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
     if want_tp or want_pt:
         series.update({"te": (norm * sp["TE"], (2, 0), win_t * win_p), "tb": (norm * sp["TB"], (2, 0), win_t * win_p)})
     series = {k: v for k, v in series.items() if np.any(v[0] != 0.0)}
-    base = ducc0.healpix.Healpix_Base(nside, "RING")
-    reach = radius + 2.0 * base.max_pixrad()
-    chord_max = 2.0 * math.sin(min(reach, math.pi) / 2.0) * 1.0001
     names_s = list(series)
     step, tabs = _tables([(series[k][0], series[k][1]) for k in names_s]
                          + [(series[k][0] * series[k][2], series[k][1]) for k in names_s], chord_max)
@@ -330,33 +299,17 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
     col = {k: j for j, k in enumerate(names_s)}
 
     centres, share = _ab._centres(w_a, max_centres)
-    theta, phi = base.pix2ang(centres).T
-    hist_chord_max = 2.0 * math.sin(min(radius, math.pi) / 2.0) * 1.0001
-    scale = _ab._HIST_BINS / hist_chord_max
     keys = [k for p in ("PP", "TP", "PT") if p in parts for k in {"PP": ("plus", "minus", "cross"), "TP": ("tq", "tu"),
                                                                     "PT": ("qt", "ut")}[p]]
     hist = {k: np.zeros(_ab._HIST_BINS + 2) for k in keys}
+    hist_t = {k: np.zeros(_ab._HIST_BINS + 2) for k in keys}
     block = max(1, (1 << 18) // (order**4))
     # each unordered pair once when both maps are one and every pixel of the mask is a centre: PP's terms are
     # symmetric in p, q; T(p) P(q) and P(p) T(q) swap (both are computed and averaged)
     symmetric = symmetric_masks and centres.size == np.count_nonzero(w_a)
     if symmetric and (want_tp or want_pt):
         want_tp = want_pt = True
-    pairs_p, pairs_q, pairs_w = [], [], []
-    for k, (p, th, ph) in enumerate(zip(centres, theta, phi)):
-        ranges = base.query_disc(np.array([th, ph]), radius)
-        q = np.concatenate([np.arange(a, b) for a, b in ranges])
-        q = q[w_b[q] != 0.0]
-        if symmetric:
-            q = q[q >= p]
-            pairs_w.append(np.where(q > p, 2.0, 1.0) * (w_a[p] * w_b[q]))
-        else:
-            pairs_w.append(share[k] * w_a[p] * w_b[q])
-        pairs_p.append(np.full(q.size, p))
-        pairs_q.append(q)
-    pairs_p, pairs_q, pairs_w = np.concatenate(pairs_p), np.concatenate(pairs_q), np.concatenate(pairs_w)
-    used, index = np.unique(np.concatenate([pairs_p, pairs_q]), return_inverse=True)
-    index_p, index_q = index[: pairs_p.size], index[pairs_p.size :]
+    used, index_p, index_q, pairs_w = _ab._pixel_pairs(base, w_a, w_b, centres, share, radius, symmetric)
     nodes, wt = _ab._pixel_nodes(nside, used, order)
     eps = _frames(nodes)
     npts = nodes.shape[1]
@@ -368,7 +321,7 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
     centre_eps = _frames(centre_vec)
     weight2 = np.outer(wt, wt).ravel()
     npts = nodes.shape[1]
-    for s in range(0, pairs_p.size, block):
+    for s in range(0, pairs_w.size, block):
         ip, iq = index_p[s : s + block], index_q[s : s + block]
         npair = ip.size
         g = np.matmul(stacked[ip], stacked[iq].transpose(0, 2, 1))  # (B, 3n, 3n)
@@ -432,30 +385,29 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
         if symmetric and "tq" in deltas:
             for a, b in (("tq", "qt"), ("tu", "ut")):
                 deltas[a] = deltas[b] = 0.5 * (deltas[a] + deltas[b])
-        pos = np.sqrt(centre2) * scale
-        i = np.minimum(pos.astype(np.intp), _ab._HIST_BINS)
-        f = pos - i
+        i, f, taper = _ab._histogram_place(centre2, scale, taper_radius)
         pw = pairs_w[s : s + block]
         for name in keys:
-            wgt = pw * deltas[name]
-            h = hist[name]
-            h += np.bincount(i, weights=wgt * (1.0 - f), minlength=_ab._HIST_BINS + 2)[: _ab._HIST_BINS + 2]
-            h[1:] += np.bincount(i, weights=wgt * f, minlength=_ab._HIST_BINS + 1)[: _ab._HIST_BINS + 1]
+            _ab._histograms_add(hist[name], hist_t[name], i, f, taper, pw * deltas[name])
     chord = np.arange(_ab._HIST_BINS + 2) / scale
     x = 1.0 - chord**2 / 2.0
     omega = 4.0 * np.pi / npix
     f = omega**2 / (4.0 * np.pi)
     out = {}
+
+    def adjoint(name, kind):
+        return _ab._blend(lambda h: wigner_d_adjoint(h, kind, x, lmax), hist[name], hist_t[name], lmax, taper_radius)
+
     if "PP" in parts:
-        a = wigner_d_adjoint(hist["plus"], (2, 2), x, lmax)
-        b = wigner_d_adjoint(hist["minus"], (2, -2), x, lmax)
-        c = wigner_d_adjoint(hist["cross"], (2, -2), x, lmax)
+        a = adjoint("plus", (2, 2))
+        b = adjoint("minus", (2, -2))
+        c = adjoint("cross", (2, -2))
         out.update({"EE": f * 0.5 * (a + b), "BB": f * 0.5 * (a - b), "EB": f * 0.5 * c})
     # the deltas of T x P are minus those of <T Q_r>, <T U_r> (the tables hold +xi_TE, +xi_TB): TE~ = -f sum .. d20
     if "TP" in parts:
-        out["TE"] = f * wigner_d_adjoint(hist["tq"], (2, 0), x, lmax)
-        out["TB"] = f * wigner_d_adjoint(hist["tu"], (2, 0), x, lmax)
+        out["TE"] = f * adjoint("tq", (2, 0))
+        out["TB"] = f * adjoint("tu", (2, 0))
     if "PT" in parts:
-        out["ET"] = f * wigner_d_adjoint(hist["qt"], (2, 0), x, lmax)
-        out["BT"] = f * wigner_d_adjoint(hist["ut"], (2, 0), x, lmax)
+        out["ET"] = f * adjoint("qt", (2, 0))
+        out["BT"] = f * adjoint("ut", (2, 0))
     return out

@@ -16,7 +16,9 @@ from cmbtools._core import sht
 from cmbtools.exceptions import InvalidInputError
 from cmbtools.maps.masks import apodize_mask, cap_mask, disc_mask
 from cmbtools.spectrum import Binning, PolarizedSpectrumEstimator
-from cmbtools.spectrum.low_ell_covariance import _coords, _sky_weights, _to_real, low_ell_block
+from cmbtools.spectrum.low_ell_covariance import (
+    _coords, _sky_weights, _to_real, low_ell_block, low_ell_temperature_block, temperature_bins,
+)
 
 NSIDE = 8
 
@@ -126,3 +128,41 @@ def test_exact_low_bins_replaces_only_the_first_bins_block():
     assert np.max(np.abs(a.cl_err[:, 0] / b.cl_err[:, 0] - 1.0)) > 1e-3
     with pytest.raises(InvalidInputError, match="exact_low_bins"):
         PolarizedSpectrumEstimator(mask, binning, exact_low_bins=9, **kw)
+
+
+def test_temperature_block_of_two_bins_equals_the_brute_force():
+    """The TT-only block reaches one bin further; its numbers are the brute force's (removal, mask, noise)."""
+    mask, pol_mask = _masks()
+    binning = Binning.uniform(2, 16, 4)
+    est = PolarizedSpectrumEstimator(mask, binning, pol_mask=pol_mask, pixel_window=False, nthreads=1, lmax=16,
+                                     guess_cl=_guess())
+    assert temperature_bins(binning, est.exact_low_bins) == 2 and temperature_bins(binning, 0) == 0
+    blk = low_ell_temperature_block(est, "11")
+    assert blk.n_exact == 2 and blk.nside_c == NSIDE and blk.l_sky == 16
+    amp = {("s", "TT", g): 1e-9 * (1.0 + 0.3 * g) for g in blk.groups}
+    amp[("n", "a", "T")] = 2e-12
+    got = blk.covariance(amp)[0, :, 0, :]
+    # brute force: every sky mode to l_sky and every noise pixel through the estimator's own _fields
+    lo, hi, l_sky = 2, 9, blk.l_sky
+    idx, part, ell = _coords(est.lmax, lo, hi)
+    sidx, spart, sell = _coords(l_sky, 0, l_sky)
+    npix = 12 * NSIDE**2
+
+    def outputs(m0):
+        return _to_real(est._fields(np.stack([m0, np.zeros(npix), np.zeros(npix)]), "1", "maps1")[0], idx, part)
+
+    cols = []
+    for i, p in zip(sidx, spart):
+        alm = np.zeros(sht.alm_size(l_sky), dtype=np.complex128)
+        alm[i] = 1.0 if p == 0 else (np.sqrt(0.5) if p == 1 else 1j * np.sqrt(0.5))
+        cols.append(outputs(sht.alm2map(alm, NSIDE, l_sky)))
+    a = np.array(cols).T
+    weights, groups = _sky_weights(est, l_sky)
+    d = np.array([amp[("s", "TT", k)] for k in groups[sell]]) * weights["TT"][sell]
+    seen = np.nonzero(est.masks["t1"] > 0)[0]
+    k = np.array([outputs(np.eye(1, npix, j)[0]) for j in seen]).T
+    cov = (a * d) @ a.T + 2e-12 * k @ k.T
+    c = est.binning.averaging_weights(est.lmax)[ell] / (2.0 * ell + 1.0)
+    cb = np.array([np.where(est.binning.bin_index[ell] == b, c, 0.0) for b in range(2)])
+    want = 2.0 * cb @ (cov * cov) @ cb.T
+    np.testing.assert_allclose(got, want, rtol=1e-9, atol=0)
