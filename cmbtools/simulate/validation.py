@@ -278,7 +278,7 @@ def validate_estimator(
         pixel window; the mean is compared with the bin averages of ``cl``.
         The estimator is used as given: build it with ``averaged_pixels=True``
         for pixelised skies and ``averaged_pixels=False`` for pixel-centre ones
-        (its default up to nside 512 is the former; ``cmbtools validate``
+        (its default, at every nside, is the former; ``cmbtools validate``
         chooses the matching one itself).
     sky_beam : float, array_like or (array_like, array_like), optional
         Polarized estimator only: the beam of the skies to ``sky_lmax`` (see
