@@ -86,13 +86,11 @@ def test_mean_bandpowers_are_unbiased(runs):
     pull = (mean - runs["expected"]) / sem
     assert np.all(np.abs(pull[sel]) < 3.0), pull
     # and the expectation (through the bandpower windows) is the plain bin average of the input
-    # to 1% there, except in the last bin, which also collects power leaking from the unbinned
-    # multipoles 178..191 (4% here; the windows account for it, a flat average cannot)
+    # to 1% there, the last bin included: the power leaking in from the unbinned multipoles
+    # 178..191 is modelled from the guess spectrum (measured -0.09 % in the last bin; 4 % high
+    # before the multipoles outside the bins were modelled)
     flat = est.binning.bin_spectrum(_spectrum())
-    inner = sel.copy()
-    inner[-1] = False
-    np.testing.assert_allclose(runs["expected"][inner], flat[inner], rtol=0.01)
-    assert 0.0 < runs["expected"][-1] / flat[-1] - 1 < 0.08
+    np.testing.assert_allclose(runs["expected"][sel], flat[sel], rtol=0.01)
 
 
 def test_scatter_matches_the_knox_errors(runs):
