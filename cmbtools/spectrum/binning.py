@@ -299,16 +299,25 @@ class Binning:
             The value of each multipole's model for a unit bandpower.
         """
         lmax = self.lmax if lmax is None else check_int(lmax, "lmax", minimum=self.lmax)
-        ell = np.arange(lmax + 1, dtype=np.float64)
-        if self.weighting == "dl":
-            w = np.zeros(lmax + 1)
-            w[1:] = 2.0 * np.pi / (ell[1:] * (ell[1:] + 1.0))
-        else:
-            w = np.ones(lmax + 1)
+        w = self.unit_bandpower_cl(lmax)
         out = np.zeros(lmax + 1)
         sel = np.nonzero(self.bin_index >= 0)[0]
         out[sel] = w[sel]
         return out
+
+    def unit_bandpower_cl(self, lmax: int) -> np.ndarray:
+        """``C_l`` of a unit bandpower at every ``l = 0..lmax``, inside the bins or not.
+
+        ``2 pi / (l (l+1))`` (zero at ``l = 0``) with the ``"dl"`` weighting, one with ``"cl"``;
+        :meth:`model_weights` is this restricted to the bins.
+        """
+        lmax = check_int(lmax, "lmax", minimum=0)
+        if self.weighting != "dl":
+            return np.ones(lmax + 1)
+        ell = np.arange(1, lmax + 1, dtype=np.float64)
+        w = np.zeros(lmax + 1)
+        w[1:] = 2.0 * np.pi / (ell * (ell + 1.0))
+        return w
 
     def averaging_matrix(self, lmax: int | None = None) -> np.ndarray:
         """The operator ``P`` of shape ``(n_bins, lmax+1)``: bandpowers = ``P @ C_l``.

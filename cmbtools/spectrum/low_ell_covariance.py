@@ -250,12 +250,7 @@ _SKY_SPECTRA = ("TT", "TE", "TB", "EE", "EB", "BB")
 def _sky_weights(est, lmax):
     """Per multipole, the model of a unit bandpower (the bins' weighting times the in-bin shapes) per spectrum."""
     b = est.binning
-    ell = np.arange(lmax + 1, dtype=np.float64)
-    if b.weighting == "dl":
-        w = np.zeros(lmax + 1)
-        w[1:] = 2.0 * np.pi / (ell[1:] * (ell[1:] + 1.0))
-    else:
-        w = np.ones(lmax + 1)
+    w = b.unit_bandpower_cl(lmax)
     shapes = est._in_bin_shapes()
     out = {}
     for s in _SKY_SPECTRA:

@@ -145,14 +145,19 @@ def _disk_files(directory):
     return sorted(p.name for p in directory.iterdir() if p.name.startswith("averaging_bias_"))
 
 
-def test_disk_cache_serves_a_later_process_and_misses_on_other_inputs_or_code(tmp_path, monkeypatch):
+def _first_disk_cached_call(tmp_path, monkeypatch):
+    """A disk cache in ``tmp_path``, both caches empty, and one computation: (module, inputs, calls, result)."""
     import cmbtools.spectrum.averaging_bias as module
 
     monkeypatch.setenv("CMBTOOLS_CACHE_DIR", str(tmp_path))
-    mask, sky_cl, window, lmax = _cache_inputs()
+    inputs = _cache_inputs()
     module.clear_averaging_bias_cache()
     calls = _counting(monkeypatch)
-    first = averaging_bias(mask, sky_cl, window, lmax)
+    return module, inputs, calls, averaging_bias(*inputs)
+
+
+def test_disk_cache_serves_a_later_process_and_misses_on_other_inputs_or_code(tmp_path, monkeypatch):
+    module, (mask, sky_cl, window, lmax), calls, first = _first_disk_cached_call(tmp_path, monkeypatch)
     files = _disk_files(tmp_path)
     assert len(calls) == 1 and len(files) == 1 and files[0].endswith(f"_v{module.DISK_CACHE_VERSION}.npz")
     with np.load(tmp_path / files[0]) as data:
@@ -174,13 +179,7 @@ def test_disk_cache_serves_a_later_process_and_misses_on_other_inputs_or_code(tm
 
 
 def test_disk_cache_ignores_and_rewrites_a_damaged_or_foreign_file(tmp_path, monkeypatch):
-    import cmbtools.spectrum.averaging_bias as module
-
-    monkeypatch.setenv("CMBTOOLS_CACHE_DIR", str(tmp_path))
-    mask, sky_cl, window, lmax = _cache_inputs()
-    module.clear_averaging_bias_cache()
-    calls = _counting(monkeypatch)
-    first = averaging_bias(mask, sky_cl, window, lmax)
+    module, (mask, sky_cl, window, lmax), calls, first = _first_disk_cached_call(tmp_path, monkeypatch)
     (name,) = _disk_files(tmp_path)
     path = tmp_path / name
     good = path.read_bytes()

@@ -48,6 +48,12 @@ def test_averaging_and_model_matrices():
         np.testing.assert_allclose(p @ q, np.eye(3), rtol=1e-14, atol=1e-15)
         np.testing.assert_array_equal(p.sum(axis=0), b.averaging_weights(25))
         np.testing.assert_array_equal(q.sum(axis=1), b.model_weights(25))
+        # outside the bins too, at any lmax: D_l = l(l+1) C_l / 2 pi (common practice), C_l = 1 per unit "cl"
+        ell = np.arange(31)
+        unit = b.unit_bandpower_cl(30)
+        expected = np.where(ell > 0, 2 * np.pi / np.maximum(ell * (ell + 1.0), 1.0), 0.0) if weighting == "dl" else 1.0
+        np.testing.assert_allclose(unit, np.broadcast_to(expected, (31,)), rtol=1e-15)
+        assert b.unit_bandpower_cl(3).size == 4  # below the bins' last multipole as well
 
 
 def test_bin_spectrum_of_flat_dl_is_exact():
