@@ -308,8 +308,16 @@ class Binning:
     def unit_bandpower_cl(self, lmax: int) -> np.ndarray:
         """``C_l`` of a unit bandpower at every ``l = 0..lmax``, inside the bins or not.
 
-        ``2 pi / (l (l+1))`` (zero at ``l = 0``) with the ``"dl"`` weighting, one with ``"cl"``;
-        :meth:`model_weights` is this restricted to the bins.
+        Parameters
+        ----------
+        lmax : int
+            Largest multipole (any ``>= 0``, below or above the bins).
+
+        Returns
+        -------
+        ndarray of shape (lmax+1,)
+            ``2 pi / (l (l+1))`` (zero at ``l = 0``) with the ``"dl"`` weighting, one with ``"cl"``;
+            :meth:`model_weights` is this restricted to the bins.
         """
         lmax = check_int(lmax, "lmax", minimum=0)
         if self.weighting != "dl":
