@@ -32,6 +32,29 @@ averaging (the turning of the frames inside a pixel: BB from EE, EB and TB when 
 cancel them).  The pixels p whose pairs are summed are those of the temperature module (every pixel of the
 first mask up to ``MAX_CENTRES``, else a stratified sample), and so are the radius and the quadrature order.
 
+**Pure B.**  The pure B of :mod:`cmbtools.spectrum.purification` is ``B[w P] + k1_l C[P conj(eth w)] -
+N_l a[Im(P conj(eth^2 w))]`` (``k1_l = 2 N_l sqrt(l(l+1))``): the analyses of P weighted by W_2 = w (spin-2
+harmonics), by W_1 = eth w (spin 1) and by W_0 = eth^2 w (spin 0).  By the addition theorem its pseudo-spectra are
+again pair sums, now over every pair of spins (t, t') of the two ends, with the weights turned into the great
+circle's frame (``W_t,r = W_t e^{-i(2-t) alpha}``, alpha at each end towards the other; at a pixel with itself
+the two directions are taken opposite, as for distinct points).  With ``cx(t, t') = <P_r(p) P_r(q)*> conj(W_t,r(p))
+W_t',r(q)`` and ``cy(t, t') = <P_r(p) P_r(q)> conj(W_t,r(p)) conj(W_t',r(q))`` (map a's weights at p, map b's at
+q; k_2 = 1, k_1 = k1_l, k_0 = N_l)::
+
+    BB~ = f/2 sum_pq sum_{t,t'} k_t k_t' [ s(t') Re cx(t, t') d^l_{t,t'}(beta) - Re cy(t, t') d^l_{t,-t'}(beta) ]
+
+with ``s(1) = -1``, ``s(0) = s(2) = 1``: nine pairs of spins, and the d functions (2,2), (2,-2), (2,1), (2,-1),
+(2,0), (1,1), (1,-1), (1,0), (0,0) (the others by d^l_{m'm} = (-1)^(m-m') d^l_{mm'} = d^l_{-m,-m'}).  E_a B_b
+(E standard) is ``f/2 sum k_t' [-s(t') Im cx(2, t') d^l_{2,t'} + Im cy(2, t') d^l_{2,-t'}]`` and T_a B_b is
+``-f sum k_t' Im(<T(p) P_r(q)> W_T(p) conj(W_t',r(q))) d^l_{0,-t'}``.  These are exact identities of the
+estimator's transforms (checked to 1e-8 of the pseudo-power with any maps, weights and derivative maps in
+tests/spectrum/test_pure_b_averaging_bias.py, which fixed the signs s(t') and the ends' directions).  The
+covariance differences are those of the standard B, so the extra cost is a few products per pair of pixels and
+seven more histograms (BB), three (EB) and two (TB, BT).  Measured (paired skies, nside 32, the cap with holes,
+beam of 2.2 pixels, 100 skies): the averaging moves the purified BB pseudo-power by +1.6, +0.8, +2.5, +5.8, +2.9 %
+in bins of 16 from ell 2 (standard errors 0.9, 0.14, 0.24, 0.29, 0.27 %), the model predicts +1.7, +0.5, +2.4,
++5.5, +2.9 % (within 1.9 standard errors in every bin; the standard B's model is off by up to 1.6 % there).
+
 Cost: the spin-2 pair sums cost about twice the temperature ones per pair of pixels (complex frame factors on
 every node pair); TE adds one pass more.  Results are kept in memory like the temperature ones
 (:data:`averaging_bias.CACHE_SIZE` entries, same key rule).
