@@ -249,7 +249,7 @@ def remove_stale_temporaries(path) -> int:
     """Delete the temporary files :func:`atomic_output` left beside ``path`` when a writer was killed.
 
     Only names of cmbtools' own pattern for this destination are touched
-    (``.NAME.XXXXXXXX.tmpSUFFIX``, the same with a second leading dot, and the ``.probe`` files of
+    (``.NAME.<8 random characters>.tmpSUFFIX``, the same with a second leading dot, and the ``.probe`` files of
     :func:`check_output_path`); returns how many were removed.
     """
     import re

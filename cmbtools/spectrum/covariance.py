@@ -380,7 +380,7 @@ class GaussianCovariance:
                     terms.append((k1, k2, tuple(sorted((f1, f2)))))
         wanted = sorted({t[2] for t in terms})
         spectra = _pair_spectra(fields, wanted, 2 * lmax, nthreads)
-        del fields
+        fields.clear()  # the weight maps are not needed past their spectra
         self._spectra = {p: spectra[p] for p in wanted}
         self._quadrature = _CouplingQuadrature(self._spectra, lmax, nthreads)
         self._mats = None  # the full coupling matrices, made by pseudo_covariance only

@@ -155,7 +155,7 @@ class SpinCouplingQuadrature:
         return res
 
     def reduced_rows(self, requests):
-        """``U^T M`` (columns ``l' = 0..lmax``, scaled by ``2 l' + 1``) for (kind, key, projections of U) requests.
+        """``U^T M`` (columns ``l' = 0..lmax``, scaled by ``2 l' + 1``) for (kind, key, projections of U) queries.
 
         One pass of the d-function recurrence and one matrix product per table for all the requests; returns
         a list of (k, lmax+1) arrays.

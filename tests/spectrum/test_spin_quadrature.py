@@ -15,7 +15,7 @@ from cmbtools.spectrum import spin_quadrature as sq
 from cmbtools.spectrum.polarized_operator import PARITY_SHARE_SPIN_KERNELS
 
 
-def _close(ours, ref, rel):
+def _assert_close(ours, ref, rel):
     np.testing.assert_allclose(ours, ref, rtol=0, atol=rel * np.abs(ref).max())
 
 
@@ -32,8 +32,8 @@ def test_sums_equal_the_kernels_matrices():
     inv_cols = 1.0 / (2.0 * np.arange(lmax + 1) + 1.0)
     rows = q.reduced_rows([(k, "w", pu) for k in ref])
     for (kind, m), r in zip(ref.items(), rows):
-        _close(q.binned(kind, "w", pu, pv), u.T @ (m * inv_cols[None, :]) @ v, 1e-13)
-        _close(r, u.T @ m, 1e-13)
+        _assert_close(q.binned(kind, "w", pu, pv), u.T @ (m * inv_cols[None, :]) @ v, 1e-13)
+        _assert_close(r, u.T @ m, 1e-13)
 
 
 def test_blocks_of_multipoles_give_the_same_tables(monkeypatch):
@@ -65,7 +65,7 @@ def test_estimator_kernels_equal_the_reduced_kernel_matrices(purify):
     keys = [k for k in est._cache if k[0] == "kernel"]
     assert {k[1] for k in keys} >= ({"00R", "00RR", "02R"} if purify else {"00", "02", "++", "--", "+-"})
     for _, kind, i, j in keys:
-        _close(est._cache[("kernel", kind, i, j)], p @ full[kind], 1e-12)
+        _assert_close(est._cache[("kernel", kind, i, j)], p @ full[kind], 1e-12)
     # the covariance kernels: bin sums of r_l M_ll'/(2l'+1) r_l', the spin kind in the first bins
     r = binning.averaging_matrix(lmax)
     r = (r > 0) / np.maximum(binning.n_ell[:, None], 1)
@@ -88,6 +88,6 @@ def test_estimator_kernels_equal_the_reduced_kernel_matrices(purify):
             assert n_low == est._cache[("cov_kernel_spin_bins",) + key[1:]]
             gs = r @ ((a02 if kind == "02" else app) * inv_cols) @ r.T
             g[:n_low], g[:, :n_low] = gs[:n_low], gs[:, :n_low]
-        _close(w2, 0.5 * (g + g.T), 1e-12)
+        _assert_close(w2, 0.5 * (g + g.T), 1e-12)
         checked += 1
     assert checked == 3
