@@ -83,3 +83,17 @@ def test_iqu_theory_table_is_checked_before_any_computing(iqu_files, tmp_path, c
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and message in err[0], err
     assert not out.exists() and not fig.exists()
+
+
+def test_iqu_purified_with_averaged_pixels_says_so(iqu_files, tmp_path, capsys):
+    """--purify-b with the default pixel model (averaged pixels with the HEALPix windows): the table's metadata
+    says that the pure B's rows carry the averaged-pixel model."""
+    out = tmp_path / "pol.csv"
+    code = main(["spectrum", str(iqu_files["half1"]), str(iqu_files["half2"]), "--mask", str(iqu_files["mask"]),
+                 "--bin-width", "8", "--lmax", "64", "--purify-b", "-o", str(out), "--threads", "1"])
+    assert code == 0
+    assert "B-mode purification: yes" in capsys.readouterr().out
+    meta = PolarizedBandpowers.read_csv(out).metadata
+    assert meta["b_mode_purification"] == "yes"
+    assert meta["pixels"] == ("averaged: the pixel shapes' bias corrected with the guess spectra "
+                              "(TT, TE, EE, BB, TB, EB; pure B)")
