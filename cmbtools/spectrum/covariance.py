@@ -54,6 +54,18 @@ correction, the signal model adds the expected bias back first.
 :meth:`GaussianCovariance.pseudo_covariance` is the per-multipole covariance
 without the removal.
 
+Lowest sky multipoles.  Under a beam the sky's spectrum is steep, and the mask leaks the much larger power of
+the lowest multipoles into the upper bins; the leaked power at ``l`` and ``l'`` comes from the same few sky
+modes, which the narrow-kernel form (narrow in ``l - l'``) cannot correlate: its neighbouring bins came out
+too anti-correlated (on the Monte Carlo test's survey, against the exact Gaussian covariance: -0.08 to -0.20).
+Up to nside :data:`~cmbtools.spectrum.low_sky_covariance.MAX_NSIDE` (64) the covariance replaces the
+narrow-kernel part made by the sky's multipoles up to ``L`` (about 32, at a bin's end) alone by the exact one
+(:mod:`cmbtools.spectrum.low_sky_covariance`: the estimator's removal, mask and analysis applied to each of those
+sky modes, Isserlis' theorem on the bins' Gram matrices); the parts made by the higher multipoles, and by the low
+and high ones together, keep the narrow-kernel form.  The removal of the low modes is then in the exact part,
+and the removal's term sees the sky above ``L`` only.  :meth:`GaussianCovariance.pseudo_covariance` stays the
+narrow-kernel one.
+
 The noise is described by :class:`~cmbtools.spectrum.pixel_noise.PixelNoise`;
 the result is a :class:`~cmbtools.spectrum.bandpower_covariance.BandpowerCovariance`
 (simulated covariances and the covariance files are in that module).
@@ -528,7 +540,8 @@ class GaussianCovariance:
         """Covariance of the pseudo-spectrum ``C~_l`` (l = 0..lmax) for a sky spectrum, K^4.
 
         Without the monopole/dipole (template) removal's change, which :meth:`covariance` adds to the
-        first bins' sums (see the module notes).
+        first bins' sums, and in the narrow-kernel form throughout: the exact part of the lowest sky multipoles
+        is made bin by bin in :meth:`covariance` only (see the module notes).
 
         Parameters
         ----------
