@@ -45,7 +45,8 @@ removal, mask and analysis; signal only):
 * nside-16 tapered cap with a hole, beam of two pixels, monopole/dipole removed, bins of 8
   (``tests/spectrum/test_low_sky_covariance.py``): 0.016, -0.017, -0.013, -0.058, -0.254 -> 0.000, 0.000,
   0.001, 0.037, -0.045; the first three bins' errors exact (to 1e-4), the others 1.004-1.086 of exact
-  (narrow kernel 0.92-1.10).
+  (narrow kernel 0.92-1.10); the cross-spectrum of that cap and a second one: -0.007, 0.007, 0.006, 0.018,
+  -0.077 -> 0.000, 0.000, 0.000, 0.010, -0.071, the three bins below ``L`` exact (narrow kernel 1.013-1.022).
 
 On the Monte Carlo test's 800 skies (noise included) the auto-spectrum's neighbouring pairs are off by -0.34,
 1.97, -0.45, 0.86, 1.38 standard errors (narrow kernel: -0.05, 3.07, 0.07, 1.44, 2.11), the cross-spectrum's
