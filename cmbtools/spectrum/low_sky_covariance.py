@@ -103,6 +103,23 @@ def low_sky_lmax(binning, lmax, first, n_bins, n_maps=1):
     across a split inside a bin came out 0.05 too high, 0.04 with the split at the bin's end), else
     ``LOW_SKY_LMAX``; never above lmax; lowered to earlier bin ends until the Gram matrices and the columns of the
     ``n_maps`` maps' steps fit ``WORK_BYTES``.
+
+    Parameters
+    ----------
+    binning : Binning
+        The estimator's bins.
+    lmax : int
+        The estimator's lmax.
+    first : int
+        Smallest sky multipole with power (2 when the monopole and dipole are removed).
+    n_bins : int
+        Number of bins.
+    n_maps : int, default=1
+        Maps with their own mask (2 for a cross-spectrum of two masks).
+
+    Returns
+    -------
+    int or None
     """
     ends = [int(e) for e in np.asarray(binning.ell_max) if first <= int(e) <= lmax]
     target = min(LOW_SKY_LMAX, lmax)
