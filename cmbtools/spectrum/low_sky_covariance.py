@@ -189,7 +189,6 @@ class LowSkyCovariance:
         for side in sides:
             second = side == "2"
             mask = np.asarray(estimator.mask2 if second else estimator.mask, dtype=np.float64)
-            rings = _sht.occupied_rings(mask)
             removal = None
             if estimator._inputs.deprojects:  # the estimator's weighted fit: W (1 - T A^-1 T^T W), as one matrix
                 dep = estimator._template_deprojection(second)
@@ -204,7 +203,7 @@ class LowSkyCovariance:
                     maps -= removal[0] @ (maps.T @ removal[1]).T  # (a short-and-wide product is slow in BLAS)
                 maps *= mask[:, None]
                 for k, j in enumerate(block):
-                    alm = _sht.map2alm(np.ascontiguousarray(maps[:, k]), lmax, nthreads=nthreads, rings=rings)
+                    alm = estimator._alm(np.ascontiguousarray(maps[:, k]), is_second=second)  # its own analysis
                     cols[:, j] = _to_real(alm, out_idx, out_part)
             x[side] = cols
         x1 = x["1"]
