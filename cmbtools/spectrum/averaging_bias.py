@@ -133,7 +133,8 @@ def pair_radius(nside, sky_factor) -> float:
         Resolution of the map.
     sky_factor : array_like
         B_l^2 T_l (no pixel window) from l = 0; the FWHM is that of the Gaussian
-        beam with the same half-power multipole (none: 7 pixels).
+        beam with the same half-power multipole, counted from the first multipole where the factor is
+        positive (l = 2 for the spin-2 fields, whose factors vanish below; none: 7 pixels).
 
     Returns
     -------
@@ -142,7 +143,13 @@ def pair_radius(nside, sky_factor) -> float:
     """
     pixel = math.sqrt(4.0 * math.pi / (12 * nside * nside))
     f = np.asarray(sky_factor, dtype=np.float64)
-    below = np.nonzero(f <= 0.5 * f[0])[0] if f.size and f[0] > 0 else np.zeros(0, int)
+    # the half power is found from the first multipole where the factor is positive: l = 0 for temperature, l = 2
+    # for the spin-2 fields (their factors vanish below)
+    positive = np.flatnonzero(f > 0)
+    below = np.zeros(0, int)
+    if positive.size:
+        first = int(positive[0])
+        below = first + np.nonzero(f[first:] <= 0.5 * f[first])[0]
     radius = MIN_RADIUS_PIXELS * pixel
     if below.size and below[0] > 1:
         l_half = float(below[0])

@@ -108,8 +108,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         carry the pixel shapes' bias that the isotropic pixel windows leave out, from the guess spectra: TT's
         from the temperature estimator's :func:`~cmbtools.spectrum.averaging_bias.averaging_bias`, the others
         from its spin-2 form :func:`~cmbtools.spectrum.polarized_averaging_bias.polarized_averaging_bias`
-        (including the small E/B mixing of the averaging).  With ``purify_b`` the rows with B are left
-        uncorrected (the pure B's response is not modelled).  It adds about 3-4 times the temperature
+        (including the small E/B mixing of the averaging; with ``purify_b``, of the pure B, whose spin-1 and
+        spin-0 terms see the pixel shapes through the window's derivatives).  It adds about 3-4 times the temperature
         correction's cost to the first call (DEVELOPERS.md "pixel averages").  False: maps sampled at the
         pixel centres.  None (default): True with the HEALPix pixel
         windows (at every nside), like the temperature estimator.
@@ -798,8 +798,8 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
         meta["sky_lmax"] = self.sky_lmax
         meta["guess_spectrum"] = self.descriptions.get("guess_cl", "none")
         meta["b_mode_purification"] = "yes" if self.purify_b else "no"
-        meta["pixels"] = (("averaged: the pixel shapes' bias corrected with the guess spectra (TT, TE, EE"
-                           + (")" if self.purify_b else ", BB, TB, EB)")) if self.averaged_pixels else "pixel centres")
+        meta["pixels"] = ("averaged: the pixel shapes' bias corrected with the guess spectra (TT, TE, EE, BB, TB, EB"
+                          + ("; pure B)" if self.purify_b else ")") if self.averaged_pixels else "pixel centres")
         meta["coupling"] = "exact"
         meta["condition_number"] = float(f"{self.condition_number:.6g}")
         meta["errors"] = ("Gaussian pseudo-spectrum covariance (improved narrow-kernel approximation, E-to-B leakage "

@@ -32,6 +32,29 @@ averaging (the turning of the frames inside a pixel: BB from EE, EB and TB when 
 cancel them).  The pixels p whose pairs are summed are those of the temperature module (every pixel of the
 first mask up to ``MAX_CENTRES``, else a stratified sample), and so are the radius and the quadrature order.
 
+**Pure B.**  The pure B of :mod:`cmbtools.spectrum.purification` is ``B[w P] + k1_l C[P conj(eth w)] -
+N_l a[Im(P conj(eth^2 w))]`` (``k1_l = 2 N_l sqrt(l(l+1))``): the analyses of P weighted by W_2 = w (spin-2
+harmonics), by W_1 = eth w (spin 1) and by W_0 = eth^2 w (spin 0).  By the addition theorem its pseudo-spectra are
+again pair sums, now over every pair of spins (t, t') of the two ends, with the weights turned into the great
+circle's frame (``W_t,r = W_t e^{-i(2-t) alpha}``, alpha at each end towards the other; at a pixel with itself
+the two directions are taken opposite, as for distinct points).  With ``cx(t, t') = <P_r(p) P_r(q)*> conj(W_t,r(p))
+W_t',r(q)`` and ``cy(t, t') = <P_r(p) P_r(q)> conj(W_t,r(p)) conj(W_t',r(q))`` (map a's weights at p, map b's at
+q; k_2 = 1, k_1 = k1_l, k_0 = N_l)::
+
+    BB~ = f/2 sum_pq sum_{t,t'} k_t k_t' [ s(t') Re cx(t, t') d^l_{t,t'}(beta) - Re cy(t, t') d^l_{t,-t'}(beta) ]
+
+with ``s(1) = -1``, ``s(0) = s(2) = 1``: nine pairs of spins, and the d functions (2,2), (2,-2), (2,1), (2,-1),
+(2,0), (1,1), (1,-1), (1,0), (0,0) (the others by d^l_{m'm} = (-1)^(m-m') d^l_{mm'} = d^l_{-m,-m'}).  E_a B_b
+(E standard) is ``f/2 sum k_t' [-s(t') Im cx(2, t') d^l_{2,t'} + Im cy(2, t') d^l_{2,-t'}]`` and T_a B_b is
+``-f sum k_t' Im(<T(p) P_r(q)> W_T(p) conj(W_t',r(q))) d^l_{0,-t'}``.  These are exact identities of the
+estimator's transforms (checked to 1e-8 of the pseudo-power with any maps, weights and derivative maps in
+tests/spectrum/test_pure_b_averaging_bias.py, which fixed the signs s(t') and the ends' directions).  The
+covariance differences are those of the standard B, so the extra cost is a few products per pair of pixels and
+seven more histograms (BB), three (EB) and two (TB, BT).  Measured (paired skies, nside 32, the cap with holes,
+beam of 2.2 pixels, 100 skies): the averaging moves the purified BB pseudo-power by +1.6, +0.8, +2.5, +5.8, +2.9 %
+in bins of 16 from ell 2 (standard errors 0.9, 0.14, 0.24, 0.29, 0.27 %), the model predicts +1.7, +0.5, +2.4,
++5.5, +2.9 % (within 1.9 standard errors in every bin; the standard B's model is off by up to 1.6 % there).
+
 Cost: the spin-2 pair sums cost about twice the temperature ones per pair of pixels (complex frame factors on
 every node pair); TE adds one pass more.  Results are kept in memory like the temperature ones
 (:data:`averaging_bias.CACHE_SIZE` entries, same key rule).
@@ -49,21 +72,31 @@ from cmbtools.spectrum import averaging_bias as _ab
 
 __all__ = ["polarized_averaging_bias", "wigner_d_series", "wigner_d_adjoint"]
 
-#: (m1, m2) of the Wigner d functions used here, and their value at l = 2 as a function of x = cos beta.
+#: (m1, m2) of the Wigner d functions used here: the first multipole l0 of the recurrence and the values of
+#: d^(l0 - 1) and d^l0 there, as functions of x = cos beta (the recurrence's term in d^(l0 - 1) vanishes, except
+#: for (0, 0), which starts from P_0 = 1 and P_1 = x).
 _START = {
-    (2, 2): lambda x: ((1.0 + x) / 2.0) ** 2,
-    (2, -2): lambda x: ((1.0 - x) / 2.0) ** 2,
-    (2, 0): lambda x: math.sqrt(3.0 / 8.0) * (1.0 - x * x),
+    (2, 2): (2, lambda x: 0.0 * x, lambda x: ((1.0 + x) / 2.0) ** 2),
+    (2, -2): (2, lambda x: 0.0 * x, lambda x: ((1.0 - x) / 2.0) ** 2),
+    (2, 0): (2, lambda x: 0.0 * x, lambda x: math.sqrt(3.0 / 8.0) * (1.0 - x * x)),
+    (1, 1): (1, lambda x: 0.0 * x, lambda x: (1.0 + x) / 2.0),
+    (1, -1): (1, lambda x: 0.0 * x, lambda x: (1.0 - x) / 2.0),
+    (0, 0): (1, lambda x: 1.0 + 0.0 * x, lambda x: 1.0 * x),
+    (2, 1): (2, lambda x: 0.0 * x, lambda x: -0.5 * (1.0 + x) * np.sqrt(np.clip(1.0 - x * x, 0.0, None))),
+    (2, -1): (2, lambda x: 0.0 * x, lambda x: -0.5 * (1.0 - x) * np.sqrt(np.clip(1.0 - x * x, 0.0, None))),
+    (1, 0): (1, lambda x: 0.0 * x, lambda x: -np.sqrt(np.clip(0.5 * (1.0 - x * x), 0.0, None))),
 }
 
 
 def _d_recurrence(kind, x, lmax):
     """Yield (l, d^l_{m1 m2}(x)) for l = 2..lmax (three-term recurrence in l, stable upwards)."""
     m1, m2 = kind
-    prev = np.zeros_like(x)
-    cur = _START[kind](x)
-    for ell in range(2, lmax + 1):
-        yield ell, cur
+    first, start_prev, start = _START[kind]
+    prev = np.asarray(start_prev(x), dtype=np.float64)
+    cur = np.asarray(start(x), dtype=np.float64)
+    for ell in range(first, lmax + 1):
+        if ell >= 2:
+            yield ell, cur
         if ell == lmax:
             break
         a = ell * math.sqrt((ell + 1) ** 2 - m1 * m1) * math.sqrt((ell + 1) ** 2 - m2 * m2)
@@ -82,7 +115,7 @@ def wigner_d_series(coeffs, kind, x) -> np.ndarray:
     coeffs : array_like
         c_l from l = 0 (the terms below l = 2 are ignored).
     kind : tuple of int
-        (m1, m2): (2, 2), (2, -2) or (2, 0).
+        (m1, m2): (2, 2), (2, -2), (2, 0), (1, 1), (1, -1) or (0, 0).
     x : array_like
         cos beta.
 
@@ -108,7 +141,7 @@ def wigner_d_adjoint(values, kind, x, lmax) -> np.ndarray:
     values : array_like
         v_k, one per point.
     kind : tuple of int
-        (m1, m2): (2, 2), (2, -2) or (2, 0).
+        (m1, m2): (2, 2), (2, -2), (2, 0), (1, 1), (1, -1) or (0, 0).
     x : array_like
         cos beta_k.
     lmax : int
@@ -164,6 +197,20 @@ def _phase(raw):
     return out
 
 
+def _unit_phases(raw_p, raw_q):
+    """``e^{i alpha}`` at both centres of each pair (``raw``: (e_theta + i e_phi) . the other centre); where the
+    two coincide, 1 at p and -1 at q (the direction towards the other point turns by pi from one end to the
+    other, as it does for distinct points: it fixes the sign of the spin-1 terms of a pixel with itself)."""
+    out = []
+    for raw, same in ((raw_p, 1.0), (raw_q, -1.0)):
+        m = np.abs(raw)
+        tiny = m < 1e-12
+        e = raw / np.where(tiny, 1.0, m)
+        e[tiny] = same
+        out.append(e)
+    return out
+
+
 _cache: "collections.OrderedDict[str, dict]" = collections.OrderedDict()
 _cache_lock = threading.Lock()
 
@@ -174,14 +221,17 @@ def clear_polarized_averaging_bias_cache() -> None:
         _cache.clear()
 
 
-def _key(kind, w_a, w_b, spectra, win_a, win_b, lmax, radius, max_centres, order):
+def _key(kind, w_a, w_b, spectra, win_a, win_b, lmax, radius, max_centres, order, derivatives=(None, None)):
     arrays = [("mask", w_a), ("mask2", w_b), ("win_a", win_a), ("win_b", win_b)]
+    for side, pair in zip("ab", derivatives):
+        for j, d in enumerate(pair if pair is not None else (None, None)):
+            arrays.append((f"eth{j + 1}_{side}", None if d is None else np.ascontiguousarray(d).view(np.float64)))
     arrays += [("cl_" + k, spectra[k]) for k in sorted(spectra)]
     return _ab._digest(kind, arrays, _ab._settings(lmax, radius, max_centres, order))
 
 
 def polarized_averaging_bias(mask, mask2, spectra, window_t, window_p, lmax, *, parts=("PP", "TP", "PT"),
-                             radius=None, max_centres=_ab.MAX_CENTRES, order=_ab.ORDER) -> dict:
+                             radius=None, max_centres=_ab.MAX_CENTRES, order=_ab.ORDER, derivatives=None) -> dict:
     """Expected pseudo-spectra of pixel-averaged maps minus those of the window model, for given sky spectra.
 
     Parameters
@@ -205,6 +255,11 @@ def polarized_averaging_bias(mask, mask2, spectra, window_t, window_p, lmax, *, 
         Largest pair separation, radians (default 7 pixels).
     max_centres, order : int
         As :func:`cmbtools.spectrum.averaging_bias.averaging_bias`.
+    derivatives : tuple, optional
+        For the pure B (:mod:`cmbtools.spectrum.purification`): ``(pair_a, pair_b)``, each ``(eth w, eth^2 w)``
+        of the Q, U weights of map a and of map b (:func:`~cmbtools.spectrum.purification.window_derivatives`;
+        ``pair_b`` None: ``pair_a``, one mask).  'BB', 'EB', 'TB' and 'BT' are then those of the pure B (the
+        module notes, "pure B").  None (default): the standard B.
 
     Returns
     -------
@@ -236,13 +291,23 @@ def polarized_averaging_bias(mask, mask2, spectra, window_t, window_p, lmax, *, 
         a = np.asarray(win, dtype=np.float64)[:n]
         v[: a.size] = a
         wins.append(v)
-    key = _key(",".join(parts), w_a, w_b, sp, wins[0], wins[1], lmax, radius, max_centres, order)
+    pure = None
+    if derivatives is not None:
+        pair_a, pair_b = derivatives
+        pair_b = pair_a if pair_b is None else pair_b
+        pure = tuple(None if d is None else tuple(np.asarray(x, dtype=np.complex128) for x in d)
+                     for d in (pair_a, pair_b))
+        if (("PP" in parts or "PT" in parts) and pure[0] is None) or (("PP" in parts or "TP" in parts)
+                                                                       and pure[1] is None):
+            raise ValueError("derivatives: the pure B needs the derivatives of every polarization mask in parts")
+    key = _key(",".join(parts), w_a, w_b, sp, wins[0], wins[1], lmax, radius, max_centres, order,
+               (None, None) if pure is None else pure)
     with _cache_lock:
         kept = _cache.get(key)
         if kept is not None:
             _cache.move_to_end(key)
             return {k: v.copy() for k, v in kept.items()}
-    result = _pair_sums(parts, w_a, w_b, sp, wins[0], wins[1], lmax, radius, max_centres, order)
+    result = _pair_sums(parts, w_a, w_b, sp, wins[0], wins[1], lmax, radius, max_centres, order, pure)
     with _cache_lock:
         _cache[key] = {k: v.copy() for k, v in result.items()}
         _cache.move_to_end(key)
@@ -271,7 +336,7 @@ def _gather(tables, step, chord2):
     return out
 
 
-def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, order):
+def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, order, pure=None):
     symmetric_masks = w_b is None
     w_b = w_a if w_b is None else w_b
     npix = w_a.size
@@ -321,6 +386,17 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
     centre_eps = _frames(centre_vec)
     weight2 = np.outer(wt, wt).ravel()
     npts = nodes.shape[1]
+    if pure is not None:
+        # the pure B's weights at the pixels involved (the module notes, "pure B"): map a's and map b's window
+        # derivatives (eth w, eth^2 w) where their fields are Q, U; the pairs' counts without the masks
+        wa_used, wb_used = w_a[used], w_b[used]
+        der_a = None if pure[0] is None else (pure[0][0][used], pure[0][1][used])
+        der_b = None if pure[1] is None else (pure[1][0][used], pure[1][1][used])
+        pkeys = ([] if not want_pp else ["b21", "b2m1", "b20", "b11", "b1m1", "b10", "b00", "e21", "e2m1", "e20"])
+        pkeys += (["t10", "t00"] if want_tp else []) + (["u10", "u00"] if want_pt else [])
+        keys += pkeys
+        hist.update({k: np.zeros(_ab._HIST_BINS + 2) for k in pkeys})
+        hist_t.update({k: np.zeros(_ab._HIST_BINS + 2) for k in pkeys})
     for s in range(0, pairs_w.size, block):
         ip, iq = index_p[s : s + block], index_q[s : s + block]
         npair = ip.size
@@ -340,8 +416,10 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
         cp, cq = centre_vec[ip], centre_vec[iq]
         centre2 = np.sum((cp - cq) ** 2, axis=1)
         model = _gather(mod_tab, step, centre2)  # per series, (B,)
-        zp = _phase(np.einsum("ij,ij->i", centre_eps[ip], cq))  # centre frames: at p towards q
-        zq = _phase(np.einsum("ij,ij->i", cp, centre_eps[iq]))  # at q
+        raw_p = np.einsum("ij,ij->i", centre_eps[ip], cq)
+        raw_q = np.einsum("ij,ij->i", cp, centre_eps[iq])
+        zp = _phase(raw_p)  # centre frames: at p towards q
+        zq = _phase(raw_q)  # at q
         deltas = {}
 
         def get(name, where):
@@ -382,13 +460,18 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
             val = (wsum((xi_te, cos_x), (xi_tb, -sin_x)) + 1j * wsum((xi_te, sin_x), (xi_tb, cos_x))) * zp.conj()
             deltas["qt"] = val.real - model_of("te")
             deltas["ut"] = val.imag - model_of("tb")
+        if pure is not None:
+            deltas.update(_pure_terms(deltas, plus if want_pp else None, raw_p, raw_q, ip, iq, wa_used, wb_used,
+                                      der_a, der_b, want_pp, want_tp, want_pt, symmetric))
+            mult = pairs_w[s : s + block] / (wa_used[ip] * wb_used[iq])
         if symmetric and "tq" in deltas:
             for a, b in (("tq", "qt"), ("tu", "ut")):
                 deltas[a] = deltas[b] = 0.5 * (deltas[a] + deltas[b])
         i, f, taper = _ab._histogram_place(centre2, scale, taper_radius)
         pw = pairs_w[s : s + block]
         for name in keys:
-            _ab._histograms_add(hist[name], hist_t[name], i, f, taper, pw * deltas[name])
+            weight = mult if name in _PURE_KEYS else pw  # the pure terms carry their masks' values themselves
+            _ab._histograms_add(hist[name], hist_t[name], i, f, taper, weight * deltas[name])
     chord = np.arange(_ab._HIST_BINS + 2) / scale
     x = 1.0 - chord**2 / 2.0
     omega = 4.0 * np.pi / npix
@@ -410,4 +493,87 @@ def _pair_sums(parts, w_a, w_b, sp, win_t, win_p, lmax, radius, max_centres, ord
     if "PT" in parts:
         out["ET"] = f * adjoint("qt", (2, 0))
         out["BT"] = f * adjoint("ut", (2, 0))
+    if pure is not None:
+        for name, extra in _pure_extras(adjoint, f, lmax, parts).items():
+            out[name] += extra
+    return out
+
+
+def _pure_extras(adjoint, f, lmax, parts):
+    """The pure B's extra terms of 'BB', 'EB', 'TB', 'BT' from the pair histograms of :func:`_pure_terms`
+    (``adjoint(name, kind)``: the d^l_kind sums of histogram ``name``, l = 0..lmax)."""
+    ell = np.arange(lmax + 1, dtype=np.float64)
+    n_l = np.zeros(lmax + 1)
+    n_l[2:] = 1.0 / np.sqrt((ell[2:] - 1) * ell[2:] * (ell[2:] + 1) * (ell[2:] + 2))
+    k1 = 2.0 * n_l * np.sqrt(ell * (ell + 1.0))  # the spin-1 term's factor; n_l the spin-0 term's
+    out = {}
+    if "PP" in parts:
+        out["BB"] = f * 0.5 * (k1 * (adjoint("b21", (2, 1)) + adjoint("b2m1", (2, -1))) + n_l * adjoint("b20", (2, 0))
+                               + k1 * k1 * (adjoint("b11", (1, 1)) + adjoint("b1m1", (1, -1)))
+                               + k1 * n_l * adjoint("b10", (1, 0)) + n_l * n_l * adjoint("b00", (0, 0)))
+        out["EB"] = f * 0.25 * (k1 * (adjoint("e21", (2, 1)) + adjoint("e2m1", (2, -1))) + n_l * adjoint("e20", (2, 0)))
+    if "TP" in parts:
+        out["TB"] = -f * (k1 * adjoint("t10", (1, 0)) + n_l * adjoint("t00", (0, 0)))
+    if "PT" in parts:
+        out["BT"] = -f * (k1 * adjoint("u10", (1, 0)) + n_l * adjoint("u00", (0, 0)))
+    return out
+
+
+#: The pair histograms of the pure B's extra terms (:func:`_pure_terms`).
+_PURE_KEYS = frozenset(["b21", "b2m1", "b20", "b11", "b1m1", "b10", "b00", "e21", "e2m1", "e20", "t10", "t00",
+                        "u10", "u00"])
+
+
+def _pure_terms(deltas, plus, raw_p, raw_q, ip, iq, wa, wb, der_a, der_b, want_pp, want_tp, want_pt, symmetric):
+    """Per pair of pixels, the values of the pure B's extra pair histograms (the module notes, "pure B").
+
+    ``deltas``: the pair's differences of the covariances (before the T x P ones are symmetrised); ``plus``:
+    the averaged ``<P_r(p) P_r(q)*>`` (complex); ``wa``, ``wb``: both maps' weights at the pixels involved,
+    ``der_a``, ``der_b``: their (eth w, eth^2 w) where the field is Q, U.  The pair's count (its share of the
+    sum) multiplies the values afterwards.
+    """
+    e_p, e_q = _unit_phases(raw_p, raw_q)
+    out = {}
+
+    def turned(der, idx, e):  # the spin-1 and spin-2 weights in the frame of the great circle (e = e^{i alpha})
+        return der[0][idx] * e.conj(), der[1][idx] * (e.conj() * e.conj())
+
+    a2 = wa[ip]
+    b2 = wb[iq]
+    if want_pp or want_pt:
+        a1, a0 = turned(der_a, ip, e_p)
+    if want_pp or want_tp:
+        b1, b0 = turned(der_b, iq, e_q)
+    if want_pp:
+        dcp = deltas["plus"] + 1j * plus.imag  # <P_r(p) P_r(q)*>, averaged minus model (the model's is real)
+        dcm = deltas["minus"] + 1j * deltas["cross"]  # <P_r(p) P_r(q)>
+        a1c, a0c = a1.conj(), a0.conj()
+        # BB: Re of cx(t, t') = dcp conj(A_t) B_t' and cy(t, t') = dcm conj(A_t) conj(B_t'), grouped by d function
+        out["b21"] = -(dcp * b1 * a2 + dcp * a1c * b2).real
+        out["b2m1"] = -(dcm * b1.conj() * a2 + dcm * a1c * b2).real
+        out["b20"] = (dcp * (a2 * b0 + a0c * b2) - dcm * (a2 * b0.conj() + a0c * b2)).real
+        out["b11"] = -(dcp * a1c * b1).real
+        out["b1m1"] = -(dcm * a1c * b1.conj()).real
+        out["b10"] = (dcp * (a1c * b0 + a0c * b1) - dcm * (a1c * b0.conj() + a0c * b1.conj())).real
+        out["b00"] = (dcp * a0c * b0 - dcm * a0c * b0.conj()).real
+        # EB: E_a B_b (E at p) plus E_b B_a (E at q: <P_r(q) P_r(p)*> = conj(dcp)); the mean is taken outside
+        out["e21"] = (dcp * a2 * b1 + dcp.conj() * b2 * a1).imag
+        out["e2m1"] = (dcm * a2 * b1.conj() + dcm * b2 * a1c).imag
+        out["e20"] = (-(dcp * a2 * b0 + dcp.conj() * b2 * a0) + dcm * (a2 * b0.conj() + b2 * a0c)).imag
+    if want_tp or want_pt:
+        # <T P_r> = -(xi_TE + i xi_TB): minus the stored deltas
+        t_p = -(deltas["tq"] + 1j * deltas["tu"]) if want_tp else None  # T at p, P at q
+        t_q = -(deltas["qt"] + 1j * deltas["ut"]) if want_pt else None  # P at p, T at q
+        tb = None
+        if want_tp:
+            tb = ((t_p * a2 * b1.conj()).imag, (t_p * a2 * b0.conj()).imag)
+        bt = None
+        if want_pt:
+            bt = ((t_q * b2 * a1.conj()).imag, (t_q * b2 * a0.conj()).imag)
+        if symmetric and tb is not None and bt is not None:
+            tb = bt = tuple(0.5 * (x + y) for x, y in zip(tb, bt))
+        if tb is not None:
+            out["t10"], out["t00"] = tb
+        if bt is not None:
+            out["u10"], out["u00"] = bt
     return out

@@ -248,8 +248,9 @@ def _polarized_averaging_biases(est, a, b, components, grid, window_t):
 
     Per component of maps a x b: TE/TB (T of a with Q, U of b), ET/BT (Q, U of a with T of b), EE/BB/EB, from
     :func:`~cmbtools.spectrum.polarized_averaging_bias.polarized_averaging_bias` with the guess as seen on the grid
-    (without the pixel windows).  With B-mode purification only the components without B (TE, ET, EE) are
-    corrected: the pure B's response to the pixel shapes is not modelled.  The parts that share their masks
+    (without the pixel windows).  With B-mode purification the components with B are those of the pure B (its
+    spin-1 and spin-0 terms weighted by the window's derivatives: the module notes of
+    :mod:`~cmbtools.spectrum.polarized_averaging_bias`, "pure B").  The parts that share their masks
     (T and P of a map under one mask) are computed in one pass over the pairs of pixels.
     """
     from cmbtools.spectrum.averaging_bias import default_centres, pair_radius
@@ -298,16 +299,21 @@ def _polarized_averaging_biases(est, a, b, components, grid, window_t):
     for first, second, parts, spec in calls:
         same = second is None or key[first] == key[second]
         fields = {"PP": ("p", "p"), "TP": ("t", "p"), "PT": ("p", "t")}[parts[0]]
+        derivatives = None
+        if est.purify_b:  # the window derivatives of each side whose field is Q, U (the pure B's weights)
+            sides = [first, first if second is None else second]
+            derivatives = tuple(est._derivs[key[m]] if m[0] == "p" else None for m in sides)
         got.update(polarized_averaging_bias(
             est.masks[first], None if same else est.masks[second], spec, window_t, window_p, lmax, parts=parts,
-            radius=radius(fields[0] + a, fields[1] + b), max_centres=default_centres(est.nside)))
+            radius=radius(fields[0] + a, fields[1] + b), max_centres=default_centres(est.nside),
+            derivatives=derivatives))
     if "ET" in components and "ET" not in got:
         got["ET"], got["BT"] = got["TE"], got["TB"]
     # the measured components of maps a x b: TE = T_a E_b ('TP'), ET = E_a T_b ('PT'), TB/BT likewise
     names = {"EE": "EE", "BB": "BB", "EB": "EB", "TE": "TE", "TB": "TB", "ET": "ET", "BT": "BT"}
     out = {}
     for c, g in names.items():
-        if c in components and g in got and not (est.purify_b and "B" in c):
+        if c in components and g in got:
             out[c] = got[g]
     return out
 
