@@ -30,13 +30,11 @@ from cmbtools._core.checks import (
 )
 from cmbtools._version import __version__
 from cmbtools.exceptions import CmbtoolsWarning, InvalidInputError
-from cmbtools.spectrum import coupling as coupling_pol
 from cmbtools.spectrum import purification
 from cmbtools.spectrum.binning import Binning
 from cmbtools.spectrum.polarized_bandpowers import SPECTRA, PolarizedBandpowers
 from cmbtools.spectrum.polarized_covariance import covariance_requests as _covariance_requests
 from cmbtools.spectrum.polarized_covariance import pseudo_covariance as _pseudo_cov
-from cmbtools.spectrum.errors import _reduce_rows
 from cmbtools.spectrum.map_preparation import _checked_values
 from cmbtools.spectrum import polarized_corrections as _corrections
 from cmbtools.spectrum.polarized_corrections import binned_columns
@@ -663,27 +661,43 @@ class PolarizedSpectrumEstimator(_PolarizedOperator):
                 # white noise beyond lmax: the rows of a standard kernel add up to mean(w_x w_y) on any grid
                 m = "t1" if comp == "TT" else "p1"
                 acc += self._moments(m, m) * row_weight * n[comp][-1] - rows
-            elif comp == "BB":  # pure B: the tail from lmax < l' <= 2 lmax through R^2.M00
-                acc += n["BB"][-1] * self._pure_noise_tail()
+            elif comp == "BB":
+                # pure B: its whole response to white pixel noise, exact on the grid, in place of the kernels'
+                # columns up to lmax
+                acc += n["BB"][-1] * self._pure_white_noise() - rows
             out.append(acc)
         return np.concatenate(out)
 
-    def _pure_noise_tail(self):
-        """Binned pure-B pseudo noise per unit white noise from the multipoles lmax < l' <= 2 lmax."""
+    def _pure_white_noise(self):
+        """Binned pure-B pseudo noise of map 1 per unit white noise spectrum (Q and U), exact on the grid.
+
+        The pure B is three analyses of ``P = Q + iU`` weighted by the window ``w``, its spin-1 derivative and its
+        spin-2 derivative (:func:`~cmbtools.spectrum.purification.pure_eb_alm`).  For white pixel noise (``Q`` and
+        ``U`` independent with one variance) the three parts are uncorrelated at each pixel and, by the addition
+        theorem of spin-weighted harmonics at zero separation (``sum_m sY_lm s'Y*_lm = (2l+1)/(4 pi) delta_ss'``),
+        their m-sums have no cross terms, so per unit noise spectrum
+
+            <C~^BB_l> = mean(w^2) + 4 N_l^2 l (l+1) mean(|eth w|^2) + N_l^2 mean(|eth^2 w|^2),
+
+        the means over the sphere of pixels seen (``w != 0``), ``N_l = ((l-1) l (l+1) (l+2))^(-1/2)``.  This holds
+        for every multipole of the noise, aliased ones included, as the standard estimator's ``mean(w^2)`` does.
+        """
         lmax = self.lmax
-        lc = 2 * lmax
 
         def make():
-            nthreads = self._threads()
-            j = self._key_of["p1"]
-            u = self._unique[j]
-            w = _sht.map_spectra([u], lmax + lc, nthreads=nthreads, rings=_sht.occupied_rings(u))[0]
-            m = coupling_pol.coupling_matrices([("00", w)], lmax, nthreads=nthreads, lmax_columns=lc)[0]
-            m *= coupling_pol.pure_b_ratio(lmax, lc) ** 2
-            m[:, : lmax + 1] = 0.0
-            return _reduce_rows(m, self.binning.averaging_weights(lmax), self.binning.ell_min).sum(axis=1)
+            w = self._unique[self._key_of["p1"]]
+            eth_w, eth2_w = self._derivs[self._key_of["p1"]]
+            seen = w != 0
+            m0 = float(np.mean(np.where(seen, w * w, 0.0)))
+            m1 = float(np.mean(np.where(seen, eth_w.real**2 + eth_w.imag**2, 0.0)))
+            m2 = float(np.mean(np.where(seen, eth2_w.real**2 + eth2_w.imag**2, 0.0)))
+            ell = np.arange(lmax + 1, dtype=np.float64)
+            n2 = np.zeros(lmax + 1)
+            n2[2:] = 1.0 / ((ell[2:] - 1) * ell[2:] * (ell[2:] + 1) * (ell[2:] + 2))
+            per_l = m0 + 4.0 * n2 * ell * (ell + 1) * m1 + n2 * m2
+            return np.add.reduceat(self.binning.averaging_weights(lmax) * per_l, self.binning.ell_min)
 
-        return self._cached(("pure_noise_tail",), make)
+        return self._cached(("pure_white_noise",), make)
 
     def _windows(self, cross: bool) -> np.ndarray:
         """The matrix of :meth:`expected_bandpowers`: (6 n_bins, 6 (lmax+1)), spectrum-major on both axes."""
