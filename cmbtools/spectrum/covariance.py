@@ -58,7 +58,9 @@ Lowest sky multipoles.  Under a beam the sky's spectrum is steep, and the mask l
 the lowest multipoles into the upper bins; the leaked power at ``l`` and ``l'`` comes from the same few sky
 modes, which the narrow-kernel form (narrow in ``l - l'``) cannot correlate: its neighbouring bins came out
 too anti-correlated (on the Monte Carlo test's survey, against the exact Gaussian covariance: -0.08 to -0.20).
-Up to nside :data:`~cmbtools.spectrum.low_sky_covariance.MAX_NSIDE` (64) the covariance replaces the
+Up to nside :data:`~cmbtools.spectrum.low_sky_covariance.MAX_NSIDE` (64), where the low multipoles carry a
+share of at least :data:`~cmbtools.spectrum.low_sky_covariance.LEAK_SHARE` of the coupled power at the top of the
+range, the covariance replaces the
 narrow-kernel part made by the sky's multipoles up to ``L`` (about 32, at a bin's end) alone by the exact one
 (:mod:`cmbtools.spectrum.low_sky_covariance`: the estimator's removal, mask and analysis applied to each of those
 sky modes, Isserlis' theorem on the bins' Gram matrices); the parts made by the higher multipoles, and by the low
@@ -426,7 +428,10 @@ class GaussianCovariance:
         self.windows = estimator._windows(cross)
         self.n_bins = int(binning.n_bins)
         # the exact covariance of the part made by the sky's lowest multipoles (spectrum.low_sky_covariance)
-        self._low_sky = self._low_sky_part(estimator, cross, nthreads)
+        # (its level here; the part itself is built on the first covariance whose sky leaks enough low power)
+        self._low_sky_level = self._low_sky_split(estimator, cross)
+        self._low_sky_built = None
+        self._low_sky_off = False
         # the monopole/dipole (template) removal's change of the covariance (spectrum.deprojection_covariance)
         self._deprojection = None
         if estimator._inputs.deprojects:
@@ -436,18 +441,62 @@ class GaussianCovariance:
                        for x, nz in self._noise.items()}
             self._deprojection = DeprojectionCovariance(estimator, weights, cross, nthreads)
 
-    def _low_sky_part(self, estimator, cross, nthreads):
-        """The :class:`~cmbtools.spectrum.low_sky_covariance.LowSkyCovariance` of this covariance, or None."""
+    def _low_sky_split(self, estimator, cross):
+        """The last multipole of the exact low-sky part (:func:`~cmbtools.spectrum.low_sky_covariance.low_sky_lmax`), or None."""
         from cmbtools.spectrum import low_sky_covariance as low
 
         if int(estimator.nside) > low.MAX_NSIDE:
             return None
         first = 2 if estimator.remove_monopole_dipole else 0
         n_maps = 2 if cross and estimator._inputs.mask2 is not None else 1
-        level = low.low_sky_lmax(estimator.binning, self._lmax, first, self.n_bins, n_maps)
-        if level is None:
+        return low.low_sky_lmax(estimator.binning, self._lmax, first, self.n_bins, n_maps)
+
+    @property
+    def _low_sky(self):
+        """The :class:`~cmbtools.spectrum.low_sky_covariance.LowSkyCovariance` of this covariance (built once), or None."""
+        from cmbtools.spectrum import low_sky_covariance as low
+
+        if self._low_sky_level is None or self._low_sky_off:
             return None
-        return low.LowSkyCovariance(estimator, cross, level, first, self._p, self._starts, nthreads)
+        if self._low_sky_built is None:
+            est = self._estimator
+            first = 2 if est.remove_monopole_dipole else 0
+            self._low_sky_built = low.LowSkyCovariance(est, self._cross, self._low_sky_level, first, self._p,
+                                                       self._starts, self._nthreads)
+        return self._low_sky_built
+
+    @_low_sky.setter
+    def _low_sky(self, value):
+        """Setting None turns the exact low-sky part off (the narrow-kernel covariance alone)."""
+        if value is not None:
+            raise ValueError("only None turns the exact low-sky part off")
+        self._low_sky_off = True
+
+    def _leaks_low_sky(self, cl) -> bool:
+        """Whether the sky's multipoles up to the split carry enough of the coupled power at the top of the range.
+
+        The exact part matters where the mask leaks the low multipoles' power into bins whose own power is small
+        (under a beam); elsewhere the narrow-kernel form holds and the part's ``(L+1)^2`` transforms are skipped.
+        The test: the share of the low multipoles in the coupled spectrum over the top third of the multipoles
+        above the split reaches :data:`~cmbtools.spectrum.low_sky_covariance.LEAK_SHARE`.
+        """
+        from cmbtools.spectrum import low_sky_covariance as low
+
+        level = self._low_sky_level
+        if level is None or self._low_sky_off:
+            return False
+        low_cl = cl.copy()
+        low_cl[level + 1:] = 0.0
+        c, c_low = self._coupled(cl), self._coupled(low_cl)
+        top = slice(level + 1 + 2 * (self._lmax - level) // 3, self._lmax + 1)
+        share = 0.0
+        for k in c:
+            whole = np.abs(np.asarray(c[k])[top])
+            part = np.abs(np.asarray(c_low[k])[top])
+            ok = whole > 0
+            if np.any(ok):
+                share = max(share, float(np.max(part[ok] / whole[ok])))
+        return share >= low.LEAK_SHARE
 
     def noise_bandpowers(self) -> np.ndarray:
         """Expected noise bias of the auto-spectrum's ``cl`` bandpowers, K^2 (zeros for a cross-spectrum).
@@ -624,7 +673,7 @@ class GaussianCovariance:
             binned = part if binned is None else binned + part
         binned = 0.5 * (binned + binned.T)
         high = cl
-        if self._low_sky is not None:  # the low sky x low sky part: exact in place of the narrow-kernel one
+        if self._leaks_low_sky(cl):  # the low sky x low sky part: exact in place of the narrow-kernel one
             level = self._low_sky.l_low
             low_cl = cl.copy()
             low_cl[level + 1:] = 0.0

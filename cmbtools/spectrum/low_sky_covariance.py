@@ -29,6 +29,11 @@ terms of the narrow-kernel form with the amplitudes ``c^L`` only: the low x low 
 one, the high x high and low x high parts keep the narrow-kernel form (with the noise terms).  ``Sigma_L``
 contains the removal, so :mod:`cmbtools.spectrum.deprojection_covariance` is given the sky above ``L`` only.
 
+When.  Only where the sky leaks enough low power: the low multipoles' share of the coupled signal spectrum over
+the top third of the multipoles above ``L`` must reach :data:`LEAK_SHARE` (decided per call of
+:meth:`~cmbtools.spectrum.GaussianCovariance.covariance`, the part built on the first call that needs it).
+Without a steep (beam-suppressed) spectrum the narrow-kernel form holds and the transforms are skipped.
+
 Where to split.  ``L`` is the end of the bin that contains ``LOW_SKY_LMAX`` (32) if that end is at most
 ``LARGEST_LMAX`` (48), else the end of the last bin below it, so that every bin is wholly in the low part or
 not (:func:`low_sky_lmax`).  Pairs of bins below ``L`` then have the exact low x low part; the pair of the last
@@ -71,7 +76,7 @@ import numpy as np
 
 from cmbtools._core import sht as _sht
 
-__all__ = ["LOW_SKY_LMAX", "MAX_NSIDE", "LowSkyCovariance", "low_sky_lmax"]
+__all__ = ["LEAK_SHARE", "LOW_SKY_LMAX", "MAX_NSIDE", "LowSkyCovariance", "low_sky_lmax"]
 
 #: Sky modes synthesized and projected together (a block of maps).
 _BLOCK = 128
@@ -84,6 +89,11 @@ LARGEST_LMAX = 48
 
 #: Estimators on finer grids keep the narrow-kernel covariance (the step costs (L+1)^2 transforms of the map).
 MAX_NSIDE = 64
+
+#: The part is computed when the low multipoles carry at least this share of the coupled signal spectrum over the
+#: top third of the multipoles above the split (measured, nside 32 survey of the Monte Carlo test: 0.15-0.29
+#: under its beam of two pixels, 0.005-0.008 under a beam of 0.8 pixel, 0.002-0.004 without a beam).
+LEAK_SHARE = 0.05
 
 #: Largest size of the per-bin Gram matrices and the step's columns (``L`` is lowered to fit).
 WORK_BYTES = 512 * 2**20
