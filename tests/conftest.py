@@ -40,26 +40,33 @@ def rng():
 # (every parametrized case is its own unit).  Tests not listed are handed out afterwards as pytest-xdist does.
 # Keys that match nothing (a renamed test) only cost the ordering; update them from a `--durations=30` run.
 EXPECTED_SECONDS = {
-    # wall seconds with -n 2 at load 2-4 (2026-12-04 04:39-04:50 UTC)
-    "tests/spectrum/test_polarization_montecarlo.py::test_polarized_bandpowers_unbiased_with_right_errors": 87,
-    "tests/cli/test_interface_faults.py::test_readme_api_block_runs_verbatim_as_a_script": 63,
-    "tests/scripts/test_benchmark_script.py::test_quick_run_prints_every_figure": 62,
+    # wall seconds with -n 2 at load 2-3 (2026-12-04 13:42-13:55 UTC, --durations)
+    "tests/spectrum/test_polarization_montecarlo.py::test_polarized_bandpowers_unbiased_with_right_errors": 115,
+    "tests/cli/test_interface_faults.py::test_readme_api_block_runs_verbatim_as_a_script": 66,
+    "tests/scripts/test_benchmark_script.py::test_quick_run_prints_every_figure": 57,
     "tests/simulate/test_polarized_theory.py": 55,
-    "tests/cli/test_readme_examples.py::test_a_readme_example_prints_what_the_readme_shows[validate]": 47,
+    "tests/spectrum/test_purified_averaged_pixels.py": 46,
+    "tests/spectrum/test_covariance.py::test_gaussian_errors_match_the_scatter_of_simulations": 46,
+    "tests/spectrum/test_averaged_pixels_default.py::test_default_model_is_unbiased_on_averaged_skies": 39,
+    "tests/cli/test_readme_examples.py::test_a_readme_example_prints_what_the_readme_shows[validate]": 35,
+    "tests/cli/test_readme_examples.py::test_a_readme_example_prints_what_the_readme_shows[spectrum1]": 34,
+    "tests/spectrum/test_polarized_averaged_pixels.py::test_polarized_default_model_on_averaged_iqu_skies": 34,
     "tests/spectrum/test_deprojection.py::"
-    "test_every_bin_unbiased_on_pixelised_skies_with_monopole_dipole_and_power_above_lmax": 44,
-    "tests/spectrum/test_averaged_pixels_default.py::test_default_model_is_unbiased_on_averaged_skies": 36,
-    "tests/cli/test_cli_default_range.py::test_validate_uses_the_default_range_and_skies_to_four_nside": 35,
-    "tests/spectrum/test_covariance.py::test_gaussian_errors_match_the_scatter_of_simulations": 31,
-    "tests/cli/test_interface_workflows.py::test_noise_bias_from_the_half_difference_round_trips_through_its_table": 31,
-    "tests/cli/test_readme_examples.py::test_a_readme_example_prints_what_the_readme_shows[spectrum+spectrum]": 24,
-    "tests/cli/test_cli_default_range.py::test_iqu_spectra_follow_the_same_default_range": 24,
-    "tests/cli/test_interface_workflows.py::test_validate_takes_the_binning_options_of_spectrum": 17,
-    "tests/cli/test_interface_workflows.py::test_a_noise_table_with_other_bins_is_refused_before_writing": 17,
-    "tests/simulate/test_theory_spectrum.py::test_amplitude_and_tilt_scale_as_the_primordial_spectrum": 16,
+    "test_every_bin_unbiased_on_pixelised_skies_with_monopole_dipole_and_power_above_lmax": 30,
+    "tests/cli/test_interface_workflows.py::test_validate_takes_the_binning_options_of_spectrum": 28,
+    "tests/cli/test_readme_examples.py::test_a_readme_example_prints_what_the_readme_shows[spectrum+spectrum]": 26,
+    "tests/spectrum/test_transfer.py::test_measured_transfer_undoes_a_high_pass_on_independent_realistic_maps": 22,
+    "tests/cli/test_cli_default_range.py::test_validate_uses_the_default_range_and_skies_to_four_nside": 19,
+    "tests/cli/test_interface_workflows.py::test_operator_cache_says_whether_it_was_built_reused_or_rebuilt": 18,
+    "tests/cli/test_interface_workflows.py::test_noise_bias_from_the_half_difference_round_trips_through_its_table": 17,
+    "tests/spectrum/test_pure_b_noise_bias.py": 15,
+    "tests/cli/test_cli_polarized_covariance.py::"
+    "test_validate_polarized_writes_covariance_and_transfer_that_spectrum_reads_back": 14,
+    "tests/cli/test_cli_default_range.py::test_iqu_spectra_follow_the_same_default_range": 14,
+    "tests/simulate/test_theory_spectrum.py::test_amplitude_and_tilt_scale_as_the_primordial_spectrum": 12,
     "tests/spectrum/test_estimator_montecarlo.py": 15,
     "tests/cli/test_cli_validate.py::test_validate_writes_outputs_matches_the_library_and_resumes": 15,
-    "tests/cli/test_interface_workflows.py::test_validate_cross_mode_with_two_masks_has_no_noise_bias": 15,
+    "tests/cli/test_interface_workflows.py::test_validate_cross_mode_with_two_masks_has_no_noise_bias": 13,
 }
 
 

@@ -20,7 +20,7 @@ from cmbtools.spectrum import Binning, PolarizedSpectrumEstimator, SPECTRA
 NSIDE = 32
 NPIX = 12 * NSIDE**2
 SIGMA_T = 1e-5  # K per pixel in I; Q and U sqrt(2) times (common practice)
-N_SIMS = 300
+N_SIMS = 120
 
 
 @pytest.mark.parametrize("lmax", [2 * NSIDE, 3 * NSIDE - 1])
